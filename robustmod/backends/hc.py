@@ -1,0 +1,87 @@
+"""Heteroscedasticity-consistent covariance estimators HC0–HC5 as one small family.
+
+Every member is the sandwich V = R⁻¹ [Qᵀ diag(ωᵢ êᵢ²) Q] R⁻ᵀ built from the thin QR
+factor X = QR; members differ only in the weight ωᵢ of the squared residual, with
+hᵢ = ‖Qᵢ‖² the leverage, n rows, k columns and h̄ = k/n:
+
+====  =======================================  ==========================================
+HC0   1                                         White (1980)
+HC1   n / (n − k)                               MacKinnon & White (1985)
+HC2   1 / (1 − hᵢ)                              MacKinnon & White (1985)
+HC3   1 / (1 − hᵢ)²                             MacKinnon & White (1985)
+HC4   1 / (1 − hᵢ)^δᵢ, δᵢ = min(4, hᵢ/h̄)        Cribari-Neto (2004)
+HC4m  1 / (1 − hᵢ)^δᵢ, δᵢ = min(1, hᵢ/h̄) + min(1.5, hᵢ/h̄)   Cribari-Neto & da Silva (2011)
+HC5   1 / (1 − hᵢ)^(δᵢ/2), δᵢ = min(hᵢ/h̄, max(4, 0.7·h_max/h̄))  Cribari-Neto, Souza & Vasconcellos (2007)
+====  =======================================  ==========================================
+"""
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+from scipy import linalg
+
+#: Leverages this close to one make the weights of HC2–HC5 undefined.
+LEVERAGE_ONE_TOL = 1e-10
+
+
+def _power(exponent: Callable[[np.ndarray, int, int], np.ndarray]) -> Callable[[np.ndarray, int, int], np.ndarray]:
+    def weight(h: np.ndarray, n: int, k: int) -> np.ndarray:
+        return np.exp(-exponent(h, n, k) * np.log1p(-h))
+    return weight
+
+
+def _hc4_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
+    return np.minimum(4.0, h * n / k)
+
+
+def _hc4m_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
+    r = h * n / k
+    return np.minimum(1.0, r) + np.minimum(1.5, r)
+
+
+def _hc5_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
+    r = h * n / k
+    return 0.5 * np.minimum(r, max(4.0, 0.7 * float(h.max()) * n / k))
+
+
+#: Weight ωᵢ of êᵢ² for each estimator, as a function of (h, n, k).
+HC_WEIGHTS: dict[str, Callable[[np.ndarray, int, int], np.ndarray]] = {
+    "hc0": lambda h, n, k: np.ones_like(h),
+    "hc1": lambda h, n, k: np.full_like(h, n / (n - k)),
+    "hc2": _power(lambda h, n, k: np.ones_like(h)),
+    "hc3": _power(lambda h, n, k: np.full_like(h, 2.0)),
+    "hc4": _power(_hc4_exp),
+    "hc4m": _power(_hc4m_exp),
+    "hc5": _power(_hc5_exp),
+}
+
+#: Estimators whose weight involves 1/(1 − hᵢ) and so fail at leverage one.
+NEEDS_LEVERAGE_BELOW_ONE = frozenset({"hc2", "hc3", "hc4", "hc4m", "hc5"})
+
+
+def leverages(Q: np.ndarray) -> np.ndarray:
+    """Diagonal of the hat matrix from the thin Q factor, hᵢ = Σⱼ Q²ᵢⱼ (no n×n matrix)."""
+    return np.einsum("ij,ij->i", Q, Q)
+
+
+def leverage_one_rows(h: np.ndarray) -> np.ndarray:
+    """Indices (0-based) of rows whose leverage is one to working precision."""
+    return np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
+
+
+def hc_weights(kind: str, h: np.ndarray, n: int, k: int) -> np.ndarray:
+    """ωᵢ for estimator ``kind``; callers must first exclude leverage-one rows for HC2–HC5."""
+    return HC_WEIGHTS[kind](h, n, k)
+
+
+def r_inverse(R: np.ndarray) -> np.ndarray:
+    """R⁻¹ by a triangular solve (k×k; never an inverse of XᵀX)."""
+    return linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
+
+
+def sandwich(Q: np.ndarray, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
+    """R⁻¹ (Qᵀ diag(u2w) Q) R⁻ᵀ with u2w = ωᵢ êᵢ²."""
+    G = Q * np.sqrt(u2w)[:, None]
+    meat = G.T @ G
+    return Rinv @ meat @ Rinv.T

@@ -1,0 +1,54 @@
+"""The one place that knows every back-end by id.
+
+Entries name the module and class so that heavy back-ends (PyMC) import only when used.
+"""
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+from ..errors import InputError
+
+#: id → (module, class name, constructor keyword arguments fixed by the id)
+REGISTRY: dict[str, tuple[str, str, dict[str, Any]]] = {
+    "ols": ("robustmod.backends.ols", "OLSBackend", {"id": "ols"}),
+    "hc0": ("robustmod.backends.ols", "OLSBackend", {"id": "hc0"}),
+    "hc1": ("robustmod.backends.ols", "OLSBackend", {"id": "hc1"}),
+    "hc2": ("robustmod.backends.ols", "OLSBackend", {"id": "hc2"}),
+    "hc3": ("robustmod.backends.ols", "OLSBackend", {"id": "hc3"}),
+    "hc4": ("robustmod.backends.ols", "OLSBackend", {"id": "hc4"}),
+    "hc4m": ("robustmod.backends.ols", "OLSBackend", {"id": "hc4m"}),
+    "hc5": ("robustmod.backends.ols", "OLSBackend", {"id": "hc5"}),
+}
+
+#: Back-ends run when the user names none.
+DEFAULT_BACKENDS: tuple[str, ...] = ("ols", "hc3")
+
+
+def available_ids() -> list[str]:
+    return list(REGISTRY)
+
+
+def check_ids(ids: list[str] | tuple[str, ...]) -> list[str]:
+    """Normalise and validate a list of back-end ids (case-insensitive, no repeats)."""
+    out: list[str] = []
+    for raw in ids:
+        bid = str(raw).strip().lower()
+        if bid not in REGISTRY:
+            raise InputError(f"Unknown back-end {raw!r}; valid ids: {', '.join(REGISTRY)}.")
+        if bid not in out:
+            out.append(bid)
+    if not out:
+        raise InputError(f"No back-end given; valid ids: {', '.join(REGISTRY)}.")
+    return out
+
+
+def make_backend(backend_id: str, **options: Any) -> Any:
+    """Construct the back-end registered under ``backend_id`` with user options."""
+    (bid,) = check_ids([backend_id])
+    module, cls, fixed = REGISTRY[bid]
+    klass = getattr(importlib.import_module(module), cls)
+    try:
+        return klass(**fixed, **options)
+    except TypeError as exc:
+        raise InputError(f"Bad option for back-end {bid!r}: {exc}.") from None

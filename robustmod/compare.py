@@ -1,0 +1,431 @@
+"""Run several back-ends on one design and put them side by side.
+
+``compare()`` is the package's main entry point. The result's ``to_dict()`` follows the
+results contract of DESIGN.md (schema ``robustmod/results-v1``); its ``table()``,
+``str()`` and ``_repr_html_()`` all come from one summary, so the terminal, Jupyter and
+the appendix never disagree.
+"""
+from __future__ import annotations
+
+import html
+import math
+import time
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import effects
+from .backends.base import Fit, Unavailable
+from .backends.registry import DEFAULT_BACKENDS, check_ids, make_backend
+from .data import read_table
+from .design import Design, build_design
+from .errors import InputError, option_error
+from .spec import ModelSpec
+
+SCHEMA = "robustmod/results-v1"
+#: Back-ends that do not model the variance as constant (all but classical OLS).
+CLASSICAL = frozenset({"ols"})
+
+
+def fmt(x: Any, digits: int = 3) -> str:
+    """Compact number for tables: 3 significant digits, '—' for missing."""
+    if x is None:
+        return "—"
+    if isinstance(x, (bool, np.bool_)):
+        return "yes" if x else "no"
+    if isinstance(x, (int, np.integer)):
+        return str(int(x))
+    x = float(x)
+    if not math.isfinite(x):
+        return "—"
+    if x == 0:
+        return "0"
+    if abs(x) >= 1e5 or abs(x) < 1e-3:
+        return f"{x:.{digits - 1}e}"
+    return f"{x:.{digits}g}"
+
+
+def fmt_p(p: Any) -> str:
+    if p is None:
+        return "—"
+    return "< 0.001" if p < 0.001 else f"{p:.3f}"
+
+
+@dataclass(frozen=True, eq=False)
+class BackendResult:
+    """One back-end's answers, as plain JSON-ready values plus the Fit behind them."""
+
+    id: str
+    label: str
+    kind: str
+    available: bool
+    reliable: bool
+    reason: str | None
+    coefficients: dict[str, dict[str, Any]]
+    interaction: dict[str, Any] | None
+    conditional_effects: list[dict[str, Any]]
+    significance_region: dict[str, Any] | None
+    simultaneous_region: dict[str, Any] | None
+    regions_by_other: list[dict[str, Any]]
+    slope_grid: dict[str, Any] | None
+    warnings: tuple[str, ...]
+    extras: dict[str, Any]
+    seconds: float
+    fit: Fit | None = field(default=None, repr=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {
+            "label": self.label, "kind": self.kind, "available": self.available, "reliable": self.reliable,
+            "reason": self.reason, "coefficients": self.coefficients, "interaction": self.interaction,
+            "conditional_effects": self.conditional_effects, "significance_region": self.significance_region,
+            "simultaneous_region": self.simultaneous_region, "warnings": list(self.warnings),
+            "extras": _jsonable(self.extras), "seconds": round(self.seconds, 3),
+        }
+        if self.regions_by_other:
+            out["significance_regions_by"] = self.regions_by_other
+        if self.slope_grid is not None:
+            out["slope_grid"] = self.slope_grid
+        return out
+
+
+def _jsonable(obj: Any) -> Any:
+    """Plain JSON values: floats finite or None, arrays to lists, keys to str."""
+    if isinstance(obj, Mapping):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return [_jsonable(v) for v in obj.tolist()]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return effects.num(obj)
+    if obj is None or isinstance(obj, str):
+        return obj
+    return str(obj)
+
+
+def evaluate_fit(fit: Fit | Unavailable, design: Design, alpha: float, seconds: float = 0.0) -> BackendResult:
+    """Turn a Fit into the effects the contract asks for."""
+    if isinstance(fit, Unavailable):
+        return BackendResult(fit.backend_id, fit.label, "unavailable", False, False, fit.reason, {}, None, [], None,
+                             None, [], None, tuple(fit.warnings) + (fit.reason,), {}, seconds, None)
+    coefs = fit.coefficients(alpha)
+    coefficients = {name: effects._point(coefs, i) for i, name in enumerate(fit.term_names)}
+    return BackendResult(
+        id=fit.backend_id, label=fit.label, kind=fit.kind, available=True, reliable=fit.reliable, reason=None,
+        coefficients=coefficients,
+        interaction=effects.interaction(fit, design, alpha),
+        conditional_effects=effects.conditional_effects(fit, design, alpha),
+        significance_region=effects.significance_region(fit, design, alpha),
+        simultaneous_region=effects.significance_region(fit, design, alpha, band="simultaneous"),
+        regions_by_other=effects.regions_by_other(fit, design, alpha),
+        slope_grid=effects.slope_grid(fit, design, alpha),
+        warnings=fit.warnings, extras=dict(fit.extras), seconds=seconds, fit=fit,
+    )
+
+
+@dataclass(frozen=True, eq=False)
+class Comparison:
+    """All back-ends side by side, the robustness summary and the variance diagnostics."""
+
+    spec: ModelSpec
+    design: Design
+    results: dict[str, BackendResult]
+    primary: str
+    diagnostics: dict[str, Any]
+    calibration: dict[str, Any] | None
+    warnings: tuple[str, ...]
+    data_source: str | None = None
+
+    @cached_property
+    def summary(self) -> dict[str, Any]:
+        return robustness_summary(self)
+
+    def to_dict(self) -> dict[str, Any]:
+        d = self.design
+        out: dict[str, Any] = {
+            "schema": SCHEMA,
+            "model": {
+                "formula": self.spec.formula, "focal": self.spec.focal, "moderators": list(self.spec.moderators),
+                "interaction_terms": list(d.interaction_terms), "n_obs": d.n_obs, "n_dropped": d.data.n_dropped,
+                "n_input": d.data.n_input, "alpha": self.spec.alpha, "seed": self.spec.seed,
+                "terms": list(d.term_names), "centered": dict(d.centering),
+                "scale": ("coefficients on the mean-centred scale of " + ", ".join(d.centering)
+                          if d.centering else "raw (user's) scale"),
+                "effects_scale": "raw (user's) scale of the moderators",
+                "categorical_moderators": list(d.data.categorical_moderators),
+                "moderator_summary": {m: _jsonable({"categorical": i.categorical, "levels": list(i.levels),
+                                                     "mean": i.mean, "sd": i.sd, "min": i.minimum, "max": i.maximum})
+                                      for m, i in d.moderators.items()},
+                "probe_points": _jsonable(list(d.probe_points)),
+                "focal_linear": d.focal_linear,
+                "data_source": self.data_source,
+            },
+            "backends": {bid: r.to_dict() for bid, r in self.results.items()},
+            "summary": self.summary,
+            "diagnostics": _jsonable(self.diagnostics),
+            "warnings": list(self.warnings),
+        }
+        if self.calibration is not None:
+            out["calibration"] = _jsonable(self.calibration)
+        return out
+
+    def table(self) -> pd.DataFrame:
+        """One row per back-end: the product term, its interval, p, support, region boundaries, slopes."""
+        rows = []
+        for bid, r in self.results.items():
+            row: dict[str, Any] = {"backend": bid, "label": r.label}
+            it = r.interaction or {}
+            row["estimate"] = it.get("estimate")
+            ci = it.get("ci") or [None, None]
+            row["ci_low"], row["ci_high"] = ci
+            row["p"] = it.get("p")
+            row["prob_positive"] = it.get("prob_positive")
+            row["supported"] = it.get("supported") if r.available else None
+            row["reliable"] = r.reliable
+            reg = r.significance_region
+            row["jn_boundaries"] = ", ".join(fmt(b) for b in reg["boundaries"]) if reg and reg["boundaries"] else ("none" if reg else None)
+            for ce in r.conditional_effects:
+                key = "slope at " + ", ".join(f"{k}={fmt(v) if not isinstance(v, str) else v}" for k, v in ce["at"].items())
+                row[key] = ce["estimate"]
+            rows.append(row)
+        return pd.DataFrame(rows).set_index("backend")
+
+    # ---- one summary, three displays --------------------------------------------
+    def summary_lines(self) -> list[tuple[str, list[list[str]]]]:
+        """Sections of (title, rows of cells) that every display renders."""
+        d, alpha = self.design, self.spec.alpha
+        level = f"{100 * (1 - alpha):g}%"
+        head = [["back-end", "estimate", f"{level} interval", "p / P(>0)", "supported", "JN boundaries"]]
+        for bid, r in self.results.items():
+            if not r.available:
+                head.append([bid, "—", "—", "—", "unavailable", r.reason or ""])
+                continue
+            it = r.interaction or {}
+            if it.get("estimate") is None:
+                est, ci = "joint test", it.get("joint_test", {}).get("method", "")
+            else:
+                est, ci = fmt(it["estimate"]), f"[{fmt(it['ci'][0])}, {fmt(it['ci'][1])}]"
+            pp = fmt_p(it.get("p")) if it.get("p") is not None else (f"P(>0)={fmt(it.get('prob_positive'))}" if it.get("prob_positive") is not None else "—")
+            reg = r.significance_region
+            jn = (", ".join(fmt(b) for b in reg["boundaries"]) or "none") if reg else "n/a"
+            sup = ("yes" if it.get("supported") else "no") + ("" if r.reliable else " (unreliable)")
+            head.append([bid, est, ci, pp, sup, jn])
+        slopes = [["back-end", "at", "slope", f"{level} interval", "p"]]
+        for bid, r in self.results.items():
+            for ce in r.conditional_effects:
+                at = ", ".join(f"{k} = {fmt(v) if not isinstance(v, str) else v}" for k, v in ce["at"].items())
+                slopes.append([bid, at, fmt(ce["estimate"]), f"[{fmt(ce['ci'][0])}, {fmt(ce['ci'][1])}]", fmt_p(ce["p"])])
+        terms = " + ".join(d.interaction_terms)
+        return [(f"Product term {terms} ({d.n_obs} rows used, {d.data.n_dropped} dropped; alpha = {alpha:g})", head),
+                (f"Conditional effect of {self.spec.focal} at probe values (raw moderator scale)", slopes)]
+
+    def __str__(self) -> str:
+        out = []
+        for title, rows in self.summary_lines():
+            widths = [max(len(str(r[i])) for r in rows) for i in range(len(rows[0]))]
+            out.append(title)
+            for j, r in enumerate(rows):
+                out.append("  " + "  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
+                if j == 0:
+                    out.append("  " + "  ".join("-" * w for w in widths))
+            out.append("")
+        out.append(self.summary["sentence"])
+        return "\n".join(out)
+
+    def __repr__(self) -> str:
+        return f"<Comparison of {len(self.results)} back-ends on {self.spec.formula!r}; primary {self.primary}>"
+
+    def _repr_html_(self) -> str:
+        parts = []
+        for title, rows in self.summary_lines():
+            head = "".join(f"<th>{html.escape(c)}</th>" for c in rows[0])
+            body = "".join("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in r) + "</tr>" for r in rows[1:])
+            parts.append(f"<p><b>{html.escape(title)}</b></p><table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
+        parts.append(f"<p>{html.escape(self.summary['sentence'])}</p>")
+        return "\n".join(parts)
+
+
+def robustness_summary(c: Comparison) -> dict[str, Any]:
+    """Which back-ends support the product term, sign agreement, shifts against the primary."""
+    alpha = c.spec.alpha
+    res = c.results
+    usable = {b: r for b, r in res.items() if r.available and r.reliable and r.interaction is not None}
+    unreliable = [b for b, r in res.items() if b not in usable]
+    supported = [b for b, r in usable.items() if r.interaction["supported"]]
+    not_supported = [b for b in usable if b not in supported]
+    ests = {b: r.interaction["estimate"] for b, r in usable.items() if r.interaction.get("estimate") is not None}
+    signs = {np.sign(v) for v in ests.values() if v}
+    sign_consistent = len(signs) <= 1
+    prim = usable.get(c.primary)
+    rel_change: dict[str, float | None] = {}
+    width_change: dict[str, float | None] = {}
+    boundary_shift: dict[str, Any] = {}
+    if prim is not None and prim.interaction.get("estimate") is not None:
+        pe = prim.interaction["estimate"]
+        pci = prim.interaction["ci"]
+        pw = pci[1] - pci[0]
+        for b, r in usable.items():
+            e = r.interaction.get("estimate")
+            if e is None or b == c.primary:
+                continue
+            rel_change[b] = effects.num(abs(e - pe) / abs(pe)) if pe else None
+            ci = r.interaction["ci"]
+            width_change[b] = effects.num((ci[1] - ci[0]) / pw - 1) if pw else None
+        preg = prim.significance_region
+        for b, r in usable.items():
+            if b == c.primary or preg is None or r.significance_region is None:
+                continue
+            pb, ob = preg["boundaries"], r.significance_region["boundaries"]
+            obs = preg["observed_range"]
+            span = (obs[1] - obs[0]) or 1.0
+            if len(pb) == len(ob):
+                shift = max((abs(x - y) for x, y in zip(pb, ob)), default=0.0)
+                boundary_shift[b] = {"max_shift": effects.num(shift), "share_of_observed_range": effects.num(shift / span),
+                                     "same_shape": True}
+            else:
+                boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}
+    primary_supported = bool(prim is not None and prim.interaction["supported"])
+    robust_usable = [b for b in usable if b not in CLASSICAL]
+    survives = bool(primary_supported and sign_consistent and robust_usable
+                    and all(usable[b].interaction["supported"] for b in robust_usable))
+    sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
+    return {
+        "primary": c.primary, "supported_by": supported, "not_supported_by": not_supported, "unreliable": unreliable,
+        "sign_consistent": sign_consistent, "survives": survives, "primary_supported": primary_supported,
+        "relative_change_of_estimate": rel_change, "relative_change_of_interval_width": width_change,
+        "boundary_shift": boundary_shift, "alpha": alpha, "sentence": sentence,
+    }
+
+
+def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[str], not_supported: list[str],
+              unreliable: list[str], sign_consistent: bool, survives: bool, primary_supported: bool) -> str:
+    terms = " + ".join(c.design.interaction_terms)
+    n = len(usable)
+    parts = [f"The product term {terms} is supported at alpha = {c.spec.alpha:g} by {len(supported)} of {n} usable back-end(s)"]
+    if supported:
+        parts[-1] += f" ({', '.join(supported)})"
+    if not_supported:
+        parts.append(f"not by {', '.join(not_supported)}")
+    s = "; ".join(parts) + "."
+    if supported == ["ols"]:
+        s += " Only the classical OLS test supports it, and that is the test non-constant variance distorts."
+    if unreliable:
+        s += f" Not counted (unavailable or failed their own diagnostics): {', '.join(unreliable)}."
+    if not sign_consistent:
+        s += " The back-ends disagree on the sign of the estimate."
+    prim = usable.get(c.primary)
+    if prim is None:
+        s += f" The primary back-end ({c.primary}) gave no usable answer, so no verdict is drawn."
+    elif survives:
+        s += (f" The primary back-end ({c.primary}) and every back-end that allows non-constant variance agree: "
+              "the finding does not hinge on how the variance is treated.")
+    elif primary_supported:
+        s += (f" The primary back-end ({c.primary}) supports it, but not every variance treatment does: "
+              "report the finding as sensitive to the variance assumption.")
+    else:
+        s += f" The primary back-end ({c.primary}) does not support it."
+    s += " Agreement speaks to robustness to the variance treatment only, not to causation."
+    return s
+
+
+def _load(data: pd.DataFrame | str | Path) -> tuple[pd.DataFrame, str | None]:
+    if isinstance(data, (str, Path)):
+        return read_table(data), str(data)
+    if not isinstance(data, pd.DataFrame):
+        raise InputError(f"The data must be a pandas DataFrame or a file path; got {type(data).__name__}.")
+    return data, None
+
+
+def compare(
+    data: pd.DataFrame | str | Path,
+    formula: str,
+    focal: str,
+    moderator: str | Sequence[str],
+    *,
+    backends: Sequence[str] | None = None,
+    primary: str = "hc3",
+    probe: Any = None,
+    alpha: float = 0.05,
+    seed: int = 20240917,
+    center: bool = False,
+    options: Mapping[str, Mapping[str, Any]] | None = None,
+    calibration: int | None = None,
+    progress: bool = False,
+) -> Comparison:
+    """Fit the moderation model with several back-ends and compare them.
+
+    Parameters
+    ----------
+    data : DataFrame or path
+        The data (CSV, TSV, Parquet or xlsx when a path); never modified.
+    formula : str
+        Wilkinson formula such as ``"y ~ x * w + age"`` (allow-listed transforms only).
+    focal, moderator : str
+        The focal predictor and one or two moderators.
+    backends : list of str, optional
+        Back-end ids (see ``robustmod.backends.available_ids()``); default
+        ``DEFAULT_BACKENDS``. The primary is always included.
+    primary : str, default="hc3"
+        The back-end chosen *before* looking at the results.
+    probe : "sd", "percentiles", list or dict, optional
+        Probe values of the moderator(s); see :class:`ModelSpec`.
+    alpha : float, default=0.05
+    seed : int
+        Seeds every random step (bootstrap, sampler, calibration).
+    center : bool, default=False
+        Mean-centre focal and moderators (coefficients then refer to the centred scale).
+    options : dict of dicts, optional
+        Per back-end options, e.g. ``{"wild": {"replications": 999}}``.
+    calibration : int, optional
+        Number of simulated datasets for the false-positive / power study.
+    progress : bool, default=False
+        Show progress bars for long steps.
+
+    Examples
+    --------
+    >>> from robustmod.demo import demo_data
+    >>> res = compare(demo_data(), "grain_yield ~ fertiliser * soil_moisture", "fertiliser", "soil_moisture")
+    >>> res.summary["primary"]
+    'hc3'
+    """
+    frame, source = _load(data)
+    mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
+    spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
+                     alpha=alpha, seed=seed, center=center)
+    ids = check_ids(list(backends) if backends is not None else list(DEFAULT_BACKENDS))
+    (primary,) = check_ids([primary])
+    if primary not in ids:
+        ids.insert(0, primary)
+    options = dict(options or {})
+    for key in options:
+        if key not in ids:
+            raise option_error("options", f"keyed by back-ends being run ({', '.join(ids)})", key)
+    if calibration is not None and (isinstance(calibration, bool) or not isinstance(calibration, int) or calibration < 10):
+        raise option_error("calibration", "a whole number of simulated datasets, at least 10", calibration)
+    design = build_design(frame, spec)
+    results: dict[str, BackendResult] = {}
+    for bid in ids:
+        backend = make_backend(bid, **dict(options.get(bid, {})))
+        t0 = time.perf_counter()
+        fit = backend.fit(design, seed=spec.seed, progress=progress)
+        results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
+    from .diagnostics import variance_diagnostics  # noqa: PLC0415  (keeps import order one-way)
+
+    diagnostics = variance_diagnostics(design, alpha=spec.alpha)
+    calib = None
+    if calibration is not None:
+        from .calibrate import calibrate  # noqa: PLC0415
+
+        calib = calibrate(design, [b for b in ids if b != "bayes"], n_datasets=calibration, seed=spec.seed,
+                          options=options, progress=progress)
+    warnings = tuple(design.warnings)
+    return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)

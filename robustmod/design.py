@@ -1,0 +1,347 @@
+"""The Design: validated y and X, term names, the rows used, and a builder of L rows.
+
+A conditional effect of the focal predictor is built from the design itself (DESIGN.md):
+L = row of the model matrix at (focal + 1, moderators, covariates at reference) minus the
+row at (focal, moderators, covariates at reference). When the focal predictor enters
+non-linearly (log(x), I(x**2)) the difference depends on where it is taken, and L is the
+central-difference derivative at the focal mean instead. Transforms, centring,
+three-way terms and categorical moderators need no special cases.
+"""
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass, field
+from functools import cached_property
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from formulaic import model_matrix
+
+from .data import PreparedData, prepare_data
+from .errors import InputError
+from .spec import ModelSpec, parse_probe_rule
+
+#: Functions the formula may call, as formulaic evaluates them (C, I, center, scale are formulaic's own).
+FORMULA_CONTEXT: dict[str, Any] = {
+    "log": np.log, "log1p": np.log1p, "log2": np.log2, "log10": np.log10,
+    "exp": np.exp, "sqrt": np.sqrt, "abs": np.abs,
+}
+#: |R_jj| / ‖X_j‖ below this marks column j as a linear combination of earlier ones.
+ALIAS_TOL = 1e-11
+
+
+@dataclass(frozen=True)
+class ModeratorInfo:
+    """What the design knows of one moderator, on the user's raw scale."""
+
+    name: str
+    categorical: bool
+    levels: tuple[Any, ...] = ()
+    mean: float | None = None
+    sd: float | None = None
+    minimum: float | None = None
+    maximum: float | None = None
+    values: np.ndarray | None = field(default=None, repr=False)  # observed raw values (continuous)
+
+
+@dataclass(frozen=True, eq=False)
+class Design:
+    """Validated model matrices and the metadata every back-end and effect needs."""
+
+    spec: ModelSpec
+    y: np.ndarray
+    X: np.ndarray
+    term_names: tuple[str, ...]
+    interaction_columns: tuple[int, ...]
+    moderators: dict[str, ModeratorInfo]
+    probe_points: tuple[dict[str, Any], ...]
+    reference: dict[str, Any]
+    centering: dict[str, float]
+    data: PreparedData
+    focal_linear: bool
+    focal_mean: float
+    warnings: tuple[str, ...]
+    _model_spec: Any = field(repr=False)
+    _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
+
+    # ---- basic facts -------------------------------------------------------------
+    @property
+    def n_obs(self) -> int:
+        return int(self.X.shape[0])
+
+    @property
+    def n_params(self) -> int:
+        return int(self.X.shape[1])
+
+    @property
+    def focal(self) -> str:
+        return self.spec.focal
+
+    @property
+    def interaction_terms(self) -> tuple[str, ...]:
+        return tuple(self.term_names[j] for j in self.interaction_columns)
+
+    @property
+    def continuous_moderators(self) -> tuple[str, ...]:
+        return tuple(m for m, info in self.moderators.items() if not info.categorical)
+
+    @cached_property
+    def qr(self) -> tuple[np.ndarray, np.ndarray]:
+        """Thin QR of X (computed once, shared by the back-ends that use the raw X)."""
+        Q, R = np.linalg.qr(self.X, mode="reduced")
+        return Q, R
+
+    # ---- L rows ------------------------------------------------------------------
+    def interaction_rows(self) -> np.ndarray:
+        """Unit rows picking out each product-term coefficient (q × k)."""
+        L = np.zeros((len(self.interaction_columns), self.n_params))
+        L[np.arange(len(self.interaction_columns)), list(self.interaction_columns)] = 1.0
+        return L
+
+    def slope_rows(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> np.ndarray:
+        """L rows of the conditional effect of the focal predictor at moderator points.
+
+        ``points`` are dicts {moderator: raw-scale value}; moderators not named sit at
+        their reference (mean or first level).
+        """
+        if len(points) == 0:
+            return np.zeros((0, self.n_params))
+        base = self._points_frame(points)
+        if self.focal_linear:
+            lo, hi = base.copy(), base.copy()
+            lo[self.focal] = 0.0
+            hi[self.focal] = 1.0
+            return self._matrix(hi) - self._matrix(lo)
+        h = self._focal_step()
+        lo, hi = base.copy(), base.copy()
+        lo[self.focal] = self._to_model(self.focal, self.focal_mean) - h
+        hi[self.focal] = self._to_model(self.focal, self.focal_mean) + h
+        return (self._matrix(hi) - self._matrix(lo)) / (2 * h)
+
+    def slope_rows_along(self, moderator: str, values: np.ndarray, fixed: dict[str, Any] | None = None) -> np.ndarray:
+        """L rows for the focal slope as ``moderator`` runs over ``values`` (raw scale)."""
+        fixed = dict(fixed or {})
+        pts = [{**fixed, moderator: float(v)} for v in np.asarray(values, dtype=float)]
+        return self.slope_rows(pts)
+
+    def slope_is_linear_in(self, moderator: str, fixed: dict[str, Any] | None = None) -> tuple[np.ndarray, np.ndarray] | None:
+        """(L0, L1) with L(w) = L0 + w·L1 exactly, or None if the slope is not linear in w."""
+        info = self.moderators[moderator]
+        if info.categorical:
+            return None
+        span = (info.maximum - info.minimum) or 1.0
+        w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
+        Ls = self.slope_rows_along(moderator, w, fixed)
+        L1 = (Ls[1] - Ls[0]) / (w[1] - w[0])
+        L0 = Ls[0] - w[0] * L1
+        pred = L0 + w[2] * L1
+        scale = np.maximum(np.abs(Ls).max(axis=0), 1.0)
+        if np.all(np.abs(pred - Ls[2]) <= 1e-8 * scale):
+            return L0, L1
+        return None
+
+    # ---- helpers -----------------------------------------------------------------
+    def _to_model(self, name: str, value: Any) -> Any:
+        return value - self.centering[name] if name in self.centering else value
+
+    def _focal_step(self) -> float:
+        sd = float(np.std(self._frame[self.focal].to_numpy(dtype=float)))
+        return 1e-4 * (sd if sd > 0 else 1.0)
+
+    def _points_frame(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> pd.DataFrame:
+        rows = []
+        for pt in points:
+            row = dict(self.reference)
+            for name, value in pt.items():
+                if name not in self.moderators:
+                    raise InputError(f"{name!r} is not a moderator of this model; moderators: {list(self.moderators)}.")
+                row[name] = self._to_model(name, value)
+            rows.append(row)
+        frame = pd.DataFrame(rows)
+        for name in frame.columns:
+            src = self._frame[name]
+            if isinstance(src.dtype, pd.CategoricalDtype):
+                frame[name] = pd.Categorical(frame[name], categories=src.cat.categories)
+        return frame
+
+    def _matrix(self, frame: pd.DataFrame) -> np.ndarray:
+        mm = self._model_spec.get_model_matrix(frame)
+        return np.asarray(mm, dtype=float)
+
+
+def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
+    """Validate the data against the spec and build y, X and the probe points."""
+    prepared = prepare_data(data, spec)
+    frame = prepared.frame.copy()
+    centering: dict[str, float] = {}
+    if spec.center:
+        for name in [spec.focal, *spec.moderators]:
+            if name not in prepared.categorical_moderators:
+                mean = float(frame[name].astype(float).mean())
+                centering[name] = mean
+                frame[name] = frame[name].astype(float) - mean
+    for name in prepared.categorical_moderators:
+        if not isinstance(frame[name].dtype, pd.CategoricalDtype):
+            frame[name] = pd.Categorical(frame[name].astype(str) if not pd.api.types.is_numeric_dtype(frame[name]) else frame[name])
+    # Other text covariates become categories so that L-row frames can name their levels.
+    for name in frame.columns:
+        if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
+            frame[name] = pd.Categorical(frame[name].astype(str))
+    try:
+        mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="raise")
+    except InputError:
+        raise
+    except Exception as exc:  # formulaic raises many kinds; report the first line
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"The formula {spec.formula!r} could not be built on these data: {msg}") from None
+    lhs = np.asarray(mm.lhs, dtype=float)
+    if lhs.ndim != 2 or lhs.shape[1] != 1:
+        raise InputError(f"The outcome side of {spec.formula!r} must give one numeric column; it gave {lhs.shape[1]}.")
+    y = lhs[:, 0].copy()
+    X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
+    term_names = tuple(str(c) for c in mm.rhs.columns)
+    rows = prepared.frame.index
+    for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
+        bad = ~np.isfinite(arr)
+        if bad.any():
+            i, j = np.argwhere(bad)[0]
+            raise InputError(
+                f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
+                f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
+            )
+    n, k = X.shape
+    if n <= k + 1:
+        raise InputError(
+            f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
+            "(fewer terms or more data)."
+        )
+    _check_rank(X, term_names)
+    model_spec = mm.rhs.model_spec
+    interaction_columns = _interaction_columns(model_spec, spec, term_names)
+    moderators = _moderator_info(prepared, spec)
+    warnings = list(prepared.warnings)
+    probe_points = _probe_points(spec, moderators, warnings)
+    reference = _reference(frame, spec, prepared)
+    focal_mean = float(prepared.frame[spec.focal].astype(float).mean())
+    design = Design(
+        spec=spec, y=y, X=X, term_names=term_names, interaction_columns=interaction_columns,
+        moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
+        data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings),
+        _model_spec=model_spec, _frame=frame,
+    )
+    # Is the focal predictor linear in the model? Compare unit differences at two places.
+    pt = [dict()]  # reference point
+    base = design._points_frame(pt)
+    diffs = []
+    for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
+        lo, hi = base.copy(), base.copy()
+        lo[spec.focal], hi[spec.focal] = x0, x0 + 1.0
+        diffs.append(design._matrix(hi) - design._matrix(lo))
+    if not np.allclose(diffs[0], diffs[1], rtol=1e-9, atol=1e-12):
+        object.__setattr__(design, "focal_linear", False)
+        object.__setattr__(design, "warnings", design.warnings + (
+            f"The focal predictor {spec.focal!r} enters the model non-linearly; its conditional effect is "
+            f"the derivative d E[y] / d {spec.focal} at {spec.focal} = {focal_mean:.4g} (its mean).",))
+    return design
+
+
+def _check_rank(X: np.ndarray, names: tuple[str, ...]) -> None:
+    """Refuse a rank-deficient X, naming the aliased terms."""
+    R = np.linalg.qr(X, mode="r")
+    norms = np.linalg.norm(X, axis=0)
+    rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
+    aliased = [names[j] for j in np.flatnonzero((rel < ALIAS_TOL) | (norms == 0))]
+    if aliased:
+        raise InputError(
+            f"The design is rank-deficient: {', '.join(repr(a) for a in aliased)} "
+            f"{'is a linear combination' if len(aliased) == 1 else 'are linear combinations'} of other terms; "
+            "drop or recode the aliased term(s)."
+        )
+
+
+def _interaction_columns(model_spec: Any, spec: ModelSpec, names: tuple[str, ...]) -> tuple[int, ...]:
+    """Columns of terms that involve the focal predictor and every moderator."""
+    wanted = {spec.focal, *spec.moderators}
+    cols: list[int] = []
+    for term, variables in model_spec.term_variables.items():
+        if wanted <= set(variables):
+            cols.extend(model_spec.term_indices[term])
+    if not cols:
+        mods = " * ".join(spec.moderators)
+        raise InputError(
+            f"The formula {spec.formula!r} has no product term of {spec.focal!r} and {' and '.join(repr(m) for m in spec.moderators)}; "
+            f"write e.g. '{spec.response} ~ {spec.focal} * {mods}'."
+        )
+    return tuple(sorted(cols))
+
+
+def _moderator_info(prepared: PreparedData, spec: ModelSpec) -> dict[str, ModeratorInfo]:
+    out: dict[str, ModeratorInfo] = {}
+    for name in spec.moderators:
+        col = prepared.frame[name]
+        if name in prepared.categorical_moderators:
+            if isinstance(col.dtype, pd.CategoricalDtype):
+                levels = tuple(col.cat.categories)
+            else:
+                levels = tuple(sorted(col.unique(), key=lambda v: (str(type(v)), v)))
+            if not pd.api.types.is_numeric_dtype(col):
+                levels = tuple(str(v) for v in levels)
+            out[name] = ModeratorInfo(name, True, levels=levels)
+        else:
+            v = col.to_numpy(dtype=float)
+            out[name] = ModeratorInfo(name, False, mean=float(v.mean()), sd=float(v.std(ddof=1)),
+                                      minimum=float(v.min()), maximum=float(v.max()), values=v)
+    return out
+
+
+def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warnings: list[str]) -> tuple[dict[str, Any], ...]:
+    per: list[list[Any]] = []
+    for name, info in moderators.items():
+        kind, vals = parse_probe_rule(spec.probe.get(name), name)
+        if info.categorical:
+            if kind in ("levels", "values"):
+                wanted = [str(v) if isinstance(info.levels[0], str) else v for v in vals]
+                unknown = [v for v in wanted if v not in info.levels]
+                if unknown:
+                    raise InputError(
+                        f"Probe level(s) {unknown} are not levels of the moderator {name!r}; levels: {list(info.levels)}."
+                    )
+                per.append(list(wanted))
+            else:
+                per.append(list(info.levels))
+            continue
+        if kind == "levels":
+            raise InputError(f"The probe values for the continuous moderator {name!r} must be numbers; got {list(vals)}.")
+        if kind == "sd":
+            values = [info.mean - info.sd, info.mean, info.mean + info.sd]
+        elif kind == "percentiles":
+            values = [float(np.percentile(info.values, q)) for q in vals]
+        else:
+            values = list(vals)
+            outside = [v for v in values if v < info.minimum or v > info.maximum]
+            if outside:
+                warnings.append(
+                    f"Probe value(s) {', '.join(f'{v:g}' for v in outside)} of {name!r} lie outside its observed range "
+                    f"[{info.minimum:g}, {info.maximum:g}]; effects there are extrapolations."
+                )
+        per.append([float(v) for v in values])
+    names = list(moderators)
+    return tuple(dict(zip(names, combo)) for combo in itertools.product(*per))
+
+
+def _reference(frame: pd.DataFrame, spec: ModelSpec, prepared: PreparedData) -> dict[str, Any]:
+    """Covariates at their mean (numeric) or first level; moderators likewise (model scale)."""
+    ref: dict[str, Any] = {}
+    for name in frame.columns:
+        if name == spec.response:
+            continue
+        col = frame[name]
+        if isinstance(col.dtype, pd.CategoricalDtype):
+            ref[name] = col.cat.categories[0]
+        elif pd.api.types.is_bool_dtype(col):
+            ref[name] = False
+        else:
+            ref[name] = float(col.astype(float).mean())
+    ref[spec.focal] = 0.0
+    return ref

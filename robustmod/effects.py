@@ -1,0 +1,241 @@
+"""Effects every back-end answers through its Fit: the interaction test, conditional
+slopes of the focal predictor at probe values, and the Johnson–Neyman significance
+region along a moderator (Johnson & Neyman 1936; Bauer & Curran 2005).
+
+For a Wald fit whose slope is linear in the moderator, θ(w) = a + b·w with
+Var θ(w) = v₀₀ + 2w·v₀₁ + w²·v₁₁, the boundaries solve the quadratic
+(a + bw)² = c²·Var θ(w) with c = t_{1−α/2, df} (pointwise) or the Scheffé-type
+c = sqrt(2·F_{2, df; 1−α}) for a simultaneous band (Potthoff 1964). Every other fit
+kind (and non-linear slopes) uses a grid plus Brent root refinement of the margin
+max(lower, −upper), which is positive exactly where the interval excludes zero.
+"""
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+from scipy import optimize
+
+from .backends.base import Fit, WaldFit
+from .design import Design
+
+#: Grid points of the general region search, and how far beyond the observed range it looks.
+GRID_POINTS = 241
+SEARCH_EXTENSION = 0.5
+GRID_2D = 41
+
+
+def num(x: Any) -> float | None:
+    """A plain JSON float, or None for NaN/inf/None."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None
+
+
+def _point(est: Any, i: int) -> dict[str, Any]:
+    out: dict[str, Any] = {
+        "estimate": num(est.estimate[i]),
+        "se": num(est.se[i]),
+        "ci": [num(est.lower[i]), num(est.upper[i])],
+        "p": None if est.p is None else num(est.p[i]),
+    }
+    if "prob_positive" in est.extra:
+        out["prob_positive"] = num(est.extra["prob_positive"][i])
+    return out
+
+
+def interaction(fit: Fit, design: Design, alpha: float) -> dict[str, Any]:
+    """The product term: its estimate and interval (one term) or the joint test (several)."""
+    L = design.interaction_rows()
+    terms = list(design.interaction_terms)
+    if L.shape[0] == 1:
+        est = fit.estimate(L, alpha)
+        out = {"terms": terms, **_point(est, 0), "supported": bool(est.significant[0]),
+               "interval": est.interval, "level": est.level}
+        if est.p is None and "prob_positive" in est.extra:
+            out["supported"] = bool(est.significant[0])
+        return out
+    jt = fit.joint_test(L, alpha)
+    return {"terms": terms, "estimate": None, "se": None, "ci": None, "p": num(jt.p),
+            "supported": jt.supported, "joint_test": {"statistic": num(jt.statistic), "df_num": jt.df_num,
+                                                        "df_den": num(jt.df_den), "method": jt.method}}
+
+
+def conditional_effects(fit: Fit, design: Design, alpha: float) -> list[dict[str, Any]]:
+    """Conditional effect of the focal predictor at each probe point (raw moderator scale)."""
+    points = list(design.probe_points)
+    est = fit.estimate(design.slope_rows(points), alpha)
+    out = []
+    for i, pt in enumerate(points):
+        row = {"at": {k: (num(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else v) for k, v in pt.items()},
+               **_point(est, i), "significant": bool(est.significant[i])}
+        row["within_observed"] = all(
+            design.moderators[m].categorical or design.moderators[m].minimum <= v <= design.moderators[m].maximum
+            for m, v in pt.items()
+        )
+        out.append(row)
+    return out
+
+
+def _intervals_from_mask(grid: np.ndarray, sig: np.ndarray, roots: list[float]) -> list[list[float | None]]:
+    """Significant stretches of the grid; stretches touching the search edge stay open (None)."""
+    intervals: list[list[float | None]] = []
+    i = 0
+    n = len(grid)
+    while i < n:
+        if not sig[i]:
+            i += 1
+            continue
+        j = i
+        while j + 1 < n and sig[j + 1]:
+            j += 1
+        lo = None if i == 0 else _nearest(roots, grid[i - 1], grid[i])
+        hi = None if j == n - 1 else _nearest(roots, grid[j], grid[j + 1])
+        intervals.append([lo, hi])
+        i = j + 1
+    return intervals
+
+
+def _nearest(roots: list[float], a: float, b: float) -> float:
+    inside = [r for r in roots if a <= r <= b]
+    return float(inside[0]) if inside else float(0.5 * (a + b))
+
+
+def _closed_form(fit: WaldFit, L0: np.ndarray, L1: np.ndarray, crit: float) -> tuple[list[float], list[list[float | None]]]:
+    a, b = float(L0 @ fit.params), float(L1 @ fit.params)
+    V = fit.cov
+    v00, v01, v11 = float(L0 @ V @ L0), float(L0 @ V @ L1), float(L1 @ V @ L1)
+    c2 = crit * crit
+    A, B, C = b * b - c2 * v11, 2 * (a * b - c2 * v01), a * a - c2 * v00
+    scale = max(abs(A), abs(B), abs(C), 1e-300)
+    if abs(A) <= 1e-14 * scale:  # linear: B w + C > 0
+        if abs(B) <= 1e-14 * scale:
+            return [], ([[None, None]] if C > 0 else [])
+        r = -C / B
+        return [r], ([[r, None]] if B > 0 else [[None, r]])
+    disc = B * B - 4 * A * C
+    if disc <= 0:
+        return [], ([[None, None]] if A > 0 else [])
+    sq = math.sqrt(disc)
+    # Numerically stable roots of A w² + B w + C.
+    qv = -0.5 * (B + math.copysign(sq, B))
+    r1, r2 = sorted([qv / A, C / qv] if qv != 0 else [-B / (2 * A)] * 2)
+    if A > 0:
+        return [r1, r2], [[None, r1], [r2, None]]
+    return [r1, r2], [[r1, r2]]
+
+
+def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: str | None = None,
+                        fixed: dict[str, Any] | None = None, band: str = "pointwise") -> dict[str, Any] | None:
+    """Johnson–Neyman region of the focal slope along ``moderator`` (first continuous one by default).
+
+    ``band`` is "pointwise" (each w tested alone) or "simultaneous" (a band over all w).
+    Returns None when no moderator is continuous.
+    """
+    conts = design.continuous_moderators
+    if moderator is None:
+        if not conts:
+            return None
+        moderator = conts[0]
+    info = design.moderators[moderator]
+    if info.categorical:
+        return None
+    fixed = dict(fixed or {})
+    span = info.maximum - info.minimum
+    search = (info.minimum - SEARCH_EXTENSION * span, info.maximum + SEARCH_EXTENSION * span)
+    lin = design.slope_is_linear_in(moderator, fixed)
+    if isinstance(fit, WaldFit) and lin is not None:
+        crit = fit.critical_value(alpha, rank=2 if band == "simultaneous" else 1)
+        roots, intervals = _closed_form(fit, lin[0], lin[1], crit)
+        method = "closed form (quadratic)"
+    else:
+        grid = np.linspace(search[0], search[1], GRID_POINTS)
+        L = design.slope_rows_along(moderator, grid, fixed)
+        if band == "simultaneous":
+            est = fit.estimate(L, alpha, simultaneous=True)
+            margin = np.maximum(est.lower, -est.upper)
+            roots = []
+            for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
+                t = margin[i] / (margin[i] - margin[i + 1])
+                roots.append(float(grid[i] + t * (grid[i + 1] - grid[i])))
+            method = "grid, simultaneous band, linear interpolation"
+        else:
+            margin = fit.margin(L, alpha)
+
+            def f(w: float) -> float:
+                return float(fit.margin(design.slope_rows_along(moderator, np.array([w]), fixed), alpha)[0])
+
+            roots = []
+            for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
+                if margin[i] == 0:
+                    roots.append(float(grid[i]))
+                    continue
+                try:
+                    roots.append(float(optimize.brentq(f, grid[i], grid[i + 1], xtol=1e-10 * max(1.0, abs(span)))))
+                except ValueError:
+                    roots.append(float(0.5 * (grid[i] + grid[i + 1])))
+            method = "grid with Brent root refinement"
+        intervals = _intervals_from_mask(grid, margin > 0, roots)
+    roots = sorted(roots)
+    obs = (info.minimum, info.maximum)
+    return {
+        "moderator": moderator,
+        "band": band,
+        "level": 1 - alpha,
+        "boundaries": [num(r) for r in roots],
+        "boundaries_detail": [{"value": num(r), "within_observed": bool(obs[0] <= r <= obs[1])} for r in roots],
+        "significant_intervals": [[num(lo) if lo is not None else None, num(hi) if hi is not None else None]
+                                  for lo, hi in intervals],
+        "observed_range": [num(obs[0]), num(obs[1])],
+        "search_range": None if method.startswith("closed") else [num(search[0]), num(search[1])],
+        "share_of_observed_significant": num(_share_observed(intervals, info.values)),
+        "fixed": {k: (num(v) if isinstance(v, float) else v) for k, v in fixed.items()},
+        "method": method,
+    }
+
+
+def _share_observed(intervals: list[list[float | None]], values: np.ndarray | None) -> float | None:
+    """Share of observed moderator values that fall inside a significant interval."""
+    if values is None or len(values) == 0:
+        return None
+    inside = np.zeros(len(values), dtype=bool)
+    for lo, hi in intervals:
+        lo_v = -np.inf if lo is None else lo
+        hi_v = np.inf if hi is None else hi
+        inside |= (values >= lo_v) & (values <= hi_v)
+    return float(inside.mean())
+
+
+def regions_by_other(fit: Fit, design: Design, alpha: float, band: str = "pointwise") -> list[dict[str, Any]]:
+    """With two moderators: the region along the first continuous one at each probe value of the other."""
+    conts = design.continuous_moderators
+    if len(design.moderators) < 2 or not conts:
+        return []
+    along = conts[0]
+    other = next(m for m in design.moderators if m != along)
+    values = sorted({pt[other] for pt in design.probe_points}, key=lambda v: (str(type(v)), v))
+    return [r for v in values if (r := significance_region(fit, design, alpha, moderator=along, fixed={other: v}, band=band))]
+
+
+def slope_grid(fit: Fit, design: Design, alpha: float, points: int = GRID_2D) -> dict[str, Any] | None:
+    """Conditional slope over a grid of two continuous moderators, with the significant cells."""
+    conts = design.continuous_moderators
+    if len(conts) < 2:
+        return None
+    m1, m2 = conts[:2]
+    i1, i2 = design.moderators[m1], design.moderators[m2]
+    g1 = np.linspace(i1.minimum, i1.maximum, points)
+    g2 = np.linspace(i2.minimum, i2.maximum, points)
+    W1, W2 = np.meshgrid(g1, g2, indexing="ij")
+    pts = [{m1: float(a), m2: float(b)} for a, b in zip(W1.ravel(), W2.ravel())]
+    est = fit.estimate(design.slope_rows(pts), alpha)
+    shape = (points, points)
+    return {
+        "moderators": [m1, m2],
+        "values": [[num(v) for v in g1], [num(v) for v in g2]],
+        "estimate": np.round(est.estimate.reshape(shape), 12).tolist(),
+        "significant": est.significant.reshape(shape).tolist(),
+        "level": 1 - alpha,
+    }

@@ -1,0 +1,273 @@
+"""Model specification and formula safety.
+
+A formula may come from a config file written by somebody else, so it is checked by a
+small tokenizer *before* anything evaluates it: only column names, the Wilkinson
+operators, numbers and an allow-list of transforms may appear. No attribute access,
+subscripts, lambdas, dunder names or unknown calls get through, so nothing the user
+writes can run code.
+"""
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from .errors import InputError, option_error
+
+#: Transforms a formula may call. Values are the user-facing description.
+ALLOWED_FUNCTIONS: dict[str, str] = {
+    "I": "arithmetic of columns, e.g. I(x**2) or I(x - 10)",
+    "C": "treat a column as categorical, e.g. C(w) or C(w, Treatment('b'))",
+    "Treatment": "reference level of a categorical column inside C()",
+    "log": "natural logarithm",
+    "log1p": "log(1 + x)",
+    "log2": "base-2 logarithm",
+    "log10": "base-10 logarithm",
+    "exp": "exponential",
+    "sqrt": "square root",
+    "abs": "absolute value",
+    "center": "subtract the sample mean",
+    "scale": "subtract the mean and divide by the SD",
+}
+
+_TOKEN = re.compile(
+    r"""
+    (?P<ws>\s+)
+  | (?P<quoted>`[^`]+`)
+  | (?P<number>(?:\d+\.\d*|\.\d+|\d+)(?:[eE][+-]?\d+)?)
+  | (?P<name>[A-Za-z_][A-Za-z0-9_]*)
+  | (?P<string>'[^'\\]*'|"[^"\\]*")
+  | (?P<op>\*\*|[~+\-*/:^(),=])
+    """,
+    re.VERBOSE,
+)
+
+
+@dataclass(frozen=True)
+class Token:
+    kind: str
+    text: str
+    pos: int
+
+
+def tokenize_formula(formula: str) -> list[Token]:
+    """Split a formula into tokens, refusing any character outside the grammar."""
+    if not isinstance(formula, str) or not formula.strip():
+        raise InputError("The formula is empty; give one like 'y ~ x * w + age'.")
+    tokens: list[Token] = []
+    pos = 0
+    while pos < len(formula):
+        m = _TOKEN.match(formula, pos)
+        if m is None:
+            bad = formula[pos : pos + 12]
+            raise InputError(
+                f"The formula contains {bad!r} at character {pos + 1}, which is not allowed; "
+                "use column names, numbers, the operators ~ + - * : / ** ( ) and the "
+                f"transforms {', '.join(sorted(ALLOWED_FUNCTIONS))}."
+            )
+        kind = m.lastgroup or ""
+        if kind != "ws":
+            tokens.append(Token(kind, m.group(), pos))
+        pos = m.end()
+    return tokens
+
+
+def check_formula(formula: str) -> tuple[str, list[str]]:
+    """Validate a formula's grammar and return (response, variable names it uses).
+
+    Raises InputError naming the offending piece. Column existence is checked later,
+    against the data.
+    """
+    tokens = tokenize_formula(formula)
+    tildes = [t for t in tokens if t.text == "~"]
+    if len(tildes) != 1:
+        raise InputError(
+            f"The formula {formula!r} must contain exactly one '~' separating the outcome "
+            "from the predictors, e.g. 'y ~ x * w'."
+        )
+    variables: list[str] = []
+    stack: list[str] = []  # the names of the calls we are inside ("(" for grouping)
+    prev: Token | None = None
+    for i, tok in enumerate(tokens):
+        nxt = tokens[i + 1] if i + 1 < len(tokens) else None
+        if tok.kind == "name":
+            if tok.text.startswith("__"):
+                raise InputError(f"The formula contains {tok.text!r}; dunder names are not allowed.")
+            if nxt is not None and nxt.text == "(":
+                if tok.text not in ALLOWED_FUNCTIONS:
+                    raise InputError(
+                        f"The formula calls {tok.text}(), which is not an allowed transform; "
+                        f"allowed: {', '.join(sorted(ALLOWED_FUNCTIONS))}."
+                    )
+            elif nxt is not None and nxt.text == "=":
+                raise InputError(
+                    f"The formula uses a keyword argument {tok.text}=; write C(w, Treatment('level')) "
+                    "to choose a reference level."
+                )
+            elif tok.text in ALLOWED_FUNCTIONS and tok.text not in variables:
+                # A bare allowed name could still be a column (e.g. a column called 'C').
+                variables.append(tok.text)
+            elif tok.text not in variables:
+                variables.append(tok.text)
+        elif tok.kind == "quoted":
+            name = tok.text[1:-1]
+            if name not in variables:
+                variables.append(name)
+        elif tok.kind == "string":
+            inside = [s for s in stack if s != "("]
+            if not inside or inside[-1] != "Treatment":
+                raise InputError(
+                    f"The formula contains the text {tok.text}; quoted text is only allowed as the "
+                    "reference level in C(w, Treatment('level'))."
+                )
+        elif tok.text == "(":
+            stack.append(prev.text if prev is not None and prev.kind == "name" else "(")
+        elif tok.text == ")":
+            if not stack:
+                raise InputError(f"The formula has an unmatched ')' at character {tok.pos + 1}.")
+            stack.pop()
+        elif tok.text == ",":
+            if not stack or stack[-1] not in ("C", "Treatment"):
+                raise InputError(
+                    f"The formula has a ',' at character {tok.pos + 1}; commas are only allowed "
+                    "inside C(w, Treatment('level'))."
+                )
+        elif tok.text == "=":
+            raise InputError(f"The formula has an '=' at character {tok.pos + 1}; it is not allowed.")
+        elif tok.text == "~" and stack:
+            raise InputError("The '~' of the formula must not stand inside parentheses.")
+        prev = tok
+    if stack:
+        raise InputError(f"The formula {formula!r} has an unclosed '('.")
+    lhs = [t for t in tokens[: tokens.index(tildes[0])]]
+    rhs = tokens[tokens.index(tildes[0]) + 1 :]
+    if not lhs:
+        raise InputError(f"The formula {formula!r} has no outcome before '~'.")
+    if not rhs:
+        raise InputError(f"The formula {formula!r} has no predictors after '~'.")
+    response_names = [t.text[1:-1] if t.kind == "quoted" else t.text for t in lhs if t.kind in ("name", "quoted") and t.text not in ALLOWED_FUNCTIONS]
+    if len(response_names) != 1:
+        raise InputError(
+            f"The outcome side of {formula!r} must name exactly one column (a transform such as log(y) is fine)."
+        )
+    return response_names[0], variables
+
+
+ProbeValues = Sequence[float] | str | None
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Everything that defines one moderation analysis, before data are seen.
+
+    Parameters
+    ----------
+    formula : str
+        Wilkinson formula, e.g. ``"y ~ x * w + age"``.
+    focal : str
+        Column whose slope is probed.
+    moderators : tuple of str
+        One or two moderator columns (two give a three-way term).
+    probe : mapping of moderator to values or a rule, default "sd"
+        ``"sd"`` (mean − 1 SD, mean, mean + 1 SD; Aiken & West 1991), ``"percentiles"``
+        (10th, 25th, 50th, 75th, 90th) or ``"percentiles:5,50,95"``, or an explicit list
+        of values on the user's scale. Categorical moderators are probed at every level.
+    alpha : float, default=0.05
+    seed : int, default=20240917
+    center : bool, default=False
+        Mean-centre the focal predictor and the moderators before fitting. Conditional
+        effects and region boundaries are always reported on the user's raw scale;
+        coefficients on the centred scale.
+    """
+
+    formula: str
+    focal: str
+    moderators: tuple[str, ...]
+    probe: Mapping[str, Any] = field(default_factory=dict)
+    alpha: float = 0.05
+    seed: int = 20240917
+    center: bool = False
+
+    def __post_init__(self) -> None:
+        if isinstance(self.moderators, str):
+            object.__setattr__(self, "moderators", (self.moderators,))
+        object.__setattr__(self, "moderators", tuple(self.moderators))
+        if not isinstance(self.focal, str) or not self.focal:
+            raise option_error("focal", "the name of a column", self.focal)
+        if not 1 <= len(self.moderators) <= 2:
+            raise option_error("moderator", "one or two column names", list(self.moderators))
+        if self.focal in self.moderators:
+            raise InputError(
+                f"The focal predictor {self.focal!r} is also given as a moderator; "
+                "choose a different column for one of them."
+            )
+        if len(set(self.moderators)) != len(self.moderators):
+            raise InputError(f"The moderators {list(self.moderators)} repeat a column; give two different ones.")
+        alpha = self.alpha
+        if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not math.isfinite(alpha) or not 0 < alpha < 1:
+            raise option_error("alpha", "a number in (0, 1)", alpha)
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise option_error("seed", "a non-negative whole number", self.seed)
+        probe = self.probe
+        if probe is None or isinstance(probe, str) or (isinstance(probe, Sequence) and not isinstance(probe, Mapping)):
+            probe = {self.moderators[0]: probe} if probe is not None else {}
+        probe = dict(probe)
+        for key, rule in probe.items():
+            if key not in self.moderators:
+                raise InputError(
+                    f"Probe values are given for {key!r}, which is not a moderator; moderators: {list(self.moderators)}."
+                )
+            parse_probe_rule(rule, key)
+        object.__setattr__(self, "probe", probe)
+        response, variables = check_formula(self.formula)
+        object.__setattr__(self, "_response", response)
+        object.__setattr__(self, "_variables", tuple(variables))
+
+    @property
+    def response(self) -> str:
+        """The column named on the outcome side."""
+        return self._response  # type: ignore[attr-defined]
+
+    @property
+    def variables(self) -> tuple[str, ...]:
+        """Every column name the formula mentions, outcome first."""
+        return self._variables  # type: ignore[attr-defined]
+
+
+def parse_probe_rule(rule: Any, moderator: str) -> tuple[str, tuple[float, ...]]:
+    """Normalise a probe rule to ("sd", ()), ("percentiles", (q...)) or ("values", (v...))."""
+    if rule is None or rule == "sd":
+        return "sd", ()
+    if isinstance(rule, str):
+        text = rule.strip().lower()
+        if text.startswith("percentiles"):
+            rest = text[len("percentiles") :].lstrip(":").strip()
+            qs = (10.0, 25.0, 50.0, 75.0, 90.0) if not rest else _numbers(rest, moderator)
+            if any(not 0 <= q <= 100 for q in qs):
+                raise option_error(f"probe for {moderator}", "percentiles between 0 and 100", rule)
+            return "percentiles", tuple(qs)
+        return "values", _numbers(text, moderator)
+    if isinstance(rule, (int, float)) and not isinstance(rule, bool):
+        rule = [rule]
+    if isinstance(rule, Sequence):
+        try:
+            values = tuple(float(v) for v in rule)
+        except (TypeError, ValueError):
+            # Level labels of a categorical moderator are kept as text.
+            return "levels", tuple(rule)  # type: ignore[arg-type]
+        if not values or not all(math.isfinite(v) for v in values):
+            raise option_error(f"probe for {moderator}", "a non-empty list of finite numbers", list(rule))
+        return "values", values
+    raise option_error(f"probe for {moderator}", "'sd', 'percentiles', 'percentiles:10,50,90' or a list of values", rule)
+
+
+def _numbers(text: str, moderator: str) -> tuple[float, ...]:
+    try:
+        values = tuple(float(v) for v in text.replace(";", ",").split(",") if v.strip())
+    except ValueError:
+        raise option_error(f"probe for {moderator}", "comma-separated numbers such as '1,2.5,4'", text) from None
+    if not values or not all(math.isfinite(v) for v in values):
+        raise option_error(f"probe for {moderator}", "comma-separated finite numbers", text)
+    return values
