@@ -73,6 +73,7 @@ class BackendResult:
     simultaneous_region: dict[str, Any] | None
     regions_by_other: list[dict[str, Any]]
     slope_grid: dict[str, Any] | None
+    slope_curve: dict[str, Any] | None
     warnings: tuple[str, ...]
     extras: dict[str, Any]
     seconds: float
@@ -90,6 +91,8 @@ class BackendResult:
             out["significance_regions_by"] = self.regions_by_other
         if self.slope_grid is not None:
             out["slope_grid"] = self.slope_grid
+        if self.slope_curve is not None:
+            out["slope_curve"] = self.slope_curve
         return out
 
 
@@ -116,7 +119,7 @@ def evaluate_fit(fit: Fit | Unavailable, design: Design, alpha: float, seconds: 
     """Turn a Fit into the effects the contract asks for."""
     if isinstance(fit, Unavailable):
         return BackendResult(fit.backend_id, fit.label, "unavailable", False, False, fit.reason, {}, None, [], None,
-                             None, [], None, tuple(fit.warnings) + (fit.reason,), {}, seconds, None)
+                             None, [], None, None, tuple(fit.warnings) + (fit.reason,), {}, seconds, None)
     coefs = fit.coefficients(alpha)
     coefficients = {name: effects._point(coefs, i) for i, name in enumerate(fit.term_names)}
     return BackendResult(
@@ -128,6 +131,7 @@ def evaluate_fit(fit: Fit | Unavailable, design: Design, alpha: float, seconds: 
         simultaneous_region=effects.significance_region(fit, design, alpha, band="simultaneous"),
         regions_by_other=effects.regions_by_other(fit, design, alpha),
         slope_grid=effects.slope_grid(fit, design, alpha),
+        slope_curve=effects.slope_curve(fit, design, alpha),
         warnings=fit.warnings, extras=dict(fit.extras), seconds=seconds, fit=fit,
     )
 

@@ -239,3 +239,17 @@ def slope_grid(fit: Fit, design: Design, alpha: float, points: int = GRID_2D) ->
         "significant": est.significant.reshape(shape).tolist(),
         "level": 1 - alpha,
     }
+
+
+def slope_curve(fit: Fit, design: Design, alpha: float, points: int = 101) -> dict[str, Any] | None:
+    """Conditional slope with pointwise interval along the first continuous moderator over its
+    observed range (other moderators at reference) — the table the slope figure draws."""
+    conts = design.continuous_moderators
+    if not conts:
+        return None
+    m = conts[0]
+    info = design.moderators[m]
+    grid = np.linspace(info.minimum, info.maximum, points)
+    est = fit.estimate(design.slope_rows_along(m, grid), alpha)
+    return {"moderator": m, "values": [num(v) for v in grid], "estimate": [num(v) for v in est.estimate],
+            "lower": [num(v) for v in est.lower], "upper": [num(v) for v in est.upper], "level": 1 - alpha}

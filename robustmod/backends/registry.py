@@ -19,6 +19,9 @@ REGISTRY: dict[str, tuple[str, str, dict[str, Any]]] = {
     "hc4": ("robustmod.backends.ols", "OLSBackend", {"id": "hc4"}),
     "hc4m": ("robustmod.backends.ols", "OLSBackend", {"id": "hc4m"}),
     "hc5": ("robustmod.backends.ols", "OLSBackend", {"id": "hc5"}),
+    "wild": ("robustmod.backends.wild", "WildBootstrapBackend", {}),
+    "wls": ("robustmod.backends.wls", "WLSBackend", {}),
+    "bayes": ("robustmod.backends.bayes", "BayesBackend", {}),
 }
 
 #: Back-ends run when the user names none.
@@ -47,7 +50,10 @@ def make_backend(backend_id: str, **options: Any) -> Any:
     """Construct the back-end registered under ``backend_id`` with user options."""
     (bid,) = check_ids([backend_id])
     module, cls, fixed = REGISTRY[bid]
-    klass = getattr(importlib.import_module(module), cls)
+    try:
+        klass = getattr(importlib.import_module(module), cls)
+    except (ImportError, AttributeError) as exc:
+        raise InputError(f"Back-end {bid!r} cannot be loaded ({exc}); reinstall robustmod with its dependencies.") from None
     try:
         return klass(**fixed, **options)
     except TypeError as exc:
