@@ -103,6 +103,14 @@ class PreparedData:
     dropped_rows: tuple[int, ...]  # 1-based data-row numbers
     categorical_moderators: tuple[str, ...]
     warnings: tuple[str, ...]
+    source: pd.DataFrame | None = None  # the user's whole frame (read-only use), for extra columns
+
+    def column(self, name: str) -> pd.Series:
+        """A column of the user's data (e.g. weights or groups outside the formula) on the rows used."""
+        if self.source is None or name not in self.source.columns:
+            cols = [] if self.source is None else list(self.source.columns)
+            raise InputError(f"Column {name!r} is not in the data.{close_matches(name, cols)}")
+        return self.source.loc[self.frame.index, name]
 
     @property
     def n_obs(self) -> int:
@@ -194,5 +202,5 @@ def prepare_data(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
             categorical.append(mod)
         elif col.nunique() < 2:
             raise InputError(f"The moderator {mod!r} is constant in the rows used; it needs at least two values.")
-    return PreparedData(frame, n_input, dropped, tuple(categorical), tuple(warnings))
+    return PreparedData(frame, n_input, dropped, tuple(categorical), tuple(warnings), data)
 
