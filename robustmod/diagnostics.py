@@ -1,11 +1,15 @@
-"""Diagnostics of the variance pattern of the OLS residuals.
+"""Diagnostics of the variance pattern of the OLS residuals, and of the mean model.
 
 * Breusch–Pagan in Koenker's studentized form: LM = n·R² of êᵢ² on the regressors,
   χ² with (rank − 1) df (Breusch & Pagan 1979; Koenker 1981).
 * White (1980): the same auxiliary regression on the regressors, their squares and
   cross-products, linearly dependent columns (e.g. squared dummies) dropped.
 * Goldfeld–Quandt (1965): rows sorted by the moderator, the middle fifth dropped,
-  F = s²(high) / s²(low), two-sided p.
+  F = s²(high) / s²(low) with equal halves, two-sided p.
+* Spread of the residuals by moderator bins (terciles, or the levels of a categorical one).
+* Classical vs HC3 standard error of the product term: a large gap signals a misspecified
+  mean model as much as non-constant variance (King & Roberts 2015).
+* Linearity of the interaction: the binning check of :mod:`robustmod.linearity`.
 """
 from __future__ import annotations
 
@@ -14,10 +18,26 @@ from typing import Any
 import numpy as np
 from scipy import linalg, stats
 
+from .backends.base import WaldFit
+from .backends.ols import ols_fit
 from .design import Design
+from .errors import option_error
+from .linearity import binning_check
 
 #: Share of middle rows the Goldfeld–Quandt split drops.
 GQ_DROP = 0.2
+#: Number of quantile bins of a continuous moderator for the residual-spread table.
+SPREAD_BINS = 3
+#: HC3/classical SE ratio beyond which (either way) the gap is called large. Our rule of
+#: thumb: King & Roberts (2015) give no threshold, only the advice to look.
+SE_GAP_LARGE = 1.5
+
+
+def _num(x: Any) -> float | None:
+    if x is None:
+        return None
+    x = float(x)
+    return x if np.isfinite(x) else None
 
 
 def _independent_columns(Z: np.ndarray, tol: float = 1e-10) -> np.ndarray:
@@ -33,7 +53,7 @@ def _independent_columns(Z: np.ndarray, tol: float = 1e-10) -> np.ndarray:
 
 
 def _lm_test(u2: np.ndarray, Z: np.ndarray) -> dict[str, Any]:
-    """n·R² of u2 on Z (Z contains a constant) and its χ² p-value."""
+    """n·R² of u2 on Z (Z contains a constant) and its χ² p-value with rank(Z) − 1 df."""
     n = u2.size
     Q, _ = np.linalg.qr(Z, mode="reduced")
     fitted = Q @ (Q.T @ u2)
@@ -42,34 +62,50 @@ def _lm_test(u2: np.ndarray, Z: np.ndarray) -> dict[str, Any]:
     r2 = float(((fitted - u2.mean()) ** 2).sum() / ss_tot) if ss_tot > 0 else 0.0
     df = Z.shape[1] - 1
     stat = n * r2
-    return {"statistic": stat, "df": df, "p": float(stats.chi2.sf(stat, df)) if df > 0 else None}
+    return {"statistic": _num(stat), "df": int(df), "p": _num(stats.chi2.sf(stat, df)) if df > 0 else None}
+
+
+def _with_constant(Z: np.ndarray) -> np.ndarray:
+    return np.column_stack([np.ones(Z.shape[0]), Z])
 
 
 def ols_residuals(design: Design) -> np.ndarray:
+    """ê = y − Q Qᵀ y from the design's thin QR."""
     Q, _ = design.qr
     return design.y - Q @ (Q.T @ design.y)
 
 
+def breusch_pagan_lm(resid: np.ndarray, X: np.ndarray) -> dict[str, Any]:
+    """Koenker's LM = n·R² of ê² on X (plus a constant), χ²(rank − 1); arrays in, dict out."""
+    Z = _independent_columns(_with_constant(np.asarray(X, dtype=float)))
+    e = np.asarray(resid, dtype=float)
+    return {**_lm_test(e**2, Z), "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
+
+
+def white_lm(resid: np.ndarray, X: np.ndarray) -> dict[str, Any]:
+    """White's LM = n·R² of ê² on X, its squares and cross-products (dependent columns dropped)."""
+    X = np.asarray(X, dtype=float)
+    iu, ju = np.triu_indices(X.shape[1])
+    Z = _independent_columns(_with_constant(np.column_stack([X, X[:, iu] * X[:, ju]])))
+    e = np.asarray(resid, dtype=float)
+    return {**_lm_test(e**2, Z), "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
+
+
 def breusch_pagan(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
     """Koenker's studentized Breusch–Pagan test on the model's own regressors."""
-    e = ols_residuals(design) if resid is None else resid
-    Z = _independent_columns(_with_constant(design.X))
-    return {**_lm_test(e**2, Z), "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
+    return breusch_pagan_lm(ols_residuals(design) if resid is None else resid, design.X)
 
 
 def white(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
     """White's test: squared residuals on levels, squares and cross-products of the regressors."""
-    e = ols_residuals(design) if resid is None else resid
-    X = design.X
-    k = X.shape[1]
-    iu, ju = np.triu_indices(k)
-    Z = _independent_columns(_with_constant(X[:, iu] * X[:, ju] if k else X))
-    Z = _independent_columns(np.column_stack([X, Z]))
-    return {**_lm_test(e**2, Z), "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
+    return white_lm(ols_residuals(design) if resid is None else resid, design.X)
 
 
 def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, Any] | None:
-    """Split along a continuous moderator; F of residual variances high vs low, two-sided."""
+    """Split along a continuous moderator; F of residual variances high vs low, two-sided.
+
+    None when the model has no continuous moderator or the halves are too small to fit.
+    """
     conts = design.continuous_moderators
     if moderator is None:
         if not conts:
@@ -80,31 +116,102 @@ def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, A
     n, k = design.X.shape
     drop = int(round(GQ_DROP * n))
     n1 = (n - drop) // 2
-    lo, hi = order[:n1], order[n - n1:]
     if n1 <= k + 1:
         return None
+    lo, hi = order[:n1], order[n - n1:]
     s2 = []
-    for idx in (lo, hi):
+    for idx in (lo, hi):  # the two halves
         Xs, ys = design.X[idx], design.y[idx]
         beta, *_ = linalg.lstsq(Xs, ys)
         r = ys - Xs @ beta
         s2.append(float(r @ r) / (len(idx) - k))
-    F = s2[1] / s2[0] if s2[0] > 0 else np.inf
+    if s2[0] <= 0:
+        return None
+    F = s2[1] / s2[0]
     d = n1 - k
     p = 2 * min(stats.f.sf(F, d, d), stats.f.cdf(F, d, d))
-    return {"statistic": F, "df": [d, d], "p": float(min(1.0, p)), "moderator": moderator,
+    return {"statistic": _num(F), "df": [int(d), int(d)], "p": _num(min(1.0, p)), "moderator": moderator,
+            "n_dropped_middle": int(n - 2 * n1),
             "form": f"sorted by {moderator}, middle {int(100 * GQ_DROP)}% dropped, F = s²(high)/s²(low), two-sided"}
 
 
-def _with_constant(Z: np.ndarray) -> np.ndarray:
-    return np.column_stack([np.ones(Z.shape[0]), Z])
+def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderator: str | None = None,
+                    bins: int = SPREAD_BINS) -> dict[str, Any] | None:
+    """SD of the OLS residuals within moderator bins (quantile bins, or levels if categorical).
+
+    ``ratio`` is the largest bin SD over the smallest.
+    """
+    if isinstance(bins, bool) or not isinstance(bins, (int, np.integer)) or bins < 2:
+        raise option_error("bins", "a whole number ≥ 2", bins)
+    e = ols_residuals(design) if resid is None else resid
+    if moderator is None:
+        if not design.moderators:
+            return None
+        moderator = (design.continuous_moderators or tuple(design.moderators))[0]
+    info = design.moderators[moderator]
+    rows: list[dict[str, Any]] = []
+    if info.categorical:
+        col = design.data.frame[moderator]
+        labels = col.astype(str).to_numpy() if not info.levels or isinstance(info.levels[0], str) else col.to_numpy()
+        groups = [(lev, labels == lev) for lev in info.levels]
+        for lev, mask in groups:  # one entry per level
+            rows.append({"level": lev if isinstance(lev, str) else _num(lev), "range": None, **_spread(e[mask])})
+    else:
+        w = np.asarray(info.values, dtype=float)
+        cuts = np.quantile(w, np.arange(1, bins) / bins)
+        idx = np.searchsorted(cuts, w, side="right")
+        for j in np.unique(idx):  # one entry per bin
+            mask = idx == j
+            rows.append({"level": None, "range": [float(w[mask].min()), float(w[mask].max())], **_spread(e[mask])})
+    sds = [r["sd"] for r in rows if r["sd"] is not None]
+    ratio = _num(max(sds) / min(sds)) if len(sds) >= 2 and min(sds) > 0 else None
+    return {"moderator": moderator, "bins": rows, "ratio": ratio,
+            "form": "SD of OLS residuals (ddof 1) within moderator bins" + ("" if info.categorical else f" ({bins} quantile bins)")}
+
+
+def _spread(e: np.ndarray) -> dict[str, Any]:
+    return {"n": int(e.size), "sd": _num(np.std(e, ddof=1)) if e.size > 1 else None}
+
+
+def se_gap(design: Design) -> dict[str, Any] | None:
+    """Classical vs HC3 SE of each product-term coefficient, and their ratio (King & Roberts 2015)."""
+    Q, R = design.qr
+    fits = [ols_fit(kind, Q, R, design.y, design.term_names) for kind in ("ols", "hc3")]
+    if not all(isinstance(f, WaldFit) for f in fits):
+        return None
+    L = design.interaction_rows()
+    se_c, se_h = (f.estimate(L, 0.05).se for f in fits)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = se_h / se_c
+    finite = ratio[np.isfinite(ratio) & (ratio > 0)]
+    worst = float(finite[np.argmax(np.abs(np.log(finite)))]) if finite.size else None
+    return {
+        "terms": list(design.interaction_terms),
+        "classical_se": [_num(v) for v in se_c],
+        "hc3_se": [_num(v) for v in se_h],
+        "ratio": [_num(v) for v in ratio],
+        "largest_ratio": _num(worst),
+        "large": None if worst is None else bool(worst > SE_GAP_LARGE or worst < 1 / SE_GAP_LARGE),
+        "threshold": SE_GAP_LARGE,
+        "note": "A large gap between classical and robust SEs points to a misspecified mean model "
+                "as well as to non-constant variance (King & Roberts 2015).",
+    }
 
 
 def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
-    """All variance diagnostics of the results contract."""
+    """All diagnostics of the results contract; every value JSON-ready (finite floats or None)."""
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise option_error("alpha", "a number in (0, 1)", alpha)
     e = ols_residuals(design)
-    return {
+    out: dict[str, Any] = {
+        "alpha": float(alpha),
         "breusch_pagan": breusch_pagan(design, e),
         "white": white(design, e),
         "goldfeld_quandt": goldfeld_quandt(design),
+        "residual_spread": residual_spread(design, e),
+        "se_gap": se_gap(design),
+        "linearity": binning_check(design, alpha=alpha),
     }
+    tests = [out[k] for k in ("breusch_pagan", "white", "goldfeld_quandt") if out[k] is not None]
+    out["non_constant_variance"] = any(t["p"] is not None and t["p"] < alpha for t in tests)
+    return out

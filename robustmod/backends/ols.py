@@ -37,6 +37,47 @@ class OLSBackend:
         Q, R = design.qr
         return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design))
 
+    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
+        """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
+
+        All D datasets share X = QR: B = R⁻¹QᵀY and E = Y − QQᵀY in one product each. With
+        C = Q R⁻ᵀ Lᵀ (n × q) the product-term covariance is Cᵀ diag(ωᵢ êᵢ²) C (HC) or
+        s²·CᵀC (classical); one term gives the t test, several the Wald F(q, n − k), as
+        :meth:`WaldFit.estimate` / :meth:`WaldFit.joint_test` decide for a single fit.
+        ``seed`` is unused (nothing here is random).
+        """
+        from scipy import stats  # noqa: PLC0415
+
+        Q, R = design.qr
+        Y = np.asarray(Y, dtype=float)
+        if Y.ndim != 2 or Y.shape[0] != Q.shape[0]:
+            raise ValueError(f"Y must be n × D with n = {Q.shape[0]}; got shape {Y.shape}")
+        n, k = Q.shape
+        df = n - k
+        L = design.interaction_rows()
+        q = L.shape[0]
+        QtY = Q.T @ Y
+        E = Y - Q @ QtY
+        r = L @ linalg.solve_triangular(R, QtY, check_finite=False)  # q × D
+        C = Q @ linalg.solve_triangular(R, L.T, trans="T", check_finite=False)  # n × q
+        E2 = E * E
+        if self.id == "ols":
+            s2 = E2.sum(axis=0) / df
+            S = (C.T @ C)[None, :, :] * s2[:, None, None]  # D × q × q
+        else:
+            h = leverages(Q)
+            if leverage_one_rows(h).size and self.id in NEEDS_LEVERAGE_BELOW_ONE:
+                raise ValueError(f"{self.id.upper()} is undefined: some rows have leverage 1")
+            w = hc_weights(self.id, h, n, k)
+            S = np.einsum("ia,ib,id->dab", C * w[:, None], C, E2, optimize=True)
+        if q == 1:
+            se = np.sqrt(np.maximum(S[:, 0, 0], 0.0))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                t = np.where(se > 0, r[0] / se, 0.0)
+            return 2 * stats.t.sf(np.abs(t), df) < alpha
+        stat = np.einsum("da,da->d", r.T, np.linalg.solve(S, r.T[:, :, None])[:, :, 0]) / q
+        return stats.f.sf(stat, q, df) < alpha
+
 
 def _row_numbers(design: "Design") -> np.ndarray:
     return np.asarray(design.data.frame.index, dtype=int) + 1
