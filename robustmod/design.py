@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from formulaic import model_matrix
+from scipy import linalg
 
 from .data import PreparedData, prepare_data
 from .errors import InputError
@@ -89,8 +90,7 @@ class Design:
     @cached_property
     def qr(self) -> tuple[np.ndarray, np.ndarray]:
         """Thin QR of X (computed once, shared by the back-ends that use the raw X)."""
-        Q, R = np.linalg.qr(self.X, mode="reduced")
-        return Q, R
+        return thin_qr(self.X)
 
     # ---- L rows ------------------------------------------------------------------
     def interaction_rows(self) -> np.ndarray:
@@ -109,15 +109,15 @@ class Design:
             return np.zeros((0, self.n_params))
         base = self._points_frame(points)
         if self.focal_linear:
-            lo, hi = base.copy(), base.copy()
-            lo[self.focal] = 0.0
-            hi[self.focal] = 1.0
-            return self._matrix(hi) - self._matrix(lo)
-        h = self._focal_step()
-        lo, hi = base.copy(), base.copy()
-        lo[self.focal] = self._to_model(self.focal, self.focal_mean) - h
-        hi[self.focal] = self._to_model(self.focal, self.focal_mean) + h
-        return (self._matrix(hi) - self._matrix(lo)) / (2 * h)
+            at, step = 0.0, 1.0
+        else:
+            step = 2 * self._focal_step()
+            at = self._to_model(self.focal, self.focal_mean) - step / 2
+        m = len(base)
+        both = pd.concat([base, base], ignore_index=True)  # one model-matrix call for both points
+        both[self.focal] = np.r_[np.full(m, at), np.full(m, at + step)]
+        M = self._matrix(both)
+        return (M[m:] - M[:m]) / step
 
     def slope_rows_along(self, moderator: str, values: np.ndarray, fixed: dict[str, Any] | None = None) -> np.ndarray:
         """L rows for the focal slope as ``moderator`` runs over ``values`` (raw scale)."""
@@ -130,16 +130,17 @@ class Design:
         info = self.moderators[moderator]
         if info.categorical:
             return None
-        span = (info.maximum - info.minimum) or 1.0
-        w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
-        Ls = self.slope_rows_along(moderator, w, fixed)
-        L1 = (Ls[1] - Ls[0]) / (w[1] - w[0])
-        L0 = Ls[0] - w[0] * L1
-        pred = L0 + w[2] * L1
-        scale = np.maximum(np.abs(Ls).max(axis=0), 1.0)
-        if np.all(np.abs(pred - Ls[2]) <= 1e-8 * scale):
-            return L0, L1
-        return None
+        key = (moderator, tuple(sorted((k, str(v)) for k, v in (fixed or {}).items())))
+        cache = self.__dict__.setdefault("_linear_cache", {})
+        if key not in cache:
+            span = (info.maximum - info.minimum) or 1.0
+            w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
+            Ls = self.slope_rows_along(moderator, w, fixed)
+            L1 = (Ls[1] - Ls[0]) / (w[1] - w[0])
+            L0 = Ls[0] - w[0] * L1
+            scale = np.maximum(np.abs(Ls).max(axis=0), 1.0)
+            cache[key] = (L0, L1) if np.all(np.abs(L0 + w[2] * L1 - Ls[2]) <= 1e-8 * scale) else None
+        return cache[key]
 
     # ---- helpers -----------------------------------------------------------------
     def _to_model(self, name: str, value: Any) -> Any:
@@ -216,7 +217,8 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
             f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
             "(fewer terms or more data)."
         )
-    _check_rank(X, term_names)
+    qr = thin_qr(X)
+    _check_rank(X, qr[1], term_names)
     model_spec = mm.rhs.model_spec
     interaction_columns = _interaction_columns(model_spec, spec, term_names)
     moderators = _moderator_info(prepared, spec)
@@ -230,6 +232,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings),
         _model_spec=model_spec, _frame=frame,
     )
+    design.__dict__["qr"] = qr  # the cached_property's slot: one QR per design
     # Is the focal predictor linear in the model? Compare unit differences at two places.
     pt = [dict()]  # reference point
     base = design._points_frame(pt)
@@ -246,9 +249,14 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     return design
 
 
-def _check_rank(X: np.ndarray, names: tuple[str, ...]) -> None:
-    """Refuse a rank-deficient X, naming the aliased terms."""
-    R = np.linalg.qr(X, mode="r")
+def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Householder thin QR (LAPACK geqrf/orgqr on a Fortran-ordered copy, the fast layout)."""
+    Q, R = linalg.qr(np.array(X, order="F", copy=True), mode="economic", check_finite=False, overwrite_a=True)
+    return Q, R
+
+
+def _check_rank(X: np.ndarray, R: np.ndarray, names: tuple[str, ...]) -> None:
+    """Refuse a rank-deficient X, naming the aliased terms (|R_jj| tiny against ‖X_j‖)."""
     norms = np.linalg.norm(X, axis=0)
     rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
     aliased = [names[j] for j in np.flatnonzero((rel < ALIAS_TOL) | (norms == 0))]
