@@ -1,0 +1,623 @@
+"""Bayesian location–scale regression sampled with NUTS in PyMC on the CPU.
+
+Model (user's scale)::
+
+    yᵢ ~ Normal(xᵢᵀβ, σᵢ)   (or Student-t with ν degrees of freedom and scale σᵢ)
+    log σᵢ = zᵢᵀγ,          zᵢ = (1, focal, moderators) by default — the variance model of ``wls``
+
+Sampling happens on an internally standardised scale (y and the non-constant columns of
+X and Z centred and scaled to SD 1), where the priors are weakly informative
+(docs/method-bayes.md). The mean model is optionally reparameterised through the thin QR
+factor of the standardised columns (Stan User's Guide, "QR reparameterization"), with
+the prior still placed on the standardised coefficients. Draws are mapped back to the
+user's scale exactly: with x̃ⱼ = (xⱼ − cⱼ)/sⱼ and ỹ = (y − c_y)/s_y,
+βⱼ = s_y b̃ⱼ / sⱼ (j ≠ 0) and β₀ = c_y + s_y b̃₀ − Σⱼ cⱼ βⱼ; likewise
+γⱼ = g̃ⱼ / s_zⱼ and γ₀ = log s_y + g̃₀ − Σⱼ c_zⱼ γⱼ.
+
+Prior scales and the switch between the heteroscedastic and the constant-variance model
+are shared variables (``pm.Data``), so the prior-sensitivity refits and the
+constant-variance refit used for PSIS-LOO reuse the NUTS step compiled for the first fit.
+"""
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from scipy import linalg, special
+
+from ..errors import InputError, option_error
+from .base import Fit, PosteriorFit, Unavailable
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..design import Design
+
+#: Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021): rank-normalised R-hat and ESS thresholds.
+RHAT_MAX = 1.01
+ESS_MIN = 400
+#: Prior SDs on the standardised scale, multiplied by ``prior_scale`` (see docs/method-bayes.md).
+PRIOR_SD = {"intercept": 1.0, "slope": 2.5, "log_sigma_intercept": 1.0, "log_sigma_slope": 1.0}
+#: ν ~ Gamma(2, 0.1) for the Student-t likelihood (Juárez & Steel 2010).
+NU_PRIOR = (2.0, 0.1)
+#: σ² ~ Inverse-Gamma(a, b) in the conjugate constant-variance check model (standardised scale).
+CONJUGATE_IG = (2.0, 1.0)
+#: Prior-scale multipliers of the sensitivity refits.
+SENSITIVITY_FACTORS = (0.5, 2.0)
+#: Draws and tuning steps per chain of the auxiliary (warm) refits are capped at this.
+AUX_DRAWS = 500
+#: Sample the mean model through the QR factor of the standardised columns; keeps ESS per
+#: second higher when the product term is collinear with its components (validation/bench_bayes.py).
+USE_QR = True
+#: Moderator bins of the posterior predictive check of the spread of y.
+PPC_BINS = 5
+PPC_DRAWS = 400
+
+LIKELIHOODS = ("normal", "student")
+MODELS = ("location-scale", "constant-conjugate")
+
+
+# ---------------------------------------------------------------------------------------
+# Standardisation
+# ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Scaling:
+    """x̃ = (x − center)/scale column by column; column ``intercept`` (if any) stays at 1."""
+
+    center: np.ndarray
+    scale: np.ndarray
+    intercept: int | None
+
+    def apply(self, A: np.ndarray) -> np.ndarray:
+        return (A - self.center) / self.scale
+
+
+def column_scaling(A: np.ndarray) -> Scaling:
+    """Centre and scale every non-constant column when A has a column of ones; scale only otherwise."""
+    A = np.asarray(A, dtype=float)
+    ones = np.flatnonzero(np.all(A == 1.0, axis=0))
+    intercept = int(ones[0]) if ones.size else None
+    sd = A.std(axis=0, ddof=1) if A.shape[0] > 1 else np.ones(A.shape[1])
+    center = A.mean(axis=0) if intercept is not None else np.zeros(A.shape[1])
+    scale = np.where(sd > 0, sd, np.where(np.abs(A).max(axis=0) > 0, np.abs(A).max(axis=0), 1.0))
+    if intercept is not None:
+        center[intercept], scale[intercept] = 0.0, 1.0
+    return Scaling(center, scale, intercept)
+
+
+def coefficients_to_user(draws: np.ndarray, cols: Scaling, y_center: float, y_scale: float) -> np.ndarray:
+    """β of the raw columns from standardised-scale mean coefficients b̃ (S × k), exactly.
+
+    βⱼ = s_y b̃ⱼ / sⱼ, β₀ = c_y + s_y b̃₀ − Σ_{j≠0} cⱼ βⱼ (no centring without an intercept).
+    """
+    beta = y_scale * draws / cols.scale
+    if cols.intercept is not None:
+        i = cols.intercept
+        beta[:, i] = y_center + y_scale * draws[:, i] - beta @ cols.center
+    return beta
+
+
+def log_scale_to_user(draws: np.ndarray, cols: Scaling, y_scale: float) -> np.ndarray:
+    """γ of log σ on the raw columns from standardised-scale g̃: γⱼ = g̃ⱼ/s_zⱼ, γ₀ = log s_y + g̃₀ − Σ c_zⱼ γⱼ."""
+    gamma = draws / cols.scale
+    i = cols.intercept if cols.intercept is not None else 0
+    gamma[:, i] = np.log(y_scale) + draws[:, i] - gamma @ cols.center
+    return gamma
+
+
+# ---------------------------------------------------------------------------------------
+# The model
+# ---------------------------------------------------------------------------------------
+@dataclass
+class CompiledModel:
+    """A PyMC model on the standardised scale plus the NUTS step compiled for it."""
+
+    model: Any
+    step: Any
+    qr: bool
+    free_names: tuple[str, ...]
+    mean_names: tuple[str, ...]  # posterior variables giving b̃ (intercept, slopes)
+    log_sigma_names: tuple[str, ...]
+
+
+def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
+                model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
+    """PyMC model on standardised data; column 0 of Xs and Zs is the intercept (all ones).
+
+    Priors (standardised scale, × prior_scale): b̃₀ ~ N(0, 1), b̃ⱼ ~ N(0, 2.5), g̃₀ ~ N(0, 1),
+    g̃ⱼ ~ N(0, 1), ν ~ Gamma(2, 0.1). ``model="constant-conjugate"`` instead uses σ constant,
+    σ² ~ Inv-Gamma(2, 1) and b̃ | σ ~ N(0, σ²·diag(1, 2.5², …)), the normal–inverse-gamma
+    prior with a closed-form posterior (Gelman et al. 2013, BDA3 §14.8).
+    """
+    import pymc as pm  # noqa: PLC0415
+    import pytensor.tensor as pt  # noqa: PLC0415
+
+    n, k = Xs.shape
+    X1 = Xs[:, 1:]
+    with pm.Model() as m:
+        prior_scale = pm.Data("prior_scale", 1.0)
+        variance_on = pm.Data("variance_on", 1.0)
+        if model == "constant-conjugate":
+            sigma2 = pm.InverseGamma("sigma2", alpha=CONJUGATE_IG[0], beta=CONJUGATE_IG[1] * prior_scale**2)
+            unit = pt.sqrt(sigma2)
+        else:
+            unit = 1.0
+        b0 = pm.Normal("b_intercept", 0.0, PRIOR_SD["intercept"] * prior_scale * unit)
+        slope_sd = PRIOR_SD["slope"] * prior_scale * unit
+        if k > 1 and qr:
+            Q, R = np.linalg.qr(X1, mode="reduced")
+            sign = np.sign(np.diag(R))
+            sign[sign == 0] = 1.0
+            Q, R = Q * sign, R * sign[:, None]
+            root = np.sqrt(n - 1.0)
+            Qs, Rs = Q * root, R / root
+            Rs_inv = linalg.solve_triangular(Rs, np.eye(k - 1))
+            theta = pm.Flat("theta", shape=k - 1)
+            b = pm.Deterministic("b_slopes", pt.dot(Rs_inv, theta))
+            # Flat θ with the normal log-density of b = R*⁻¹θ keeps the stated prior on b (linear map,
+            # constant Jacobian).
+            pm.Potential("b_prior", pm.logp(pm.Normal.dist(0.0, slope_sd), b).sum())
+            mu = b0 + pt.dot(Qs, theta)
+        elif k > 1:
+            b = pm.Normal("b_slopes", 0.0, slope_sd, shape=k - 1)
+            mu = b0 + pt.dot(X1, b)
+        else:
+            mu = b0 + pt.zeros(n)
+        if model == "constant-conjugate":
+            sigma = unit
+            ls_names: tuple[str, ...] = ("sigma2",)
+        else:
+            g0 = pm.Normal("g_intercept", 0.0, PRIOR_SD["log_sigma_intercept"] * prior_scale)
+            if Zs.shape[1] > 1:
+                g = pm.Normal("g_slopes", 0.0, PRIOR_SD["log_sigma_slope"] * prior_scale, shape=Zs.shape[1] - 1)
+                log_sigma = g0 + variance_on * pt.dot(Zs[:, 1:], g)
+                ls_names = ("g_intercept", "g_slopes")
+            else:
+                log_sigma = g0 + pt.zeros(n)
+                ls_names = ("g_intercept",)
+            sigma = pt.exp(log_sigma)
+        if likelihood == "student":
+            nu = pm.Gamma("nu", alpha=NU_PRIOR[0], beta=NU_PRIOR[1])
+            pm.StudentT("y", nu=nu, mu=mu, sigma=sigma, observed=ys)
+        else:
+            pm.Normal("y", mu=mu, sigma=sigma, observed=ys)
+        step = pm.NUTS(target_accept=target_accept)
+    free = tuple(v.name for v in m.free_RVs)
+    mean_names = ("b_intercept",) + (("b_slopes",) if k > 1 else ())
+    return CompiledModel(m, step, bool(qr and k > 1), free, mean_names, ls_names)
+
+
+def _stack(idata: Any, names: Sequence[str]) -> np.ndarray:
+    """Posterior variables as one (chain·draw) × p matrix, in the order given."""
+    post = idata.posterior
+    parts = []
+    for name in names:
+        a = post[name].values
+        parts.append(a.reshape(a.shape[0] * a.shape[1], -1))
+    return np.concatenate(parts, axis=1)
+
+
+def _initial_points(cm: CompiledModel, chains: int, rng: np.random.Generator,
+                    previous: Any = None) -> list[dict[str, np.ndarray]]:
+    """Start values per chain: the last draws of ``previous`` (warm refit) or jittered defaults."""
+    ip = cm.model.initial_point()
+    out = []
+    for c in range(chains):
+        pt: dict[str, np.ndarray] = {}
+        for rv in cm.model.free_RVs:
+            if previous is not None and rv.name in previous.posterior:
+                arr = previous.posterior[rv.name].values
+                pt[rv.name] = np.asarray(arr[c % arr.shape[0], -1])
+                continue
+            key = next(k for k in ip if k == rv.name or k.startswith(rv.name + "_"))
+            base = np.asarray(ip[key], dtype=float)
+            jitter = rng.uniform(-1.0, 1.0, size=base.shape)
+            if key != rv.name:  # a log-transformed positive parameter: jitter on the log scale
+                pt[rv.name] = np.exp(base + jitter)
+            else:
+                pt[rv.name] = base + jitter
+        out.append(pt)
+    return out
+
+
+def run_sampler(cm: CompiledModel, *, draws: int, tune: int, chains: int, cores: int, seed: int,
+                progress: bool, prior_scale: float = 1.0, variance_on: float = 1.0, previous: Any = None) -> Any:
+    """NUTS with the model's compiled step; shared-variable values set first, nothing recompiled."""
+    import pymc as pm  # noqa: PLC0415
+
+    rng = np.random.default_rng(seed)
+    with cm.model:
+        pm.set_data({"prior_scale": float(prior_scale), "variance_on": float(variance_on)})
+        return pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, step=cm.step,
+                         initvals=_initial_points(cm, chains, rng, previous), random_seed=int(seed),
+                         progressbar=progress, quiet=not progress, compute_convergence_checks=False,
+                         return_inferencedata=True)
+
+
+# ---------------------------------------------------------------------------------------
+# The back-end
+# ---------------------------------------------------------------------------------------
+class BayesFit(PosteriorFit):
+    """Posterior draws of β on the user's scale, plus the location–scale extras.
+
+    ``idata`` holds the posterior (sampled variables on the standardised scale and ``beta``,
+    ``gamma`` on the user's scale), sample stats and the pointwise log-likelihood;
+    ``gamma_draws`` the draws of the log-σ coefficients; ``sigma_hat`` the posterior mean of
+    σᵢ per design row.
+    """
+
+    def __init__(self, backend_id: str, label: str, term_names: tuple[str, ...], draws: np.ndarray, *,
+                 idata: Any, gamma_draws: np.ndarray, gamma_names: tuple[str, ...], sigma_hat: np.ndarray,
+                 **kwargs: Any) -> None:
+        super().__init__(backend_id, label, term_names, draws, **kwargs)
+        self.idata = idata
+        self.gamma_draws = np.asarray(gamma_draws, dtype=float)
+        self.gamma_draws.setflags(write=False)
+        self.gamma_names = tuple(gamma_names)
+        self.sigma_hat = np.asarray(sigma_hat, dtype=float)
+        self.sigma_hat.setflags(write=False)
+
+
+class BayesBackend:
+    """Bayesian location–scale model (PyMC, NUTS, CPU).
+
+    Parameters
+    ----------
+    draws, tune, chains : int, default=1000, 1000, 4
+    target_accept : float, default=0.9
+    likelihood : {"normal", "student"}, default="normal"
+    prior_scale : float, default=1.0
+        Multiplies every prior SD on the standardised scale.
+    variance_terms : list of str or comma-separated str, optional
+        Terms of the mean model entering log σ (besides the intercept); default the
+        focal predictor's and the moderators' main-effect columns.
+    prior_sensitivity : bool, default=True
+        Refit at prior scales × 0.5 and × 2.
+    save_posterior : str or path, optional
+        Write the InferenceData there as netCDF.
+    cores : int, optional
+        Parallel chains; default min(chains, os.cpu_count()).
+    model : {"location-scale", "constant-conjugate"}, default="location-scale"
+        The second is a constant-variance normal–inverse-gamma model with a closed-form
+        posterior, for checking the sampler.
+    """
+
+    id = "bayes"
+    label = "Bayesian location–scale (PyMC)"
+
+    def __init__(self, *, draws: int = 1000, tune: int = 1000, chains: int = 4, target_accept: float = 0.9,
+                 likelihood: str = "normal", prior_scale: float = 1.0,
+                 variance_terms: Sequence[str] | str | None = None, prior_sensitivity: bool = True,
+                 save_posterior: str | os.PathLike[str] | None = None, cores: int | None = None,
+                 model: str = "location-scale") -> None:
+        for name, value, low in (("draws", draws, 50), ("tune", tune, 50), ("chains", chains, 1)):
+            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
+                raise option_error(name, f"a whole number of at least {low}", value)
+        if isinstance(target_accept, bool) or not isinstance(target_accept, (int, float)) or not 0.5 <= target_accept < 1:
+            raise option_error("target_accept", "a number in [0.5, 1)", target_accept)
+        if likelihood not in LIKELIHOODS:
+            raise option_error("likelihood", "'normal' or 'student'", likelihood)
+        if (isinstance(prior_scale, bool) or not isinstance(prior_scale, (int, float))
+                or not np.isfinite(prior_scale) or prior_scale <= 0):
+            raise option_error("prior_scale", "a positive number", prior_scale)
+        if variance_terms is not None:
+            if isinstance(variance_terms, str):
+                variance_terms = [t.strip() for t in variance_terms.split(",") if t.strip()]
+            if not all(isinstance(t, str) for t in variance_terms):
+                raise option_error("variance_terms", "a list of term names of the model", variance_terms)
+            variance_terms = tuple(variance_terms)
+        if not isinstance(prior_sensitivity, bool):
+            raise option_error("prior_sensitivity", "true or false", prior_sensitivity)
+        if save_posterior is not None:
+            path = Path(save_posterior)
+            if not str(save_posterior).strip() or not path.parent.is_dir():
+                raise option_error("save_posterior", "a file path in an existing directory", str(save_posterior))
+        if cores is not None and (isinstance(cores, bool) or not isinstance(cores, (int, np.integer)) or cores < 1):
+            raise option_error("cores", "a whole number of at least 1", cores)
+        if model not in MODELS:
+            raise option_error("model", "'location-scale' or 'constant-conjugate'", model)
+        if model == "constant-conjugate" and likelihood != "normal":
+            raise option_error("likelihood", "'normal' with model='constant-conjugate'", likelihood)
+        self.draws, self.tune, self.chains = int(draws), int(tune), int(chains)
+        self.target_accept = float(target_accept)
+        self.likelihood = likelihood
+        self.prior_scale = float(prior_scale)
+        self.variance_terms = variance_terms
+        self.prior_sensitivity = prior_sensitivity
+        self.save_posterior = None if save_posterior is None else str(save_posterior)
+        self.cores = None if cores is None else int(cores)
+        self.model = model
+
+    # ---- variance model ------------------------------------------------------------
+    def variance_columns(self, design: "Design") -> tuple[int, ...]:
+        """Columns of X that enter log σ: the intercept plus the focal and moderator main effects."""
+        names = design.term_names
+        intercept = [j for j in range(design.n_params) if np.all(design.X[:, j] == 1.0)]
+        if self.variance_terms is not None:
+            unknown = [t for t in self.variance_terms if t not in names]
+            if unknown:
+                raise InputError(f"The 'variance_terms' option names {unknown}, which are not terms of the model; "
+                                 f"terms: {list(names)}.")
+            cols = [names.index(t) for t in self.variance_terms]
+        else:
+            wanted = {design.spec.focal, *design.spec.moderators}
+            ms = design._model_spec
+            cols = []
+            for term, variables in ms.term_variables.items():
+                if len(variables) == 1 and set(variables) <= wanted:
+                    cols.extend(ms.term_indices[term])
+        return tuple(dict.fromkeys(intercept[:1] + sorted(c for c in cols if c not in intercept)))
+
+    # ---- fit ---------------------------------------------------------------------------
+    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
+        t_start = time.perf_counter()
+        import arviz as az  # noqa: PLC0415
+
+        X, y = design.X, design.y
+        n, k = X.shape
+        zcols = self.variance_columns(design)
+        has_intercept = any(np.all(X[:, j] == 1.0) for j in range(k))
+        if not has_intercept:
+            return Unavailable(self.id, self.label, "The Bayesian back-end needs a model with an intercept; "
+                               "remove '- 1' / '+ 0' from the formula.")
+        Z = X[:, list(zcols)]
+        xs, zs = column_scaling(X), column_scaling(Z)
+        y_center, y_scale = float(y.mean()), float(y.std(ddof=1))
+        if not y_scale > 0:
+            return Unavailable(self.id, self.label, f"The outcome {design.spec.response!r} is constant; nothing to model.")
+        ys = (y - y_center) / y_scale
+        order = [xs.intercept] + [j for j in range(k) if j != xs.intercept]
+        zorder = [zs.intercept] + [j for j in range(Z.shape[1]) if j != zs.intercept]
+        Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
+        cores = self.cores or min(self.chains, os.cpu_count() or 1)
+        t0 = time.perf_counter()
+        cm = build_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept)
+        t_build = time.perf_counter() - t0
+        settings = {"draws": self.draws, "tune": self.tune, "chains": self.chains, "cores": cores,
+                    "target_accept": self.target_accept, "likelihood": self.likelihood, "model": self.model,
+                    "prior_scale": self.prior_scale, "qr_reparameterisation": cm.qr, "seed": int(seed),
+                    "sampler": "NUTS (PyMC)"}
+        common = dict(chains=self.chains, cores=cores, progress=progress)
+        t0 = time.perf_counter()
+        idata = run_sampler(cm, draws=self.draws, tune=self.tune, seed=seed, prior_scale=self.prior_scale, **common)
+        t_first = time.perf_counter() - t0
+
+        inv = np.argsort(order)
+        b_std = _stack(idata, cm.mean_names)[:, inv]
+        beta = coefficients_to_user(b_std, xs, y_center, y_scale)
+        if self.model == "constant-conjugate":
+            g_std = 0.5 * np.log(_stack(idata, ("sigma2",)))
+            gamma = g_std + np.log(y_scale)
+            gamma_names: tuple[str, ...] = ("Intercept",)
+            Zu = np.ones((n, 1))
+        else:
+            g_std = _stack(idata, cm.log_sigma_names)[:, np.argsort(zorder)]
+            gamma = log_scale_to_user(g_std, zs, y_scale)
+            gamma_names = tuple(design.term_names[j] for j in zcols)
+            Zu = Z
+        nu = _stack(idata, ("nu",))[:, 0] if self.likelihood == "student" else None
+        S = beta.shape[0]
+        shape = (idata.posterior.sizes["chain"], idata.posterior.sizes["draw"])
+        idata.posterior["beta"] = (("chain", "draw", "term"), beta.reshape(*shape, k))
+        idata.posterior["gamma"] = (("chain", "draw", "variance_term"), gamma.reshape(*shape, -1))
+        idata.posterior = idata.posterior.assign_coords(term=list(design.term_names), variance_term=list(gamma_names))
+        ll = pointwise_loglik(y, X, Zu, beta, gamma, nu)
+        _add_loglik(idata, ll.reshape(*shape, n))
+
+        warnings: list[str] = []
+        diag = convergence(idata, ["beta", "gamma"] + (["nu"] if nu is not None else []))
+        reliable = True
+        if diag["max_rhat"] is None or diag["max_rhat"] > RHAT_MAX:
+            warnings.append(f"R-hat up to {diag['max_rhat']:.3f} exceeds {RHAT_MAX} (Vehtari et al. 2021): the chains "
+                            "disagree; raise 'tune'/'draws'.")
+            reliable = False
+        for key, label in (("min_ess_bulk", "bulk"), ("min_ess_tail", "tail")):
+            if diag[key] is None or diag[key] < ESS_MIN:
+                warnings.append(f"The {label} ESS of {diag[key]:.0f} is below {ESS_MIN} (Vehtari et al. 2021); "
+                                "raise 'draws'.")
+                reliable = False
+        if diag["divergences"] > 0:
+            warnings.append(f"{diag['divergences']} divergent transition(s); raise 'target_accept' (now "
+                            f"{self.target_accept:g}) or simplify the variance model.")
+            reliable = False
+
+        sig = np.exp(Zu @ gamma.T)  # n × S
+        sigma_hat = sig.mean(axis=1)
+        extras: dict[str, Any] = {
+            "sampler": settings,
+            "diagnostics": {**diag, "thresholds": {"rhat_max": RHAT_MAX, "ess_min": ESS_MIN}},
+            "variance_model": {"terms": list(gamma_names), **_summaries(gamma, gamma_names)},
+            "scale": "coefficients on the user's scale; sampled on a standardised scale",
+        }
+        if nu is not None:
+            extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
+
+        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_DRAWS), **common)
+        refit_seconds: list[float] = []
+        if self.model == "location-scale" and Z.shape[1] > 1:
+            t0 = time.perf_counter()
+            idata_c = run_sampler(cm, seed=seed + 1, prior_scale=self.prior_scale, variance_on=0.0,
+                                  previous=idata, **aux)
+            refit_seconds.append(time.perf_counter() - t0)
+            beta_c = coefficients_to_user(_stack(idata_c, cm.mean_names)[:, inv], xs, y_center, y_scale)
+            g0_c = _stack(idata_c, ("g_intercept",))
+            gamma_c = np.log(y_scale) + g0_c
+            nu_c = _stack(idata_c, ("nu",))[:, 0] if nu is not None else None
+            shape_c = (idata_c.posterior.sizes["chain"], idata_c.posterior.sizes["draw"])
+            ll_c = pointwise_loglik(y, X, np.ones((n, 1)), beta_c, gamma_c, nu_c)
+            _add_loglik(idata_c, ll_c.reshape(*shape_c, n))
+            extras["loo"] = loo_compare(az, idata, idata_c)
+            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, np.ones((n, 1)), beta_c,
+                                                      gamma_c, nu_c, seed)
+        else:
+            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, None, None, None, None, seed)
+        for w in extras.get("loo", {}).get("warnings", []):
+            warnings.append(w)
+        if self.prior_sensitivity:
+            t0 = time.perf_counter()
+            extras["prior_sensitivity"] = self._sensitivity(cm, design, beta, inv, xs, y_center, y_scale, seed,
+                                                            idata, aux)
+            refit_seconds.append(time.perf_counter() - t0)
+        if self.save_posterior is not None:
+            try:
+                idata.to_netcdf(self.save_posterior)
+            except (OSError, ValueError) as exc:
+                raise InputError(f"The 'save_posterior' file {self.save_posterior!r} could not be written ({exc}); "
+                                 "choose a writable path.") from None
+            extras["posterior_file"] = self.save_posterior
+        extras["seconds"] = {"build": round(t_build, 3), "first_fit": round(t_first, 3),
+                             "refits": [round(s, 3) for s in refit_seconds],
+                             "total": round(time.perf_counter() - t_start, 3)}
+        extras["n_draws"] = S
+        return BayesFit(self.id, self.label, design.term_names, beta, idata=idata, gamma_draws=gamma,
+                        gamma_names=gamma_names, sigma_hat=sigma_hat, warnings=tuple(warnings), reliable=reliable,
+                        extras=extras, se_label="posterior SD")
+
+    def _sensitivity(self, cm: CompiledModel, design: "Design", beta: np.ndarray, inv: np.ndarray, xs: Scaling,
+                     y_center: float, y_scale: float, seed: int, idata: Any, aux: dict[str, Any]) -> dict[str, Any]:
+        """Product-term posterior at prior scales × 0.5, × 1, × 2, and its shift in posterior SDs."""
+        cols = list(design.interaction_columns)
+        base_mean, base_sd = beta[:, cols].mean(axis=0), beta[:, cols].std(axis=0, ddof=1)
+        rows = {"1": _term_summary(beta[:, cols], design, cols)}
+        shifts = []
+        for i, f in enumerate(SENSITIVITY_FACTORS):
+            idf = run_sampler(cm, seed=seed + 2 + i, prior_scale=self.prior_scale * f, previous=idata, **aux)
+            b = coefficients_to_user(_stack(idf, cm.mean_names)[:, inv], xs, y_center, y_scale)[:, cols]
+            rows[f"{f:g}"] = _term_summary(b, design, cols)
+            shifts.append(np.abs(b.mean(axis=0) - base_mean) / base_sd)
+        return {"factors": [0.5, 1.0, 2.0], "product_term": rows,
+                "max_shift_in_posterior_sd": float(np.max(shifts)),
+                "note": "posterior mean and 95% equal-tailed interval of the product term(s) with every prior SD "
+                        "multiplied by the factor; shift = |mean − mean at ×1| / posterior SD at ×1"}
+
+
+# ---------------------------------------------------------------------------------------
+# Model checks (numpy, from the draws)
+# ---------------------------------------------------------------------------------------
+def pointwise_loglik(y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
+                     nu: np.ndarray | None) -> np.ndarray:
+    """log p(yᵢ | θ_s) as an S × n matrix, normal or Student-t with scale σᵢ = exp(zᵢᵀγ)."""
+    log_sigma = gamma @ Z.T  # S × n
+    r = (y[None, :] - beta @ X.T) * np.exp(-log_sigma)
+    if nu is None:
+        return -0.5 * np.log(2 * np.pi) - log_sigma - 0.5 * r * r
+    v = nu[:, None]
+    return (special.gammaln((v + 1) / 2) - special.gammaln(v / 2) - 0.5 * np.log(v * np.pi) - log_sigma
+            - (v + 1) / 2 * np.log1p(r * r / v))
+
+
+def _add_loglik(idata: Any, ll: np.ndarray) -> None:
+    import xarray as xr  # noqa: PLC0415
+
+    ds = xr.Dataset({"y": (("chain", "draw", "obs"), ll)},
+                    coords={"chain": idata.posterior.chain.values, "draw": idata.posterior.draw.values})
+    idata.add_groups({"log_likelihood": ds})
+
+
+def loo_compare(az: Any, idata_h: Any, idata_c: Any) -> dict[str, Any]:
+    """PSIS-LOO (Vehtari, Gelman & Gabry 2017) of both models; SE of the difference from the pointwise terms."""
+    out: dict[str, Any] = {}
+    pointwise = {}
+    warnings: list[str] = []
+    for key, ds in (("heteroscedastic", idata_h), ("constant_variance", idata_c)):
+        res = az.loo(ds, pointwise=True)
+        k_hat = np.asarray(res.pareto_k)
+        n_bad = int((k_hat > 0.7).sum())
+        pointwise[key] = np.asarray(res.loo_i)
+        out[key] = {"elpd_loo": float(res.elpd_loo), "se": float(res.se), "p_loo": float(res.p_loo),
+                    "pareto_k_above_0.7": n_bad}
+        if n_bad:
+            warnings.append(f"PSIS-LOO of the {key.replace('_', ' ')} model has {n_bad} observation(s) with Pareto k > "
+                            "0.7; its elpd estimate is unreliable there.")
+    diff = pointwise["heteroscedastic"] - pointwise["constant_variance"]
+    out["elpd_difference"] = float(diff.sum())
+    out["elpd_difference_se"] = float(np.sqrt(diff.size * diff.var(ddof=1)))
+    out["preferred"] = "heteroscedastic" if diff.sum() > 0 else "constant_variance"
+    out["warnings"] = warnings
+    return out
+
+
+def spread_check(design: "Design", y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
+                 nu: np.ndarray | None, Zc: np.ndarray | None, beta_c: np.ndarray | None,
+                 gamma_c: np.ndarray | None, nu_c: np.ndarray | None, seed: int) -> dict[str, Any] | None:
+    """Posterior predictive check of SD(y) within moderator bins: observed vs the 95% predictive interval."""
+    mod = next(iter(design.moderators))
+    info = design.moderators[mod]
+    raw = design.data.frame[mod].to_numpy()
+    if info.categorical:
+        labels = [str(v) for v in info.levels]
+        codes = np.searchsorted(np.array(labels), raw.astype(str), sorter=np.argsort(labels))
+        codes = np.argsort(labels)[codes]
+    else:
+        edges = np.unique(np.quantile(raw.astype(float), np.linspace(0, 1, PPC_BINS + 1)))
+        codes = np.clip(np.searchsorted(edges, raw.astype(float), side="right") - 1, 0, len(edges) - 2)
+        labels = [f"[{edges[i]:.4g}, {edges[i + 1]:.4g}{']' if i == len(edges) - 2 else ')'}" for i in range(len(edges) - 1)]
+    rng = np.random.default_rng([int(seed), 7])
+    onehot = (codes[:, None] == np.arange(len(labels))[None, :]).astype(float)  # n × B
+    counts = onehot.sum(axis=0)
+    keep = counts >= 2
+
+    def bin_sd(Y: np.ndarray) -> np.ndarray:  # Y: S × n → S × B
+        m = (Y @ onehot) / counts
+        v = ((Y * Y) @ onehot - counts * m * m) / np.maximum(counts - 1, 1)
+        return np.sqrt(np.maximum(v, 0.0))
+
+    def replicate(Zm: np.ndarray, b: np.ndarray, g: np.ndarray, v: np.ndarray | None) -> np.ndarray:
+        idx = rng.choice(b.shape[0], size=min(PPC_DRAWS, b.shape[0]), replace=False)
+        mu = b[idx] @ X.T
+        sd = np.exp(g[idx] @ Zm.T)
+        eps = rng.standard_normal(mu.shape) if v is None else rng.standard_t(v[idx][:, None], size=mu.shape)
+        return bin_sd(mu + sd * eps)
+
+    observed = bin_sd(y[None, :])[0]
+    out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep) if k],
+                           "n_per_bin": counts[keep].astype(int).tolist(),
+                           "observed_sd": observed[keep].tolist(), "level": 0.95}
+    models = [("heteroscedastic", Z, beta, gamma, nu)]
+    if Zc is not None:
+        models.append(("constant_variance", Zc, beta_c, gamma_c, nu_c))
+    for key, Zm, b, g, v in models:
+        rep = replicate(Zm, b, g, v)[:, keep]
+        lo, hi = np.quantile(rep, [0.025, 0.975], axis=0)
+        outside = (observed[keep] < lo) | (observed[keep] > hi)
+        out[key] = {"lower": lo.tolist(), "upper": hi.tolist(), "bins_outside": int(outside.sum()),
+                    "tail_share": ((rep >= observed[keep]).mean(axis=0)).tolist()}
+    return out
+
+
+def convergence(idata: Any, names: Sequence[str]) -> dict[str, Any]:
+    """Max rank-normalised R-hat, min bulk and tail ESS over ``names``, and divergences."""
+    import arviz as az  # noqa: PLC0415
+
+    post = idata.posterior[list(names)]
+    rhat = az.rhat(post, method="rank")
+    bulk = az.ess(post, method="bulk")
+    tail = az.ess(post, method="tail")
+
+    def agg(ds: Any, fn: Any) -> float | None:
+        vals = np.concatenate([np.ravel(ds[v].values) for v in ds.data_vars])
+        vals = vals[np.isfinite(vals)]
+        return float(fn(vals)) if vals.size else None
+
+    div = int(idata.sample_stats["diverging"].values.sum()) if "diverging" in idata.sample_stats else 0
+    per_term = {}
+    if "beta" in post:
+        for t in post["beta"].term.values:
+            per_term[str(t)] = {"rhat": float(rhat["beta"].sel(term=t)), "ess_bulk": float(bulk["beta"].sel(term=t)),
+                                "ess_tail": float(tail["beta"].sel(term=t))}
+    return {"max_rhat": agg(rhat, np.max), "min_ess_bulk": agg(bulk, np.min), "min_ess_tail": agg(tail, np.min),
+            "divergences": div, "per_term": per_term}
+
+
+def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> dict[str, dict[str, float]]:
+    lo, hi = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2], axis=0)
+    return {str(nm): {"mean": float(draws[:, i].mean()), "sd": float(draws[:, i].std(ddof=1)),
+                      "ci": [float(lo[i]), float(hi[i])], "level": level} for i, nm in enumerate(names)}
+
+
+def _term_summary(b: np.ndarray, design: "Design", cols: list[int]) -> dict[str, Any]:
+    return _summaries(b, [design.term_names[j] for j in cols])
