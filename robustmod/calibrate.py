@@ -1,0 +1,328 @@
+"""How often does each back-end reject the product term on data like the user's?
+
+Datasets are simulated from the fitted variance model of the ``wls`` back-end, keeping
+the observed X:  y* = X β̃ + σ̂ᵢ zᵢ with zᵢ ~ N(0, 1), where β̃ is the WLS estimate with the
+product-term coefficient(s) set to 0 (false-positive rate) or left at the estimate
+(power; the same z, so the two rates are paired). Each frequentist back-end's rejection
+rate at alpha is reported with its Monte Carlo SE sqrt(p̂(1 − p̂)/N). A good back-end has a
+false-positive rate within Monte Carlo error of alpha (cf. Long & Ervin 2000).
+
+Back-ends answer in batches when they offer ``reject_many(design, Y, alpha, *, seed)``
+(Y is n × D; the OLS/HC family shares one QR across all D datasets); otherwise each
+dataset is refitted. Datasets are cut into chunks of fixed size, each dataset's noise
+comes from its own child of ``np.random.SeedSequence(seed)`` and each chunk's back-end
+seed from another, so the numbers do not depend on how many worker processes run.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import os
+import time
+from collections.abc import Mapping, Sequence
+from concurrent.futures import ProcessPoolExecutor
+from typing import Any
+
+import numpy as np
+
+from .backends.base import Unavailable
+from .backends.registry import check_ids, make_backend
+from .design import Design
+from .errors import InputError, option_error
+
+#: Datasets per chunk; fixed so that results do not depend on the number of workers.
+CHUNK = 50
+#: Bootstrap replications of the wild back-end inside each simulated dataset.
+WILD_REPLICATIONS = 399
+#: Datasets the Bayesian back-end gets when it is asked for (each one is a full sampler run).
+BAYES_DATASETS = 20
+#: Run the remaining chunks in worker processes when they would take longer than this (s).
+PARALLEL_MIN_SECONDS = 2.0
+#: E[log χ²₁] = ψ(1/2) + log 2, the offset of a log-squared-residual regression (Harvey 1976).
+LOG_CHISQ1_MEAN = -1.2703628454614782
+
+
+# ---- the simulation model ----------------------------------------------------------
+def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | None = None
+                     ) -> tuple[np.ndarray, np.ndarray, str, list[str]]:
+    """(β̃, σ̂, description, notes): mean coefficients and per-row error SD to simulate from.
+
+    From the ``wls`` back-end's fit (its ``params`` and ``sigma_hat``). Should that back-end
+    be missing or unable to fit, a multiplicative variance model log σᵢ² = xᵢγ fitted to
+    log êᵢ² (Harvey 1976) with an FGLS mean takes its place, and the notes say so.
+    """
+    reason = ""
+    try:
+        fit = make_backend("wls", **dict(options or {})).fit(design, seed=seed)
+    except InputError as exc:
+        fit, reason = None, str(exc)
+    if isinstance(fit, Unavailable):
+        fit, reason = None, fit.reason
+    if fit is not None:
+        sigma = getattr(fit, "sigma_hat", None)
+        if sigma is None:
+            sigma = fit.extras.get("sigma_hat")
+        sigma = None if sigma is None else np.asarray(sigma, dtype=float)
+        if sigma is not None and sigma.shape == (design.n_obs,) and np.all(np.isfinite(sigma)) and np.all(sigma > 0):
+            return (np.array(fit.params, dtype=float), sigma,
+                    f"the fitted variance model of the wls back-end ({fit.label}), observed X kept", [])
+        reason = "its fit gave no usable per-row error SD (sigma_hat)"
+    beta, sigma = _harvey_model(design)
+    return (beta, sigma,
+            "a multiplicative variance model log σ² = Xγ fitted to log ê² (Harvey 1976) with an FGLS mean, observed X kept",
+            [f"The wls back-end could not supply the variance model ({reason}); a multiplicative variance "
+             "model was used instead."])
+
+
+def _harvey_model(design: Design) -> tuple[np.ndarray, np.ndarray]:
+    Q, R = design.qr
+    e = design.y - Q @ (Q.T @ design.y)
+    e2 = np.maximum(e * e, 1e-12 * max(float(np.mean(e * e)), 1e-300))
+    logsig2 = Q @ (Q.T @ np.log(e2)) - LOG_CHISQ1_MEAN
+    sigma = np.exp(0.5 * logsig2)
+    Xw = design.X / sigma[:, None]
+    beta = np.linalg.lstsq(Xw, design.y / sigma, rcond=None)[0]
+    return beta, sigma
+
+
+# ---- one chunk of datasets (runs in the parent or in a worker) ----------------------
+_WORKER: dict[str, Any] = {}
+
+
+def _init_worker(state: dict[str, Any]) -> None:
+    try:  # one BLAS thread per worker process: the workers already fill the cores
+        from threadpoolctl import threadpool_limits  # noqa: PLC0415
+
+        threadpool_limits(1)
+    except ImportError:  # pragma: no cover
+        pass
+    _WORKER.clear()
+    _WORKER.update(state)
+
+
+def _noise(seqs: Sequence[np.random.SeedSequence], n: int) -> np.ndarray:
+    """n × m standard normals, column j from its own dataset seed."""
+    return np.column_stack([np.random.default_rng(s).standard_normal(n) for s in seqs])
+
+
+def _rejections(backend: Any, design: Design, Y: np.ndarray, alpha: float, seed: int) -> tuple[np.ndarray, int]:
+    """(rejected?, number of datasets the back-end could not fit); batched when it can be."""
+    if hasattr(backend, "reject_many"):
+        return np.asarray(backend.reject_many(design, Y, alpha, seed=seed), dtype=bool), 0
+    from . import effects  # noqa: PLC0415
+
+    seeds = np.random.SeedSequence(seed).generate_state(Y.shape[1])
+    out = np.zeros(Y.shape[1], dtype=bool)
+    failed = 0
+    for j in range(Y.shape[1]):  # a back-end without a batched path: one fit per dataset
+        dj = dataclasses.replace(design, y=Y[:, j].copy())
+        dj.__dict__["qr"] = design.qr  # same X, same factor
+        fit = backend.fit(dj, seed=int(seeds[j]), progress=False)
+        if isinstance(fit, Unavailable):
+            failed += 1
+            continue
+        out[j] = effects.interaction(fit, dj, alpha)["supported"]
+    return out, failed
+
+
+def _run_chunk(state: dict[str, Any], start: int, stop: int, chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
+    design: Design = state["design"]
+    Z = _noise(state["noise_seqs"][start:stop], design.n_obs)
+    sig = state["sigma"][:, None]
+    Ys = {"null": state["mu0"][:, None] + sig * Z}
+    if state["power"]:
+        Ys["power"] = state["mu1"][:, None] + sig * Z
+    bseeds = chunk_seed.generate_state(2 * len(state["ids"]))
+    out: dict[str, Any] = {}
+    for b, bid in enumerate(state["ids"]):
+        backend = make_backend(bid, **state["options"].get(bid, {}))
+        out[bid] = {k: _rejections(backend, design, Y, state["alpha"], int(bseeds[2 * b + i]))
+                    for i, (k, Y) in enumerate(Ys.items())}
+    return out
+
+
+def _worker_chunk(start: int, stop: int, chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
+    return _run_chunk(_WORKER, start, stop, chunk_seed)
+
+
+# ---- the public entry point ---------------------------------------------------------
+def _rate(rej: np.ndarray, failed: int) -> dict[str, Any]:
+    n = int(rej.size - failed)
+    if n <= 0:
+        return {"rate": None, "mc_se": None, "n": 0, "failed": int(failed)}
+    p = float(rej.sum()) / n
+    return {"rate": p, "mc_se": math.sqrt(p * (1 - p) / n), "n": n, "failed": int(failed)}
+
+
+def _cpu_count() -> int:
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover
+        return max(1, os.cpu_count() or 1)
+
+
+def calibrate(
+    design: Design,
+    backend_ids: Sequence[str],
+    *,
+    n_datasets: int = 1000,
+    seed: int,
+    options: Mapping[str, Mapping[str, Any]] | None = None,
+    progress: bool = False,
+    power: bool = True,
+    workers: int | None = None,
+    alpha: float | None = None,
+    bayes_datasets: int = BAYES_DATASETS,
+) -> dict[str, Any]:
+    """Simulated false-positive rate and power of the product-term test of each back-end.
+
+    Parameters
+    ----------
+    design : Design
+        The user's design; its X is kept, y is simulated.
+    backend_ids : list of str
+        Back-ends to calibrate. ``bayes`` only when named, on ``bayes_datasets`` datasets.
+    n_datasets : int, default=1000
+    seed : int
+        Seeds the datasets and every back-end's own randomness.
+    options : dict of dicts, optional
+        Per back-end options (the ``wls`` entry also shapes the simulation model). The wild
+        bootstrap always runs with 399 replications here.
+    progress : bool, default=False
+        Show a progress bar.
+    power : bool, default=True
+        Also simulate with the product term at its WLS estimate.
+    workers : int, optional
+        Worker processes (default: the available cores, used only when that pays).
+    alpha : float, optional
+        Test level (default: the design's).
+
+    Returns
+    -------
+    dict with ``n_datasets``, ``alpha``, ``false_positive_rate`` and ``power``
+    ({id: {rate, mc_se, n, failed}}), ``simulated_from`` and ``notes``.
+    """
+    ids = check_ids(list(backend_ids))
+    if isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer)) or n_datasets < 10:
+        raise option_error("n_datasets", "a whole number of simulated datasets, at least 10", n_datasets)
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise option_error("seed", "a whole number ≥ 0", seed)
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1):
+        raise option_error("workers", "a whole number ≥ 1 (or None for the available cores)", workers)
+    if isinstance(bayes_datasets, bool) or not isinstance(bayes_datasets, (int, np.integer)) or bayes_datasets < 1:
+        raise option_error("bayes_datasets", "a whole number ≥ 1", bayes_datasets)
+    alpha = design.spec.alpha if alpha is None else alpha
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise option_error("alpha", "a number in (0, 1)", alpha)
+    options = {str(k).lower(): dict(v) for k, v in dict(options or {}).items()}
+    t_start = time.perf_counter()
+    n_datasets = int(n_datasets)
+
+    beta, sigma, source, notes = simulation_model(design, seed=int(seed), options=options.get("wls"))
+    beta0 = beta.copy()
+    beta0[list(design.interaction_columns)] = 0.0
+    noise_root, chunk_root = np.random.SeedSequence(int(seed)).spawn(2)
+    noise_seqs = noise_root.spawn(n_datasets)
+
+    run_opts: dict[str, dict[str, Any]] = {bid: dict(options.get(bid, {})) for bid in ids}
+    if "wild" in run_opts:
+        run_opts["wild"]["replications"] = WILD_REPLICATIONS
+        notes.append(f"The wild bootstrap used {WILD_REPLICATIONS} replications per simulated dataset "
+                     "(the main comparison may use more).")
+    unavailable: dict[str, str] = {}
+    methods: dict[str, str] = {}
+    for bid in ids:  # can each back-end answer on the observed data?
+        try:
+            backend = make_backend(bid, **run_opts[bid])
+            fit = backend.fit(design, seed=int(seed), progress=False) if bid != "bayes" else None
+        except InputError as exc:
+            unavailable[bid] = str(exc)
+            continue
+        if isinstance(fit, Unavailable):
+            unavailable[bid] = fit.reason
+            continue
+        methods[bid] = "batched across datasets" if hasattr(backend, "reject_many") else "refitted per dataset"
+    freq = [b for b in ids if b not in unavailable and b != "bayes"]
+    state = {"design": design, "ids": freq, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
+             "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power)}
+    bounds = [(s, min(s + CHUNK, n_datasets)) for s in range(0, n_datasets, CHUNK)]
+    chunk_seqs = chunk_root.spawn(len(bounds))
+    results: list[dict[str, Any] | None] = [None] * len(bounds)
+    n_workers = min(_cpu_count() if workers is None else int(workers), len(bounds))
+
+    bar = _progress_bar(progress, n_datasets)
+    try:
+        used_workers = 1
+        if freq:
+            t0 = time.perf_counter()
+            results[0] = _run_chunk(state, *bounds[0], chunk_seqs[0])
+            _advance(bar, bounds[0])
+            rest = list(range(1, len(bounds)))
+            expected = (time.perf_counter() - t0) * len(rest)
+            if rest and n_workers > 1 and expected > PARALLEL_MIN_SECONDS:
+                used_workers = n_workers
+                with ProcessPoolExecutor(max_workers=n_workers, initializer=_init_worker, initargs=(state,)) as pool:
+                    futs = {i: pool.submit(_worker_chunk, *bounds[i], chunk_seqs[i]) for i in rest}
+                    for i, fut in futs.items():
+                        results[i] = fut.result()
+                        _advance(bar, bounds[i])
+            else:
+                for i in rest:
+                    results[i] = _run_chunk(state, *bounds[i], chunk_seqs[i])
+                    _advance(bar, bounds[i])
+        fp: dict[str, Any] = {}
+        pw: dict[str, Any] = {}
+        for bid in freq:
+            parts = [r[bid] for r in results if r is not None]
+            for key, target in (("null", fp), ("power", pw)):
+                if key in parts[0]:
+                    target[bid] = _rate(np.concatenate([p[key][0] for p in parts]), sum(p[key][1] for p in parts))
+        if "bayes" in ids and "bayes" not in unavailable:
+            m = min(int(bayes_datasets), n_datasets)
+            bstate = {**state, "ids": ["bayes"]}
+            res = _run_chunk(bstate, 0, m, chunk_root.spawn(1)[0])
+            fp["bayes"] = _rate(*res["bayes"]["null"])
+            if power:
+                pw["bayes"] = _rate(*res["bayes"]["power"])
+            notes.append(f"The Bayesian back-end was run on the first {m} datasets only; its rate is the share "
+                         f"whose {100 * (1 - alpha):g}% posterior interval of the product term excludes zero.")
+    finally:
+        if bar is not None:
+            bar.stop()
+    for bid, reason in unavailable.items():
+        fp[bid] = {"rate": None, "mc_se": None, "n": 0, "failed": n_datasets}
+        if power:
+            pw[bid] = {"rate": None, "mc_se": None, "n": 0, "failed": n_datasets}
+        notes.append(f"{bid}: not calibrated ({reason})")
+    inter = design.interaction_rows() @ beta
+    return {
+        "n_datasets": n_datasets,
+        "alpha": float(alpha),
+        "seed": int(seed),
+        "false_positive_rate": {b: fp[b] for b in ids if b in fp},
+        "power": {b: pw[b] for b in ids if b in pw} if power else None,
+        "nominal_mc_se": math.sqrt(alpha * (1 - alpha) / n_datasets),
+        "simulated_from": source,
+        "product_term_under_power": {t: float(v) for t, v in zip(design.interaction_terms, inter)},
+        "methods": methods,
+        "unavailable": unavailable,
+        "workers": used_workers,
+        "seconds": time.perf_counter() - t_start,
+        "notes": notes,
+    }
+
+
+def _progress_bar(progress: bool, total: int) -> Any:
+    if not progress:
+        return None
+    from rich.progress import Progress  # noqa: PLC0415
+
+    bar = Progress(transient=True)
+    bar.start()
+    bar.add_task("calibration datasets", total=total)
+    return bar
+
+
+def _advance(bar: Any, bound: tuple[int, int]) -> None:
+    if bar is not None:
+        bar.advance(bar.task_ids[0], bound[1] - bound[0])
