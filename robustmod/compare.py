@@ -422,6 +422,11 @@ def compare(
         t0 = time.perf_counter()
         fit = backend.fit(design, seed=spec.seed, progress=progress)
         results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
+    if not results[primary].available:
+        raise InputError(
+            f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
+            "Choose another primary back-end (e.g. hc0) or fix the data."
+        )
     from .diagnostics import variance_diagnostics  # noqa: PLC0415  (keeps import order one-way)
 
     diagnostics = variance_diagnostics(design, alpha=spec.alpha)

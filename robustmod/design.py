@@ -190,7 +190,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
     try:
-        mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="raise")
+        mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
     except InputError:
         raise
     except Exception as exc:  # formulaic raises many kinds; report the first line
