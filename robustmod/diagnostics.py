@@ -159,7 +159,7 @@ def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderato
     else:
         w = np.asarray(info.values, dtype=float)
         cuts = np.quantile(w, np.arange(1, bins) / bins)
-        idx = np.searchsorted(cuts, w, side="right")
+        idx = np.searchsorted(cuts, w, side="left")  # right-closed bins, as pandas.cut
         for j in np.unique(idx):  # one entry per bin
             mask = idx == j
             rows.append({"level": None, "range": [float(w[mask].min()), float(w[mask].max())], **_spread(e[mask])})

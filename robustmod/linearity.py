@@ -67,8 +67,8 @@ def _bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tu
                 f"The bin cut points {list(cuts)} must lie inside the observed range of {moderator!r} "
                 f"({w.min():g} to {w.max():g}); move them inside it."
             )
-    # Rows at a cut point go to the upper bin.
-    return np.searchsorted(cuts, w, side="right"), cuts
+    # Rows at a cut point go to the lower bin (right-closed bins, as pandas.cut).
+    return np.searchsorted(cuts, w, side="left"), cuts
 
 
 def _added_columns(X: np.ndarray, B: np.ndarray) -> np.ndarray:
