@@ -1,0 +1,806 @@
+"""Weighted least squares with a modelled variance function (back-end ``wls``).
+
+Mean model y = Xβ + ε with Var(εᵢ) = σᵢ²; the log-variance ηᵢ = log σᵢ² follows one of
+
+==========  =====================================  ==========================================
+loglinear   ηᵢ = zᵢᵀγ                               multiplicative heteroscedasticity, Harvey (1976)
+power       σᵢ = σ·|μᵢ|^θ, ηᵢ = c + 2θ·log|μᵢ|      power of the mean, Carroll & Ruppert (1988)
+groups      ηᵢ = γ_g for the group g of row i       one variance per group
+known       σᵢ² = s² / wᵢ, wᵢ a column of weights   known inverse variances (up to the scale s²)
+==========  =====================================  ==========================================
+
+Estimation
+    *two-step FGLS* (Harvey 1976; Wooldridge, Introductory Econometrics, ch. 8): OLS
+    residuals ê, regress log ê² on z, add −E[log χ²₁] = 1.2704 to the intercept, weight by
+    wᵢ = exp(−ẑᵢᵀγ̂). For groups the variance of a group is the mean of its ê².
+    *ML* (default) maximises ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − μᵢ)² e^{−ηᵢ}] in (β, γ) jointly
+    with scipy's trust-region method, analytic gradient and the expected information
+    J_μᵀ W J_μ + ½ J_ηᵀ J_η as the Hessian, in coordinates whitened by the information at the
+    two-step start. Non-convergence falls back to the two-step estimate with a warning.
+
+Standard errors of β (the weighted regression of √w·y on √w·X, thin QR, no inverse of XᵀWX)
+    *robust* (default): HC3 on the weighted regression, valid when the variance function is
+    wrong (Romano & Wolf 2017); *model*: s²(XᵀWX)⁻¹ with s² = Σ wᵢêᵢ² / (n − k).
+Every t test uses n − k degrees of freedom.
+"""
+from __future__ import annotations
+
+import math
+import warnings as _warnings
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pandas as pd
+from scipy import linalg, optimize, special, stats
+
+from ..errors import InputError, option_error
+from .base import Unavailable, WaldFit
+from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..design import Design
+
+VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
+ESTIMATIONS = ("ml", "twostep")
+SE_TYPES = ("robust", "model")
+#: −E[log χ²₁] = −(ψ(1/2) + log 2) ≈ 1.2704, the intercept correction of the log ê² regression.
+LOG_CHI2_CORRECTION = float(-(special.digamma(0.5) + math.log(2.0)))
+#: Squared residuals below this share of their mean are raised to it before the log.
+ZERO_RESIDUAL_FLOOR = 1e-8
+#: A ratio of largest to smallest weight above this earns a warning.
+WEIGHT_RATIO_WARNING = 1e6
+#: |μᵢ| below this share of mean |y| is raised to it in the power-of-the-mean model.
+MEAN_FLOOR = 1e-6
+#: log-variances are clipped here so that exp() never overflows.
+ETA_LIMIT = 600.0
+ML_MAXITER = 200
+ML_GTOL = 1e-7
+#: An ML fit stopped with ½ gᵀH⁻¹g below this (log-likelihood units) counts as converged.
+ML_DECREMENT_TOL = 1e-8
+
+_FUNCTION_LABELS = {"loglinear": "log-linear variance", "power": "power-of-the-mean variance",
+                    "groups": "one variance per group", "known": "known weights"}
+
+
+class WLSWarning(UserWarning):
+    """A WLS fit that needed a fallback or has extreme weights."""
+
+
+# --------------------------------------------------------------------------------------
+# The variance model: η(β, γ) and its Jacobians
+# --------------------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class VarianceModel:
+    """A variance function on one design.
+
+    ``function`` is 'loglinear', 'power', 'groups' or 'known'; ``Z`` (n × p) holds the
+    variance regressors (one-hot columns for groups, None for power and known);
+    ``names`` the γ names; ``weights`` the known inverse variances.
+    """
+
+    function: str
+    Z: np.ndarray | None = None
+    names: tuple[str, ...] = ()
+    weights: np.ndarray | None = None
+    groups: np.ndarray | None = None  # integer group codes (groups only)
+    source: str | None = None  # the column behind z, the groups or the weights
+
+    @property
+    def n_gamma(self) -> int:
+        return 0 if self.function == "known" else len(self.names)
+
+    def mean_floor(self, y: np.ndarray) -> float:
+        scale = float(np.mean(np.abs(y)))
+        return MEAN_FLOOR * (scale if scale > 0 else 1.0)
+
+    def eta(self, X: np.ndarray, beta: np.ndarray, gamma: np.ndarray, floor: float) -> np.ndarray:
+        """Log-variances ηᵢ (n,)."""
+        if self.function == "power":
+            m = np.maximum(np.abs(X @ beta), floor)
+            return gamma[0] + 2.0 * gamma[1] * np.log(m)
+        return self.Z @ gamma
+
+    def jacobians(self, X: np.ndarray, beta: np.ndarray, gamma: np.ndarray, floor: float) -> tuple[np.ndarray | None, np.ndarray]:
+        """(∂η/∂β or None when η does not involve β, ∂η/∂γ)."""
+        if self.function == "power":
+            mu = X @ beta
+            m = np.abs(mu)
+            inside = m > floor
+            d_beta = np.where(inside, 2.0 * gamma[1] / np.where(inside, mu, 1.0), 0.0)[:, None] * X
+            d_gamma = np.column_stack([np.ones_like(mu), 2.0 * np.log(np.maximum(m, floor))])
+            return d_beta, d_gamma
+        return None, self.Z
+
+
+# --------------------------------------------------------------------------------------
+# The weighted regression kernel (batched over datasets: a single fit is D = 1)
+# --------------------------------------------------------------------------------------
+def weighted_qr(X: np.ndarray, W: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Thin QR of √w·X for each row of W (D × n) → Q (D, n, k), R (D, k, k)."""
+    Xw = np.sqrt(W)[:, :, None] * X[None, :, :]
+    return np.linalg.qr(Xw, mode="reduced")
+
+
+def weighted_resid(Q: np.ndarray, yw: np.ndarray) -> np.ndarray:
+    """Whitened residuals √w·(y − Xβ̂) = yw − Q Qᵀ yw for each dataset (D, n)."""
+    return yw - np.einsum("dnk,dk->dn", Q, np.einsum("dnk,dn->dk", Q, yw))
+
+
+def _profile_nll(X: np.ndarray, Y: np.ndarray, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """½ Σ [ηᵢ + ê²ᵢ e^{−ηᵢ}] at the WLS β̂(η), with the ratios rᵢ = ê²ᵢ e^{−ηᵢ} (D × n)."""
+    eta = np.clip(eta, -ETA_LIMIT, ETA_LIMIT)
+    W = np.exp(-eta)
+    Q, _ = weighted_qr(X, W)
+    r = weighted_resid(Q, np.sqrt(W) * Y) ** 2
+    return 0.5 * (eta + r).sum(axis=1), r
+
+
+# --------------------------------------------------------------------------------------
+# Two-step FGLS
+# --------------------------------------------------------------------------------------
+def _floored_squares(E: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """ê² raised to ZERO_RESIDUAL_FLOOR·mean(ê²) per dataset (rows of E), and the count raised."""
+    e2 = E**2
+    floor = ZERO_RESIDUAL_FLOOR * np.maximum(e2.mean(axis=1, keepdims=True), np.finfo(float).tiny)
+    return np.maximum(e2, floor), (e2 < floor).sum(axis=1)
+
+
+def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Two-step variance parameters for each dataset (rows of Y, D × n).
+
+    Returns (γ̂ (D × p), SE of γ̂ (D × p), number of residuals raised from zero (D,)).
+    Log-linear and power: OLS of log ê² on z (z = [1, log|μ̂|] for power, slope 2θ), intercept
+    + 1.2704 (Harvey 1976), SEs from the auxiliary regression. Groups: log of the mean ê² of
+    each group, SE by the delta method sqrt(var(ê²) / (n_g·mean(ê²)²)).
+    """
+    Qx, Rx = np.linalg.qr(X, mode="reduced")
+    fitted = (Y @ Qx) @ Qx.T
+    E = Y - fitted
+    e2, raised = _floored_squares(E)
+    if vm.function == "groups":
+        G = vm.Z  # one-hot, n × p
+        counts = G.sum(axis=0)
+        mean = (e2 @ G) / counts
+        second = ((e2**2) @ G) / counts
+        var = np.maximum(second - mean**2, 0.0) * counts / np.maximum(counts - 1, 1)
+        return np.log(mean), np.sqrt(var / (counts * mean**2)), raised
+    if vm.function == "power":
+        floor = vm.mean_floor(Y[0])
+        logm = np.log(np.maximum(np.abs(fitted), floor))
+        # Each dataset has its own regressor log|μ̂|: solve the 2 × 2 normal equations in closed form.
+        n = Y.shape[1]
+        ly = np.log(e2)
+        mx, my = logm.mean(axis=1), ly.mean(axis=1)
+        sxx = ((logm - mx[:, None]) ** 2).sum(axis=1)
+        sxy = ((logm - mx[:, None]) * (ly - my[:, None])).sum(axis=1)
+        slope = sxy / np.where(sxx > 0, sxx, np.inf)
+        icpt = my - slope * mx
+        res = ly - icpt[:, None] - slope[:, None] * logm
+        s2 = (res**2).sum(axis=1) / (n - 2)
+        se_slope = np.sqrt(s2 / np.where(sxx > 0, sxx, np.inf))
+        se_icpt = np.sqrt(s2 * (1.0 / n + mx**2 / np.where(sxx > 0, sxx, np.inf)))
+        gamma = np.column_stack([icpt + LOG_CHI2_CORRECTION, slope / 2.0])
+        return gamma, np.column_stack([se_icpt, se_slope / 2.0]), raised
+    Z = vm.Z
+    Qz, Rz = np.linalg.qr(Z, mode="reduced")
+    ly = np.log(e2)
+    coef = linalg.solve_triangular(Rz, Qz.T @ ly.T, check_finite=False).T  # D × p
+    res = ly - coef @ Z.T
+    n, p = Z.shape
+    s2 = (res**2).sum(axis=1) / (n - p)
+    Rinv = r_inverse(Rz)
+    diag = (Rinv**2).sum(axis=1)
+    # The correction goes where z spans the constant: a with Z a = 1.
+    a = linalg.solve_triangular(Rz, Qz.T @ np.ones(n), check_finite=False)
+    return coef + LOG_CHI2_CORRECTION * a[None, :], np.sqrt(s2[:, None] * diag[None, :]), raised
+
+
+# --------------------------------------------------------------------------------------
+# Maximum likelihood
+# --------------------------------------------------------------------------------------
+def loglik(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta: np.ndarray, gamma: np.ndarray, floor: float) -> float:
+    """Normal log-likelihood ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − xᵢᵀβ)² e^{−ηᵢ}]."""
+    eta = np.clip(vm.eta(X, beta, gamma, floor), -ETA_LIMIT, ETA_LIMIT)
+    e = y - X @ beta
+    return float(-0.5 * np.sum(math.log(2 * math.pi) + eta + e**2 * np.exp(-eta)))
+
+
+def _information_factor(vm: VarianceModel, X: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
+                        floor: float) -> np.ndarray:
+    """J (2n × (k+p)) with JᵀJ = expected information: rows √wᵢ·[xᵢ, 0] over rows ½√2·∂ηᵢ/∂(β, γ)."""
+    eta = np.clip(vm.eta(X, beta, gamma, floor), -ETA_LIMIT, ETA_LIMIT)
+    sw = np.exp(-0.5 * eta)
+    d_beta, d_gamma = vm.jacobians(X, beta, gamma, floor)
+    n, k = X.shape
+    top = np.hstack([sw[:, None] * X, np.zeros((n, d_gamma.shape[1]))])
+    bottom = np.hstack([np.zeros((n, k)) if d_beta is None else d_beta, d_gamma]) / math.sqrt(2.0)
+    return np.vstack([top, bottom])
+
+
+def ml_fit(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta0: np.ndarray, gamma0: np.ndarray
+           ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, bool, int, str]:
+    """Joint ML of (β, γ) from a start; returns (β̂, γ̂, information factor R̂, converged, iterations, message).
+
+    The problem is solved in u with θ = θ₀ + R₀⁻¹u, R₀ the triangular factor of the expected
+    information at the start, so the model Hessian starts as the identity.
+    """
+    k = X.shape[1]
+    floor = vm.mean_floor(y)
+    theta0 = np.concatenate([beta0, gamma0])
+    try:
+        R0 = np.linalg.qr(_information_factor(vm, X, beta0, gamma0, floor), mode="r")
+        T = r_inverse(R0)
+    except (np.linalg.LinAlgError, ValueError) as exc:
+        return beta0, gamma0, None, False, 0, f"information at the start is singular ({exc})"
+    if not np.all(np.isfinite(T)):
+        return beta0, gamma0, None, False, 0, "information at the start is singular"
+    log2pi = math.log(2 * math.pi)
+
+    def split(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        th = theta0 + T @ u
+        return th[:k], th[k:]
+
+    def fun(u: np.ndarray) -> float:
+        b, g = split(u)
+        eta = vm.eta(X, b, g, floor)
+        if not np.all(np.isfinite(eta)) or np.abs(eta).max() > ETA_LIMIT:
+            return np.inf
+        e = y - X @ b
+        return float(0.5 * np.sum(log2pi + eta + e**2 * np.exp(-eta)))
+
+    def jac(u: np.ndarray) -> np.ndarray:
+        b, g = split(u)
+        eta = np.clip(vm.eta(X, b, g, floor), -ETA_LIMIT, ETA_LIMIT)
+        w = np.exp(-eta)
+        e = y - X @ b
+        half = 0.5 * (e**2 * w - 1.0)
+        d_beta, d_gamma = vm.jacobians(X, b, g, floor)
+        g_beta = X.T @ (w * e) + (0.0 if d_beta is None else d_beta.T @ half)
+        score = np.concatenate([g_beta, d_gamma.T @ half])
+        return -(T.T @ score)
+
+    def hess(u: np.ndarray) -> np.ndarray:
+        b, g = split(u)
+        JT = _information_factor(vm, X, b, g, floor) @ T
+        return JT.T @ JT
+
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        res = optimize.minimize(fun, np.zeros(theta0.size), jac=jac, hess=hess, method="trust-exact",
+                                options={"gtol": ML_GTOL, "maxiter": ML_MAXITER})
+    b, g = split(res.x)
+    ok = bool(np.isfinite(res.fun) and np.all(np.isfinite(res.x)))
+    if ok and not res.success:
+        # The expected information is not the exact Hessian, so the trust region can stall at the
+        # optimum; judge convergence by the Newton decrement ½ gᵀH⁻¹g (log-likelihood units) instead.
+        grad = jac(res.x)
+        try:
+            decrement = 0.5 * float(grad @ linalg.solve(hess(res.x), grad, assume_a="pos"))
+        except (linalg.LinAlgError, ValueError):
+            decrement = np.inf
+        ok = decrement < ML_DECREMENT_TOL
+    R = None
+    if ok:
+        R = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
+        ok = bool(np.all(np.isfinite(R)) and np.all(np.abs(np.diag(R)) > 0))
+    return b, g, R, ok, int(res.nit), str(res.message)
+
+
+def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np.ndarray,
+                     *, maxiter: int = 60, tol: float = ML_DECREMENT_TOL) -> tuple[np.ndarray, np.ndarray]:
+    """ML of γ for η = Zγ across datasets at once (rows of Y), β profiled out by WLS.
+
+    Fisher scoring with step halving: γ ← γ + t·(ZᵀZ)⁻¹ Zᵀ(r − 1), rᵢ = ê²ᵢ e^{−ηᵢ}
+    (Harvey 1976); the expected information of γ is ½ZᵀZ whatever β. Returns (γ̂, converged).
+    """
+    Z = vm.Z
+    Qz, Rz = np.linalg.qr(Z, mode="reduced")
+    G = gamma0.copy()
+    f, r = _profile_nll(X, Y, G @ Z.T)
+    done = np.zeros(G.shape[0], dtype=bool)
+    failed = np.zeros(G.shape[0], dtype=bool)
+    for _ in range(maxiter):
+        act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
+        if act.size == 0:
+            break
+        Ga, fa, ra = G[act], f[act], r[act]
+        rhs = (ra - 1.0) @ Qz
+        step = linalg.solve_triangular(Rz, rhs.T, check_finite=False).T
+        decrement = 0.25 * (rhs**2).sum(axis=1)  # ½ scoreᵀ info⁻¹ score, in ℓ units
+        now = decrement < tol
+        done[act[now]] = True
+        t = np.where(now, 0.0, 1.0)
+        for _h in range(30):
+            cand = Ga + t[:, None] * step
+            fc, rc = _profile_nll(X, Y[act], cand @ Z.T)
+            ok = np.isfinite(fc) & (fc <= fa + 1e-12 * np.abs(fa))
+            if ok.all():
+                break
+            t = np.where(ok, t, t / 2)
+        failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
+        G[act] = np.where(ok[:, None], cand, Ga)
+        f[act] = np.where(ok, fc, fa)
+        r[act] = np.where(ok[:, None], rc, ra)
+    return G, done
+
+
+# --------------------------------------------------------------------------------------
+# The fit
+# --------------------------------------------------------------------------------------
+class WLSFit(WaldFit):
+    """A WLS Wald fit that also carries ``sigma_hat``, the fitted error SD of each design row."""
+
+    def __init__(self, *args: Any, sigma_hat: np.ndarray, weights: np.ndarray, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.sigma_hat = np.asarray(sigma_hat, dtype=float)
+        self.sigma_hat.setflags(write=False)
+        self.weights = np.asarray(weights, dtype=float)
+        self.weights.setflags(write=False)
+
+
+def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | None) -> dict[str, Any]:
+    """LR test of the variance model against constant variance, AIC of both."""
+    Q, _ = np.linalg.qr(X, mode="reduced")
+    e = y - Q @ (Q.T @ y)
+    rss = float(e @ e)
+    ll0 = -0.5 * n * (math.log(2 * math.pi) + math.log(max(rss, np.finfo(float).tiny) / n) + 1.0)
+    out: dict[str, Any] = {"loglik_constant": ll0, "aic_constant": -2 * ll0 + 2 * (k + 1)}
+    if ll is None or p <= 1:
+        out["lr_test"] = None
+        out["aic"] = None if ll is None else -2 * ll + 2 * (k + p)
+        return out
+    stat = max(2.0 * (ll - ll0), 0.0)
+    out["lr_test"] = {"statistic": stat, "df": p - 1, "p": float(stats.chi2.sf(stat, p - 1))}
+    out["aic"] = -2 * ll + 2 * (k + p)
+    return out
+
+
+def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
+            estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
+            backend_id: str = "wls") -> WLSFit | Unavailable:
+    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
+    y = np.asarray(y, dtype=float)
+    X = np.asarray(X, dtype=float)
+    n, k = X.shape
+    notes: list[str] = []
+    converged: bool | None = None
+    iterations = 0
+    used = estimation
+    gamma = np.zeros(0)
+    gamma_se: np.ndarray | None = None
+    beta_ml: np.ndarray | None = None
+    raised = 0
+    floor = vm.mean_floor(y)
+    if vm.function == "known":
+        W = vm.weights / vm.weights.mean()
+        used = "known"
+    else:
+        g2, g2_se, raised_arr = twostep_gamma(vm, X, y[None, :])
+        gamma, gamma_se, raised = g2[0], g2_se[0], int(raised_arr[0])
+        if raised:
+            notes.append(f"{raised} residual(s) were exactly zero; their squares were raised to "
+                         f"{ZERO_RESIDUAL_FLOOR:g} × mean(ê²) before taking logs.")
+        beta_ols = np.linalg.lstsq(X, y, rcond=None)[0]
+        W = np.exp(-np.clip(vm.eta(X, beta_ols, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
+        Q, R = weighted_qr(X, W[None, :])
+        beta2 = linalg.solve_triangular(R[0], Q[0].T @ (np.sqrt(W) * y), check_finite=False)
+        if vm.function == "power":
+            # The two-step weights use the OLS mean; refresh them at the FGLS mean.
+            W = np.exp(-np.clip(vm.eta(X, beta2, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
+        if estimation == "ml":
+            b_ml, g_ml, Rinfo, ok, iterations, message = ml_fit(vm, X, y, beta2, gamma)
+            ll_two = _loglik_profiled_scale(vm, X, y, beta2, gamma, floor)
+            ll_ml = loglik(vm, X, y, b_ml, g_ml, floor) if ok else -np.inf
+            if ok and ll_ml >= ll_two - 1e-8 * abs(ll_two):
+                converged = True
+                gamma, beta_ml = g_ml, b_ml
+                cov_all = _cov_from_r(Rinfo)
+                gamma_se = np.sqrt(np.maximum(np.diag(cov_all)[k:], 0.0))
+                W = np.exp(-np.clip(vm.eta(X, b_ml, g_ml, floor), -ETA_LIMIT, ETA_LIMIT))
+            else:
+                converged = False
+                used = "twostep (ML did not converge)"
+                notes.append(f"ML of the variance model did not converge ({message}); the two-step FGLS "
+                             "estimate is reported instead.")
+                _warnings.warn(notes[-1], WLSWarning, stacklevel=2)
+    ratio = float(W.max() / W.min())
+    if not math.isfinite(ratio) or ratio > WEIGHT_RATIO_WARNING:
+        notes.append(f"The largest weight is {ratio:.3g} times the smallest; a few rows dominate the fit "
+                     "(check the variance model or the data).")
+        _warnings.warn(notes[-1], WLSWarning, stacklevel=2)
+    Q, R = weighted_qr(X, W[None, :])
+    Q, R = Q[0], R[0]
+    sw = np.sqrt(W)
+    qty = Q.T @ (sw * y)
+    beta = linalg.solve_triangular(R, qty, check_finite=False)
+    ew = sw * y - Q @ qty  # whitened residuals
+    df = n - k
+    s2 = float(ew @ ew) / df
+    Rinv = r_inverse(R)
+    h = leverages(Q)
+    label_fn = _FUNCTION_LABELS[vm.function]
+    est_label = {"ml": "ML", "twostep": "two-step FGLS", "known": "known"}.get(used, "two-step FGLS")
+    if se == "robust":
+        ones = leverage_one_rows(h)
+        if ones.size:
+            rows = row_numbers[ones] if row_numbers is not None else ones + 1
+            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
+            return Unavailable(backend_id, f"WLS, {label_fn}",
+                               f"HC3 on the weighted fit is undefined: data row(s) {shown} have leverage 1; "
+                               "use --set wls.se=model or drop those rows.")
+        cov = sandwich(Q, Rinv, hc_weights("hc3", h, n, k) * ew**2)
+        se_label = "HC3 on the weighted fit"
+    else:
+        cov = s2 * (Rinv @ Rinv.T)
+        se_label = "model-based s²(XᵀWX)⁻¹"
+    sigma_hat = np.sqrt(s2 / W)
+    ll = None
+    if vm.function == "known":
+        ll = _loglik_known(y, X, beta, W)
+    elif converged:
+        ll = loglik(vm, X, y, beta_ml, gamma, floor)
+    else:
+        ll = _loglik_profiled_scale(vm, X, y, beta, gamma, floor)
+    p = vm.n_gamma
+    lr = _lr_parts(n, k, p, y, X, ll)
+    design_info: dict[str, Any] = {
+        "function": vm.function,
+        "z_terms": list(vm.names) if vm.function in ("loglinear", "groups") else
+                   (["log_sigma2", "theta"] if vm.function == "power" else []),
+        "source_column": vm.source,
+        "gamma": {name: {"estimate": float(g), "se": None if gamma_se is None else float(s)}
+                  for name, g, s in zip(_gamma_names(vm), gamma, gamma_se if gamma_se is not None else gamma)},
+        "loglik": ll, "loglik_constant": lr["loglik_constant"],
+        "lr_test": lr["lr_test"], "aic": lr["aic"], "aic_constant": lr["aic_constant"],
+        "weight_ratio": ratio, "scale_s2": s2,
+        "estimation": used, "se_type": se, "converged": converged, "iterations": iterations,
+        "zero_residuals_raised": raised,
+    }
+    if vm.function == "power":
+        design_info["sigma"] = float(math.exp(0.5 * gamma[0]))
+    if estimation == "twostep" and vm.function != "known":
+        design_info["loglik_note"] = "evaluated at the two-step estimates with the scale profiled out"
+    extras = {"variance_model": design_info, "df_resid": df, "sigma": float(math.sqrt(s2))}
+    label = f"WLS, {label_fn} ({est_label}) + {'HC3' if se == 'robust' else 'model SE'}"
+    return WLSFit(backend_id, label, tuple(term_names), beta, cov, df, warnings=tuple(notes),
+                  extras=extras, se_label=se_label, sigma_hat=sigma_hat, weights=W)
+
+
+def _gamma_names(vm: VarianceModel) -> tuple[str, ...]:
+    return ("log_sigma2", "theta") if vm.function == "power" else vm.names
+
+
+def _cov_from_r(R: np.ndarray) -> np.ndarray:
+    Rinv = r_inverse(R)
+    return Rinv @ Rinv.T
+
+
+def _loglik_profiled_scale(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta: np.ndarray,
+                           gamma: np.ndarray, floor: float) -> float:
+    """ℓ at (β, γ) with the variance scale set to its ML value (σᵢ² = c·e^{ηᵢ}, c = mean(ê² e^{−η}))."""
+    eta = np.clip(vm.eta(X, beta, gamma, floor), -ETA_LIMIT, ETA_LIMIT)
+    e = y - X @ beta
+    c = float(np.mean(e**2 * np.exp(-eta)))
+    n = y.size
+    return float(-0.5 * (n * math.log(2 * math.pi) + np.sum(eta) + n * math.log(c) + n))
+
+
+def _loglik_known(y: np.ndarray, X: np.ndarray, beta: np.ndarray, W: np.ndarray) -> float:
+    """ℓ with σᵢ² = c / wᵢ and c at its ML value."""
+    e = y - X @ beta
+    n = y.size
+    c = float(np.mean(W * e**2))
+    return float(-0.5 * (n * math.log(2 * math.pi) - np.sum(np.log(W)) + n * math.log(c) + n))
+
+
+# --------------------------------------------------------------------------------------
+# Building the variance model from a design
+# --------------------------------------------------------------------------------------
+def _design_column(design: "Design", name: str) -> pd.Series:
+    frame = design.data.frame
+    return frame[name] if name in frame.columns else design.data.column(name)
+
+
+def _first_bad_row(design: "Design", bad: np.ndarray) -> int:
+    return int(design.data.frame.index[int(np.flatnonzero(bad)[0])]) + 1
+
+
+def _numeric_or_dummies(design: "Design", name: str, option: str) -> tuple[np.ndarray, list[str]]:
+    col = _design_column(design, name)
+    missing = col.isna().to_numpy()
+    if missing.any():
+        raise InputError(f"Column {name!r} (the {option!r} option of wls) is missing in data row "
+                         f"{_first_bad_row(design, missing)}; fill it or drop those rows.")
+    if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+        v = col.to_numpy(dtype=float)
+        bad = ~np.isfinite(v)
+        if bad.any():
+            raise InputError(f"Column {name!r} (the {option!r} option of wls) is not finite in data row "
+                             f"{_first_bad_row(design, bad)}; fix that value.")
+        return v[:, None], [name]
+    cat = pd.Categorical(col.astype(str))
+    codes = cat.codes
+    levels = list(cat.categories)
+    D = (codes[:, None] == np.arange(1, len(levels))[None, :]).astype(float)
+    return D, [f"{name}[{lv}]" for lv in levels[1:]]
+
+
+def variance_model_for(design: "Design", variance: str, variance_terms: tuple[str, ...] | None,
+                       group: str | None, weights: str | None) -> VarianceModel:
+    """Build the variance model a back-end's options ask for on this design."""
+    n = design.n_obs
+    if variance == "known":
+        col = _design_column(design, weights)
+        if not pd.api.types.is_numeric_dtype(col) or pd.api.types.is_bool_dtype(col):
+            raise InputError(f"The weights column {weights!r} must hold numbers (inverse variances); "
+                             f"data row {_first_bad_row(design, np.ones(n, bool))} has {col.iloc[0]!r}.")
+        w = col.to_numpy(dtype=float, na_value=np.nan)
+        for bad, what in ((np.isnan(w), "is missing"), (~np.isfinite(w) & ~np.isnan(w), "is not finite"),
+                          (np.isfinite(w) & (w <= 0), "is not positive")):
+            if bad.any():
+                i = int(np.flatnonzero(bad)[0])
+                raise InputError(f"The weights column {weights!r} {what} in data row {_first_bad_row(design, bad)} "
+                                 f"(value {w[i]!r}); weights must be positive finite inverse variances.")
+        return VarianceModel("known", weights=w.copy(), source=weights)
+    if variance == "power":
+        return VarianceModel("power", names=("log_sigma2", "theta"))
+    if variance == "groups":
+        if group is None:
+            cats = list(design.data.categorical_moderators)
+            if not cats:
+                raise option_error("group", "a column naming the groups (the model has no categorical moderator)", None)
+            group = cats[0]
+        col = _design_column(design, group)
+        missing = col.isna().to_numpy()
+        if missing.any():
+            raise InputError(f"The group column {group!r} is missing in data row {_first_bad_row(design, missing)}; "
+                             "fill it or drop those rows.")
+        cat = pd.Categorical(col.astype(str) if not pd.api.types.is_numeric_dtype(col) else col)
+        levels = list(cat.categories)
+        counts = np.bincount(cat.codes, minlength=len(levels))
+        if len(levels) < 2:
+            raise InputError(f"The group column {group!r} has one level in the rows used; it needs at least two.")
+        if counts.min() < 2:
+            raise InputError(f"The group {levels[int(counts.argmin())]!r} of column {group!r} has fewer than two rows; "
+                             "merge it with another group.")
+        Z = (cat.codes[:, None] == np.arange(len(levels))[None, :]).astype(float)
+        return VarianceModel("groups", Z=Z, names=tuple(f"log_var[{group}={lv}]" for lv in levels),
+                             groups=np.asarray(cat.codes), source=group)
+    terms = variance_terms if variance_terms is not None else (design.focal, *design.spec.moderators)
+    blocks, names = [np.ones((n, 1))], ["Intercept"]
+    for name in terms:
+        block, labels = _numeric_or_dummies(design, name, "variance_terms")
+        blocks.append(block)
+        names.extend(labels)
+    Z = np.hstack(blocks)
+    R = np.linalg.qr(Z, mode="r")
+    norms = np.linalg.norm(Z, axis=0)
+    rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
+    bad = [names[j] for j in np.flatnonzero(rel < 1e-10)]
+    if bad:
+        raise InputError(f"The variance terms {', '.join(repr(b) for b in bad)} are constant or collinear with the "
+                         "others; drop them from the 'variance_terms' option of wls.")
+    return VarianceModel("loglinear", Z=Z, names=tuple(names), source=None)
+
+
+# --------------------------------------------------------------------------------------
+# The back-end
+# --------------------------------------------------------------------------------------
+def _as_names(value: Any, option: str) -> tuple[str, ...] | None:
+    if value is None:
+        return None
+    if isinstance(value, str):
+        items = [v.strip() for v in value.split(",") if v.strip()]
+    elif isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
+        items = [v.strip() for v in value if v.strip()]
+    else:
+        raise option_error(option, "a list of column names (or one comma-separated string)", value)
+    if not items:
+        raise option_error(option, "a non-empty list of column names", value)
+    return tuple(dict.fromkeys(items))
+
+
+class WLSBackend:
+    """Weighted least squares with a modelled variance function.
+
+    Parameters
+    ----------
+    variance : {"loglinear", "power", "groups", "known"}, default="loglinear"
+    variance_terms : list of str, optional
+        Columns of z for the log-linear model (an intercept is always added);
+        default: the focal predictor and the moderators (dummies for a categorical one).
+    group : str, optional
+        Grouping column for ``variance="groups"``; default the categorical moderator.
+    weights : str, optional
+        Column of known inverse variances for ``variance="known"`` (up to a common scale).
+    estimation : {"ml", "twostep"}, default="ml"
+    se : {"robust", "model"}, default="robust"
+        HC3 on the weighted fit (Romano & Wolf 2017) or s²(XᵀWX)⁻¹.
+    """
+
+    id = "wls"
+    label = "WLS with a modelled variance function"
+
+    def __init__(self, *, variance: str = "loglinear", variance_terms: Any = None, group: str | None = None,
+                 weights: str | None = None, estimation: str = "ml", se: str = "robust") -> None:
+        if variance not in VARIANCE_FUNCTIONS:
+            raise option_error("variance", "one of " + ", ".join(VARIANCE_FUNCTIONS), variance)
+        if estimation not in ESTIMATIONS:
+            raise option_error("estimation", "one of " + ", ".join(ESTIMATIONS), estimation)
+        if se not in SE_TYPES:
+            raise option_error("se", "one of " + ", ".join(SE_TYPES), se)
+        terms = _as_names(variance_terms, "variance_terms")
+        if terms is not None and variance != "loglinear":
+            raise option_error("variance_terms", "left unset unless variance='loglinear'", variance_terms)
+        if group is not None and (variance != "groups" or not isinstance(group, str) or not group.strip()):
+            raise option_error("group", "a column name, and given only with variance='groups'", group)
+        if variance == "known" and (not isinstance(weights, str) or not weights.strip()):
+            raise option_error("weights", "the name of a column of inverse variances when variance='known'", weights)
+        if weights is not None and variance != "known":
+            raise option_error("weights", "left unset unless variance='known'", weights)
+        self.variance = variance
+        self.variance_terms = terms
+        self.group = group.strip() if isinstance(group, str) else None
+        self.weights = weights.strip() if isinstance(weights, str) else None
+        self.estimation = estimation
+        self.se = se
+        est = "" if variance == "known" else (" (ML)" if estimation == "ml" else " (two-step FGLS)")
+        self.label = f"WLS, {_FUNCTION_LABELS[variance]}{est} + {'HC3' if se == 'robust' else 'model SE'}"
+
+    def variance_model(self, design: "Design") -> VarianceModel:
+        return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
+
+    def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
+        """Fit on the design (deterministic: ``seed`` is not used)."""
+        vm = self.variance_model(design)
+        rows = np.asarray(design.data.frame.index, dtype=int) + 1
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", WLSWarning)  # the notes travel in fit.warnings
+            return fit_wls(design.y, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
+                           row_numbers=rows, backend_id=self.id)
+
+    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
+        """Does the product-term test reject at ``alpha`` for each column of Y (n × D outcomes on design.X)?
+
+        t test for one product term, Wald F for several; the same variance model, estimation and
+        SE type as :meth:`fit`. Two-step and log-linear/group ML run across all datasets at once;
+        power-of-the-mean ML fits one dataset at a time. ``seed`` is not used (no randomness).
+        """
+        Y = np.asarray(Y, dtype=float)
+        X = design.X
+        n, k = X.shape
+        if Y.ndim != 2 or Y.shape[0] != n:
+            raise InputError(f"The simulated outcomes must be an array of {n} rows (one per design row) × datasets; "
+                             f"got shape {Y.shape}.")
+        Yd = Y.T  # D × n
+        D = Yd.shape[0]
+        vm = self.variance_model(design)
+        floor = vm.mean_floor(design.y)
+        if vm.function == "known":
+            W = np.broadcast_to(vm.weights / vm.weights.mean(), (D, n))
+        else:
+            gamma, _, _ = twostep_gamma(vm, X, Yd)
+            if vm.function == "power":
+                W = self._power_weights(vm, X, Yd, gamma, floor)
+            else:
+                if self.estimation == "ml":
+                    g_ml, ok = batched_ml_gamma(vm, X, Yd, gamma)
+                    gamma = np.where(ok[:, None], g_ml, gamma)
+                W = np.exp(-np.clip(gamma @ vm.Z.T, -ETA_LIMIT, ETA_LIMIT))
+        return _reject_product(X, Yd, W, design.interaction_rows(), alpha, self.se)
+
+    def _power_weights(self, vm: VarianceModel, X: np.ndarray, Yd: np.ndarray, gamma: np.ndarray,
+                       floor: float) -> np.ndarray:
+        Qx, Rx = np.linalg.qr(X, mode="reduced")
+        B_ols = linalg.solve_triangular(Rx, Qx.T @ Yd.T, check_finite=False).T
+        W = np.exp(-np.clip(_power_eta(X, B_ols, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
+        Q, R = weighted_qr(X, W)
+        B = np.linalg.solve(R, np.einsum("dnk,dn->dk", Q, np.sqrt(W) * Yd)[:, :, None])[:, :, 0]
+        if self.estimation == "ml":
+            B_ml, g_ml, ok = batched_ml_power(X, Yd, B, gamma, floor)
+            B = np.where(ok[:, None], B_ml, B)
+            gamma = np.where(ok[:, None], g_ml, gamma)
+        return np.exp(-np.clip(_power_eta(X, B, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
+
+
+def _power_eta(X: np.ndarray, B: np.ndarray, G: np.ndarray, floor: float) -> np.ndarray:
+    """ηᵢ = c + 2θ·log|μᵢ| for each dataset (rows of B, G) → D × n."""
+    return G[:, :1] + 2.0 * G[:, 1:2] * np.log(np.maximum(np.abs(B @ X.T), floor))
+
+
+def _power_nll(X: np.ndarray, Y: np.ndarray, B: np.ndarray, G: np.ndarray, floor: float) -> np.ndarray:
+    eta = _power_eta(X, B, G, floor)
+    bad = ~np.isfinite(eta).all(axis=1) | (np.abs(eta).max(axis=1) > ETA_LIMIT)
+    eta = np.clip(eta, -ETA_LIMIT, ETA_LIMIT)
+    f = 0.5 * (eta + (Y - B @ X.T) ** 2 * np.exp(-eta)).sum(axis=1)
+    return np.where(bad, np.inf, f)
+
+
+def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarray, floor: float,
+                     *, maxiter: int = 100) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Joint ML of (β, c, θ) of the power-of-the-mean model across datasets (rows of Y).
+
+    Fisher scoring with step halving, the expected information J_μᵀWJ_μ + ½J_ηᵀJ_η as in
+    :func:`ml_fit`. Returns (β̂, γ̂, converged).
+    """
+    D, n = Y.shape
+    k = X.shape[1]
+    B, G = B0.copy(), G0.copy()
+    f = _power_nll(X, Y, B, G, floor)
+    done = np.zeros(D, dtype=bool)
+    failed = np.zeros(D, dtype=bool)
+    for _ in range(maxiter):
+        act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
+        if act.size == 0:
+            break
+        Ba, Ga, Ya, fa = B[act], G[act], Y[act], f[act]
+        Da = act.size
+        mu = Ba @ X.T
+        m = np.abs(mu)
+        inside = m > floor
+        logm = np.log(np.maximum(m, floor))
+        eta = np.clip(Ga[:, :1] + 2.0 * Ga[:, 1:2] * logm, -ETA_LIMIT, ETA_LIMIT)
+        w = np.exp(-eta)
+        e = Ya - mu
+        half = 0.5 * (e**2 * w - 1.0)
+        deta_dmu = np.where(inside, 2.0 * Ga[:, 1:2] / np.where(inside, mu, 1.0), 0.0)
+        score = np.concatenate([(w * e + deta_dmu * half) @ X, half.sum(axis=1, keepdims=True),
+                                (2.0 * logm * half).sum(axis=1, keepdims=True)], axis=1)
+        bottom = np.concatenate([deta_dmu[:, :, None] * X[None], np.ones((Da, n, 1)), 2.0 * logm[:, :, None]],
+                                axis=2) / math.sqrt(2.0)
+        info = np.einsum("dni,dnj->dij", bottom, bottom)
+        info[:, :k, :k] += np.einsum("dn,ni,nj->dij", w, X, X)
+        try:
+            step = np.linalg.solve(info, score[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            failed[act] = True
+            break
+        decrement = 0.5 * np.einsum("di,di->d", score, step)
+        now = np.isfinite(decrement) & (decrement < ML_DECREMENT_TOL)
+        done[act[now]] = True
+        t = np.where(now, 0.0, 1.0)
+        for _h in range(30):
+            Bc, Gc = Ba + t[:, None] * step[:, :k], Ga + t[:, None] * step[:, k:]
+            fc = _power_nll(X, Ya, Bc, Gc, floor)
+            ok = np.isfinite(fc) & (fc <= fa + 1e-12 * np.abs(fa))
+            if ok.all():
+                break
+            t = np.where(ok, t, t / 2)
+        failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
+        B[act] = np.where(ok[:, None], Bc, Ba)
+        G[act] = np.where(ok[:, None], Gc, Ga)
+        f[act] = np.where(ok, fc, fa)
+    return B, G, done
+
+
+def _reject_product(X: np.ndarray, Yd: np.ndarray, W: np.ndarray, L: np.ndarray, alpha: float, se: str) -> np.ndarray:
+    """Batched weighted fit and the test of L·β = 0 for each dataset (rows of Yd, weights W)."""
+    D, n = Yd.shape
+    k = X.shape[1]
+    q = L.shape[0]
+    W = np.ascontiguousarray(W)
+    Q, R = weighted_qr(X, W)
+    yw = np.sqrt(W) * Yd
+    qty = np.einsum("dnk,dn->dk", Q, yw)
+    beta = np.linalg.solve(R, qty[:, :, None])[:, :, 0]
+    ew = yw - np.einsum("dnk,dk->dn", Q, qty)
+    # M = L R⁻¹ for each dataset: solve Rᵀ Mᵀ = Lᵀ.
+    Mt = np.linalg.solve(np.swapaxes(R, 1, 2), np.broadcast_to(L.T, (D, k, q)))
+    if se == "robust":
+        h = np.einsum("dnk,dnk->dn", Q, Q)
+        u = ew**2 / np.maximum(1.0 - h, 1e-12) ** 2
+        G = np.einsum("dnk,dkq->dnq", Q, Mt)
+        V = np.einsum("dnq,dn,dnr->dqr", G, u, G)
+    else:
+        s2 = (ew**2).sum(axis=1) / (n - k)
+        V = s2[:, None, None] * np.einsum("dkq,dkr->dqr", Mt, Mt)
+    est = beta @ L.T  # D × q
+    df = n - k
+    if q == 1:
+        t = est[:, 0] / np.sqrt(np.maximum(V[:, 0, 0], np.finfo(float).tiny))
+        return 2 * stats.t.sf(np.abs(t), df) < alpha
+    c = np.linalg.cholesky(V)
+    z = np.linalg.solve(c, est[:, :, None])[:, :, 0]
+    F = (z**2).sum(axis=1) / q
+    return stats.f.sf(F, q, df) < alpha
