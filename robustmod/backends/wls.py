@@ -541,7 +541,7 @@ def variance_model_for(design: "Design", variance: str, variance_terms: tuple[st
             if bad.any():
                 i = int(np.flatnonzero(bad)[0])
                 raise InputError(f"The weights column {weights!r} {what} in data row {_first_bad_row(design, bad)} "
-                                 f"(value {w[i]!r}); weights must be positive finite inverse variances.")
+                                 f"(value {float(w[i])!r}); weights must be positive finite inverse variances.")
         return VarianceModel("known", weights=w.copy(), source=weights)
     if variance == "power":
         return VarianceModel("power", names=("log_sigma2", "theta"))
