@@ -462,7 +462,8 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     if estimation == "twostep" and vm.function != "known":
         design_info["loglik_note"] = "evaluated at the two-step estimates with the scale profiled out"
     extras = {"variance_model": design_info, "df_resid": df, "sigma": float(math.sqrt(s2))}
-    label = f"WLS, {label_fn} ({est_label}) + {'HC3' if se == 'robust' else 'model SE'}"
+    est_part = "" if vm.function == "known" else f" ({est_label})"
+    label = f"WLS, {label_fn}{est_part} + {'HC3' if se == 'robust' else 'model SE'}"
     return WLSFit(backend_id, label, tuple(term_names), beta, cov, df, warnings=tuple(notes),
                   extras=extras, se_label=se_label, sigma_hat=sigma_hat, weights=W)
 
