@@ -1,0 +1,587 @@
+"""Wild bootstrap of the moderation model, vectorised over replicates (back-end ``wild``).
+
+Fixed design X = QR (n × k), A = R⁻¹Qᵀ (k × n), HC weights ωᵢ of :mod:`.hc` (HC3 by
+default), so the HC covariance of β̂ is V = A diag(ωᵢ êᵢ²) Aᵀ. A replicate with
+auxiliary weights vᵢ (Rademacher, Mammen 1993 or Webb 2014) and base residuals ẽ has
+
+    uᵢ = ẽᵢ vᵢ,   β* − β_base = A u,   e* = u − X A u,
+    M_{jl} = Σᵢ A_{ji} A_{li} ωᵢ e*ᵢ²          (the HC covariance of β*, pair (j, l)),
+
+and for any row L: se*(L)² = Σ_{jl} L_j L_l M_{jl}. Only β* − β_base (B × k) and M
+(B × k(k+1)/2) are kept, so intervals for any L (probe values, the Johnson–Neyman
+search, bands) come later at no refitting cost. Replicates are processed in chunks of
+bounded size; inside a chunk everything is a matrix product.
+
+Two bootstraps share the same weight draws:
+
+* unrestricted (base β̂, residuals ê): bootstrap-t intervals [est − q*₁₋α/₂·se,
+  est − q*α/₂·se] with t* = (Lβ* − Lβ̂)/se*(L), symmetric p = share of |t*| ≥ |t|, sup-t
+  bands, bootstrap Wald tests;
+* restricted, null imposed (Davidson & Flachaire 2008): base = least squares without the
+  product-term column(s), residuals ẽ; t* (one product term) or the Wald statistic W*
+  (several, e.g. a categorical moderator) of the product term(s) in the full model;
+  p = share of |t*| ≥ |t| (or W* ≥ W).
+
+Residuals are rescaled by 1/√(1 − hᵢ) (the "hc2" transform, hᵢ the leverage of the
+model that produced them): under constant variance E[ẽᵢ²] = σ²(1 − hᵢ), so the
+rescaled residuals give bootstrap errors with the right variance, while the leverage
+correction of the t statistic itself is left to its HC3 standard error (MacKinnon 2012).
+"""
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from scipy import linalg
+
+from ..errors import InputError, option_error
+from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
+from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..design import Design
+
+WEIGHT_KINDS = ("rademacher", "mammen", "webb")
+TRANSFORMS = ("hc2", "hc3", "none")
+WEIGHT_LABELS = {"rademacher": "Rademacher", "mammen": "Mammen", "webb": "Webb six-point"}
+
+#: Doubles per working array of a chunk (8 MB); bounds peak memory whatever B is.
+CHUNK_ELEMENTS = 1_000_000
+#: Rows of L answered at once in :meth:`BootstrapFit.estimate` (rows × B doubles).
+ROW_CHUNK_ELEMENTS = 4_000_000
+#: Show a progress bar (when asked) only for runs of at least this many n × B elements.
+PROGRESS_MIN_WORK = 50_000_000
+#: The expanded kernel needs k(1 + k(k+1)/2) rows; above this the direct kernel is cheaper.
+EXPANDED_MAX_ROWS = 160
+
+_SQRT5 = math.sqrt(5.0)
+#: Mammen (1993) two-point weights: mean 0, variance 1, third moment 1.
+MAMMEN_VALUES = np.array([-(_SQRT5 - 1) / 2, (_SQRT5 + 1) / 2])
+MAMMEN_P_LOW = (_SQRT5 + 1) / (2 * _SQRT5)
+#: Webb (2014) six-point weights, each with probability 1/6: mean 0, variance 1, third moment 0.
+WEBB_VALUES = np.array([-math.sqrt(1.5), -1.0, -math.sqrt(0.5), math.sqrt(0.5), 1.0, math.sqrt(1.5)])
+#: Byte → its eight bits as signs (bit 1 → −1), least significant bit first.
+_SIGN_TABLE = 1.0 - 2.0 * np.unpackbits(np.arange(256, dtype=np.uint8)[:, None], axis=1,
+                                        bitorder="little").astype(np.float64)
+
+
+# ---- auxiliary weights ---------------------------------------------------------------
+def _weight_width(kind: str, n: int) -> int:
+    """Columns of a weight chunk: Rademacher rows use whole 64-bit words (padding is ignored)."""
+    return 64 * ((n + 63) // 64) if kind == "rademacher" else n
+
+
+def _weight_chunk(kind: str, n: int, rows: int, rng: np.random.Generator) -> np.ndarray:
+    """``rows`` replicates of auxiliary weights, shape rows × _weight_width(kind, n).
+
+    Every replicate consumes the same amount of the stream, so drawing B replicates in
+    chunks gives the same numbers as drawing them at once.
+    """
+    if kind == "rademacher":
+        raw = rng.bit_generator.random_raw((rows, (n + 63) // 64))
+        return np.take(_SIGN_TABLE, raw.view(np.uint8), axis=0).reshape(rows, -1)
+    u = rng.random((rows, n))
+    if kind == "mammen":
+        return MAMMEN_VALUES[(u >= MAMMEN_P_LOW).astype(np.intp)]
+    return WEBB_VALUES[np.minimum((6.0 * u).astype(np.intp), 5)]
+
+
+def draw_weights(kind: str, n: int, replications: int, rng: np.random.Generator) -> np.ndarray:
+    """Auxiliary weights (replications × n) exactly as a fit with the same generator draws them."""
+    if kind not in WEIGHT_KINDS:
+        raise option_error("weights", f"one of {', '.join(WEIGHT_KINDS)}", kind)
+    return _weight_chunk(kind, n, replications, rng)[:, :n]
+
+
+def sign_patterns(n: int) -> np.ndarray:
+    """All 2ⁿ Rademacher sign patterns (2ⁿ × n); row b holds the bits of b as signs."""
+    b = np.arange(2**n, dtype=np.int64)[:, None]
+    return 1.0 - 2.0 * ((b >> np.arange(n, dtype=np.int64)) & 1).astype(np.float64)
+
+
+def _enumerate(kind: str, n: int, replications: int) -> bool:
+    """Rademacher with 2ⁿ ≤ B: enumerate every sign pattern instead of drawing B of them."""
+    return kind == "rademacher" and n < 63 and 2**n <= replications
+
+
+def residual_factor(transform: str, h: np.ndarray) -> np.ndarray:
+    """Rescaling of residuals: 1/√(1−h) (hc2), 1/(1−h) (hc3) or 1; 0 at leverage one (residual is 0)."""
+    one = h >= 1.0 - 1e-10
+    safe = np.where(one, 0.5, h)
+    f = {"hc2": 1.0 / np.sqrt(1.0 - safe), "hc3": 1.0 / (1.0 - safe), "none": np.ones_like(h)}[transform]
+    return np.where(one, 0.0, f)
+
+
+# ---- the kernel ------------------------------------------------------------------------
+def _pair_index(k: int) -> tuple[np.ndarray, np.ndarray]:
+    return np.triu_indices(k)
+
+
+@dataclass
+class _Source:
+    """One bootstrap sharing the weight draws: base residuals and the pairs (j, l) of M it needs."""
+
+    resid: np.ndarray  # (n,) transformed base residuals
+    pairs: np.ndarray  # indices into the upper-triangle pair list
+
+
+class _Kernel:
+    """β* − β_base and M for chunks of weights, for several residual sources at once.
+
+    Expanded form (a source needing few pairs m): with u = ẽ⊙v, D = Au and e* = u − XD,
+    M_p = Σᵢ Pₚᵢ vᵢ²ẽᵢ² − 2 Σⱼ Dⱼ Σᵢ Pₚᵢ Xᵢⱼ uᵢ + Σⱼₗ DⱼDₗ Σᵢ Pₚᵢ XᵢⱼXᵢₗ with Pₚᵢ = A_{jᵢ}A_{lᵢ}ωᵢ,
+    so one product of the weight chunk with a fixed (k + k·m) × n matrix gives everything
+    (vᵢ² = 1 for Rademacher weights makes the first term a constant).
+    Direct form (many pairs, k(1 + m) > EXPANDED_MAX_ROWS): e* formed explicitly, M = (e*)² Pᵀ.
+    """
+
+    def __init__(self, X: np.ndarray, A: np.ndarray, omega: np.ndarray, sources: list[_Source],
+                 width: int, unit_square: bool) -> None:
+        n, k = X.shape
+        self.n, self.k, self.width, self.unit_square = n, k, width, unit_square
+        self.Xt = np.ascontiguousarray(X.T)
+        self.At = np.ascontiguousarray(A.T)
+        jj, ll = _pair_index(k)
+        self.sources = sources
+        P = [A[jj[s.pairs]] * A[ll[s.pairs]] * omega for s in sources]  # m × n each
+        self.expanded = [k * (1 + len(s.pairs)) <= EXPANDED_MAX_ROWS for s in sources]
+        blocks: list[np.ndarray] = []
+        self.T: dict[int, np.ndarray] = {}
+        self.S2: dict[int, np.ndarray] = {}
+        self.Pe2: dict[int, np.ndarray] = {}
+        self.Pt: dict[int, np.ndarray] = {}
+        self.offsets: dict[int, tuple[int, int]] = {}
+        row = 0
+        for i, (s, Pi) in enumerate(zip(sources, P)):
+            if not self.expanded[i]:
+                self.Pt[i] = np.ascontiguousarray(Pi.T)
+                continue
+            m = Pi.shape[0]
+            F = np.zeros((k + k * m, width))
+            F[:k, :n] = A * s.resid
+            F[k:, :n] = (X.T[:, None, :] * Pi[None, :, :]).reshape(k * m, n) * s.resid
+            blocks.append(F)
+            self.offsets[i] = (row, row + F.shape[0])
+            row += F.shape[0]
+            self.T[i] = np.einsum("pi,ij,il->pjl", Pi, X, X).reshape(m, k * k)
+            self.S2[i] = Pi @ s.resid**2
+            self.Pe2[i] = np.ascontiguousarray((Pi * s.resid**2).T)
+        self.F_t = np.ascontiguousarray(np.vstack(blocks).T) if blocks else None  # width × rows
+
+    def run(self, V: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+        """(D, M) for every source from a chunk of weights V (c × width)."""
+        k, n = self.k, self.n
+        G = V @ self.F_t if self.F_t is not None else None
+        V2 = None if self.unit_square or G is None else np.square(V[:, :n])
+        out = []
+        for i, s in enumerate(self.sources):
+            if self.expanded[i]:
+                a, b = self.offsets[i]
+                g = G[:, a:b]
+                m = len(s.pairs)
+                D = np.ascontiguousarray(g[:, :k])
+                C = g[:, k:].reshape(-1, k, m)
+                cross = np.einsum("bj,bjp->bp", D, C)
+                quad = (D[:, :, None] * D[:, None, :]).reshape(-1, k * k) @ self.T[i].T
+                sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
+                out.append((D, sq - 2.0 * cross + quad))
+                continue
+            U = V[:, :n] * s.resid
+            D = U @ self.At
+            E = D @ self.Xt
+            np.subtract(U, E, out=E)
+            np.square(E, out=E)
+            out.append((D, E @ self.Pt[i]))
+        return out
+
+
+def _chunks(total: int, size: int) -> Iterator[tuple[int, int]]:
+    for start in range(0, total, size):
+        yield start, min(total, start + size)
+
+
+def _share_at_least(stat_star: np.ndarray, stat: np.ndarray) -> np.ndarray:
+    """Bootstrap p: share of replicates (last axis) with statistic ≥ the observed one."""
+    return (stat_star >= stat[..., None]).mean(axis=-1)
+
+
+def _safe_ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+
+
+def _batched_wald(d: np.ndarray, S: np.ndarray) -> np.ndarray:
+    """dᵦᵀ Sᵦ⁻¹ dᵦ for a batch (… × q and … × q × q), by batched solves (pseudo-inverse if singular)."""
+    try:
+        x = np.linalg.solve(S, d[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        x = (np.linalg.pinv(S) @ d[..., None])[..., 0]
+    return np.einsum("...i,...i->...", d, x)
+
+
+def _full_from_pairs(Mp: np.ndarray, cols: tuple[int, ...], k: int) -> np.ndarray:
+    """Symmetric q × q blocks (… × q × q) from pair entries over the columns ``cols``."""
+    q = len(cols)
+    jj, ll = np.triu_indices(q)
+    out = np.empty(Mp.shape[:-1] + (q, q))
+    out[..., jj, ll] = Mp
+    out[..., ll, jj] = Mp
+    return out
+
+
+def _pairs_within(cols: tuple[int, ...], k: int) -> np.ndarray:
+    """Indices in the k-column upper-triangle pair list of the pairs among ``cols`` (their own triu order)."""
+    jj, ll = _pair_index(k)
+    lookup = {(int(a), int(b)): i for i, (a, b) in enumerate(zip(jj, ll))}
+    cj, cl = np.triu_indices(len(cols))
+    return np.array([lookup[(cols[a], cols[b])] for a, b in zip(cj, cl)], dtype=np.intp)
+
+
+# ---- the fit -----------------------------------------------------------------------------
+class BootstrapFit(Fit):
+    """Answers for any L from wild-bootstrap draws of β* and of its HC covariance.
+
+    ``delta`` (B × k) holds β* − β̂ and ``meat`` (B × k(k+1)/2) the pair entries M of the
+    unrestricted bootstrap; ``null`` maps a tuple of product-term columns to the
+    null-imposed (β*_S, M_SS) draws of the restricted bootstrap.
+    """
+
+    kind = "bootstrap"
+
+    def __init__(self, backend_id: str, label: str, term_names: tuple[str, ...], params: np.ndarray,
+                 cov: np.ndarray, delta: np.ndarray, meat: np.ndarray,
+                 null: dict[tuple[int, ...], tuple[np.ndarray, np.ndarray]], interval_label: str,
+                 **kwargs: Any) -> None:
+        super().__init__(backend_id, label, term_names, params, **kwargs)
+        self.cov = np.asarray(cov, dtype=float)
+        self.delta = delta
+        self.meat = meat
+        self.null = null
+        self.interval_label = interval_label
+        for arr in (self.cov, self.delta, self.meat):
+            arr.setflags(write=False)
+        k = self.params.size
+        jj, ll = _pair_index(k)
+        self._jj, self._ll = jj, ll
+        self._mult = np.where(jj == ll, 1.0, 2.0)
+        self.null_p = {cols: self._null_p(cols) for cols in null}
+
+    @property
+    def replications(self) -> int:
+        return int(self.delta.shape[0])
+
+    # ---- draws for rows of L -------------------------------------------------------------
+    def _var_star(self, L: np.ndarray) -> np.ndarray:
+        """se*(L)² for every row and replicate (m × B)."""
+        coef = L[:, self._jj] * L[:, self._ll] * self._mult
+        return coef @ self.meat.T
+
+    def t_star(self, L: np.ndarray) -> np.ndarray:
+        """Unrestricted bootstrap t* = (Lβ* − Lβ̂)/se*(L), shape m × B."""
+        L = _as_rows(L, self.params.size)
+        return _safe_ratio(L @ self.delta.T, np.sqrt(np.maximum(self._var_star(L), 0.0)))
+
+    def null_t_star(self, column: int) -> np.ndarray:
+        """Null-imposed bootstrap t* of the product-term coefficient in ``column`` (length B)."""
+        b, m = self.null[(column,)]
+        return _safe_ratio(b[:, 0], np.sqrt(m[:, 0]))
+
+    def _null_wald(self, cols: tuple[int, ...]) -> tuple[float, np.ndarray]:
+        """Observed HC Wald statistic of β_S = 0 and its null-imposed bootstrap draws W*."""
+        b, m = self.null[cols]
+        beta = self.params[list(cols)]
+        V = self.cov[np.ix_(cols, cols)]
+        W = float(_batched_wald(beta, V))
+        W_star = _batched_wald(b, _full_from_pairs(m, cols, self.params.size))
+        return W, W_star
+
+    def _null_p(self, cols: tuple[int, ...]) -> float:
+        W, W_star = self._null_wald(cols)
+        return float(_share_at_least(W_star, np.array(W)))
+
+    def _product_column(self, row: np.ndarray) -> int | None:
+        """The product-term column a row of L picks out (a unit row), else None."""
+        nz = np.flatnonzero(row)
+        if nz.size == 1 and row[nz[0]] == 1.0 and (int(nz[0]),) in self.null:
+            return int(nz[0])
+        return None
+
+    # ---- the Fit interface -----------------------------------------------------------------
+    def estimate(self, L: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
+        """L·β̂, HC se, bootstrap-t interval (sup-t band when ``simultaneous``) and bootstrap p.
+
+        Rows equal to a product-term unit row get the null-imposed p (Davidson & Flachaire 2008).
+        """
+        L = _as_rows(L, self.params.size)
+        m = L.shape[0]
+        est = L @ self.params
+        se = np.sqrt(np.maximum(quadratic_forms(L, self.cov), 0.0))
+        t = _safe_ratio(est, se)
+        q_lo, q_hi, p = np.empty(m), np.empty(m), np.empty(m)
+        sup = np.zeros(self.replications)
+        step = max(1, ROW_CHUNK_ELEMENTS // max(1, self.replications))
+        for a, b in _chunks(m, step):
+            ts = self.t_star(L[a:b])
+            q_lo[a:b], q_hi[a:b] = np.quantile(ts, [alpha / 2, 1 - alpha / 2], axis=1, method="weibull")
+            p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
+            if simultaneous:
+                np.maximum(sup, np.abs(ts).max(axis=0), out=sup)
+        for i in range(m):  # at most q product rows are looked up, not a loop over replicates
+            col = self._product_column(L[i])
+            if col is not None:
+                p[i] = self.null_p[(col,)]
+        if simultaneous and m > 1:
+            c = float(np.quantile(sup, 1 - alpha, method="weibull"))
+            lower, upper, label = est - c * se, est + c * se, f"{self.interval_label}, sup-t band"
+        else:
+            lower, upper, label = est - q_hi * se, est - q_lo * se, self.interval_label
+        return Estimates(est, se, lower, upper, p, 1 - alpha, label, {"statistic": t})
+
+    def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
+        """Bootstrap HC Wald test of L·β = 0: null imposed when L picks out the product terms,
+        unrestricted (W* centred at β̂) otherwise; p = share of W* ≥ W. Statistic reported as W/q."""
+        L = _as_rows(L, self.params.size)
+        q = L.shape[0]
+        cols = [self._product_column(row) for row in L]
+        key = tuple(sorted(c for c in cols if c is not None)) if None not in cols else None
+        if key is not None and len(set(key)) == q and (key in self.null):
+            W, W_star = self._null_wald(key)
+            method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
+        else:
+            r = L @ self.params
+            W = float(_batched_wald(r, L @ self.cov @ L.T))
+            d = self.delta @ L.T  # B × q
+            S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
+            W_star = _batched_wald(d, S)
+            method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
+        p = float(_share_at_least(W_star, np.array(W)))
+        return JointTest(W / q, q, None, p, method, bool(p < alpha))
+
+    def _meat_full(self) -> np.ndarray:
+        """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""
+        return _full_from_pairs(self.meat, tuple(range(self.params.size)), self.params.size)
+
+
+# ---- the back-end --------------------------------------------------------------------------
+class WildBootstrapBackend:
+    """Wild bootstrap with an HC-type t statistic; null imposed for the product term.
+
+    Parameters
+    ----------
+    replications : int, default=9999
+        Bootstrap replicates B (B + 1 a multiple of 100 keeps α(B + 1) whole for common α).
+    weights : {"rademacher", "mammen", "webb"}, default="rademacher"
+        Auxiliary weight distribution (Liu 1988; Mammen 1993; Webb 2014).
+    se : str, default="hc3"
+        HC estimator of the t statistic (hc0 … hc5).
+    transform : {"hc2", "hc3", "none"}, default="hc2"
+        Rescaling of the base residuals: ẽᵢ/√(1−hᵢ), ẽᵢ/(1−hᵢ) or none.
+    """
+
+    id = "wild"
+
+    def __init__(self, *, replications: int = 9999, weights: str = "rademacher", se: str = "hc3",
+                 transform: str = "hc2") -> None:
+        if isinstance(replications, bool) or not isinstance(replications, (int, np.integer)) \
+                or not 99 <= replications <= 1_000_000:
+            raise option_error("replications", "a whole number from 99 to 1000000", replications)
+        if not isinstance(weights, str) or weights.lower() not in WEIGHT_KINDS:
+            raise option_error("weights", f"one of {', '.join(WEIGHT_KINDS)}", weights)
+        if not isinstance(se, str) or se.lower() not in HC_WEIGHTS:
+            raise option_error("se", f"one of {', '.join(HC_WEIGHTS)}", se)
+        if not isinstance(transform, str) or transform.lower() not in TRANSFORMS:
+            raise option_error("transform", f"one of {', '.join(TRANSFORMS)}", transform)
+        self.replications = int(replications)
+        self.weights = weights.lower()
+        self.se = se.lower()
+        self.transform = transform.lower()
+        self.label = f"Wild bootstrap ({self.se.upper()}-t, {WEIGHT_LABELS[self.weights]})"
+
+    # ---- shared pieces -------------------------------------------------------------------
+    def _omega(self, design: "Design") -> tuple[np.ndarray, np.ndarray, np.ndarray] | str:
+        """(A, ω, h) of the full model, or the reason the HC weights are undefined."""
+        Q, R = design.qr
+        n, k = Q.shape
+        h = leverages(Q)
+        ones = leverage_one_rows(h)
+        if ones.size and self.se in NEEDS_LEVERAGE_BELOW_ONE:
+            rows = np.asarray(design.data.frame.index, dtype=int)[ones] + 1
+            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
+            return (f"{self.se.upper()} is undefined: data row(s) {shown} have leverage 1 (each alone determines "
+                    f"a coefficient); drop them or set wild.se=hc0.")
+        A = r_inverse(R) @ Q.T
+        return A, hc_weights(self.se, h, n, k), h
+
+    def _null_sets(self, design: "Design") -> list[tuple[int, ...]]:
+        cols = tuple(int(c) for c in design.interaction_columns)
+        sets = [(c,) for c in cols]
+        return sets + [cols] if len(cols) > 1 else sets
+
+    def _restricted(self, X: np.ndarray, cols: tuple[int, ...], Y: np.ndarray) -> np.ndarray:
+        """Transformed residuals of Y (n or n × D) on X without the columns ``cols``."""
+        keep = [j for j in range(X.shape[1]) if j not in cols]
+        Q0, _ = np.linalg.qr(X[:, keep], mode="reduced")
+        resid = Y - Q0 @ (Q0.T @ Y)
+        f = residual_factor(self.transform, leverages(Q0))
+        return resid * (f if resid.ndim == 1 else f[:, None])
+
+    # ---- fit ---------------------------------------------------------------------------------
+    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """Unrestricted and null-imposed wild bootstraps with the same weight draws."""
+        t0 = time.perf_counter()
+        got = self._omega(design)
+        if isinstance(got, str):
+            return Unavailable(self.id, self.label, got)
+        A, omega, h = got
+        X, y = design.X, design.y
+        n, k = X.shape
+        Q, R = design.qr
+        qty = Q.T @ y
+        beta = linalg.solve_triangular(R, qty, check_finite=False)
+        resid = y - Q @ qty
+        cov = (A * (omega * resid**2)) @ A.T
+        warnings: list[str] = []
+        enum = _enumerate(self.weights, n, self.replications)
+        B = 2**n if enum else self.replications
+        if enum:
+            warnings.append(f"With {n} rows there are only {B} distinct Rademacher sign patterns; all were "
+                            f"enumerated instead of drawing {self.replications} replicates.")
+        null_sets = self._null_sets(design)
+        sources = [_Source(resid * residual_factor(self.transform, h), np.arange(k * (k + 1) // 2))]
+        for cols in null_sets:
+            sources.append(_Source(self._restricted(X, cols, y), _pairs_within(cols, k)))
+        width = n if enum else _weight_width(self.weights, n)
+        kernel = _Kernel(X, A, omega, sources, width, unit_square=self.weights == "rademacher")
+        delta = np.empty((B, k))
+        meat = np.empty((B, k * (k + 1) // 2))
+        null = {cols: (np.empty((B, len(cols))), np.empty((B, len(s.pairs))))
+                for cols, s in zip(null_sets, sources[1:])}
+        rng = np.random.default_rng(seed)
+        patterns = sign_patterns(n) if enum else None
+        step = max(1, CHUNK_ELEMENTS // width)
+        with _progress(progress and n * B * len(sources) >= PROGRESS_MIN_WORK, B, self.label) as advance:
+            for a, b in _chunks(B, step):
+                V = patterns[a:b] if patterns is not None else _weight_chunk(self.weights, n, b - a, rng)
+                results = kernel.run(V)
+                delta[a:b], meat[a:b] = results[0]
+                for cols, (D, M) in zip(null_sets, results[1:]):
+                    null[cols][0][a:b] = D[:, list(cols)]
+                    null[cols][1][a:b] = M
+                advance(b - a)
+        interval = f"wild bootstrap-t ({WEIGHT_LABELS[self.weights]}, B = {B})"
+        reliable = True
+        alpha = float(design.spec.alpha)
+        if enum and 2.0 / B >= alpha:
+            reliable = False
+            warnings.append(f"The smallest attainable bootstrap p with {B} sign patterns is {2.0 / B:.3g}, not below "
+                            f"alpha = {alpha:g}; the wild bootstrap cannot reject here (more rows are needed).")
+        fit = BootstrapFit(self.id, self.label, design.term_names, beta, cov, delta, meat, null, interval,
+                           warnings=tuple(warnings), reliable=reliable, se_label=f"{self.se.upper()} (wild bootstrap-t)")
+        all_cols = null_sets[-1]
+        fit.extras.update({
+            "replications": B, "replications_requested": self.replications, "weights": self.weights,
+            "residual_transform": self.transform, "se": self.se,
+            "sign_patterns": B if enum else None, "enumerated": enum,
+            "interaction_p": fit.null_p[all_cols], "seconds": time.perf_counter() - t0,
+            "kernel": "expanded" if kernel.expanded[0] else "direct",
+        })
+        return fit
+
+    # ---- calibration -------------------------------------------------------------------------
+    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int) -> np.ndarray:
+        """Whether the null-imposed wild bootstrap test of the product term(s) rejects at ``alpha``
+        for each column of Y (n × D outcomes on design.X): p < alpha with p from :meth:`null_p_many`."""
+        if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+            raise option_error("alpha", "a number in (0, 1)", alpha)
+        return self.null_p_many(design, Y, seed=seed) < alpha
+
+    def null_p_many(self, design: "Design", Y: np.ndarray, *, seed: int) -> np.ndarray:
+        """Null-imposed wild bootstrap p of the product term(s) for each column of Y (n × D).
+
+        Dataset d uses replicates d·B … (d+1)·B − 1 of the weight stream of ``seed`` (so the
+        first dataset gets the draws a fit with the same seed uses); the HC Wald statistic
+        (t² for one product term) is compared with its bootstrap draws, in chunks of datasets.
+        """
+        Y = np.asarray(Y, dtype=float)
+        n, k = design.X.shape
+        if Y.ndim != 2 or Y.shape[0] != n:
+            raise InputError(f"The simulated outcomes must be an array of shape ({n}, D), one column per dataset; "
+                             f"got shape {Y.shape}.")
+        if not np.all(np.isfinite(Y)):
+            raise InputError("The simulated outcomes contain NaN or infinite values; simulate finite outcomes.")
+        got = self._omega(design)
+        if isinstance(got, str):
+            raise InputError(got)
+        A, omega, _ = got
+        X = design.X
+        cols = tuple(int(c) for c in design.interaction_columns)
+        q = len(cols)
+        pairs = _pairs_within(cols, k)
+        jj, ll = _pair_index(k)
+        P = A[jj[pairs]] * A[ll[pairs]] * omega  # m × n
+        m = P.shape[0]
+        # Observed HC Wald (t² for one term) of every dataset.
+        Q, _ = design.qr
+        E = Y - Q @ (Q.T @ Y)
+        b_obs = A[list(cols)] @ Y  # q × D
+        W_obs = _batched_wald(b_obs.T, _full_from_pairs((P @ E**2).T, cols, k))
+        Et = self._restricted(X, cols, Y)  # n × D transformed restricted residuals
+        enum = _enumerate(self.weights, n, self.replications)
+        B = 2**n if enum else self.replications
+        width = n if enum else _weight_width(self.weights, n)
+        base = np.zeros((k + k * m, width))
+        base[:k, :n] = A
+        base[k:, :n] = (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)
+        T = np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
+        patterns = sign_patterns(n) if enum else None
+        rng = np.random.default_rng(seed)
+        Dn = Y.shape[1]
+        p_values = np.empty(Dn)
+        step = max(1, CHUNK_ELEMENTS // (B * width))
+        for a, b in _chunks(Dn, step):
+            e = Et[:, a:b].T  # c × n
+            F = np.zeros((b - a, width, k + k * m))
+            F[:, :n, :] = (base[None, :, :n] * e[:, None, :]).transpose(0, 2, 1)
+            if patterns is not None:
+                V = np.broadcast_to(patterns, (b - a,) + patterns.shape)
+            else:
+                V = _weight_chunk(self.weights, n, (b - a) * B, rng).reshape(b - a, B, width)
+            G = V @ F  # c × B × (k + k·m)
+            D = G[..., :k]
+            C = G[..., k:].reshape(b - a, B, k, m)
+            cross = np.einsum("dbj,dbjp->dbp", D, C)
+            quad = (D[..., :, None] * D[..., None, :]).reshape(b - a, B, k * k) @ T.T
+            if self.weights == "rademacher":
+                sq = ((P[None] * e[:, None, :] ** 2).sum(axis=2))[:, None, :]
+            else:
+                sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
+            M = sq - 2.0 * cross + quad
+            W_star = _batched_wald(D[..., list(cols)], _full_from_pairs(M, cols, k))
+            p_values[a:b] = _share_at_least(W_star, W_obs[a:b])
+        return p_values
+
+
+class _progress:
+    """A rich progress bar over replicates when ``show``; a no-op otherwise."""
+
+    def __init__(self, show: bool, total: int, label: str) -> None:
+        self.show, self.total, self.label = show, total, label
+        self._bar: Any = None
+
+    def __enter__(self) -> Any:
+        if not self.show:
+            return lambda _n: None
+        from rich.progress import Progress  # noqa: PLC0415  (only for long runs)
+
+        self._bar = Progress(transient=True)
+        self._bar.start()
+        task = self._bar.add_task(self.label, total=self.total)
+        return lambda n: self._bar.advance(task, n)
+
+    def __exit__(self, *exc: object) -> None:
+        if self._bar is not None:
+            self._bar.stop()
