@@ -52,13 +52,17 @@ CAUTIONS = (
 # ---- escaping -----------------------------------------------------------------------
 _LATEX = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_", "{": r"\{",
           "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}", "<": r"\textless{}",
-          ">": r"\textgreater{}", "|": r"\textbar{}", "\n": " ", "\r": " "}
+          ">": r"\textgreater{}", "|": r"\textbar{}", "[": "{[}", "]": "{]}", "\n": " ", "\r": " "}
 _LATEX_UNICODE = {"–": "--", "—": "---", "±": r"$\pm$", "·": r"$\cdot$", "²": r"$^2$", "≥": r"$\geq$",
                   "≤": r"$\leq$", "α": r"$\alpha$", "√": r"$\surd$", "−": "-"}
 
 
 def latex_escape(text: Any) -> str:
-    """Escape a string for LaTeX text mode (every special character, one pass)."""
+    """Escape a string for LaTeX text mode (every special character, one pass).
+
+    Brackets are braced so that a cell starting with '[' after a row's \\\\ is not read as
+    its optional argument.
+    """
     return "".join(_LATEX.get(ch, _LATEX_UNICODE.get(ch, ch)) for ch in str(text))
 
 
@@ -495,7 +499,7 @@ def render_markdown(ctx: Mapping[str, Any]) -> str:
     m, s, lv = ctx["model"], ctx["summary"], ctx["level_pct"]
     e = md_escape
     lines = ["# Sensitivity appendix", "",
-             f"Model `{m['formula'].replace('`', '')}`: focal predictor {e(m['focal'])}, moderator(s) "
+             f"Model {e(m['formula'])}: focal predictor {e(m['focal'])}, moderator(s) "
              f"{e(', '.join(m['moderators']))}; {m['n_obs']} rows used, {m['n_dropped']} dropped; alpha = {m['alpha']:g}; "
              f"primary back-end {e(s['primary'])}; coefficients on the {e(m['scale'])}.", "",
              "## Robustness summary", "", e(s["sentence"]), "",
