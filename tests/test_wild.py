@@ -202,9 +202,11 @@ def test_rademacher_patterns_enumerated_for_few_rows() -> None:
     j = design.interaction_columns[0]
     W, W_star = _reference_null_stats(design.X, design.y, [j], V)
     assert fit.extras["interaction_p"] == pytest.approx(np.mean(W_star >= W), abs=1e-12)
-    # Enumeration is exact: no seed dependence.
+    # Enumeration is exact: no seed dependence; the calibration path enumerates the same patterns.
     again = WildBootstrapBackend(replications=999).fit(design, seed=999)
     assert again.extras["interaction_p"] == fit.extras["interaction_p"]
+    many = WildBootstrapBackend(replications=999).null_p_many(design, design.y[:, None], seed=5)
+    assert many[0] == pytest.approx(fit.extras["interaction_p"], abs=1e-12)
 
 
 def test_too_few_patterns_to_reject_is_flagged() -> None:
@@ -422,3 +424,13 @@ def test_cli_bad_wild_option_is_one_line(tmp_path, capsys) -> None:
                      "--moderator", DEMO_MODERATOR, "--backends", "wild", "--set", "wild.weights=gauss", "--quiet"])
     err = capsys.readouterr().err.strip()
     assert code == 2 and "'weights'" in err and "\n" not in err
+
+
+def test_null_p_many_same_with_replicate_chunks(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Chunking over replicates inside one dataset (large n × B) must not change the p-values.
+    design = _design()
+    Y = np.column_stack([design.y, design.y * 0.5 + 1])
+    be = WildBootstrapBackend(replications=199, weights="webb")
+    whole = be.null_p_many(design, Y, seed=3)
+    monkeypatch.setattr(wild_module, "CHUNK_ELEMENTS", 30 * 50)  # 50 replicates of 30 rows per chunk
+    np.testing.assert_array_equal(be.null_p_many(design, Y, seed=3), whole)

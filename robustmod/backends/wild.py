@@ -97,9 +97,9 @@ def draw_weights(kind: str, n: int, replications: int, rng: np.random.Generator)
     return _weight_chunk(kind, n, replications, rng)[:, :n]
 
 
-def sign_patterns(n: int) -> np.ndarray:
-    """All 2ⁿ Rademacher sign patterns (2ⁿ × n); row b holds the bits of b as signs."""
-    b = np.arange(2**n, dtype=np.int64)[:, None]
+def sign_patterns(n: int, start: int = 0, stop: int | None = None) -> np.ndarray:
+    """Rademacher sign patterns number start … stop − 1 of all 2ⁿ (default all); row b holds the bits of b as signs."""
+    b = np.arange(start, 2**n if stop is None else stop, dtype=np.int64)[:, None]
     return 1.0 - 2.0 * ((b >> np.arange(n, dtype=np.int64)) & 1).astype(np.float64)
 
 
@@ -223,9 +223,8 @@ def _batched_wald(d: np.ndarray, S: np.ndarray) -> np.ndarray:
     return np.einsum("...i,...i->...", d, x)
 
 
-def _full_from_pairs(Mp: np.ndarray, cols: tuple[int, ...], k: int) -> np.ndarray:
-    """Symmetric q × q blocks (… × q × q) from pair entries over the columns ``cols``."""
-    q = len(cols)
+def _full_from_pairs(Mp: np.ndarray, q: int) -> np.ndarray:
+    """Symmetric q × q blocks (… × q × q) from their upper-triangle entries (… × q(q+1)/2)."""
     jj, ll = np.triu_indices(q)
     out = np.empty(Mp.shape[:-1] + (q, q))
     out[..., jj, ll] = Mp
@@ -296,19 +295,19 @@ class BootstrapFit(Fit):
         beta = self.params[list(cols)]
         V = self.cov[np.ix_(cols, cols)]
         W = float(_batched_wald(beta, V))
-        W_star = _batched_wald(b, _full_from_pairs(m, cols, self.params.size))
+        W_star = _batched_wald(b, _full_from_pairs(m, len(cols)))
         return W, W_star
 
     def _null_p(self, cols: tuple[int, ...]) -> float:
         W, W_star = self._null_wald(cols)
         return float(_share_at_least(W_star, np.array(W)))
 
-    def _product_column(self, row: np.ndarray) -> int | None:
-        """The product-term column a row of L picks out (a unit row), else None."""
-        nz = np.flatnonzero(row)
-        if nz.size == 1 and row[nz[0]] == 1.0 and (int(nz[0]),) in self.null:
-            return int(nz[0])
-        return None
+    def _product_columns(self, L: np.ndarray) -> np.ndarray:
+        """For each row of L, the product-term column it picks out as a unit row, else −1."""
+        col = np.argmax(np.abs(L), axis=1)
+        unit = (np.count_nonzero(L, axis=1) == 1) & (L[np.arange(L.shape[0]), col] == 1.0)
+        product = np.isin(col, [c for (c, *rest) in self.null if not rest])
+        return np.where(unit & product, col, -1)
 
     # ---- the Fit interface -----------------------------------------------------------------
     def estimate(self, L: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
@@ -330,10 +329,9 @@ class BootstrapFit(Fit):
             p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
             if simultaneous:
                 np.maximum(sup, np.abs(ts).max(axis=0), out=sup)
-        for i in range(m):  # at most q product rows are looked up, not a loop over replicates
-            col = self._product_column(L[i])
-            if col is not None:
-                p[i] = self.null_p[(col,)]
+        cols = self._product_columns(L)
+        for col in np.unique(cols[cols >= 0]):  # one lookup per product term
+            p[cols == col] = self.null_p[(int(col),)]
         if simultaneous and m > 1:
             c = float(np.quantile(sup, 1 - alpha, method="weibull"))
             lower, upper, label = est - c * se, est + c * se, f"{self.interval_label}, sup-t band"
@@ -346,9 +344,9 @@ class BootstrapFit(Fit):
         unrestricted (W* centred at β̂) otherwise; p = share of W* ≥ W. Statistic reported as W/q."""
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
-        cols = [self._product_column(row) for row in L]
-        key = tuple(sorted(c for c in cols if c is not None)) if None not in cols else None
-        if key is not None and len(set(key)) == q and (key in self.null):
+        cols = self._product_columns(L)
+        key = tuple(sorted(int(c) for c in cols))
+        if np.all(cols >= 0) and len(set(key)) == q and key in self.null:
             W, W_star = self._null_wald(key)
             method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
         else:
@@ -363,7 +361,7 @@ class BootstrapFit(Fit):
 
     def _meat_full(self) -> np.ndarray:
         """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""
-        return _full_from_pairs(self.meat, tuple(range(self.params.size)), self.params.size)
+        return _full_from_pairs(self.meat, self.params.size)
 
 
 # ---- the back-end --------------------------------------------------------------------------
@@ -461,11 +459,10 @@ class WildBootstrapBackend:
         null = {cols: (np.empty((B, len(cols))), np.empty((B, len(s.pairs))))
                 for cols, s in zip(null_sets, sources[1:])}
         rng = np.random.default_rng(seed)
-        patterns = sign_patterns(n) if enum else None
         step = max(1, CHUNK_ELEMENTS // width)
         with _progress(progress and n * B * len(sources) >= PROGRESS_MIN_WORK, B, self.label) as advance:
             for a, b in _chunks(B, step):
-                V = patterns[a:b] if patterns is not None else _weight_chunk(self.weights, n, b - a, rng)
+                V = sign_patterns(n, a, b) if enum else _weight_chunk(self.weights, n, b - a, rng)
                 results = kernel.run(V)
                 delta[a:b], meat[a:b] = results[0]
                 for cols, (D, M) in zip(null_sets, results[1:]):
@@ -528,7 +525,7 @@ class WildBootstrapBackend:
         Q, _ = design.qr
         E = Y - Q @ (Q.T @ Y)
         b_obs = A[list(cols)] @ Y  # q × D
-        W_obs = _batched_wald(b_obs.T, _full_from_pairs((P @ E**2).T, cols, k))
+        W_obs = _batched_wald(b_obs.T, _full_from_pairs((P @ E**2).T, q))
         Et = self._restricted(X, cols, Y)  # n × D transformed restricted residuals
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
@@ -537,31 +534,37 @@ class WildBootstrapBackend:
         base[:k, :n] = A
         base[k:, :n] = (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)
         T = np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
-        patterns = sign_patterns(n) if enum else None
         rng = np.random.default_rng(seed)
         Dn = Y.shape[1]
-        p_values = np.empty(Dn)
-        step = max(1, CHUNK_ELEMENTS // (B * width))
-        for a, b in _chunks(Dn, step):
+        hits = np.zeros(Dn)
+        # Several whole datasets per chunk when B replicates fit, else one dataset in replicate
+        # chunks; both consume the weight stream dataset by dataset, replicate by replicate.
+        rep_step = max(1, CHUNK_ELEMENTS // width)
+        data_step = max(1, CHUNK_ELEMENTS // (B * width)) if B <= rep_step else 1
+        for a, b in _chunks(Dn, data_step):
+            c = b - a
             e = Et[:, a:b].T  # c × n
-            F = np.zeros((b - a, width, k + k * m))
+            F = np.zeros((c, width, k + k * m))
             F[:, :n, :] = (base[None, :, :n] * e[:, None, :]).transpose(0, 2, 1)
-            if patterns is not None:
-                V = np.broadcast_to(patterns, (b - a,) + patterns.shape)
-            else:
-                V = _weight_chunk(self.weights, n, (b - a) * B, rng).reshape(b - a, B, width)
-            G = V @ F  # c × B × (k + k·m)
-            D = G[..., :k]
-            C = G[..., k:].reshape(b - a, B, k, m)
-            cross = np.einsum("dbj,dbjp->dbp", D, C)
-            quad = (D[..., :, None] * D[..., None, :]).reshape(b - a, B, k * k) @ T.T
-            if self.weights == "rademacher":
-                sq = ((P[None] * e[:, None, :] ** 2).sum(axis=2))[:, None, :]
-            else:
-                sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
-            M = sq - 2.0 * cross + quad
-            W_star = _batched_wald(D[..., list(cols)], _full_from_pairs(M, cols, k))
-            p_values[a:b] = _share_at_least(W_star, W_obs[a:b])
+            sq_const = (P[None] * e[:, None, :] ** 2).sum(axis=2)[:, None, :]  # c × 1 × m
+            for r0, r1 in _chunks(B, B if c > 1 else rep_step):
+                r = r1 - r0
+                if enum:
+                    V = np.broadcast_to(sign_patterns(n, r0, r1), (c, r, n))
+                else:
+                    V = _weight_chunk(self.weights, n, c * r, rng).reshape(c, r, width)
+                G = V @ F  # c × r × (k + k·m)
+                D = G[..., :k]
+                C = G[..., k:].reshape(c, r, k, m)
+                cross = np.einsum("dbj,dbjp->dbp", D, C)
+                quad = (D[..., :, None] * D[..., None, :]).reshape(c, r, k * k) @ T.T
+                if self.weights == "rademacher":
+                    sq = sq_const
+                else:
+                    sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
+                W_star = _batched_wald(D[..., list(cols)], _full_from_pairs(sq - 2.0 * cross + quad, q))
+                hits[a:b] += (W_star >= W_obs[a:b, None]).sum(axis=1)
+        p_values = hits / B
         return p_values
 
 
