@@ -233,11 +233,14 @@ def _full_from_pairs(Mp: np.ndarray, q: int) -> np.ndarray:
 
 
 def _pairs_within(cols: tuple[int, ...], k: int) -> np.ndarray:
-    """Indices in the k-column upper-triangle pair list of the pairs among ``cols`` (their own triu order)."""
-    jj, ll = _pair_index(k)
-    lookup = {(int(a), int(b)): i for i, (a, b) in enumerate(zip(jj, ll))}
-    cj, cl = np.triu_indices(len(cols))
-    return np.array([lookup[(cols[a], cols[b])] for a, b in zip(cj, cl)], dtype=np.intp)
+    """Positions in the k-column upper-triangle pair list of the pairs among ``cols`` (in their own triu order).
+
+    Pair (a, b), a ≤ b, sits at a·(2k − a + 1)/2 + (b − a) in ``np.triu_indices(k)`` order.
+    """
+    c = np.asarray(cols, dtype=np.intp)
+    i, j = np.triu_indices(c.size)
+    a, b = np.minimum(c[i], c[j]), np.maximum(c[i], c[j])
+    return a * (2 * k - a + 1) // 2 + (b - a)
 
 
 # ---- the fit -----------------------------------------------------------------------------
@@ -378,6 +381,16 @@ class WildBootstrapBackend:
         HC estimator of the t statistic (hc0 … hc5).
     transform : {"hc2", "hc3", "none"}, default="hc2"
         Rescaling of the base residuals: ẽᵢ/√(1−hᵢ), ẽᵢ/(1−hᵢ) or none.
+
+    Examples
+    --------
+    >>> from robustmod import ModelSpec, build_design
+    >>> from robustmod.demo import demo_data
+    >>> spec = ModelSpec(formula="grain_yield ~ fertiliser * soil_moisture", focal="fertiliser",
+    ...                  moderators=("soil_moisture",))
+    >>> fit = WildBootstrapBackend(replications=999).fit(build_design(demo_data(), spec), seed=1)
+    >>> fit.kind, fit.extras["replications"]
+    ('bootstrap', 999)
     """
 
     id = "wild"
