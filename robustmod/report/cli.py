@@ -22,9 +22,25 @@ DEMO_CALIBRATION = 100
 DEMO_OPTIONS: dict[str, dict[str, Any]] = {"bayes": {"chains": 2, "draws": 500, "tune": 500}}
 
 
-def _command_line(argv: list[str] | None = None) -> str:
-    args = sys.argv[1:] if argv is None else argv
-    return " ".join(["robustmod", *(shlex.quote(a) for a in args)])
+def _command_line(args: argparse.Namespace) -> str:
+    """The command as parsed (options in a fixed order), for provenance.json."""
+    parts = ["robustmod", str(args.command)]
+    values = {k: v for k, v in vars(args).items() if k not in ("func", "command", "debug")}
+    if values.get("data"):
+        parts.append(str(values.pop("data")))
+    values.pop("data", None)
+    for key, value in values.items():
+        flag = "--" + key.replace("_", "-")
+        if value is None or value is False or value == []:
+            continue
+        if value is True:
+            parts.append(flag)
+        elif isinstance(value, list):
+            for v in value:
+                parts += [flag, str(v)]
+        else:
+            parts += [flag, str(value)]
+    return " ".join(shlex.quote(p) for p in parts)
 
 
 def _progress(args: argparse.Namespace) -> bool:
@@ -75,7 +91,7 @@ def cmd_appendix(args: argparse.Namespace) -> int:
                          "pass --force to replace it or choose another --out.")
     _say(args, f"fitting {data} …")
     comparison = compare(data, **kw)
-    path = write_appendix(comparison, out, force=force, command_line=_command_line(),
+    path = write_appendix(comparison, out, force=force, command_line=_command_line(args),
                           data_path=data, progress=_progress(args))
     _finish(args, path, comparison, time.perf_counter() - t0)
     return 0
@@ -127,7 +143,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     comparison = compare(demo_data(), DEMO_FORMULA, DEMO_FOCAL, DEMO_MODERATOR, backends=backends, primary="hc3",
                          seed=DEMO_SEED, options=options, calibration=calibration,
                          progress=_progress(args))
-    path = write_appendix(comparison, out, force=args.force, command_line=_command_line(), progress=_progress(args))
+    path = write_appendix(comparison, out, force=args.force, command_line=_command_line(args), progress=_progress(args))
     _finish(args, path, comparison, time.perf_counter() - t0)
     return 0
 
