@@ -288,9 +288,12 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
         for b, r in usable.items():
             if b == c.primary or preg is None or r.significance_region is None:
                 continue
-            pb, ob = preg["boundaries"], r.significance_region["boundaries"]
             obs = preg["observed_range"]
             span = (obs[1] - obs[0]) or 1.0
+            # Compare within the window every kind of fit searches (closed forms find far roots too).
+            lo_w, hi_w = obs[0] - effects.SEARCH_EXTENSION * span, obs[1] + effects.SEARCH_EXTENSION * span
+            pb = [v for v in preg["boundaries"] if lo_w <= v <= hi_w]
+            ob = [v for v in r.significance_region["boundaries"] if lo_w <= v <= hi_w]
             if len(pb) == len(ob):
                 shift = max((abs(x - y) for x, y in zip(pb, ob)), default=0.0)
                 boundary_shift[b] = {"max_shift": effects.num(shift), "share_of_observed_range": effects.num(shift / span),
