@@ -490,10 +490,17 @@ def heatmap_figure(comparison: "Comparison") -> "Figure":
         fig.colorbar(mesh, ax=ax, label=f"slope of {c.spec.focal}")
         if 0 < sig.sum() < sig.size:
             ax.contour(g1, g2, sig.T, levels=[0.5], colors="black", linewidths=1.4)
+        if sig.sum() < sig.size:  # hatch where the interval includes zero
+            ax.contourf(g1, g2, sig.T, levels=[-0.5, 0.5], colors="none", hatches=["///"])
+        d = c.design
+        ax.scatter(d.moderators[m1].values, d.moderators[m2].values, s=4, color="black", alpha=0.35, linewidths=0,
+                   label="observed rows")
+        ax.fill_between([], [], color="none", hatch="///", edgecolor="black", label=f"{100 * grid['level']:g}% interval includes 0")
         ax.set_xlabel(f"{m1} (raw scale)")
         ax.set_ylabel(f"{m2} (raw scale)")
         ax.grid(False)
-        ax.set_title(f"Slope of {c.spec.focal} over both moderators ({c.primary}); outlined: {100 * grid['level']:g}% interval excludes 0")
+        ax.set_title(f"Slope of {c.spec.focal} over {m1} and {m2} ({c.primary})")
+        fig.legend(loc="outside lower center", ncol=2)
         del plt
     return fig
 
@@ -524,8 +531,9 @@ FIGURES: list[tuple[str, str, str, Callable[["Comparison"], "Figure"]]] = [
     ("ranks", "Sampler rank plots",
      "Ranks of each chain's draws among all draws; flat histograms mean the chains agree.", rank_figure),
     ("heatmap", "Slope over two moderators",
-     "The conditional slope of the focal predictor over both moderators; the outline encloses where its "
-     "interval excludes zero.", heatmap_figure),
+     "The conditional slope of the focal predictor over both moderators (primary back-end); the black line "
+     "separates where its interval excludes zero from the hatched area where it includes zero; dots are the "
+     "observed rows, so empty corners are extrapolation.", heatmap_figure),
 ]
 
 

@@ -15,7 +15,7 @@ HTML = r"""<!DOCTYPE html>
 <style>
   :root { --ink: #1d1d1d; --muted: #5b5b5b; --rule: #d6d6d6; --ok: #00603f; --warn: #8a3b00; --band: #f4f6f8; }
   html { font-family: "DejaVu Sans", "Liberation Sans", Arial, sans-serif; color: var(--ink); line-height: 1.45; }
-  body { max-width: 62rem; margin: 0 auto; padding: 1.5rem 1.2rem 3rem; font-size: 15px; }
+  body { max-width: 70rem; margin: 0 auto; padding: 1.5rem 1.2rem 3rem; font-size: 15px; }
   h1 { font-size: 1.55rem; margin: 0 0 .3rem; }
   h2 { font-size: 1.2rem; margin: 2.2rem 0 .6rem; padding-bottom: .2rem; border-bottom: 2px solid var(--ink); }
   h3 { font-size: 1.02rem; margin: 1.4rem 0 .4rem; }
@@ -56,6 +56,7 @@ HTML = r"""<!DOCTYPE html>
 <header>
 <h1>Sensitivity appendix</h1>
 <p class="sub">Is the moderation of <code>{{ model.focal }}</code> by {% for m in model.moderators %}<code>{{ m }}</code>{% if not loop.last %} and {% endif %}{% endfor %} an artifact of how the residual variance is treated? Model <code>{{ model.formula }}</code>, {{ model.n_obs }} rows, {{ level_pct }} level.</p>
+{% if data_note %}<p class="note" id="data-note">{{ data_note }}</p>{% endif %}
 </header>
 
 <div class="verdict{% if summary.survives %} survives{% endif %}" id="verdict" data-survives="{{ 'true' if summary.survives else 'false' }}">
@@ -90,7 +91,7 @@ HTML = r"""<!DOCTYPE html>
 <section id="data">
 <h2>2. Data</h2>
 <dl class="kv">
-  <dt>Source</dt><dd>{% if data_name %}<code>{{ data_name }}</code>{% else %}a data frame passed from Python{% endif %}{% if data_sha %} (SHA-256 <span class="mono">{{ data_sha }}</span>){% endif %}</dd>
+  <dt>Source</dt><dd>{% if data_note %}{{ data_note }} {% endif %}{% if data_name %}<code>{{ data_name }}</code>{% elif not data_note %}a data frame passed from Python{% endif %}{% if data_sha %} (SHA-256 <span class="mono">{{ data_sha }}</span>){% endif %}</dd>
   <dt>Rows</dt><dd>{{ model.n_input }} read, {{ model.n_obs }} used, {{ model.n_dropped }} dropped for missing values (listwise)</dd>
 </dl>
 <table id="moderator-summary">
@@ -105,14 +106,13 @@ HTML = r"""<!DOCTYPE html>
 <h2>3. Comparison of back-ends</h2>
 <p>The product term {% for t in model.interaction_terms %}<code>{{ t }}</code>{% if not loop.last %} + {% endif %}{% endfor %} as each back-end estimates it. Intervals at {{ level_pct }}; coefficients on the {{ model.scale }}; region boundaries on the raw scale of the moderator. The primary back-end's row is shaded.</p>
 <table id="comparison-table">
-<thead><tr><th>back-end</th><th>method</th><th>estimate</th><th>SE</th><th>{{ level_pct }} interval</th><th>interval type</th><th>p (or P(&gt;0))</th><th>supported</th><th>significance-region boundaries ({{ region_moderator }})</th><th>share of observed rows in region</th></tr></thead>
+<thead><tr><th>back-end</th><th>method</th><th>estimate</th><th>SE</th><th>{{ level_pct }} interval</th><th>p (or P(&gt;0))</th><th>supported</th><th>significance-region boundaries ({{ region_moderator }})</th><th>share of observed rows in region</th></tr></thead>
 <tbody>
 {% for r in rows %}<tr class="{% if r.primary %}primary{% endif %}{% if not r.usable %} unusable{% endif %}" data-backend="{{ r.id }}">
-<td><code>{{ r.id }}</code></td><td>{{ r.label }}</td>
+<td><code>{{ r.id }}</code></td><td>{{ r.label }}{% if r.interval %}<br><span class="note">interval: {{ r.interval }}</span>{% endif %}</td>
 <td class="num" data-field="interaction-estimate" data-backend="{{ r.id }}" data-value="{{ r.estimate_json }}">{{ r.estimate }}</td>
 <td class="num" data-field="interaction-se" data-backend="{{ r.id }}" data-value="{{ r.se_json }}">{{ r.se }}</td>
 <td class="num" data-field="interaction-ci" data-backend="{{ r.id }}" data-value="{{ r.ci_json }}">{{ r.ci }}</td>
-<td>{{ r.interval }}</td>
 <td class="num" data-field="interaction-p" data-backend="{{ r.id }}" data-value="{{ r.p_json }}">{{ r.p }}</td>
 <td data-field="interaction-supported" data-backend="{{ r.id }}">{{ r.supported }}</td>
 <td>{{ r.boundaries }}</td><td class="num">{{ r.share }}</td></tr>

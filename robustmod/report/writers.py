@@ -475,7 +475,7 @@ def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str,
         "calibration": _calibration(res), "bayes": bayes, "bayes_missing": bayes_missing,
         "figures": [{"name": f.name, "title": f.title, "caption": f.caption, "skipped": f.skipped,
                      "src": _figure_src(f), "png": f.png, "pdf": f.pdf} for f in figures],
-        "cautions": CAUTIONS, "provenance": prov,
+        "cautions": CAUTIONS, "provenance": prov, "data_note": None,
     }
 
 
@@ -498,7 +498,7 @@ def render_markdown(ctx: Mapping[str, Any]) -> str:
     """The appendix as Markdown, for pasting into a manuscript's supplement."""
     m, s, lv = ctx["model"], ctx["summary"], ctx["level_pct"]
     e = md_escape
-    lines = ["# Sensitivity appendix", "",
+    lines = ["# Sensitivity appendix", ""] + ([e(ctx["data_note"]), ""] if ctx.get("data_note") else []) + [
              f"Model {e(m['formula'])}: focal predictor {e(m['focal'])}, moderator(s) "
              f"{e(', '.join(m['moderators']))}; {m['n_obs']} rows used, {m['n_dropped']} dropped; alpha = {m['alpha']:g}; "
              f"primary back-end {e(s['primary'])}; coefficients on the {e(m['scale'])}.", "",
@@ -616,7 +616,7 @@ def _check_target(out: Path, force: bool) -> None:
 
 def write_appendix(comparison: "Comparison", out_dir: str | Path, *, force: bool = False,
                    command_line: str | None = None, data_path: str | Path | None = None,
-                   progress: bool = False) -> Path:
+                   progress: bool = False, data_note: str | None = None) -> Path:
     """Write the appendix folder for ``comparison`` and return its path.
 
     Parameters
@@ -633,6 +633,8 @@ def write_appendix(comparison: "Comparison", out_dir: str | Path, *, force: bool
         The data file whose SHA-256 is recorded (default: the comparison's data source).
     progress : bool, default=False
         Print the steps on stderr.
+    data_note : str, optional
+        A line about the data shown at the top of the page (e.g. that they are invented).
     """
     from .figures import render_figures  # noqa: PLC0415  (matplotlib only when writing)
 
@@ -656,6 +658,7 @@ def write_appendix(comparison: "Comparison", out_dir: str | Path, *, force: bool
         step("drawing figures")
         figures = render_figures(comparison, tmp / "figures")
         ctx = context(comparison, res, prov, figures)
+        ctx["data_note"] = data_note
         step("writing pages and tables")
         (tmp / "results.json").write_text(_dump(res), encoding="utf-8")
         (tmp / "provenance.json").write_text(_dump(prov), encoding="utf-8")
