@@ -102,25 +102,30 @@ def _nearest(roots: list[float], a: float, b: float) -> float:
     return float(inside[0]) if inside else float(0.5 * (a + b))
 
 
-def _closed_form(fit: WaldFit, L0: np.ndarray, L1: np.ndarray, crit: float) -> tuple[list[float], list[list[float | None]]]:
+def _closed_form(fit: WaldFit, L0: np.ndarray, L1: np.ndarray, crit: float, centre: float = 0.0,
+                 span: float = 1.0) -> tuple[list[float], list[list[float | None]]]:
+    """Roots of (a + bw)² = c²·Var θ(w), solved in u = (w − centre)/span so that the three
+    coefficients have comparable magnitudes whatever the scale of w."""
+    L0 = L0 + centre * L1
+    L1 = span * L1
     a, b = float(L0 @ fit.params), float(L1 @ fit.params)
     V = fit.cov
     v00, v01, v11 = float(L0 @ V @ L0), float(L0 @ V @ L1), float(L1 @ V @ L1)
     c2 = crit * crit
     A, B, C = b * b - c2 * v11, 2 * (a * b - c2 * v01), a * a - c2 * v00
-    scale = max(abs(A), abs(B), abs(C), 1e-300)
-    if abs(A) <= 1e-14 * scale:  # linear: B w + C > 0
-        if abs(B) <= 1e-14 * scale:
+    back = lambda u: centre + span * u  # noqa: E731
+    if abs(A) <= 1e-12 * (b * b + c2 * v11):  # linear: B u + C > 0
+        if abs(B) <= 1e-12 * (abs(a * b) + c2 * abs(v01)) or B == 0:
             return [], ([[None, None]] if C > 0 else [])
-        r = -C / B
+        r = back(-C / B)
         return [r], ([[r, None]] if B > 0 else [[None, r]])
     disc = B * B - 4 * A * C
     if disc <= 0:
         return [], ([[None, None]] if A > 0 else [])
     sq = math.sqrt(disc)
-    # Numerically stable roots of A w² + B w + C.
+    # Numerically stable roots of A u² + B u + C.
     qv = -0.5 * (B + math.copysign(sq, B))
-    r1, r2 = sorted([qv / A, C / qv] if qv != 0 else [-B / (2 * A)] * 2)
+    r1, r2 = sorted(back(u) for u in ([qv / A, C / qv] if qv != 0 else [-B / (2 * A)] * 2))
     if A > 0:
         return [r1, r2], [[None, r1], [r2, None]]
     return [r1, r2], [[r1, r2]]
@@ -147,7 +152,7 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
     lin = design.slope_is_linear_in(moderator, fixed)
     if isinstance(fit, WaldFit) and lin is not None:
         crit = fit.critical_value(alpha, rank=2 if band == "simultaneous" else 1)
-        roots, intervals = _closed_form(fit, lin[0], lin[1], crit)
+        roots, intervals = _closed_form(fit, lin[0], lin[1], crit, 0.5 * (info.minimum + info.maximum), span or 1.0)
         method = "closed form (quadratic)"
     else:
         grid = np.linspace(search[0], search[1], GRID_POINTS)
