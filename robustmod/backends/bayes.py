@@ -47,8 +47,10 @@ NU_PRIOR = (2.0, 0.1)
 CONJUGATE_IG = (2.0, 1.0)
 #: Prior-scale multipliers of the sensitivity refits.
 SENSITIVITY_FACTORS = (0.5, 2.0)
-#: Draws and tuning steps per chain of the auxiliary (warm) refits are capped at this.
+#: Draws and tuning steps per chain of the auxiliary (warm) refits are capped at these; the
+#: refits start from the first fit's last draws, step size and mass matrix.
 AUX_DRAWS = 500
+AUX_TUNE = 200
 #: Sample the mean model through the QR factor of the standardised columns; keeps ESS per
 #: second higher when the product term is collinear with its components (validation/bench_bayes.py).
 USE_QR = True
@@ -121,6 +123,41 @@ class CompiledModel:
     free_names: tuple[str, ...]
     mean_names: tuple[str, ...]  # posterior variables giving b̃ (intercept, slopes)
     log_sigma_names: tuple[str, ...]
+    cold: tuple[Any, Any] = (None, None)  # the step's fresh potential and step-size adaptation
+
+    def warm_start(self, previous: Any) -> None:
+        """Start adaptation from ``previous``: its posterior variances (on the sampler's unconstrained
+        scale) as the mass matrix and its mean final step size."""
+        from pymc.step_methods.hmc.quadpotential import QuadPotentialDiagAdapt  # noqa: PLC0415
+        from pymc.step_methods.step_sizes import DualAverageAdaptation  # noqa: PLC0415
+
+        means, variances = [], []
+        for value in self.step.vars:
+            rv = self.model.values_to_rvs[value]
+            a = np.asarray(previous.posterior[rv.name].values, dtype=float)
+            if self.model.rvs_to_transforms.get(rv) is not None:  # only log transforms occur here
+                a = np.log(a)
+            a = a.reshape(a.shape[0] * a.shape[1], -1)
+            means.append(a.mean(axis=0))
+            variances.append(np.maximum(a.var(axis=0), 1e-8))
+        mean, var = np.concatenate(means), np.concatenate(variances)
+        step0 = float(np.mean(previous.sample_stats["step_size"].values))
+        old = self.cold[1]
+        self._use(QuadPotentialDiagAdapt(mean.size, mean, var, 100),
+                  DualAverageAdaptation(step0, old._target, old._gamma, old._k, old._t0))
+
+    def cold_start(self) -> None:
+        self._use(*self.cold)
+
+    def _use(self, potential: Any, step_adapt: Any) -> None:
+        from pymc.step_methods.hmc.integration import CpuLeapfrogIntegrator  # noqa: PLC0415
+
+        # Parallel chains run copies of the step without resetting it, so reset here; the
+        # integrator holds its own reference to the potential.
+        potential.reset()
+        step_adapt.reset()
+        self.step.potential, self.step.step_adapt = potential, step_adapt
+        self.step.integrator = CpuLeapfrogIntegrator(potential, self.step._logp_dlogp_func)
 
 
 def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
@@ -179,15 +216,17 @@ def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: s
                 log_sigma = g0 + pt.zeros(n)
                 ls_names = ("g_intercept",)
             sigma = pt.exp(log_sigma)
+        y_obs = pm.Data("y_obs", np.asarray(ys, dtype=float))
         if likelihood == "student":
             nu = pm.Gamma("nu", alpha=NU_PRIOR[0], beta=NU_PRIOR[1])
-            pm.StudentT("y", nu=nu, mu=mu, sigma=sigma, observed=ys)
+            pm.StudentT("y", nu=nu, mu=mu, sigma=sigma, observed=y_obs)
         else:
-            pm.Normal("y", mu=mu, sigma=sigma, observed=ys)
+            pm.Normal("y", mu=mu, sigma=sigma, observed=y_obs)
         step = pm.NUTS(target_accept=target_accept)
     free = tuple(v.name for v in m.free_RVs)
     mean_names = ("b_intercept",) + (("b_slopes",) if k > 1 else ())
-    return CompiledModel(m, step, bool(qr and k > 1), free, mean_names, ls_names)
+    return CompiledModel(m, step, bool(qr and k > 1), free, mean_names, ls_names,
+                         cold=(step.potential, step.step_adapt))
 
 
 def _stack(idata: Any, names: Sequence[str]) -> np.ndarray:
@@ -224,13 +263,22 @@ def _initial_points(cm: CompiledModel, chains: int, rng: np.random.Generator,
 
 
 def run_sampler(cm: CompiledModel, *, draws: int, tune: int, chains: int, cores: int, seed: int,
-                progress: bool, prior_scale: float = 1.0, variance_on: float = 1.0, previous: Any = None) -> Any:
-    """NUTS with the model's compiled step; shared-variable values set first, nothing recompiled."""
+                progress: bool, prior_scale: float = 1.0, variance_on: float = 1.0, previous: Any = None,
+                y: np.ndarray | None = None) -> Any:
+    """NUTS with the model's compiled step; shared-variable values (prior scale, variance switch,
+    optionally a new standardised outcome of the same length) set first, nothing recompiled."""
     import pymc as pm  # noqa: PLC0415
 
     rng = np.random.default_rng(seed)
+    if previous is None:
+        cm.cold_start()
+    else:
+        cm.warm_start(previous)
     with cm.model:
-        pm.set_data({"prior_scale": float(prior_scale), "variance_on": float(variance_on)})
+        values: dict[str, Any] = {"prior_scale": float(prior_scale), "variance_on": float(variance_on)}
+        if y is not None:
+            values["y_obs"] = np.asarray(y, dtype=float)
+        pm.set_data(values)
         return pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, step=cm.step,
                          initvals=_initial_points(cm, chains, rng, previous), random_seed=int(seed),
                          progressbar=progress, quiet=not progress, compute_convergence_checks=False,
@@ -436,7 +484,7 @@ class BayesBackend:
         if nu is not None:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
 
-        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_DRAWS), **common)
+        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_TUNE), **common)
         refit_seconds: list[float] = []
         if self.model == "location-scale" and Z.shape[1] > 1:
             t0 = time.perf_counter()
