@@ -550,6 +550,7 @@ def render_figures(comparison: "Comparison", folder: Path) -> list[FigureRecord]
         png, pdf = folder / f"{stem}.png", folder / f"{stem}.pdf"
         # Fixed metadata keeps reruns byte-identical.
         fig.savefig(png, format="png", metadata={"Software": None})
+        fig.set_layout_engine("none")  # keep the layout the PNG draw computed; saves a second solve
         fig.savefig(pdf, format="pdf", metadata={"CreationDate": None, "ModDate": None, "Producer": None, "Creator": None})
         records.append(FigureRecord(stem, title, caption, png=png, pdf=pdf))
     return records
