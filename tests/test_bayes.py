@@ -277,3 +277,32 @@ def test_check_command_reports_the_bayesian_answers(wage1, tmp_path, capsys):
     span = w.max() - w.min()
     far = np.all(np.abs(w[:, None] - np.array(reg["boundaries"] or [np.inf])[None, :]) > 0.02 * span, axis=1)
     assert np.array_equal(sig[far], inside[far])
+
+
+def test_categorical_moderator_gives_joint_answer_and_spread_by_level(wage1):
+    from robustmod.compare import compare
+
+    df = wage1.assign(sex=np.where(wage1["female"] == 1, "f", "m"))
+    res = compare(df, "lwage ~ educ * sex + exper", "educ", "sex", backends=["hc3", "bayes"],
+                  options={"bayes": {"draws": 150, "tune": 150, "chains": 2, "prior_sensitivity": False}})
+    b = res.to_dict()["backends"]["bayes"]
+    fit = res.results["bayes"].fit
+    assert fit.gamma_names == ("Intercept", "educ", "sex[T.m]")
+    assert b["interaction"]["p"] is None and b["significance_region"] is None
+    assert [ce["at"]["sex"] for ce in b["conditional_effects"]] == ["f", "m"]
+    ppc = b["extras"]["predictive_check"]
+    assert ppc["bins"] == ["f", "m"]
+    # Observed SD per level equals the sample SD of lwage in that group (pandas reference).
+    np.testing.assert_allclose(ppc["observed_sd"], df.groupby("sex")["lwage"].std().loc[["f", "m"]].to_numpy(),
+                               rtol=1e-10)
+
+
+def test_bad_option_on_the_command_line_is_one_line(wage1, tmp_path, capsys):
+    from robustmod.cli import main
+
+    path = tmp_path / "wage1.csv"
+    wage1.to_csv(path, index=False)
+    code = main(["check", str(path), "--formula", "lwage ~ educ * exper", "--focal", "educ", "--moderator", "exper",
+                 "--backends", "bayes", "--set", "bayes.likelihood=cauchy"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and "'likelihood'" in err and "\n" not in err

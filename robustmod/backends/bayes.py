@@ -460,13 +460,14 @@ class BayesBackend:
         diag = convergence(idata, ["beta", "gamma"] + (["nu"] if nu is not None else []))
         reliable = True
         if diag["max_rhat"] is None or diag["max_rhat"] > RHAT_MAX:
-            warnings.append(f"R-hat up to {diag['max_rhat']:.3f} exceeds {RHAT_MAX} (Vehtari et al. 2021): the chains "
-                            "disagree; raise 'tune'/'draws'.")
+            shown = "undefined" if diag["max_rhat"] is None else f"up to {diag['max_rhat']:.3f}"
+            warnings.append(f"R-hat {shown} exceeds {RHAT_MAX} (Vehtari et al. 2021): the chains disagree; "
+                            "raise 'tune'/'draws'.")
             reliable = False
         for key, label in (("min_ess_bulk", "bulk"), ("min_ess_tail", "tail")):
             if diag[key] is None or diag[key] < ESS_MIN:
-                warnings.append(f"The {label} ESS of {diag[key]:.0f} is below {ESS_MIN} (Vehtari et al. 2021); "
-                                "raise 'draws'.")
+                shown = "undefined" if diag[key] is None else f"{diag[key]:.0f}"
+                warnings.append(f"The {label} ESS ({shown}) is below {ESS_MIN} (Vehtari et al. 2021); raise 'draws'.")
                 reliable = False
         if diag["divergences"] > 0:
             warnings.append(f"{diag['divergences']} divergent transition(s); raise 'target_accept' (now "
@@ -597,9 +598,10 @@ def spread_check(design: "Design", y: np.ndarray, X: np.ndarray, Z: np.ndarray, 
     info = design.moderators[mod]
     raw = design.data.frame[mod].to_numpy()
     if info.categorical:
+        import pandas as pd  # noqa: PLC0415
+
         labels = [str(v) for v in info.levels]
-        codes = np.searchsorted(np.array(labels), raw.astype(str), sorter=np.argsort(labels))
-        codes = np.argsort(labels)[codes]
+        codes = np.asarray(pd.Categorical(raw.astype(str), categories=labels).codes)
     else:
         edges = np.unique(np.quantile(raw.astype(float), np.linspace(0, 1, PPC_BINS + 1)))
         codes = np.clip(np.searchsorted(edges, raw.astype(float), side="right") - 1, 0, len(edges) - 2)
