@@ -344,3 +344,32 @@ def test_figures_use_okabe_ito_palette(small: tuple[object, Path]) -> None:
     reference = {"#000000", "#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7"}
     assert set(F.OKABE_ITO.values()) == reference
     assert set(F.BACKEND_COLOURS.values()) <= reference
+
+
+def test_figures_do_not_change_the_comparison(small: tuple[object, Path]) -> None:
+    from robustmod.report.writers import results_dict
+
+    c, _ = small
+    before = results_dict(c)[0]  # the contract without wall-clock timings
+    for func in (F.slope_figure, F.data_figure, F.residual_figure, F.linearity_figure):
+        func(c)
+    assert results_dict(c)[0] == before
+
+
+def test_failure_while_writing_leaves_nothing_behind(small: tuple[object, Path], tmp_path: Path,
+                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    c, _ = small
+    existing = tmp_path / "kept"
+    existing.mkdir()
+    (existing / "note.txt").write_text("first version")
+
+    def broken(*args: object, **kwargs: object) -> str:
+        raise RuntimeError("disk full while rendering")
+
+    monkeypatch.setattr("robustmod.report.writers.render_latex", broken)
+    with pytest.raises(RuntimeError):
+        write_appendix(c, existing, force=True)
+    with pytest.raises(RuntimeError):
+        write_appendix(c, tmp_path / "new")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["kept"]
+    assert (existing / "note.txt").read_text() == "first version"

@@ -238,7 +238,7 @@ def _rows(comparison: "Comparison", res: Mapping[str, Any]) -> list[dict[str, An
             "id": bid, "label": b["label"], "primary": bid == comparison.primary, "usable": bid in usable,
             "estimate": "joint test" if joint else _fmt(it.get("estimate")),
             "se": _fmt(it.get("se")), "ci": (it.get("joint_test") or {}).get("method", "") if joint else _ci(it.get("ci")),
-            "interval": it.get("interval") or ("joint test" if joint else ""), "p": p,
+            "interval": "" if joint else it.get("interval") or "", "p": p,
             "supported": ("yes" if it.get("supported") else "no") + ("" if b["reliable"] else " (not counted: unreliable)"),
             "boundaries": _boundaries(reg), "share": _fmt(reg.get("share_of_observed_significant")) if reg else "—",
             "estimate_json": _json_value(it.get("estimate")), "se_json": _json_value(it.get("se")),
