@@ -229,6 +229,8 @@ def calibrate(
         run_opts["wild"]["replications"] = WILD_REPLICATIONS
         notes.append(f"The wild bootstrap used {WILD_REPLICATIONS} replications per simulated dataset "
                      "(the main comparison may use more).")
+    if "bayes" in run_opts:
+        run_opts["bayes"].setdefault("prior_sensitivity", False)  # a second fit per dataset adds nothing here
     unavailable: dict[str, str] = {}
     methods: dict[str, str] = {}
     for bid in ids:  # can each back-end answer on the observed data?
