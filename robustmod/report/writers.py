@@ -67,7 +67,9 @@ def latex_escape(text: Any) -> str:
 
 
 def md_escape(text: Any) -> str:
-    """Escape a string for Markdown text and tables (HTML special characters as entities)."""
+    """Escape a string for inline Markdown text and table cells: emphasis, code, link and
+    pipe characters get a backslash, HTML special characters become entities. (Line-start
+    markers such as '#' or '-' need no escape: escaped text is never placed at a line start.)"""
     out = []
     for ch in str(text):
         if ch == "<":
@@ -76,7 +78,7 @@ def md_escape(text: Any) -> str:
             out.append("&gt;")
         elif ch == "&":
             out.append("&amp;")
-        elif ch in "\\`*_{}[]()#+-.!|~":
+        elif ch in "\\`*_[]|~":
             out.append("\\" + ch)
         elif ch in "\r\n":
             out.append(" ")
