@@ -148,10 +148,17 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     highs = np.array([w[idx == j].max() for j in present])
 
     # Per-bin slopes from the binning model alone, HC3.
-    Q, R = np.linalg.qr(Xbin, mode="reduced")
-    rdiag = np.abs(np.diag(R)) / np.maximum(np.linalg.norm(Xbin, axis=0), 1e-300)
     est_bin = None
-    if np.all(rdiag > 1e-10):
+    if Xbin.shape[0] <= Xbin.shape[1] + 1:
+        notes.append(f"Too few rows ({n}) for the {Xbin.shape[1]} columns of the binning model; "
+                     "per-bin slopes cannot be estimated.")
+        rdiag = np.zeros(0)
+    else:
+        Q, R = np.linalg.qr(Xbin, mode="reduced")
+        rdiag = np.abs(np.diag(R)) / np.maximum(np.linalg.norm(Xbin, axis=0), 1e-300)
+    if rdiag.size == 0:
+        pass
+    elif np.all(rdiag > 1e-10):
         fit_bin = ols_fit("hc3", Q, R, y, tuple(f"c{i}" for i in range(Xbin.shape[1])))
         if isinstance(fit_bin, WaldFit):
             est_bin = fit_bin.estimate(np.eye(Xbin.shape[1])[J:2 * J], alpha)
