@@ -82,10 +82,11 @@ def split_list(values: Sequence[str] | None) -> list[str]:
 
 def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> None:
     """Options shared by every command that fits a model."""
-    p.add_argument("--formula", required=required, help="model formula, e.g. 'y ~ x * w + age' (required)")
-    p.add_argument("--focal", required=required, help="the focal predictor whose slope is probed (required)")
+    need = "(required)" if required else "(required unless set in --config)"
+    p.add_argument("--formula", required=required, help=f"model formula, e.g. 'y ~ x * w + age' {need}")
+    p.add_argument("--focal", required=required, help=f"the focal predictor whose slope is probed {need}")
     p.add_argument("--moderator", action="append", required=required, metavar="W",
-                   help="moderator column; repeat (or comma-separate) for two moderators (required)")
+                   help=f"moderator column; repeat (or comma-separate) for two moderators {need}")
     p.add_argument("--backends", action="append", metavar="IDS",
                    help="comma-separated back-end ids (default: the standard set; see 'robustmod backends')")
     p.add_argument("--primary", default=None, help="primary back-end, chosen before looking (default: hc3)")
@@ -189,7 +190,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
+    argv = list(sys.argv[1:] if argv is None else argv)
     args = parser.parse_args(argv)
+    args.argv = argv  # the literal command, for provenance
     try:
         return int(args.func(args) or 0)
     except RobustmodError as exc:

@@ -142,6 +142,23 @@ class Design:
             cache[key] = (L0, L1) if np.all(np.abs(L0 + w[2] * L1 - Ls[2]) <= 1e-8 * scale) else None
         return cache[key]
 
+    def model_rows(self, point: dict[str, Any], focal_values: np.ndarray) -> np.ndarray:
+        """Rows of the model matrix at one moderator point as the focal predictor runs over
+        ``focal_values`` (raw scale), covariates at reference — for fitted lines, x·β̂."""
+        focal_values = np.asarray(focal_values, dtype=float)
+        frame = self._points_frame([point] * len(focal_values))
+        frame[self.focal] = self._to_model(self.focal, focal_values)
+        return self._matrix(frame)
+
+    def columns_without(self, variables: set[str] | frozenset[str]) -> list[int]:
+        """Model-matrix columns of terms that involve none of ``variables`` (intercept excluded)."""
+        ms = self._model_spec
+        cols: list[int] = []
+        for term, used in ms.term_variables.items():
+            if used and not (set(used) & set(variables)):
+                cols.extend(ms.term_indices[term])
+        return sorted(cols)
+
     # ---- helpers -----------------------------------------------------------------
     def _to_model(self, name: str, value: Any) -> Any:
         return value - self.centering[name] if name in self.centering else value

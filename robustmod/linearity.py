@@ -89,12 +89,7 @@ def _added_columns(X: np.ndarray, B: np.ndarray) -> np.ndarray:
 
 def _covariate_columns(design: Design, moderator: str) -> list[int]:
     """Columns of the model matrix not involving the focal predictor, this moderator or the intercept."""
-    ms = design._model_spec
-    cols: list[int] = []
-    for term, variables in ms.term_variables.items():
-        if variables and design.focal not in variables and moderator not in variables:
-            cols.extend(ms.term_indices[term])
-    return sorted(cols)
+    return design.columns_without({design.focal, moderator})
 
 
 def binning_check(design: Design, *, moderator: str | None = None, bins: int | Sequence[float] = DEFAULT_BINS,

@@ -25,24 +25,8 @@ DEMO_OPTIONS: dict[str, dict[str, Any]] = {"bayes": {"chains": 2, "draws": 500, 
 
 
 def _command_line(args: argparse.Namespace) -> str:
-    """The command as parsed (options in a fixed order), for provenance.json."""
-    parts = ["robustmod", str(args.command)]
-    values = {k: v for k, v in vars(args).items() if k not in ("func", "command", "debug")}
-    if values.get("data"):
-        parts.append(str(values.pop("data")))
-    values.pop("data", None)
-    for key, value in values.items():
-        flag = "--" + key.replace("_", "-")
-        if value is None or value is False or value == []:
-            continue
-        if value is True:
-            parts.append(flag)
-        elif isinstance(value, list):
-            for v in value:
-                parts += [flag, str(v)]
-        else:
-            parts += [flag, str(value)]
-    return " ".join(shlex.quote(p) for p in parts)
+    """The command exactly as typed (shell-quoted), for provenance.json."""
+    return " ".join(["robustmod", *(shlex.quote(str(a)) for a in getattr(args, "argv", []))])
 
 
 def _progress(args: argparse.Namespace) -> bool:
@@ -168,9 +152,6 @@ def add_commands(subparsers: Any) -> None:
     p.add_argument("--force", action="store_true", default=False,
                    help="replace an existing appendix folder (default: refuse and leave it untouched)")
     add_model_options(p, required=False)
-    for action in p._actions:  # the shared help says "(required)"; here a config file may supply them
-        if action.dest in ("formula", "focal", "moderator") and action.help:
-            action.help = action.help.replace("(required)", "(required unless set in --config)")
     p.set_defaults(func=cmd_appendix)
 
     d = subparsers.add_parser(

@@ -202,9 +202,7 @@ def _fitted_means(c: "Comparison", points: list[dict[str, Any]], xs: np.ndarray)
     fit = c.results[c.primary].fit
     out = []
     for pt in points:
-        frame = d._points_frame([pt] * len(xs))
-        frame[d.focal] = d._to_model(d.focal, xs)
-        out.append(fit.estimate(d._matrix(frame), c.spec.alpha).estimate)
+        out.append(fit.estimate(d.model_rows(pt, xs), c.spec.alpha).estimate)
     return out
 
 
