@@ -26,16 +26,15 @@ from typing import Any
 import numpy as np
 
 from .backends.base import Unavailable
-from .backends.registry import check_ids, make_backend
+from .backends.registry import SIMULATION_BACKEND, backend_class, check_ids, make_backend
 from .design import Design
 from .errors import InputError, option_error
 
 #: Datasets per chunk; fixed so that results do not depend on the number of workers.
 CHUNK = 50
-#: Bootstrap replications of the wild back-end inside each simulated dataset.
-WILD_REPLICATIONS = 399
-#: Datasets the Bayesian back-end gets when it is asked for (each one is a full sampler run).
-BAYES_DATASETS = 20
+#: Datasets a costly back-end (one whose class sets ``costly = True``, e.g. a sampler) gets
+#: when it is asked for; each one is a full fit.
+COSTLY_DATASETS = 20
 #: Run the remaining chunks in worker processes when they would take longer than this (s).
 PARALLEL_MIN_SECONDS = 2.0
 #: E[log χ²₁] = ψ(1/2) + log 2, the offset of a log-squared-residual regression (Harvey 1976).
@@ -53,7 +52,7 @@ def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | 
     """
     reason = ""
     try:
-        fit = make_backend("wls", **dict(options or {})).fit(design, seed=seed)
+        fit = make_backend(SIMULATION_BACKEND, **dict(options or {})).fit(design, seed=seed)
     except InputError as exc:
         fit, reason = None, str(exc)
     if isinstance(fit, Unavailable):
@@ -172,7 +171,7 @@ def calibrate(
     power: bool = True,
     workers: int | None = None,
     alpha: float | None = None,
-    bayes_datasets: int = BAYES_DATASETS,
+    costly_datasets: int = COSTLY_DATASETS,
 ) -> dict[str, Any]:
     """Simulated false-positive rate and power of the product-term test of each back-end.
 
@@ -181,13 +180,15 @@ def calibrate(
     design : Design
         The user's design; its X is kept, y is simulated.
     backend_ids : list of str
-        Back-ends to calibrate. ``bayes`` only when named, on ``bayes_datasets`` datasets.
+        Back-ends to calibrate. A back-end whose class sets ``costly = True`` (the sampler)
+        runs on the first ``costly_datasets`` datasets only.
     n_datasets : int, default=1000
     seed : int
         Seeds the datasets and every back-end's own randomness.
     options : dict of dicts, optional
-        Per back-end options (the ``wls`` entry also shapes the simulation model). The wild
-        bootstrap always runs with 399 replications here.
+        Per back-end options (the simulation back-end's entry also shapes the simulation
+        model). A back-end class may fix options of its own for calibration
+        (``calibration_options``, e.g. fewer bootstrap replications), and the notes say so.
     progress : bool, default=False
         Show a progress bar.
     power : bool, default=True
@@ -209,8 +210,8 @@ def calibrate(
         raise option_error("seed", "a whole number ≥ 0", seed)
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1):
         raise option_error("workers", "a whole number ≥ 1 (or None for the available cores)", workers)
-    if isinstance(bayes_datasets, bool) or not isinstance(bayes_datasets, (int, np.integer)) or bayes_datasets < 1:
-        raise option_error("bayes_datasets", "a whole number ≥ 1", bayes_datasets)
+    if isinstance(costly_datasets, bool) or not isinstance(costly_datasets, (int, np.integer)) or costly_datasets < 1:
+        raise option_error("costly_datasets", "a whole number ≥ 1", costly_datasets)
     alpha = design.spec.alpha if alpha is None else alpha
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
@@ -218,25 +219,27 @@ def calibrate(
     t_start = time.perf_counter()
     n_datasets = int(n_datasets)
 
-    beta, sigma, source, notes = simulation_model(design, seed=int(seed), options=options.get("wls"))
+    beta, sigma, source, notes = simulation_model(design, seed=int(seed), options=options.get(SIMULATION_BACKEND))
     beta0 = beta.copy()
     beta0[list(design.interaction_columns)] = 0.0
     noise_root, chunk_root = np.random.SeedSequence(int(seed)).spawn(2)
     noise_seqs = noise_root.spawn(n_datasets)
 
     run_opts: dict[str, dict[str, Any]] = {bid: dict(options.get(bid, {})) for bid in ids}
-    if "wild" in run_opts:
-        run_opts["wild"]["replications"] = WILD_REPLICATIONS
-        notes.append(f"The wild bootstrap used {WILD_REPLICATIONS} replications per simulated dataset "
-                     "(the main comparison may use more).")
-    if "bayes" in run_opts:
-        run_opts["bayes"].setdefault("prior_sensitivity", False)  # a second fit per dataset adds nothing here
+    costly: list[str] = []
+    for bid in ids:
+        klass = backend_class(bid)
+        run_opts[bid].update(getattr(klass, "calibration_options", {}))
+        if getattr(klass, "calibration_note", ""):
+            notes.append(klass.calibration_note)
+        if getattr(klass, "costly", False):
+            costly.append(bid)
     unavailable: dict[str, str] = {}
     methods: dict[str, str] = {}
-    for bid in ids:  # can each back-end answer on the observed data?
+    for bid in ids:  # can each back-end answer on the observed data? (a costly one is not tried twice)
         try:
             backend = make_backend(bid, **run_opts[bid])
-            fit = backend.fit(design, seed=int(seed), progress=False) if bid != "bayes" else None
+            fit = backend.fit(design, seed=int(seed), progress=False) if bid not in costly else None
         except InputError as exc:
             unavailable[bid] = str(exc)
             continue
@@ -244,7 +247,7 @@ def calibrate(
             unavailable[bid] = fit.reason
             continue
         methods[bid] = "batched across datasets" if hasattr(backend, "reject_many") else "refitted per dataset"
-    freq = [b for b in ids if b not in unavailable and b != "bayes"]
+    freq = [b for b in ids if b not in unavailable and b not in costly]
     state = {"design": design, "ids": freq, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
              "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power)}
     bounds = [(s, min(s + CHUNK, n_datasets)) for s in range(0, n_datasets, CHUNK)]
@@ -279,15 +282,14 @@ def calibrate(
             for key, target in (("null", fp), ("power", pw)):
                 if key in parts[0]:
                     target[bid] = _rate(np.concatenate([p[key][0] for p in parts]), sum(p[key][1] for p in parts))
-        if "bayes" in ids and "bayes" not in unavailable:
-            m = min(int(bayes_datasets), n_datasets)
-            bstate = {**state, "ids": ["bayes"]}
-            res = _run_chunk(bstate, 0, m, chunk_root.spawn(1)[0])
-            fp["bayes"] = _rate(*res["bayes"]["null"])
+        for bid in (b for b in costly if b not in unavailable):
+            m = min(int(costly_datasets), n_datasets)
+            res = _run_chunk({**state, "ids": [bid]}, 0, m, chunk_root.spawn(1)[0])
+            fp[bid] = _rate(*res[bid]["null"])
             if power:
-                pw["bayes"] = _rate(*res["bayes"]["power"])
-            notes.append(f"The Bayesian back-end was run on the first {m} datasets only; its rate is the share "
-                         f"whose {100 * (1 - alpha):g}% posterior interval of the product term excludes zero.")
+                pw[bid] = _rate(*res[bid]["power"])
+            notes.append(f"{bid} was run on the first {m} datasets only (each is a full fit); its rate is the share "
+                         f"whose {100 * (1 - alpha):g}% interval of the product term excludes zero.")
     finally:
         if bar is not None:
             bar.stop()

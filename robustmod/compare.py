@@ -437,7 +437,7 @@ def compare(
     if calibration is not None:
         from .calibrate import calibrate  # noqa: PLC0415
 
-        calib = calibrate(design, [b for b in ids if b != "bayes"], n_datasets=calibration, seed=spec.seed,
+        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed,
                           options=options, progress=progress)
     warnings = tuple(design.warnings)
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)

@@ -17,10 +17,13 @@ import warnings
 import numpy as np
 
 import robustmod
-from robustmod.calibrate import WILD_REPLICATIONS, calibrate, simulation_model
+from robustmod.backends.wild import WildBootstrapBackend
+from robustmod.calibrate import calibrate, simulation_model
 from robustmod.demo import DEMO_FOCAL, DEMO_FORMULA, DEMO_MODERATOR, demo_data
 from robustmod.design import build_design
 from robustmod.spec import ModelSpec
+
+WILD_REPLICATIONS = WildBootstrapBackend.calibration_options["replications"]
 
 IDS = ["ols", "hc3", "wls", "wild"]
 

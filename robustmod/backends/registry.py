@@ -24,6 +24,9 @@ REGISTRY: dict[str, tuple[str, str, dict[str, Any]]] = {
     "bayes": ("robustmod.backends.bayes", "BayesBackend", {}),
 }
 
+#: The back-end whose fitted variance model the calibration simulates from.
+SIMULATION_BACKEND = "wls"
+
 #: Back-ends run when the user names none.
 DEFAULT_BACKENDS: tuple[str, ...] = ("ols", "hc3")
 
@@ -46,14 +49,21 @@ def check_ids(ids: list[str] | tuple[str, ...]) -> list[str]:
     return out
 
 
+def backend_class(backend_id: str) -> type:
+    """The class registered under ``backend_id`` (imported on first use)."""
+    (bid,) = check_ids([backend_id])
+    module, cls, _ = REGISTRY[bid]
+    try:
+        return getattr(importlib.import_module(module), cls)
+    except (ImportError, AttributeError) as exc:
+        raise InputError(f"Back-end {bid!r} cannot be loaded ({exc}); reinstall robustmod with its dependencies.") from None
+
+
 def make_backend(backend_id: str, **options: Any) -> Any:
     """Construct the back-end registered under ``backend_id`` with user options."""
     (bid,) = check_ids([backend_id])
-    module, cls, fixed = REGISTRY[bid]
-    try:
-        klass = getattr(importlib.import_module(module), cls)
-    except (ImportError, AttributeError) as exc:
-        raise InputError(f"Back-end {bid!r} cannot be loaded ({exc}); reinstall robustmod with its dependencies.") from None
+    klass = backend_class(bid)
+    fixed = REGISTRY[bid][2]
     try:
         return klass(**fixed, **options)
     except TypeError as exc:

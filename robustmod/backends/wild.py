@@ -394,6 +394,10 @@ class WildBootstrapBackend:
     """
 
     id = "wild"
+    #: Inside each simulated dataset of a calibration study fewer replications suffice.
+    calibration_options = {"replications": 399}
+    calibration_note = ("The wild bootstrap used 399 replications per simulated dataset "
+                        "(the main comparison may use more).")
 
     def __init__(self, *, replications: int = 9999, weights: str = "rademacher", se: str = "hc3",
                  transform: str = "hc2") -> None:
