@@ -172,6 +172,7 @@ def calibrate(
     workers: int | None = None,
     alpha: float | None = None,
     costly_datasets: int = COSTLY_DATASETS,
+    include_costly: bool = True,
 ) -> dict[str, Any]:
     """Simulated false-positive rate and power of the product-term test of each back-end.
 
@@ -181,7 +182,7 @@ def calibrate(
         The user's design; its X is kept, y is simulated.
     backend_ids : list of str
         Back-ends to calibrate. A back-end whose class sets ``costly = True`` (the sampler)
-        runs on the first ``costly_datasets`` datasets only.
+        runs on the first ``costly_datasets`` datasets only, and only with ``include_costly``.
     n_datasets : int, default=1000
     seed : int
         Seeds the datasets and every back-end's own randomness.
@@ -234,6 +235,12 @@ def calibrate(
             notes.append(klass.calibration_note)
         if getattr(klass, "costly", False):
             costly.append(bid)
+    if not include_costly:
+        for bid in costly:
+            notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); "
+                         "ask for it with include_costly=True.")
+        ids = [b for b in ids if b not in costly]
+        costly = []
     unavailable: dict[str, str] = {}
     methods: dict[str, str] = {}
     for bid in ids:  # can each back-end answer on the observed data? (a costly one is not tried twice)

@@ -366,6 +366,7 @@ def compare(
     center: bool = False,
     options: Mapping[str, Mapping[str, Any]] | None = None,
     calibration: int | None = None,
+    calibrate_costly: bool = False,
     progress: bool = False,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
@@ -394,6 +395,8 @@ def compare(
         Per back-end options, e.g. ``{"wild": {"replications": 999}}``.
     calibration : int, optional
         Number of simulated datasets for the false-positive / power study.
+    calibrate_costly : bool, default=False
+        Also calibrate back-ends that need a full fit per dataset (the sampler), on a few datasets.
     progress : bool, default=False
         Show progress bars for long steps.
 
@@ -437,7 +440,7 @@ def compare(
     if calibration is not None:
         from .calibrate import calibrate  # noqa: PLC0415
 
-        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed,
+        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly,
                           options=options, progress=progress)
     warnings = tuple(design.warnings)
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)
