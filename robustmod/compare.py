@@ -367,6 +367,7 @@ def compare(
     options: Mapping[str, Mapping[str, Any]] | None = None,
     calibration: int | None = None,
     calibrate_costly: bool = False,
+    workers: int | None = None,
     progress: bool = False,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
@@ -397,6 +398,9 @@ def compare(
         Number of simulated datasets for the false-positive / power study.
     calibrate_costly : bool, default=False
         Also calibrate back-ends that need a full fit per dataset (the sampler), on a few datasets.
+    workers : int, optional
+        Worker processes for the calibration (default: the available cores); the numbers do not
+        depend on it.
     progress : bool, default=False
         Show progress bars for long steps.
 
@@ -440,7 +444,7 @@ def compare(
     if calibration is not None:
         from .calibrate import calibrate  # noqa: PLC0415
 
-        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly,
+        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
                           options=options, progress=progress)
     warnings = tuple(design.warnings)
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)

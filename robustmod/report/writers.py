@@ -181,8 +181,10 @@ def results_dict(comparison: "Comparison") -> tuple[dict[str, Any], dict[str, fl
             timings[bid] = b.pop("seconds")
         if isinstance(b.get("extras"), dict) and "seconds" in b["extras"]:
             timings[f"{bid} (steps)"] = b["extras"].pop("seconds")
-    if isinstance(res.get("calibration"), dict) and "seconds" in res["calibration"]:
-        timings["calibration"] = res["calibration"].pop("seconds")
+    if isinstance(res.get("calibration"), dict):
+        for key in ("seconds", "workers"):  # how the run went, not what it found
+            if key in res["calibration"]:
+                timings[f"calibration {key}"] = res["calibration"].pop(key)
     return res, timings
 
 
