@@ -10,14 +10,17 @@ from robustmod.report.writers import results_dict
 
 
 def _bytes(workers: int) -> bytes:
+    """results.json bytes of one run (the run facts, such as timings and workers, go to provenance)."""
     res = robustmod.compare(demo_data(), DEMO_FORMULA, DEMO_FOCAL, DEMO_MODERATOR,
                             backends=["ols", "hc3", "wild", "wls"], options={"wild": {"replications": 499}},
                             calibration=120, workers=workers, seed=11)
-    contract, _ = results_dict(res)
+    contract, run = results_dict(res)
+    assert run["calibration workers"] == workers
     return json.dumps(contract, sort_keys=True, allow_nan=False).encode()
 
 
-def test_results_identical_across_runs_and_worker_counts():
+def test_results_identical_across_runs_and_worker_counts(monkeypatch):
+    monkeypatch.setattr("robustmod.calibrate.PARALLEL_MIN_SECONDS", 0.0)  # use the pool even for a short job
     one = _bytes(1)
     assert one == _bytes(1)
     assert one == _bytes(2)
