@@ -55,6 +55,12 @@ def test_bad_options_give_one_line_error_naming_the_option(kwargs, name):
     assert f"'{name}'" in msg and "\n" not in msg
 
 
+def test_calibration_settings_are_valid_options():
+    # The calibration study constructs the back-end with these (robustmod.calibrate).
+    backend = BayesBackend(**BayesBackend.calibration_options)
+    assert BayesBackend.costly and backend.chains == 2 and not backend.prior_sensitivity
+
+
 def test_unknown_variance_term_is_an_input_error(wage1):
     d = _design(wage1, "lwage ~ educ * exper", "educ", "exper")
     with pytest.raises(InputError, match="variance_terms"):

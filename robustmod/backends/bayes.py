@@ -335,6 +335,11 @@ class BayesBackend:
 
     id = "bayes"
     label = "Bayesian location–scale (PyMC)"
+    #: Each simulated dataset of a calibration study is a full sampling run.
+    costly = True
+    calibration_options = {"draws": 500, "tune": 500, "chains": 2, "prior_sensitivity": False}
+    calibration_note = ("The Bayesian back-end was calibrated with 2 chains x 500 draws after 500 tuning steps "
+                        "per simulated dataset and no prior-sensitivity refits.")
 
     def __init__(self, *, draws: int = 1000, tune: int = 1000, chains: int = 4, target_accept: float = 0.9,
                  likelihood: str = "normal", prior_scale: float = 1.0,
