@@ -10,6 +10,7 @@ three-way terms and categorical moderators need no special cases.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
@@ -20,7 +21,7 @@ from formulaic import model_matrix
 from scipy import linalg
 
 from .data import PreparedData, prepare_data
-from .errors import InputError
+from .errors import InputError, close_matches
 from .spec import ModelSpec, parse_probe_rule
 
 #: Functions the formula may call, as formulaic evaluates them (C, I, center, scale are formulaic's own).
@@ -158,6 +159,50 @@ class Design:
             if used and not (set(used) & set(variables)):
                 cols.extend(ms.term_indices[term])
         return sorted(cols)
+
+    def variance_matrix(self, terms: Sequence[str] | None = None, *, option: str = "variance_terms"
+                        ) -> tuple[np.ndarray, tuple[str, ...]]:
+        """Z of a log-linear variance model, log σᵢ² = zᵢᵀγ: an intercept plus each named data column
+        on its raw scale (numeric as it is, categorical as dummies of every level but the first).
+        Default: the focal predictor and the moderators. Shared by every back-end that models the
+        variance, so their γ are comparable."""
+        names = tuple(terms) if terms is not None else (self.focal, *self.spec.moderators)
+        n = self.n_obs
+        blocks, labels = [np.ones((n, 1))], ["Intercept"]
+        for name in names:
+            frame = self.data.frame
+            source = self.data.source if self.data.source is not None else frame
+            if name not in frame.columns and name not in source.columns:
+                raise InputError(f"The {option!r} option names {name!r}, which is not a column of the data."
+                                 f"{close_matches(name, list(source.columns))}")
+            col = frame[name] if name in frame.columns else self.data.column(name)
+            missing = col.isna().to_numpy()
+            if missing.any():
+                row = int(frame.index[int(np.flatnonzero(missing)[0])]) + 1
+                raise InputError(f"Column {name!r} (the {option!r} option) is missing in data row {row}; "
+                                 "fill it or drop those rows.")
+            if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
+                v = col.to_numpy(dtype=float)
+                bad = ~np.isfinite(v)
+                if bad.any():
+                    row = int(frame.index[int(np.flatnonzero(bad)[0])]) + 1
+                    raise InputError(f"Column {name!r} (the {option!r} option) is not finite in data row {row}; "
+                                     "fix that value.")
+                blocks.append(v[:, None])
+                labels.append(name)
+            else:
+                cat = pd.Categorical(col.astype(str))
+                blocks.append((cat.codes[:, None] == np.arange(1, len(cat.categories))[None, :]).astype(float))
+                labels.extend(f"{name}[{lv}]" for lv in list(cat.categories)[1:])
+        Z = np.hstack(blocks)
+        R = np.linalg.qr(Z, mode="r")
+        norms = np.linalg.norm(Z, axis=0)
+        rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
+        bad_terms = [labels[j] for j in np.flatnonzero(rel[: len(labels)] < 1e-10)]
+        if bad_terms or Z.shape[1] >= n:
+            raise InputError(f"The variance terms {', '.join(repr(b) for b in bad_terms) or 'given'} are constant, "
+                             f"collinear with the others or too many for {n} rows; change the {option!r} option.")
+        return Z, tuple(labels)
 
     # ---- helpers -----------------------------------------------------------------
     def _to_model(self, name: str, value: Any) -> Any:

@@ -211,7 +211,7 @@ def test_bad_options_and_columns():
     with pytest.raises(InputError, match="'group' option"):
         WLSBackend(variance="groups").fit(build_design(df2, SPEC), seed=0)
     df2["k"] = 1.0
-    with pytest.raises(InputError, match="'k' are constant or collinear"):
+    with pytest.raises(InputError, match="'k' are constant, collinear"):
         WLSBackend(variance_terms="x,k").fit(build_design(df2, SPEC), seed=0)
 
 

@@ -320,8 +320,8 @@ class BayesBackend:
     prior_scale : float, default=1.0
         Multiplies every prior SD on the standardised scale.
     variance_terms : list of str or comma-separated str, optional
-        Terms of the mean model entering log σ (besides the intercept); default the
-        focal predictor's and the moderators' main-effect columns.
+        Data columns entering log σ besides the intercept (categorical ones as dummies);
+        default the focal predictor and the moderators — the same variance model as ``wls``.
     prior_sensitivity : bool, default=True
         Refit at prior scales × 0.5 and × 2.
     save_posterior : str or path, optional
@@ -360,7 +360,7 @@ class BayesBackend:
             if isinstance(variance_terms, str):
                 variance_terms = [t.strip() for t in variance_terms.split(",") if t.strip()]
             if not all(isinstance(t, str) for t in variance_terms):
-                raise option_error("variance_terms", "a list of term names of the model", variance_terms)
+                raise option_error("variance_terms", "a list of column names", variance_terms)
             variance_terms = tuple(variance_terms)
         if not isinstance(prior_sensitivity, bool):
             raise option_error("prior_sensitivity", "true or false", prior_sensitivity)
@@ -385,25 +385,6 @@ class BayesBackend:
         self.model = model
 
     # ---- variance model ------------------------------------------------------------
-    def variance_columns(self, design: "Design") -> tuple[int, ...]:
-        """Columns of X that enter log σ: the intercept plus the focal and moderator main effects."""
-        names = design.term_names
-        intercept = [j for j in range(design.n_params) if np.all(design.X[:, j] == 1.0)]
-        if self.variance_terms is not None:
-            unknown = [t for t in self.variance_terms if t not in names]
-            if unknown:
-                raise InputError(f"The 'variance_terms' option names {unknown}, which are not terms of the model; "
-                                 f"terms: {list(names)}.")
-            cols = [names.index(t) for t in self.variance_terms]
-        else:
-            wanted = {design.spec.focal, *design.spec.moderators}
-            ms = design._model_spec
-            cols = []
-            for term, variables in ms.term_variables.items():
-                if len(variables) == 1 and set(variables) <= wanted:
-                    cols.extend(ms.term_indices[term])
-        return tuple(dict.fromkeys(intercept[:1] + sorted(c for c in cols if c not in intercept)))
-
     # ---- fit ---------------------------------------------------------------------------
     def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
@@ -412,12 +393,11 @@ class BayesBackend:
 
         X, y = design.X, design.y
         n, k = X.shape
-        zcols = self.variance_columns(design)
+        Z, z_labels = design.variance_matrix(self.variance_terms)
         has_intercept = any(np.all(X[:, j] == 1.0) for j in range(k))
         if not has_intercept:
             return Unavailable(self.id, self.label, "The Bayesian back-end needs a model with an intercept; "
                                "remove '- 1' / '+ 0' from the formula.")
-        Z = X[:, list(zcols)]
         xs, zs = column_scaling(X), column_scaling(Z)
         y_center, y_scale = float(y.mean()), float(y.std(ddof=1))
         if not y_scale > 0:
@@ -450,7 +430,7 @@ class BayesBackend:
         else:
             g_std = _stack(idata, cm.log_sigma_names)[:, np.argsort(zorder)]
             gamma = log_scale_to_user(g_std, zs, y_scale)
-            gamma_names = tuple(design.term_names[j] for j in zcols)
+            gamma_names = z_labels
             Zu = Z
         nu = _stack(idata, ("nu",))[:, 0] if self.likelihood == "student" else None
         S = beta.shape[0]

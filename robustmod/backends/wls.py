@@ -507,26 +507,6 @@ def _first_bad_row(design: "Design", bad: np.ndarray) -> int:
     return int(design.data.frame.index[int(np.flatnonzero(bad)[0])]) + 1
 
 
-def _numeric_or_dummies(design: "Design", name: str, option: str) -> tuple[np.ndarray, list[str]]:
-    col = _design_column(design, name)
-    missing = col.isna().to_numpy()
-    if missing.any():
-        raise InputError(f"Column {name!r} (the {option!r} option of wls) is missing in data row "
-                         f"{_first_bad_row(design, missing)}; fill it or drop those rows.")
-    if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
-        v = col.to_numpy(dtype=float)
-        bad = ~np.isfinite(v)
-        if bad.any():
-            raise InputError(f"Column {name!r} (the {option!r} option of wls) is not finite in data row "
-                             f"{_first_bad_row(design, bad)}; fix that value.")
-        return v[:, None], [name]
-    cat = pd.Categorical(col.astype(str))
-    codes = cat.codes
-    levels = list(cat.categories)
-    D = (codes[:, None] == np.arange(1, len(levels))[None, :]).astype(float)
-    return D, [f"{name}[{lv}]" for lv in levels[1:]]
-
-
 def variance_model_for(design: "Design", variance: str, variance_terms: tuple[str, ...] | None,
                        group: str | None, weights: str | None) -> VarianceModel:
     """Build the variance model a back-end's options ask for on this design."""
@@ -568,20 +548,7 @@ def variance_model_for(design: "Design", variance: str, variance_terms: tuple[st
         Z = (cat.codes[:, None] == np.arange(len(levels))[None, :]).astype(float)
         return VarianceModel("groups", Z=Z, names=tuple(f"log_var[{group}={lv}]" for lv in levels),
                              groups=np.asarray(cat.codes), source=group)
-    terms = variance_terms if variance_terms is not None else (design.focal, *design.spec.moderators)
-    blocks, names = [np.ones((n, 1))], ["Intercept"]
-    for name in terms:
-        block, labels = _numeric_or_dummies(design, name, "variance_terms")
-        blocks.append(block)
-        names.extend(labels)
-    Z = np.hstack(blocks)
-    R = np.linalg.qr(Z, mode="r")
-    norms = np.linalg.norm(Z, axis=0)
-    rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
-    bad = [names[j] for j in np.flatnonzero(rel < 1e-10)]
-    if bad:
-        raise InputError(f"The variance terms {', '.join(repr(b) for b in bad)} are constant or collinear with the "
-                         "others; drop them from the 'variance_terms' option of wls.")
+    Z, names = design.variance_matrix(variance_terms, option="variance_terms")
     return VarianceModel("loglinear", Z=Z, names=tuple(names), source=None)
 
 
