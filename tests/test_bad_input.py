@@ -46,7 +46,8 @@ def write_csv(tmp_path: Path, df: pd.DataFrame, name: str = "data.csv") -> Path:
 
 
 def check_args(path: Path, formula: str = "y ~ x * w", focal: str = "x", mod: str = "w", *extra: str) -> list[str]:
-    return ["check", str(path), "--formula", formula, "--focal", focal, "--moderator", mod, "--quiet", *extra]
+    fast = [] if "--backends" in extra else ["--backends", "ols,hc3"]  # the quick back-ends unless a test names its own
+    return ["check", str(path), "--formula", formula, "--focal", focal, "--moderator", mod, "--quiet", *fast, *extra]
 
 
 def test_missing_file(capsys, tmp_path):

@@ -67,18 +67,19 @@ def test_check_json_categorical(tmp_path, capsys):
     p = tmp_path / "trial.tsv"
     d.to_csv(p, sep="\t", index=False)
     rc = main(["check", str(p), "--formula", "grain_yield ~ fertiliser * soil_type", "--focal", "fertiliser",
-               "--moderator", "soil_type", "--json"])
+               "--moderator", "soil_type", "--backends", "ols,hc3,wild,wls", "--set", "wild.replications=999", "--json"])
     assert rc == 0
     out = json.loads(capsys.readouterr().out)
     check_contract(out)
-    it = out["backends"]["hc3"]["interaction"]
-    assert it["estimate"] is None and it["p"] is not None and len(it["terms"]) == 2
+    for bid in ("ols", "hc3", "wild", "wls"):
+        it = out["backends"][bid]["interaction"]
+        assert it["estimate"] is None and it["p"] is not None and len(it["terms"]) == 2, bid
     assert [ce["at"]["soil_type"] for ce in out["backends"]["hc3"]["conditional_effects"]] == ["clay", "loam", "sand"]
 
 
 def test_check_terminal_table_and_probe_values(demo_csv, capsys):
     rc = main(["check", str(demo_csv), "--formula", DEMO_FORMULA, "--focal", DEMO_FOCAL,
-               "--moderator", DEMO_MODERATOR, "--at", "15,25,35", "--quiet"])
+               "--moderator", DEMO_MODERATOR, "--at", "15,25,35", "--backends", "ols,hc3", "--quiet"])
     assert rc == 0
     out = capsys.readouterr().out
     assert "Product term" in out and "soil_moisture = 15" in out and "hc3" in out
@@ -86,7 +87,7 @@ def test_check_terminal_table_and_probe_values(demo_csv, capsys):
 
 def test_check_subprocess_exit_codes(demo_csv):
     ok = subprocess.run([sys.executable, "-m", "robustmod.cli", "check", str(demo_csv), "--formula", DEMO_FORMULA,
-                         "--focal", DEMO_FOCAL, "--moderator", DEMO_MODERATOR, "--json"],
+                         "--focal", DEMO_FOCAL, "--moderator", DEMO_MODERATOR, "--backends", "ols,hc3", "--json"],
                         capture_output=True, text=True, timeout=120)
     assert ok.returncode == 0, ok.stderr
     json.loads(ok.stdout)

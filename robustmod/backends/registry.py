@@ -28,7 +28,7 @@ REGISTRY: dict[str, tuple[str, str, dict[str, Any]]] = {
 SIMULATION_BACKEND = "wls"
 
 #: Back-ends run when the user names none.
-DEFAULT_BACKENDS: tuple[str, ...] = ("ols", "hc3")
+DEFAULT_BACKENDS: tuple[str, ...] = ("ols", "hc3", "wild", "wls", "bayes")
 
 
 def available_ids() -> list[str]:
