@@ -247,14 +247,13 @@ def residual_figure(comparison: "Comparison") -> "Figure":
 
 # ---- variance function -----------------------------------------------------------------
 def variance_figure(comparison: "Comparison") -> "Figure":
-    """Fitted residual SD per row (``fit.sigma_hat``) of the wls and bayes fits, against the
-    focal predictor and the first moderator."""
+    """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance
+    (wls, bayes), against the focal predictor and the first moderator."""
     c = comparison
     d = c.design
     found = []
-    for bid in ("wls", "bayes"):
-        r = c.results.get(bid)
-        sig = getattr(r.fit, "sigma_hat", None) if r is not None and r.fit is not None else None
+    for bid, r in c.results.items():
+        sig = getattr(r.fit, "sigma_hat", None) if r.fit is not None else None
         if callable(sig):
             sig = sig()
         if sig is not None:
@@ -262,7 +261,7 @@ def variance_figure(comparison: "Comparison") -> "Figure":
             if sig.shape == d.y.shape:
                 found.append((bid, sig))
     if not found:
-        raise MissingInput("neither a wls nor a bayes fit with a fitted variance function is in this comparison")
+        raise MissingInput("no fit with a fitted variance function (wls, bayes) is in this comparison")
     m = d.spec.moderators[0]
     x = d.data.frame[d.focal].to_numpy(dtype=float)
     info = d.moderators[m]
@@ -362,10 +361,10 @@ def calibration_figure(comparison: "Comparison") -> "Figure":
 
 # ---- Bayesian ------------------------------------------------------------------------------
 def _bayes(comparison: "Comparison") -> Any:
-    r = comparison.results.get("bayes")
-    if r is None or not r.available or r.fit is None:
-        raise MissingInput("no Bayesian fit in this comparison (add the bayes back-end)")
-    return r
+    for r in comparison.results.values():
+        if r.available and r.fit is not None and r.kind == "posterior" and getattr(r.fit, "idata", None) is not None:
+            return r
+    raise MissingInput("no Bayesian fit in this comparison (add the bayes back-end)")
 
 
 def posterior_figure(comparison: "Comparison") -> "Figure":

@@ -450,12 +450,14 @@ def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str,
                      "mean": _fmt(s["mean"]), "sd": _fmt(s["sd"]), "min": _fmt(s["min"]), "max": _fmt(s["max"]),
                      "levels": ", ".join(str(v) for v in s["levels"]) or "—"})
     tests, other = _diagnostics(res)
-    b = res["backends"].get("bayes")
+    posterior = [k for k, v in res["backends"].items() if v.get("kind") == "posterior"
+                 or (not v["available"] and k == "bayes")]
+    b = res["backends"][posterior[0]] if posterior else None
     bayes, bayes_missing = None, "No Bayesian fit in this comparison (add the bayes back-end)."
     if b is not None and b["available"]:
         bayes = {"label": b["label"], "blocks": _bayes_blocks(b.get("extras") or {})}
     elif b is not None:
-        bayes_missing = f"The bayes back-end gave no answer: {b.get('reason')}"
+        bayes_missing = f"The Bayesian back-end gave no answer: {b.get('reason')}"
     regions = [r.significance_region for r in comparison.results.values() if r.significance_region]
     shifts = []
     s = res["summary"]
