@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import os
 import time
+import warnings as pywarnings
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -76,6 +77,20 @@ class Scaling:
     def apply(self, A: np.ndarray) -> np.ndarray:
         return (A - self.center) / self.scale
 
+
+
+def _quiet_import(name: str) -> Any:
+    """Import PyMC/ArviZ lazily, without their import-time notices (BLAS linking advice, API
+    refactor announcements) that would reach the user's terminal and say nothing about the fit."""
+    import importlib  # noqa: PLC0415
+
+    # PyTensor's advice on linking BLAS comes at the first compilation, long after the import;
+    # this one message is filtered for the session (it concerns speed, never the numbers).
+    pywarnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS", category=UserWarning)
+    with pywarnings.catch_warnings():
+        pywarnings.simplefilter("ignore", UserWarning)
+        pywarnings.simplefilter("ignore", FutureWarning)
+        return importlib.import_module(name)
 
 def column_scaling(A: np.ndarray) -> Scaling:
     """Centre and scale every non-constant column when A has a column of ones; scale only otherwise."""
@@ -169,7 +184,7 @@ def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: s
     σ² ~ Inv-Gamma(2, 1) and b̃ | σ ~ N(0, σ²·diag(1, 2.5², …)), the normal–inverse-gamma
     prior with a closed-form posterior (Gelman et al. 2013, BDA3 §14.8).
     """
-    import pymc as pm  # noqa: PLC0415
+    pm = _quiet_import("pymc")
     import pytensor.tensor as pt  # noqa: PLC0415
 
     n, k = Xs.shape
@@ -267,7 +282,7 @@ def run_sampler(cm: CompiledModel, *, draws: int, tune: int, chains: int, cores:
                 y: np.ndarray | None = None) -> Any:
     """NUTS with the model's compiled step; shared-variable values (prior scale, variance switch,
     optionally a new standardised outcome of the same length) set first, nothing recompiled."""
-    import pymc as pm  # noqa: PLC0415
+    pm = _quiet_import("pymc")
 
     rng = np.random.default_rng(seed)
     if previous is None:
@@ -279,6 +294,16 @@ def run_sampler(cm: CompiledModel, *, draws: int, tune: int, chains: int, cores:
         if y is not None:
             values["y_obs"] = np.asarray(y, dtype=float)
         pm.set_data(values)
+        # Early tuning steps may overflow exp(log σ); the sampler rejects them. Those numpy warnings
+        # (in this process and in forked chain processes) say nothing the diagnostics do not.
+        with pywarnings.catch_warnings(), np.errstate(all="ignore"):
+            pywarnings.simplefilter("ignore", RuntimeWarning)
+            return _sample(pm, cm, draws, tune, chains, cores, seed, progress, rng, previous)
+
+
+def _sample(pm: Any, cm: CompiledModel, draws: int, tune: int, chains: int, cores: int, seed: int,
+            progress: bool, rng: np.random.Generator, previous: Any) -> Any:
+    with cm.model:
         return pm.sample(draws=draws, tune=tune, chains=chains, cores=cores, step=cm.step,
                          initvals=_initial_points(cm, chains, rng, previous), random_seed=int(seed),
                          progressbar=progress, quiet=not progress, compute_convergence_checks=False,
@@ -389,7 +414,7 @@ class BayesBackend:
     def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
         t_start = time.perf_counter()
-        import arviz as az  # noqa: PLC0415
+        az = _quiet_import("arviz")
 
         X, y = design.X, design.y
         n, k = X.shape
@@ -626,7 +651,7 @@ def spread_check(design: "Design", y: np.ndarray, X: np.ndarray, Z: np.ndarray, 
 
 def convergence(idata: Any, names: Sequence[str]) -> dict[str, Any]:
     """Max rank-normalised R-hat, min bulk and tail ESS over ``names``, and divergences."""
-    import arviz as az  # noqa: PLC0415
+    az = _quiet_import("arviz")
 
     post = idata.posterior[list(names)]
     rhat = az.rhat(post, method="rank")
