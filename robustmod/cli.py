@@ -12,6 +12,7 @@ import sys
 from collections.abc import Sequence
 from typing import Any, NoReturn
 
+from .backends.registry import DEFAULT_BACKENDS
 from .errors import InputError, RobustmodError
 
 PROG = "robustmod"
@@ -88,7 +89,8 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
     p.add_argument("--moderator", action="append", required=required, metavar="W",
                    help=f"moderator column; repeat (or comma-separate) for two moderators {need}")
     p.add_argument("--backends", action="append", metavar="IDS",
-                   help="comma-separated back-end ids (default: the standard set; see 'robustmod backends')")
+                   help=f"comma-separated back-end ids (default: {','.join(DEFAULT_BACKENDS)}; "
+                        "all ids: 'robustmod backends')")
     p.add_argument("--primary", default=None, help="primary back-end, chosen before looking (default: hc3)")
     p.add_argument("--at", action="append", metavar="[W=]VALUES",
                    help="probe values: '1,2,3', 'w=1,2,3', 'sd' or 'percentiles[:10,50,90]' (default: sd = mean ± 1 SD)")

@@ -290,10 +290,10 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
                 continue
             obs = preg["observed_range"]
             span = (obs[1] - obs[0]) or 1.0
-            # Compare within the window every kind of fit searches (closed forms find far roots too).
-            lo_w, hi_w = obs[0] - effects.SEARCH_EXTENSION * span, obs[1] + effects.SEARCH_EXTENSION * span
-            pb = [v for v in preg["boundaries"] if lo_w <= v <= hi_w]
-            ob = [v for v in r.significance_region["boundaries"] if lo_w <= v <= hi_w]
+            # Compare the boundaries a reader acts on: those inside the observed moderator range
+            # (beyond it a region is extrapolation, and fit kinds search different distances).
+            pb = [v for v in preg["boundaries"] if obs[0] <= v <= obs[1]]
+            ob = [v for v in r.significance_region["boundaries"] if obs[0] <= v <= obs[1]]
             if len(pb) == len(ob):
                 shift = max((abs(x - y) for x, y in zip(pb, ob)), default=0.0)
                 boundary_shift[b] = {"max_shift": effects.num(shift), "share_of_observed_range": effects.num(shift / span),

@@ -465,7 +465,7 @@ def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str,
         bs = (s.get("boundary_shift") or {}).get(bid) or {}
         shifts.append({"id": bid, "est": _fmt(s["relative_change_of_estimate"].get(bid)),
                        "width": _fmt((s.get("relative_change_of_interval_width") or {}).get(bid)),
-                       "shift": _fmt(bs.get("max_shift")) if bs.get("same_shape", True) else "different number of boundaries",
+                       "shift": _fmt(bs.get("max_shift")) if bs.get("same_shape", True) else "different number of boundaries inside the observed range",
                        "share": _fmt(bs.get("share_of_observed_range"))})
     data_file = prov.get("data_file")
     return {
