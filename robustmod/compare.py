@@ -25,6 +25,7 @@ from .backends.registry import DEFAULT_BACKENDS, check_ids, make_backend
 from .data import read_table
 from .design import Design, build_design
 from .errors import InputError, option_error
+from .jsonvalues import jsonable, num
 from .spec import ModelSpec
 
 SCHEMA = "robustmod/results-v1"
@@ -85,7 +86,7 @@ class BackendResult:
             "reason": self.reason, "coefficients": self.coefficients, "interaction": self.interaction,
             "conditional_effects": self.conditional_effects, "significance_region": self.significance_region,
             "simultaneous_region": self.simultaneous_region, "warnings": list(self.warnings),
-            "extras": _jsonable(self.extras), "seconds": round(self.seconds, 3),
+            "extras": jsonable(self.extras), "seconds": round(self.seconds, 3),
         }
         if self.regions_by_other:
             out["significance_regions_by"] = self.regions_by_other
@@ -94,25 +95,6 @@ class BackendResult:
         if self.slope_curve is not None:
             out["slope_curve"] = self.slope_curve
         return out
-
-
-def _jsonable(obj: Any) -> Any:
-    """Plain JSON values: floats finite or None, arrays to lists, keys to str."""
-    if isinstance(obj, Mapping):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return [_jsonable(v) for v in obj.tolist()]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return effects.num(obj)
-    if obj is None or isinstance(obj, str):
-        return obj
-    return str(obj)
 
 
 def evaluate_fit(fit: Fit | Unavailable, design: Design, alpha: float, seconds: float = 0.0) -> BackendResult:
@@ -166,20 +148,20 @@ class Comparison:
                           if d.centering else "raw (user's) scale"),
                 "effects_scale": "raw (user's) scale of the moderators",
                 "categorical_moderators": list(d.data.categorical_moderators),
-                "moderator_summary": {m: _jsonable({"categorical": i.categorical, "levels": list(i.levels),
+                "moderator_summary": {m: jsonable({"categorical": i.categorical, "levels": list(i.levels),
                                                      "mean": i.mean, "sd": i.sd, "min": i.minimum, "max": i.maximum})
                                       for m, i in d.moderators.items()},
-                "probe_points": _jsonable(list(d.probe_points)),
+                "probe_points": jsonable(list(d.probe_points)),
                 "focal_linear": d.focal_linear,
                 "data_source": self.data_source,
             },
             "backends": {bid: r.to_dict() for bid, r in self.results.items()},
             "summary": self.summary,
-            "diagnostics": _jsonable(self.diagnostics),
+            "diagnostics": jsonable(self.diagnostics),
             "warnings": list(self.warnings),
         }
         if self.calibration is not None:
-            out["calibration"] = _jsonable(self.calibration)
+            out["calibration"] = jsonable(self.calibration)
         return out
 
     def table(self) -> pd.DataFrame:
@@ -281,9 +263,9 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
             e = r.interaction.get("estimate")
             if e is None or b == c.primary:
                 continue
-            rel_change[b] = effects.num(abs(e - pe) / abs(pe)) if pe else None
+            rel_change[b] = num(abs(e - pe) / abs(pe)) if pe else None
             ci = r.interaction["ci"]
-            width_change[b] = effects.num((ci[1] - ci[0]) / pw - 1) if pw else None
+            width_change[b] = num((ci[1] - ci[0]) / pw - 1) if pw else None
         preg = prim.significance_region
         for b, r in usable.items():
             if b == c.primary or preg is None or r.significance_region is None:
@@ -296,7 +278,7 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
             ob = [v for v in r.significance_region["boundaries"] if obs[0] <= v <= obs[1]]
             if len(pb) == len(ob):
                 shift = max((abs(x - y) for x, y in zip(pb, ob)), default=0.0)
-                boundary_shift[b] = {"max_shift": effects.num(shift), "share_of_observed_range": effects.num(shift / span),
+                boundary_shift[b] = {"max_shift": num(shift), "share_of_observed_range": num(shift / span),
                                      "same_shape": True}
             else:
                 boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}

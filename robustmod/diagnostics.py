@@ -21,6 +21,7 @@ from scipy import linalg, stats
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
+from .jsonvalues import num as _num
 from .errors import option_error
 from .linearity import binning_check
 
@@ -31,13 +32,6 @@ SPREAD_BINS = 3
 #: HC3/classical SE ratio beyond which (either way) the gap is called large. Our rule of
 #: thumb: King & Roberts (2015) give no threshold, only the advice to look.
 SE_GAP_LARGE = 1.5
-
-
-def _num(x: Any) -> float | None:
-    if x is None:
-        return None
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 def _independent_columns(Z: np.ndarray, tol: float = 1e-10) -> np.ndarray:

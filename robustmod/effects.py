@@ -19,19 +19,12 @@ from scipy import optimize
 
 from .backends.base import Fit, WaldFit
 from .design import Design
+from .jsonvalues import num
 
 #: Grid points of the general region search, and how far beyond the observed range it looks.
 GRID_POINTS = 241
 SEARCH_EXTENSION = 0.5
 GRID_2D = 41
-
-
-def num(x: Any) -> float | None:
-    """A plain JSON float, or None for NaN/inf/None."""
-    if x is None:
-        return None
-    x = float(x)
-    return x if math.isfinite(x) else None
 
 
 def _point(est: Any, i: int) -> dict[str, Any]:

@@ -27,6 +27,7 @@ from scipy import linalg
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
+from .jsonvalues import num as _num
 from .errors import InputError, option_error
 
 #: Default number of quantile bins (terciles, as Hainmueller, Mummolo & Xu 2019 use).
@@ -38,13 +39,6 @@ MIN_BIN_ROWS = 20
 MIN_FOCAL_SPREAD = 0.25
 #: Relative size below which a residualised column counts as spanned by the model.
 SPAN_TOL = 1e-8
-
-
-def _num(x: Any) -> float | None:
-    if x is None:
-        return None
-    x = float(x)
-    return x if np.isfinite(x) else None
 
 
 def _bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
