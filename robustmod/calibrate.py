@@ -203,6 +203,12 @@ def calibrate(
     -------
     dict with ``n_datasets``, ``alpha``, ``false_positive_rate`` and ``power``
     ({id: {rate, mc_se, n, failed}}), ``simulated_from`` and ``notes``.
+
+    Notes
+    -----
+    y* = X β̃ + σ̂ ⊙ z, z ~ N(0, I), with β̃ and σ̂ from the simulation back-end (``wls``) and
+    the product term set to 0 (false-positive rate) or to its estimate (power). The Monte Carlo
+    SE of a rate p̂ over N datasets is sqrt(p̂(1 − p̂)/N). Design in the style of Long & Ervin (2000).
     """
     ids = check_ids(list(backend_ids))
     if isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer)) or n_datasets < 10:

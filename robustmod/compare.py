@@ -386,6 +386,18 @@ def compare(
     progress : bool, default=False
         Show progress bars for long steps.
 
+    Returns
+    -------
+    Comparison
+        ``to_dict()`` follows the results contract (schema ``robustmod/results-v1``).
+
+    Notes
+    -----
+    Every back-end answers for rows L of the coefficients (DESIGN.md): the product term is a unit
+    row, a conditional slope is L = X(x + 1, w) − X(x, w), the Johnson–Neyman region is where the
+    (1 − alpha) interval of L(w)β excludes zero (Johnson & Neyman 1936; Bauer & Curran 2005). A
+    back-end that is unavailable or fails its own diagnostics is listed as unreliable and not counted.
+
     Examples
     --------
     >>> from robustmod.demo import demo_data

@@ -234,7 +234,24 @@ class Design:
 
 
 def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
-    """Validate the data against the spec and build y, X and the probe points."""
+    """Validate the data against the spec and build y, X and the probe points.
+
+    Parameters
+    ----------
+    data : DataFrame
+        The user's data (never modified).
+    spec : ModelSpec
+
+    Returns
+    -------
+    Design
+
+    Notes
+    -----
+    X comes from the formula (formulaic) after the allow-list check of :mod:`robustmod.spec`;
+    one Householder QR of X is computed and shared. A column j with |R_jj| / ‖X_j‖ < 1e-11 is
+    aliased and refused. Probe values default to mean ± 1 SD (Aiken & West 1991).
+    """
     prepared = prepare_data(data, spec)
     frame = prepared.frame.copy()
     centering: dict[str, float] = {}

@@ -193,7 +193,24 @@ def se_gap(design: Design) -> dict[str, Any] | None:
 
 
 def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
-    """All diagnostics of the results contract; every value JSON-ready (finite floats or None)."""
+    """All diagnostics of the results contract; every value JSON-ready (finite floats or None).
+
+    Parameters
+    ----------
+    design : Design
+    alpha : float, default=0.05
+
+    Returns
+    -------
+    dict with ``breusch_pagan``, ``white``, ``goldfeld_quandt``, ``residual_spread``, ``se_gap``,
+    ``linearity`` and ``non_constant_variance``.
+
+    Notes
+    -----
+    Breusch–Pagan in Koenker's studentized form, LM = n·R² of ê² on the regressors, χ²(k − 1)
+    (Breusch & Pagan 1979; Koenker 1981); White (1980) adds squares and cross-products;
+    Goldfeld & Quandt (1965) split along the moderator; the SE gap follows King & Roberts (2015).
+    """
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
     e = ols_residuals(design)

@@ -91,8 +91,31 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
                   min_focal_spread: float = MIN_FOCAL_SPREAD) -> dict[str, Any] | None:
     """Binning estimator and Wald test of linearity (Hainmueller, Mummolo & Xu 2019).
 
-    Returns None when the model has no continuous moderator. ``nonlinear`` is True when
-    the Wald test rejects linearity at ``alpha``.
+    Parameters
+    ----------
+    design : Design
+    moderator : str, optional
+        Default: the first continuous moderator.
+    bins : int or list of float, default=3
+        Number of quantile bins, or interior cut points.
+    alpha : float, default=0.05
+    min_bin_rows : int
+        Bins with fewer rows are flagged as thin.
+    min_focal_spread : float
+        A bin whose focal SD is below this share of the overall SD is flagged (common support).
+
+    Returns
+    -------
+    dict or None
+        None when the model has no continuous moderator. ``nonlinear`` is True when the Wald
+        test rejects linearity at ``alpha``.
+
+    Notes
+    -----
+    Each bin j gets its own intercept, focal slope, centred-moderator slope and product term
+    (centred at the bin median); the per-bin focal slopes carry HC3 intervals and are compared with
+    the linear model's conditional slope at the bin medians. The Wald test sets the binning columns
+    the linear model lacks to zero, 4(J − 1) restrictions, with the HC3 covariance.
     """
     if not (isinstance(alpha, (int, float)) and not isinstance(alpha, bool) and 0 < alpha < 1):
         raise option_error("alpha", "a number in (0, 1)", alpha)

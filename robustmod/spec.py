@@ -180,6 +180,12 @@ class ModelSpec:
         Mean-centre the focal predictor and the moderators before fitting. Conditional
         effects and region boundaries are always reported on the user's raw scale;
         coefficients on the centred scale.
+
+    Notes
+    -----
+    The formula is checked by :func:`check_formula` when the spec is made: only column names,
+    numbers, the operators ~ + - * : / ** ( ) and the transforms of :data:`ALLOWED_FUNCTIONS`
+    pass, so nothing the user writes is ever evaluated as code.
     """
 
     formula: str

@@ -641,6 +641,15 @@ def write_appendix(comparison: "Comparison", out_dir: str | Path, *, force: bool
         Print the steps on stderr.
     data_note : str, optional
         A line about the data shown at the top of the page (e.g. that they are invented).
+
+    Returns
+    -------
+    Path of the appendix folder.
+
+    Notes
+    -----
+    Built in a hidden temporary folder beside ``out_dir`` and renamed into place when complete
+    (an atomic rename on one filesystem), so a failure leaves nothing half-written.
     """
     from .figures import render_figures  # noqa: PLC0415  (matplotlib only when writing)
 
