@@ -401,9 +401,12 @@ def compare(
     Examples
     --------
     >>> from robustmod.demo import demo_data
-    >>> res = compare(demo_data(), "grain_yield ~ fertiliser * soil_moisture", "fertiliser", "soil_moisture")
-    >>> res.summary["primary"]
-    'hc3'
+    >>> res = compare(demo_data(), "grain_yield ~ fertiliser * soil_moisture", "fertiliser", "soil_moisture",
+    ...               backends=["ols", "hc3", "wild"], options={"wild": {"replications": 999}})
+    >>> res.summary["primary"], sorted(res.results)
+    ('hc3', ['hc3', 'ols', 'wild'])
+    >>> res.results["hc3"].interaction["supported"]
+    True
     """
     frame, source = _load(data)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
