@@ -9,6 +9,7 @@ import argparse
 import json
 import os
 import sys
+import warnings
 from collections.abc import Sequence
 from typing import Any, NoReturn
 
@@ -99,8 +100,9 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
     p.add_argument("--center", action="store_true", default=None, help="mean-centre focal and moderators (default: off)")
     p.add_argument("--set", action="append", default=[], metavar="BACKEND.OPTION=VALUE",
                    help="a back-end option, e.g. wild.replications=999 (repeatable; default: none)")
-    p.add_argument("--calibrate", type=int, default=None, metavar="N",
-                   help="simulate N datasets for false-positive rate and power (default: off)")
+    p.add_argument("--calibrate", type=int, nargs="?", const=1000, default=None, metavar="N",
+                   help="simulate N datasets (1000 when N is left out) for each back-end's false-positive "
+                        "rate and power on this design (default: off)")
     p.add_argument("--quiet", action="store_true", help="no progress bars (default: progress shown on a terminal)")
 
 
@@ -156,7 +158,13 @@ def _print_terminal(res: Any) -> None:
     for bid, r in res.results.items():
         for w in r.warnings:
             console.print(f"[yellow]warning ({bid}):[/yellow] {w}", highlight=False)
+    cal = res.calibration or {}
+    for note in cal.get("notes", []):
+        console.print(f"[dim]calibration note:[/dim] {note}", highlight=False)
     console.print(res.summary["sentence"], highlight=False)
+    from .compare import CAUTION_LINE  # noqa: PLC0415
+
+    console.print(f"[dim]{CAUTION_LINE}[/dim]", highlight=False)
 
 
 def cmd_backends(args: argparse.Namespace) -> int:
@@ -195,6 +203,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     args = parser.parse_args(argv)
     args.argv = argv  # the literal command, for provenance
+    if not getattr(args, "debug", False):
+        # The results carry every warning that matters, worded for the user; library notices
+        # (deprecations, numerical chatter of dependencies) would only clutter the terminal.
+        warnings.simplefilter("ignore")
     try:
         return int(args.func(args) or 0)
     except RobustmodError as exc:

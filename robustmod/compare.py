@@ -29,6 +29,28 @@ from .jsonvalues import jsonable, num
 from .spec import ModelSpec
 
 SCHEMA = "robustmod/results-v1"
+
+#: The cautions every output carries (terminal, JSON, appendix).
+CAUTIONS = (
+    "Pre-specify the primary analysis (the primary back-end, the model and the probe values) before looking at "
+    "the data; this appendix reports it next to the alternatives, it does not choose it.",
+    "This appendix is a sensitivity check, not a menu: do not pick whichever back-end gives the significant "
+    "result. If the conclusion changes with the variance treatment, report that it does.",
+    "An interaction needs a hypothesis stated in advance. Product terms are estimated with far less precision "
+    "than main effects and overfit easily when several are tried.",
+    "Significance-region boundaries and slopes at moderator values outside the observed range are "
+    "extrapolation; the figures grey that part out and the tables flag it.",
+    "Association is not causation: a robust moderation effect in observational data says nothing about what "
+    "would happen if the moderator were changed.",
+    "Follow the reporting standards of your field, and consult a qualified statistician where decisions with "
+    "consequences rest on the result.",
+)
+
+#: The same, in one line for the terminal.
+CAUTION_LINE = ("Cautions: the primary back-end must be chosen before looking (this is a sensitivity check, not a "
+                "menu); interactions need a hypothesis and overfit easily; regions outside the observed moderator "
+                "range are extrapolation; association is not causation; follow your field's reporting standards "
+                "and consult a qualified statistician where decisions carry consequences.")
 #: Back-ends that do not model the variance as constant (all but classical OLS).
 CLASSICAL = frozenset({"ols"})
 
@@ -159,6 +181,7 @@ class Comparison:
             "summary": self.summary,
             "diagnostics": jsonable(self.diagnostics),
             "warnings": list(self.warnings),
+            "cautions": list(CAUTIONS),
         }
         if self.calibration is not None:
             out["calibration"] = jsonable(self.calibration)
@@ -211,8 +234,18 @@ class Comparison:
                 at = ", ".join(f"{k} = {fmt(v) if not isinstance(v, str) else v}" for k, v in ce["at"].items())
                 slopes.append([bid, at, fmt(ce["estimate"]), f"[{fmt(ce['ci'][0])}, {fmt(ce['ci'][1])}]", fmt_p(ce["p"])])
         terms = " + ".join(d.interaction_terms)
-        return [(f"Product term {terms} ({d.n_obs} rows used, {d.data.n_dropped} dropped; alpha = {alpha:g})", head),
-                (f"Conditional effect of {self.spec.focal} at probe values (raw moderator scale)", slopes)]
+        out = [(f"Product term {terms} ({d.n_obs} rows used, {d.data.n_dropped} dropped; alpha = {alpha:g})", head),
+               (f"Conditional effect of {self.spec.focal} at probe values (raw moderator scale)", slopes)]
+        cal = self.calibration
+        if cal:
+            rows = [["back-end", f"false-positive rate (nominal {cal['alpha']:g})", "MC SE", "power", "MC SE"]]
+            power = cal.get("power") or {}
+            for bid, fp in cal["false_positive_rate"].items():
+                pw = power.get(bid) or {}
+                rows.append([bid, fmt(fp.get("rate")), fmt(fp.get("mc_se")), fmt(pw.get("rate")), fmt(pw.get("mc_se"))])
+            out.append((f"Calibration on this design ({cal['n_datasets']} simulated datasets; {cal.get('simulated_from', '')})",
+                        rows))
+        return out
 
     def __str__(self) -> str:
         out = []
@@ -225,6 +258,7 @@ class Comparison:
                     out.append("  " + "  ".join("-" * w for w in widths))
             out.append("")
         out.append(self.summary["sentence"])
+        out.append(CAUTION_LINE)
         return "\n".join(out)
 
     def __repr__(self) -> str:
@@ -237,6 +271,7 @@ class Comparison:
             body = "".join("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in r) + "</tr>" for r in rows[1:])
             parts.append(f"<p><b>{html.escape(title)}</b></p><table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
         parts.append(f"<p>{html.escape(self.summary['sentence'])}</p>")
+        parts.append(f"<p><small>{html.escape(CAUTION_LINE)}</small></p>")
         return "\n".join(parts)
 
 

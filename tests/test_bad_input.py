@@ -263,3 +263,44 @@ def test_disallowed_formula_in_subprocess_has_no_traceback(tmp_path):
                          capture_output=True, text=True, timeout=120)
     assert out.returncode == 2 and "Traceback" not in out.stderr
     assert len([ln for ln in out.stderr.splitlines() if ln.strip()]) == 1
+
+
+@pytest.mark.parametrize("bad", [0.0, -1.0, np.nan])
+def test_weights_column_with_zero_negative_or_missing_values(capsys, tmp_path, bad):
+    df = good_frame()
+    df["wt"] = 1.0
+    df.loc[6, "wt"] = bad
+    p = write_csv(tmp_path, df)
+    msg = run_bad(capsys, tmp_path, check_args(p, "y ~ x * w", "x", "w", "--backends", "hc3,wls",
+                                               "--set", "wls.variance=known", "--set", "wls.weights=wt"), p)
+    assert "'wt'" in msg and "row 7" in msg
+
+
+def test_variance_model_that_does_not_converge_falls_back_with_a_warning(capsys, tmp_path, monkeypatch):
+    import robustmod.backends.wls as wls
+
+    def no_convergence(vm, X, y, beta0, gamma0, *args, **kwargs):
+        return beta0, gamma0, None, False, 500, "iteration limit reached"
+
+    monkeypatch.setattr(wls, "ml_fit", no_convergence)
+    p = write_csv(tmp_path, good_frame())
+    assert main(check_args(p, "y ~ x * w", "x", "w", "--backends", "hc3,wls", "--json")) == 0
+    out = __import__("json").loads(capsys.readouterr().out)
+    w = out["backends"]["wls"]
+    assert w["available"] and any("did not converge" in m for m in w["warnings"])
+    assert w["extras"]["variance_model"]["converged"] is False
+
+
+@pytest.mark.slow
+def test_sampler_in_trouble_gives_warnings_not_a_crash(capsys, tmp_path):
+    # Far too few draws and tuning steps: the diagnostics must fail (ESS < 400, Vehtari et al. 2021)
+    # and the back-end be listed as unreliable, with the run itself succeeding.
+    p = write_csv(tmp_path, good_frame(n=80))
+    rc = main(check_args(p, "y ~ x * w", "x", "w", "--backends", "hc3,bayes", "--set", "bayes.draws=50",
+                         "--set", "bayes.tune=50", "--set", "bayes.chains=2", "--set", "bayes.prior_sensitivity=false",
+                         "--json"))
+    assert rc == 0
+    out = __import__("json").loads(capsys.readouterr().out)
+    b = out["backends"]["bayes"]
+    assert b["available"] and not b["reliable"] and b["warnings"]
+    assert "bayes" in out["summary"]["unreliable"]

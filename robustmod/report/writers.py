@@ -22,6 +22,7 @@ from importlib import metadata
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from ..compare import CAUTIONS
 from ..errors import InputError
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -33,20 +34,6 @@ APPENDIX_FILES = ("appendix.html", "appendix.md", "tables.tex", "comparison.csv"
 #: Distributions whose versions go into provenance.json.
 DEPENDENCIES = ("numpy", "scipy", "pandas", "statsmodels", "formulaic", "pymc", "arviz", "matplotlib", "jinja2")
 
-CAUTIONS = (
-    "Pre-specify the primary analysis (the primary back-end, the model and the probe values) before looking at "
-    "the data; this appendix reports it next to the alternatives, it does not choose it.",
-    "This appendix is a sensitivity check, not a menu: do not pick whichever back-end gives the significant "
-    "result. If the conclusion changes with the variance treatment, report that it does.",
-    "An interaction needs a hypothesis stated in advance. Product terms are estimated with far less precision "
-    "than main effects and overfit easily when several are tried.",
-    "Significance-region boundaries and slopes at moderator values outside the observed range are "
-    "extrapolation; the figures grey that part out and the tables flag it.",
-    "Association is not causation: a robust moderation effect in observational data says nothing about what "
-    "would happen if the moderator were changed.",
-    "Follow the reporting standards of your field, and consult a qualified statistician where decisions with "
-    "consequences rest on the result.",
-)
 
 
 # ---- escaping -----------------------------------------------------------------------
