@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import pytest
@@ -23,7 +24,10 @@ def driver(tmp_path_factory: pytest.TempPathFactory):  # noqa: ANN201
     from selenium import webdriver
     from selenium.webdriver.chrome.service import Service
 
-    assert CHROMIUM.exists() and CHROMEDRIVER.exists(), "the browser test needs Debian's chromium and chromedriver"
+    if not (CHROMIUM.exists() and CHROMEDRIVER.exists()):
+        if os.environ.get("CI"):
+            pytest.fail("the browser test needs Debian's chromium and chromium-driver; .ci/run must install them")
+        pytest.skip("Debian's chromium and chromium-driver are not installed (apt-get install chromium chromium-driver)")
     opts = webdriver.ChromeOptions()
     opts.binary_location = str(CHROMIUM)
     for arg in ("--headless", "--no-sandbox", "--disable-gpu", "--disable-dev-shm-usage",
