@@ -178,7 +178,8 @@ def cmd_backends(args: argparse.Namespace) -> int:
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog=PROG, description="Is a moderation effect an artifact of non-constant variance? "
                      "Fit it with several variance treatments and compare.")
-    parser.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
+    parser.add_argument("--debug", action="store_true",
+                        help="show tracebacks of internal errors and library warnings (default: off)")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     sub.required = True
     p = sub.add_parser("check", help="fit and compare in the terminal (or as JSON)",

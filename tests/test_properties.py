@@ -153,3 +153,22 @@ def test_extreme_scales(scale):
     assert b.interaction["p"] == pytest.approx(a.interaction["p"], rel=1e-6)
     np.testing.assert_allclose(np.array(b.significance_region["boundaries"]) / scale,
                                a.significance_region["boundaries"], rtol=1e-6)
+
+
+@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(seed=st.integers(0, 10_000), n=st.integers(3, 40), formula=st.sampled_from(FORMULAS),
+       nan_share=st.sampled_from([0.0, 0.1, 0.5]), scale=st.sampled_from([1.0, 1e-6, 1e6]))
+def test_wild_and_wls_follow_contract_or_raise_input_error(seed, n, formula, nan_share, scale):
+    df = random_frame(seed, n, nan_share, scale)
+    mods = ["g"] if "g" in formula else (["w", "z"] if "* z" in formula else ["w"])
+    try:
+        res = robustmod.compare(df, formula, "x", mods, backends=["hc3", "wild", "wls"], primary="hc3",
+                                options={"wild": {"replications": 199}})
+    except InputError as exc:
+        assert str(exc) and "\n" not in str(exc)
+        return
+    d = res.to_dict()
+    json.dumps(d, allow_nan=False)
+    for bid in ("wild", "wls"):
+        b = d["backends"][bid]
+        assert b["available"] or b["reason"]
