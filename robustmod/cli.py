@@ -168,10 +168,12 @@ def _print_terminal(res: Any) -> None:
 
 
 def cmd_backends(args: argparse.Namespace) -> int:
-    from .backends.registry import DEFAULT_BACKENDS, REGISTRY  # noqa: PLC0415
+    from .backends.registry import REGISTRY, make_backend  # noqa: PLC0415
 
+    width = max(len(b) for b in REGISTRY)
     for bid in REGISTRY:
-        print(f"{bid}{'  (default)' if bid in DEFAULT_BACKENDS else ''}")
+        label = getattr(make_backend(bid), "label", "")
+        print(f"{bid.ljust(width)}  {label}{'  [default]' if bid in DEFAULT_BACKENDS else ''}")
     return 0
 
 
