@@ -21,7 +21,7 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import DEFAULT_BACKENDS, check_ids, make_backend
+from .backends.registry import CONSTANT_VARIANCE, DEFAULT_BACKENDS, check_ids, make_backend
 from .data import read_table
 from .design import Design, build_design
 from .errors import InputError, option_error
@@ -51,8 +51,6 @@ CAUTION_LINE = ("Cautions: the primary back-end must be chosen before looking (t
                 "menu); interactions need a hypothesis and overfit easily; regions outside the observed moderator "
                 "range are extrapolation; association is not causation; follow your field's reporting standards "
                 "and consult a qualified statistician where decisions carry consequences.")
-#: Back-ends that do not model the variance as constant (all but classical OLS).
-CLASSICAL = frozenset({"ols"})
 
 
 def fmt(x: Any, digits: int = 3) -> str:
@@ -318,7 +316,7 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
             else:
                 boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}
     primary_supported = bool(prim is not None and prim.interaction["supported"])
-    robust_usable = [b for b in usable if b not in CLASSICAL]
+    robust_usable = [b for b in usable if b not in CONSTANT_VARIANCE]
     survives = bool(primary_supported and sign_consistent and robust_usable
                     and all(usable[b].interaction["supported"] for b in robust_usable))
     sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
@@ -340,8 +338,9 @@ def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[s
     if not_supported:
         parts.append(f"not by {', '.join(not_supported)}")
     s = "; ".join(parts) + "."
-    if supported == ["ols"]:
-        s += " Only the classical OLS test supports it, and that is the test non-constant variance distorts."
+    if supported and set(supported) <= CONSTANT_VARIANCE:
+        s += (f" Only {', '.join(supported)}, which assumes constant variance, supports it — the test that "
+              "non-constant variance distorts.")
     if unreliable:
         s += f" Not counted (unavailable or failed their own diagnostics): {', '.join(unreliable)}."
     if not sign_consistent:

@@ -24,6 +24,10 @@ REGISTRY: dict[str, tuple[str, str, dict[str, Any]]] = {
     "bayes": ("robustmod.backends.bayes", "BayesBackend", {}),
 }
 
+#: Back-ends whose standard errors assume constant variance (the summary does not let them
+#: decide whether a finding survives non-constant variance).
+CONSTANT_VARIANCE = frozenset({"ols"})
+
 #: The back-end whose fitted variance model the calibration simulates from.
 SIMULATION_BACKEND = "wls"
 
