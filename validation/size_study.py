@@ -98,7 +98,9 @@ def run_cell(n: int, pattern: str, err: str, n_datasets: int, seed: int, backend
 def to_markdown(df: pd.DataFrame, title: str, n_datasets: int) -> str:
     lines = [f"# {title}", "",
              f"{n_datasets} datasets per cell; nominal size 0.05, nominal coverage 0.95. A rate is flagged with * "
-             "when it lies more than 2 Monte Carlo SEs from nominal (computed at the nominal rate).", ""]
+             "when it lies more than 2 Monte Carlo SEs from nominal (computed at the nominal rate); by chance alone "
+             "about 1 flag in 20 is expected, and the back-ends of one cell share their datasets, so their "
+             "deviations move together.", ""]
     for (pattern, err), block in df.groupby(["pattern", "errors"], sort=False):
         lines += [f"## SD pattern: {pattern}; errors: {err}", "",
                   "| back-end | " + " | ".join(f"n={n} size" for n in sorted(block.n.unique())) + " | "
