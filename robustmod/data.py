@@ -98,7 +98,7 @@ def _check_duplicate_names(names: list[str], where: str) -> None:
 class PreparedData:
     """The rows a model uses and what happened to the others."""
 
-    frame: pd.DataFrame  # only the model's columns, only complete rows, original index kept
+    frame: pd.DataFrame  # only the model's columns, only complete rows; index = 0-based positions in the user's data
     n_input: int
     dropped_rows: tuple[int, ...]  # 1-based data-row numbers
     categorical_moderators: tuple[str, ...]
@@ -110,7 +110,7 @@ class PreparedData:
         if self.source is None or name not in self.source.columns:
             cols = [] if self.source is None else list(self.source.columns)
             raise InputError(f"Column {name!r} is not in the data.{close_matches(name, cols)}")
-        return self.source.loc[self.frame.index, name]
+        return self.source[name].iloc[self.frame.index.to_numpy()]
 
     @property
     def n_obs(self) -> int:
@@ -148,6 +148,7 @@ def prepare_data(data: pd.DataFrame, spec: ModelSpec) -> PreparedData:
                 f"{spec.formula!r}; add it, e.g. '{spec.response} ~ {spec.focal} * {spec.moderators[0]}'."
             )
     frame = data.loc[:, needed].copy()
+    frame.index = pd.RangeIndex(len(frame))  # positions, whatever index the user's frame has
     warnings: list[str] = []
     for name in needed:
         col = frame[name]

@@ -108,6 +108,15 @@ class Design:
         """
         if len(points) == 0:
             return np.zeros((0, self.n_params))
+        probe = tuple(points) == self.probe_points  # asked by every back-end: build once
+        if probe and "_probe_rows" in self.__dict__:
+            return self.__dict__["_probe_rows"].copy()
+        rows = self._slope_rows(points)
+        if probe:
+            self.__dict__["_probe_rows"] = rows.copy()
+        return rows
+
+    def _slope_rows(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> np.ndarray:
         base = self._points_frame(points)
         if self.focal_linear:
             at, step = 0.0, 1.0

@@ -172,3 +172,12 @@ def test_wild_and_wls_follow_contract_or_raise_input_error(seed, n, formula, nan
     for bid in ("wild", "wls"):
         b = d["backends"][bid]
         assert b["available"] or b["reason"]
+
+
+def test_custom_index_of_the_users_frame_changes_nothing():
+    df = random_frame(3, 50, 0.1, 1.0)
+    labelled = df.set_axis([f"plot-{i}" for i in range(len(df))], axis=0)
+    a, b = _fit(df.assign(z=df.z.fillna(0))), _fit(labelled.assign(z=labelled.z.fillna(0)))
+    for u, v in zip(_numbers(a), _numbers(b)):
+        np.testing.assert_allclose(u, v, rtol=1e-12)
+    assert a.design.data.dropped_rows == b.design.data.dropped_rows

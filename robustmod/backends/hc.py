@@ -49,8 +49,8 @@ def _hc5_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
 HC_WEIGHTS: dict[str, Callable[[np.ndarray, int, int], np.ndarray]] = {
     "hc0": lambda h, n, k: np.ones_like(h),
     "hc1": lambda h, n, k: np.full_like(h, n / (n - k)),
-    "hc2": _power(lambda h, n, k: np.ones_like(h)),
-    "hc3": _power(lambda h, n, k: np.full_like(h, 2.0)),
+    "hc2": lambda h, n, k: 1.0 / (1.0 - h),
+    "hc3": lambda h, n, k: 1.0 / np.square(1.0 - h),
     "hc4": _power(_hc4_exp),
     "hc4m": _power(_hc4m_exp),
     "hc5": _power(_hc5_exp),
@@ -80,8 +80,16 @@ def r_inverse(R: np.ndarray) -> np.ndarray:
     return linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
 
 
+#: Rows per block of the meat: blocks that fit in cache beat one pass over an n × k temporary.
+MEAT_BLOCK = 65536
+
+
 def sandwich(Q: np.ndarray, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
-    """R⁻¹ (Qᵀ diag(u2w) Q) R⁻ᵀ with u2w = ωᵢ êᵢ²."""
-    G = Q * np.sqrt(u2w)[:, None]
-    meat = G.T @ G
+    """R⁻¹ (Qᵀ diag(u2w) Q) R⁻ᵀ with u2w = ωᵢ êᵢ², the meat summed over blocks of rows."""
+    k = Q.shape[1]
+    meat = np.zeros((k, k))
+    for start in range(0, Q.shape[0], MEAT_BLOCK):
+        q = Q[start:start + MEAT_BLOCK]
+        meat += (q.T * u2w[start:start + MEAT_BLOCK]) @ q
+    meat = 0.5 * (meat + meat.T)
     return Rinv @ meat @ Rinv.T

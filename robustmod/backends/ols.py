@@ -6,7 +6,7 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg
@@ -35,7 +35,7 @@ class OLSBackend:
 
     def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         Q, R = design.qr
-        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design))
+        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design.data.frame.index)
 
     def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
@@ -79,14 +79,13 @@ class OLSBackend:
         return stats.f.sf(stat, q, df) < alpha
 
 
-def _row_numbers(design: "Design") -> np.ndarray:
-    return np.asarray(design.data.frame.index, dtype=int) + 1
-
-
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
-            *, row_numbers: np.ndarray | None = None, label: str | None = None,
+            *, row_numbers: Any = None, label: str | None = None,
             backend_id: str | None = None) -> Fit | Unavailable:
-    """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id."""
+    """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
+
+    ``row_numbers``: 0-based positions of the rows in the user's data (named in messages 1-based).
+    """
     n, k = Q.shape
     backend_id = backend_id or kind
     label = label or LABELS[kind]
@@ -96,18 +95,20 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
     Rinv = r_inverse(R)
     df = n - k
     warnings: list[str] = []
-    extras: dict[str, object] = {"sigma": float(np.sqrt(resid @ resid / df)), "df_resid": df}
-    ss_tot = float(((y - y.mean()) ** 2).sum())
-    extras["r_squared"] = float(1 - (resid @ resid) / ss_tot) if ss_tot > 0 else None
+    rss = float(resid @ resid)
+    extras: dict[str, object] = {"sigma": float(np.sqrt(rss / df)), "df_resid": df}
+    dev = y - y.mean()
+    ss_tot = float(dev @ dev)
+    extras["r_squared"] = float(1 - rss / ss_tot) if ss_tot > 0 else None
     if kind == "ols":
-        s2 = float(resid @ resid) / df
+        s2 = rss / df
         cov = s2 * (Rinv @ Rinv.T)
         se_label = "classical (homoscedastic)"
     else:
         h = leverages(Q)
         ones = leverage_one_rows(h)
         if ones.size and kind in NEEDS_LEVERAGE_BELOW_ONE:
-            rows = row_numbers[ones] if row_numbers is not None else ones + 1
+            rows = np.asarray(row_numbers)[ones] + 1 if row_numbers is not None else ones + 1
             shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
             return Unavailable(backend_id, label,
                                f"{kind.upper()} is undefined: data row(s) {shown} have leverage 1 "
