@@ -85,7 +85,7 @@ def _quiet_import(name: str) -> Any:
     import importlib  # noqa: PLC0415
 
     # PyTensor's advice on linking BLAS comes at the first compilation, long after the import;
-    # this one message is filtered for the session (it concerns speed, never the numbers).
+    # this one message is filtered for the rest of the process (it concerns speed, never the numbers).
     pywarnings.filterwarnings("ignore", message="PyTensor could not link to a BLAS", category=UserWarning)
     with pywarnings.catch_warnings():
         pywarnings.simplefilter("ignore", UserWarning)
