@@ -287,6 +287,19 @@ def ml_fit(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta0: np.ndarray, g
     return b, g, R, ok, int(res.nit), str(res.message)
 
 
+def _backtrack(trial: Any, t: np.ndarray, f_old: np.ndarray, halvings: int = 30) -> tuple[np.ndarray, np.ndarray, Any]:
+    """Batched step halving: for each dataset halve its step length ``t`` until the objective
+    ``trial(t)[0]`` is finite and not above ``f_old`` (at most ``halvings`` times).
+    Returns (accepted, objective, what ``trial`` returned besides the objective)."""
+    for _ in range(halvings):
+        fc, extra = trial(t)
+        ok = np.isfinite(fc) & (fc <= f_old + 1e-12 * np.abs(f_old))
+        if ok.all():
+            break
+        t = np.where(ok, t, t / 2)
+    return ok, fc, extra
+
+
 def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np.ndarray,
                      *, maxiter: int = 60, tol: float = ML_DECREMENT_TOL) -> tuple[np.ndarray, np.ndarray]:
     """ML of γ for η = Zγ across datasets at once (rows of Y), β profiled out by WLS.
@@ -310,14 +323,12 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         decrement = 0.25 * (rhs**2).sum(axis=1)  # ½ scoreᵀ info⁻¹ score, in ℓ units
         now = decrement < tol
         done[act[now]] = True
-        t = np.where(now, 0.0, 1.0)
-        for _h in range(30):
+        def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             cand = Ga + t[:, None] * step
             fc, rc = _profile_nll(X, Y[act], cand @ Z.T)
-            ok = np.isfinite(fc) & (fc <= fa + 1e-12 * np.abs(fa))
-            if ok.all():
-                break
-            t = np.where(ok, t, t / 2)
+            return fc, (cand, rc)
+
+        ok, fc, (cand, rc) = _backtrack(trial, np.where(now, 0.0, 1.0), fa)
         failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
         G[act] = np.where(ok[:, None], cand, Ga)
         f[act] = np.where(ok, fc, fa)
@@ -727,14 +738,11 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         decrement = 0.5 * np.einsum("di,di->d", score, step)
         now = np.isfinite(decrement) & (decrement < ML_DECREMENT_TOL)
         done[act[now]] = True
-        t = np.where(now, 0.0, 1.0)
-        for _h in range(30):
+        def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             Bc, Gc = Ba + t[:, None] * step[:, :k], Ga + t[:, None] * step[:, k:]
-            fc = _power_nll(X, Ya, Bc, Gc, floor)
-            ok = np.isfinite(fc) & (fc <= fa + 1e-12 * np.abs(fa))
-            if ok.all():
-                break
-            t = np.where(ok, t, t / 2)
+            return _power_nll(X, Ya, Bc, Gc, floor), (Bc, Gc)
+
+        ok, fc, (Bc, Gc) = _backtrack(trial, np.where(now, 0.0, 1.0), fa)
         failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
         B[act] = np.where(ok[:, None], Bc, Ba)
         G[act] = np.where(ok[:, None], Gc, Ga)
