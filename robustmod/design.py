@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 from formulaic import model_matrix
 from scipy import linalg
+from scipy.linalg import lapack
 
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
@@ -338,8 +339,17 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
 
 
 def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Householder thin QR (LAPACK geqrf/orgqr on a Fortran-ordered copy, the fast layout)."""
-    Q, R = linalg.qr(np.array(X, order="F", copy=True), mode="economic", check_finite=False, overwrite_a=True)
+    """Householder thin QR: LAPACK geqrf then orgqr, in place on one Fortran-ordered copy of X
+    (scipy.linalg.qr makes further copies of the n × k arrays, which cost as much as the QR)."""
+    n, k = X.shape
+    work = np.array(X, order="F", copy=True, dtype=float)
+    qr, tau, _, info = lapack.dgeqrf(work, overwrite_a=1)
+    if info != 0:  # pragma: no cover - LAPACK argument errors only
+        return linalg.qr(X, mode="economic", check_finite=False)
+    R = np.triu(qr[:k, :k])
+    Q, _, info = lapack.dorgqr(qr, tau, overwrite_a=1)
+    if info != 0:  # pragma: no cover
+        return linalg.qr(X, mode="economic", check_finite=False)
     return Q, R
 
 
