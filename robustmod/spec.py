@@ -106,10 +106,8 @@ def check_formula(formula: str) -> tuple[str, list[str]]:
                     f"The formula uses a keyword argument {tok.text}=; write C(w, Treatment('level')) "
                     "to choose a reference level."
                 )
-            elif tok.text in ALLOWED_FUNCTIONS and tok.text not in variables:
-                # A bare allowed name could still be a column (e.g. a column called 'C').
-                variables.append(tok.text)
             elif tok.text not in variables:
+                # A bare name is a column, even one spelled like a transform (a column called 'C').
                 variables.append(tok.text)
         elif tok.kind == "quoted":
             name = tok.text[1:-1]
