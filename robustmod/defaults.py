@@ -1,0 +1,37 @@
+"""Every default of the package in one place (seed, alpha, primary, back-ends, thresholds).
+
+Other modules import these names instead of repeating the literals, so the CLI help, the
+API signatures, the TOML config and the docs cannot drift apart.
+"""
+from __future__ import annotations
+
+#: Seeds every random step (bootstrap weights, sampler, calibration datasets).
+SEED = 20240917
+
+#: Two-sided significance level of every test and 1 − ALPHA the level of every interval.
+ALPHA = 0.05
+
+#: The primary back-end when the user names none.
+PRIMARY = "hc3"
+
+#: Back-ends run when the user names none.
+BACKENDS: tuple[str, ...] = ("ols", "hc3", "wild", "wls", "bayes")
+
+#: Default appendix folder of ``robustmod appendix``.
+APPENDIX_FOLDER = "robustmod-appendix"
+
+#: Default number of simulated datasets of ``--calibrate`` when no number is given.
+CALIBRATION_DATASETS = 1000
+
+#: Leverages at or above 1 − LEVERAGE_ONE_TOL count as leverage one (HC2–HC5 undefined there).
+LEVERAGE_ONE_TOL = 1e-10
+
+#: A standard-error gap (robust / classical) above this is flagged in the diagnostics
+#: (our own rule of thumb, stated as such in docs/method-diagnostics.md).
+SE_GAP_THRESHOLD = 1.5
+
+#: Number of moderator bins of the binning check of the linear interaction.
+LINEARITY_BINS = 3
+
+#: Points of the moderator grid on which regions and curves are evaluated.
+CURVE_POINTS = 101
