@@ -21,6 +21,7 @@ from scipy import linalg, stats
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 
 @dataclass(frozen=True)
@@ -117,6 +118,14 @@ class Fit(ABC):
         """
         est = self.estimate(L, alpha)
         return np.maximum(est.lower, -est.upper)
+
+    def report_tables(self) -> tuple["Table", ...]:
+        """Tables this back-end contributes to every display (its own settings, checks, models).
+
+        The default contributes none; a back-end overrides this, and the displays render the
+        tables without knowing which back-end made them (``Table.source`` says).
+        """
+        return ()
 
     def coefficients(self, alpha: float) -> Estimates:
         """Estimates for every coefficient (L = identity)."""
