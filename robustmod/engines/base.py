@@ -1,0 +1,78 @@
+"""The engine interface and the one place that turns user options into an engine."""
+from __future__ import annotations
+
+import os
+from abc import ABC, abstractmethod
+from collections.abc import Callable, Sequence
+from typing import Any
+
+from ..errors import InputError, close_matches, option_error
+
+#: Engine names the user may choose.
+ENGINES = ("local", "dask")
+
+#: fn(state, *task) -> result; must be a module-level function (it is pickled).
+TaskFn = Callable[..., Any]
+
+
+def available_cores() -> int:
+    """Cores this process may use (the affinity mask where the platform has one)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover  (platforms without affinity masks)
+        return max(1, os.cpu_count() or 1)
+
+
+class Engine(ABC):
+    """Runs ``fn(state, *task)`` for every task; ``state`` is shipped to each worker once."""
+
+    name: str = "abstract"
+
+    @property
+    @abstractmethod
+    def workers(self) -> int:
+        """How many tasks may run at once."""
+
+    @abstractmethod
+    def map(self, fn: TaskFn, tasks: Sequence[tuple[Any, ...]], state: Any = None, *,
+            on_done: Callable[[int], None] | None = None) -> list[Any]:
+        """Results of ``fn(state, *tasks[i])`` in task order; ``on_done(i)`` as each task finishes."""
+
+    def close(self) -> None:
+        """Release what the engine started (worker processes, a LocalCluster)."""
+
+    def describe(self) -> dict[str, Any]:
+        """What provenance records of this engine (never timings)."""
+        return {"engine": self.name, "workers": self.workers}
+
+    def __enter__(self) -> Engine:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+def make_engine(name: str = "local", *, scheduler: str | None = None, workers: int | None = None,
+                announce: Callable[[str], None] | None = None, connect_timeout: float = 10.0) -> Engine:
+    """The engine ``name`` ("local" or "dask").
+
+    ``scheduler`` is the address of a running dask.distributed scheduler (dask only; without it a
+    LocalCluster on 127.0.0.1 is started and closed with the engine). ``workers`` caps the worker
+    count (default: the available cores). ``announce`` receives one line such as the dashboard address;
+    ``connect_timeout`` is how many seconds to wait for ``scheduler``.
+    """
+    key = str(name).strip().lower()
+    if key not in ENGINES:
+        raise InputError(f"The 'engine' option must be one of {', '.join(ENGINES)}; got {name!r}."
+                         + close_matches(str(name), ENGINES))
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
+        raise option_error("workers", "a whole number ≥ 1 (or left out for the available cores)", workers)
+    if key == "local":
+        if scheduler:
+            raise InputError("The 'scheduler' option needs the dask engine; add --engine dask (API engine='dask').")
+        from .local import LocalEngine  # noqa: PLC0415
+
+        return LocalEngine(workers)
+    from .dask import DaskEngine  # noqa: PLC0415  (dask imports only when asked for)
+
+    return DaskEngine(scheduler=scheduler, workers=workers, announce=announce, connect_timeout=connect_timeout)
