@@ -1,0 +1,461 @@
+"""Specification grid: does the moderation finding survive the other reasonable analysis choices?
+
+A grid crosses the choices a reviewer asks about — which optional covariates are adjusted for,
+a transformation of the outcome, an outlier rule — and fits every combination with the chosen
+back-ends (a specification curve, Simonsohn, Simmons & Nelson 2020; the set of analyses is a
+"multiverse" in Steegen et al. 2016). Its inferential test generates data under no moderation
+that keep each specification's fitted variance pattern and compares the share of supported
+specifications and the median estimate with their null distributions.
+
+The grid is for transparency, not for choosing the significant specification: the primary
+specification is fixed before the grid is run.
+"""
+from __future__ import annotations
+
+import itertools
+import time
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import special, stats
+
+from .backends.base import Unavailable
+from .backends.registry import check_ids, make_backend
+from .design import Design, build_design, thin_qr
+from .errors import InputError, close_matches, option_error
+from .spec import ModelSpec
+
+#: Outcome transformations a grid may cross.
+OUTCOME_RULES = ("none", "log", "log1p", "inverse-normal")
+#: Outlier rules, each computed on the OLS fit of that specification.
+OUTLIER_RULES = ("none", "studentized-3", "cooks-4n")
+#: More specifications than this are refused (a grid that large is a search, not a check).
+MAX_SPECIFICATIONS = 10_000
+#: Default number of null resamples of the inferential test (Simonsohn et al. use 500).
+NULL_RESAMPLES = 500
+#: Back-ends of a grid when the user names none.
+GRID_BACKENDS = ("ols", "hc3", "wls")
+#: The back-end whose tests make up the inferential test (cheap enough to run per resample).
+NULL_TEST_BACKEND = "hc3"
+
+GRID_CAUTIONS = (
+    "The grid is for transparency, not for choosing the significant specification: the primary specification "
+    "was fixed before the grid was run, and it is the one to report.",
+    "Specifications with a transformed outcome estimate the product term on another scale; compare their signs "
+    "and support, not their sizes.",
+)
+
+
+# ---- the plan ------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Specification:
+    """One combination of choices: the optional covariates included, the outcome rule, the outlier rule."""
+
+    index: int
+    covariates: tuple[str, ...]
+    outcome: str
+    outliers: str
+
+    def choices(self) -> dict[str, Any]:
+        return {"covariates": list(self.covariates), "outcome": self.outcome, "outliers": self.outliers}
+
+
+@dataclass(frozen=True)
+class GridPlan:
+    """The base model, the choices to cross, the back-ends and the primary specification."""
+
+    base: ModelSpec
+    optional: tuple[str, ...]
+    outcomes: tuple[str, ...]
+    outliers: tuple[str, ...]
+    backends: tuple[str, ...]
+    primary: Specification
+    lhs: str
+    fixed_terms: tuple[str, ...]
+    options: Mapping[str, Mapping[str, Any]] = field(default_factory=dict)
+
+    @property
+    def count(self) -> int:
+        """2^(optional covariates) × outcome rules × outlier rules."""
+        return (2 ** len(self.optional)) * len(self.outcomes) * len(self.outliers)
+
+    def specifications(self) -> list[Specification]:
+        subsets = [tuple(c for c, keep in zip(self.optional, mask) if keep)
+                   for mask in itertools.product((True, False), repeat=len(self.optional))]
+        combos = itertools.product(subsets, self.outcomes, self.outliers)
+        return [Specification(i, cov, out, rule) for i, (cov, out, rule) in enumerate(combos)]
+
+    def formula(self, s: Specification) -> str:
+        return f"{self.lhs} ~ " + " + ".join([*self.fixed_terms, *s.covariates])
+
+
+def split_terms(formula: str) -> tuple[str, list[str]]:
+    """('y', ['x * w', 'age']) for 'y ~ x * w + age': the top-level '+' terms of the right side."""
+    lhs, sep, rhs = formula.partition("~")
+    if not sep:
+        raise InputError(f"The formula {formula!r} needs a '~' between the outcome and the terms.")
+    terms, depth, quoted, start = [], 0, False, 0
+    for i, ch in enumerate(rhs):
+        if ch == "`":
+            quoted = not quoted
+        elif not quoted and ch == "(":
+            depth += 1
+        elif not quoted and ch == ")":
+            depth -= 1
+        elif not quoted and depth == 0 and ch == "+":
+            terms.append(rhs[start:i].strip())
+            start = i + 1
+    terms.append(rhs[start:].strip())
+    return lhs.strip(), [t for t in terms if t]
+
+
+def _rules(value: Any, valid: tuple[str, ...], key: str) -> tuple[str, ...]:
+    items = [value] if isinstance(value, str) else list(value)
+    out: list[str] = []
+    for v in items:
+        low = str(v).strip().lower()
+        if low not in valid:
+            raise InputError(f"The grid's '{key}' choice {v!r} is not known; valid: {', '.join(valid)}."
+                             + close_matches(str(v), valid))
+        if low not in out:
+            out.append(low)
+    if not out:
+        raise InputError(f"The grid's '{key}' choice is empty; give at least one of {', '.join(valid)}.")
+    return tuple(out)
+
+
+GRID_KEYS = ("covariates", "outcome", "outliers", "backends", "primary", "resamples")
+
+
+def make_plan(spec: ModelSpec, choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
+              options: Mapping[str, Mapping[str, Any]] | None = None) -> GridPlan:
+    """Check the grid's choices against the model and build the plan.
+
+    ``choices`` has the keys of the TOML ``[grid]`` table: ``covariates`` (optional covariates, each
+    in or out), ``outcome`` (rules of OUTCOME_RULES), ``outliers`` (rules of OUTLIER_RULES),
+    ``backends`` and ``primary`` (a mapping with the same keys as a specification's choices).
+    """
+    for key in choices:
+        if key not in GRID_KEYS:
+            raise InputError(f"The grid has no choice {key!r}; valid: {', '.join(GRID_KEYS)}."
+                             + close_matches(str(key), GRID_KEYS))
+    lhs, terms = split_terms(spec.formula)
+    optional = tuple(str(c).strip() for c in choices.get("covariates", ()))
+    for c in optional:
+        if c not in terms:
+            raise InputError(f"The grid covariate {c!r} is not a term of the formula {spec.formula!r}; its terms: "
+                             f"{', '.join(terms)}." + close_matches(c, terms))
+        if c in (spec.focal, *spec.moderators) or any(v in c for v in (spec.focal, *spec.moderators)):
+            raise InputError(f"The grid covariate {c!r} involves the focal predictor or a moderator; only other "
+                             "covariates can be left in or out.")
+    outcomes = _rules(choices.get("outcome", ("none",)), OUTCOME_RULES, "outcome")
+    if outcomes != ("none",) and lhs != spec.response:
+        raise InputError(f"Outcome transformations need a plain outcome column; the formula's outcome is {lhs!r}. "
+                         "Transform it in the grid instead of the formula.")
+    outliers = _rules(choices.get("outliers", ("none",)), OUTLIER_RULES, "outliers")
+    ids = tuple(check_ids(list(choices.get("backends") or backends or GRID_BACKENDS)))
+    fixed = tuple(t for t in terms if t not in optional)
+    prim = dict(choices.get("primary") or {})
+    primary = Specification(-1, tuple(prim.get("covariates", optional)), str(prim.get("outcome", "none")).lower(),
+                            str(prim.get("outliers", "none")).lower())
+    if primary.outcome not in outcomes or primary.outliers not in outliers or set(primary.covariates) - set(optional):
+        raise InputError("The grid's primary specification must be one of its specifications (its covariates among "
+                         "the optional ones, its outcome and outlier rules among the choices).")
+    plan = GridPlan(spec, optional, outcomes, outliers, ids, primary, lhs, fixed, dict(options or {}))
+    if plan.count > MAX_SPECIFICATIONS:
+        raise InputError(f"The grid has {plan.count:,} specifications; at most {MAX_SPECIFICATIONS:,} are allowed. "
+                         "Cross fewer optional covariates (each doubles the count) or fewer rules.")
+    return plan
+
+
+# ---- one specification -----------------------------------------------------------------------
+def transform_outcome(y: np.ndarray, rule: str, name: str) -> np.ndarray:
+    """none; log (y > 0); log1p (y > −1); inverse-normal: Φ⁻¹((r − 3/8)/(n + 1/4)), r the average rank (Blom 1958)."""
+    if rule == "none":
+        return y
+    if rule == "log":
+        bad = int(np.sum(y <= 0))
+        if bad:
+            raise InputError(f"The outcome rule 'log' needs {name} > 0, but {bad} of {y.size} rows are 0 or below; "
+                             "use 'log1p' or leave 'log' out of the grid.")
+        return np.log(y)
+    if rule == "log1p":
+        bad = int(np.sum(y <= -1))
+        if bad:
+            raise InputError(f"The outcome rule 'log1p' needs {name} > −1, but {bad} of {y.size} rows are −1 or below.")
+        return np.log1p(y)
+    r = stats.rankdata(y)
+    return special.ndtri((r - 0.375) / (y.size + 0.25))
+
+
+def _ols_parts(design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Residuals, leverages and the coefficient-extraction rows A = R⁻¹Qᵀ (k × n) from the shared QR."""
+    from scipy import linalg  # noqa: PLC0415
+
+    Q, R = design.qr
+    e = design.y - Q @ (Q.T @ design.y)
+    h = np.einsum("ij,ij->i", Q, Q)
+    A = linalg.solve_triangular(R, Q.T, check_finite=False)
+    return e, h, A
+
+
+def outlier_mask(design: Design, rule: str) -> np.ndarray:
+    """Rows flagged on the OLS fit: |externally studentized residual| > 3, or Cook's distance > 4/n.
+
+    t_i = e_i / (s_(i) √(1 − h_i)), s_(i)² = ((n − k)s² − e_i²/(1 − h_i)) / (n − k − 1);
+    D_i = e_i² h_i / (k s² (1 − h_i)²) (Cook 1977; Belsley, Kuh & Welsch 1980).
+    """
+    if rule == "none":
+        return np.zeros(design.n_obs, dtype=bool)
+    e, h, _ = _ols_parts(design)
+    n, k = design.X.shape
+    s2 = float(e @ e) / (n - k)
+    one_minus_h = np.maximum(1.0 - h, 1e-15)
+    if rule == "studentized-3":
+        s2_i = np.maximum(((n - k) * s2 - e**2 / one_minus_h) / (n - k - 1), 1e-300)
+        return np.abs(e / np.sqrt(s2_i * one_minus_h)) > 3.0
+    return (e**2 * h / (k * s2 * one_minus_h**2)) > 4.0 / n
+
+
+def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification) -> tuple[Design, np.ndarray]:
+    """The specification's design (outcome transformed, outliers removed) and its 0-based source rows."""
+    spec = replace(plan.base, formula=plan.formula(s))
+    design = build_design(frame, spec)
+    if s.outcome != "none":
+        y = transform_outcome(design.y, s.outcome, plan.base.response)
+        design = replace(design, y=y)
+        design.__dict__["qr"] = thin_qr(design.X)  # same X: the factor of the untransformed fit would do as well
+    flagged = outlier_mask(design, s.outliers)
+    rows = design.data.frame.index.to_numpy()
+    if flagged.any():
+        keep = rows[~flagged]
+        sub = frame.iloc[keep].copy()
+        if s.outcome != "none":
+            sub[plan.base.response] = design.y[~flagged]
+        design = build_design(sub, replace(spec))
+        rows = keep[design.data.frame.index.to_numpy()]
+    return design, rows
+
+
+def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alpha: float) -> dict[str, Any]:
+    from . import effects  # noqa: PLC0415
+
+    fit = make_backend(bid, **dict(options)).fit(design, seed=seed, progress=False)
+    if isinstance(fit, Unavailable):
+        return {"estimate": None, "se": None, "p": None, "supported": None, "boundaries": [], "reason": fit.reason}
+    it = effects.interaction(fit, design, alpha)
+    reg = effects.significance_region(fit, design, alpha)
+    inside: list[float] = []
+    if reg is not None:
+        lo, hi = reg["observed_range"]
+        inside = [b for b in reg["boundaries"] if b is not None and lo <= b <= hi]
+    return {"estimate": it.get("estimate"), "se": it.get("se"), "p": it.get("p"),
+            "supported": bool(it["supported"]) if fit.reliable else None, "boundaries": inside,
+            "reason": None if fit.reliable else "failed its own diagnostics"}
+
+
+def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
+    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê ⊙ v.
+
+    μ̂₀ is the fit without the product term(s); ê are the full model's residuals, so each
+    dataset keeps the specification's variance pattern (a wild null, Rademacher v per source row).
+    """
+    from scipy import linalg  # noqa: PLC0415
+
+    cols = list(design.interaction_columns)
+    keep = [j for j in range(design.X.shape[1]) if j not in cols]
+    X0 = design.X[:, keep]
+    mu0 = X0 @ linalg.lstsq(X0, design.y, check_finite=False)[0]
+    e, h, A = _ols_parts(design)
+    Ystar = mu0[:, None] + e[:, None] * v[rows]
+    Q, _ = design.qr
+    Estar = Ystar - Q @ (Q.T @ Ystar)
+    n, k = design.X.shape
+    a = A[cols[0]]
+    est = a @ Ystar
+    se = np.sqrt(((a / np.maximum(1.0 - h, 1e-15)) ** 2) @ (Estar**2))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = 2 * stats.t.sf(np.abs(est / se), n - k)
+    return est, p < alpha
+
+
+def run_specification(state: dict[str, Any], index: int, seed: int) -> dict[str, Any]:
+    """Every back-end's answer on one specification, and its null draws (an engine task)."""
+    plan: GridPlan = state["plan"]
+    s = state["specs"][index]
+    alpha = plan.base.alpha
+    out: dict[str, Any] = {"index": index, "choices": s.choices()}
+    try:
+        design, rows = _design_for(state["frame"], plan, s)
+    except InputError as exc:
+        out.update(rows_used=0, reason=str(exc), backends={b: None for b in plan.backends})
+        return out
+    seeds = np.random.SeedSequence(seed).generate_state(len(plan.backends))
+    out["rows_used"] = design.n_obs
+    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), alpha)
+                       for b, sd in zip(plan.backends, seeds)}
+    if len(design.interaction_columns) == 1 and state["resamples"]:
+        v = np.random.default_rng(state["null_seed"]).choice([-1.0, 1.0], size=(state["n_source"], state["resamples"]))
+        est, rej = _null_draws(design, rows, v, alpha)
+        out["null"] = {"estimate": est, "rejected": rej}
+    return out
+
+
+# ---- summaries ---------------------------------------------------------------------------
+def _share(values: list[bool]) -> float | None:
+    return float(np.mean(values)) if values else None
+
+
+def _by_choice(plan: GridPlan, specs: list[dict[str, Any]], bid: str) -> list[dict[str, Any]]:
+    """Share supported with each choice on against off (covariate in vs out; rule vs the others)."""
+    rows = []
+    keyed: list[tuple[str, str, Callable[[dict[str, Any]], bool]]] = [
+        ("covariate", c, lambda sp, c=c: c in sp["choices"]["covariates"]) for c in plan.optional]
+    keyed += [("outcome", r, lambda sp, r=r: sp["choices"]["outcome"] == r) for r in plan.outcomes if len(plan.outcomes) > 1]
+    keyed += [("outliers", r, lambda sp, r=r: sp["choices"]["outliers"] == r) for r in plan.outliers if len(plan.outliers) > 1]
+    for kind, value, on in keyed:
+        sup_on = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and on(sp)]
+        sup_off = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and not on(sp)]
+        rows.append({"choice": kind, "value": value, "share_supported_on": _share(sup_on),
+                     "share_supported_off": _share(sup_off), "n_on": len(sup_on), "n_off": len(sup_off)})
+    return rows
+
+
+def _usable(sp: dict[str, Any], bid: str) -> bool:
+    r = (sp.get("backends") or {}).get(bid)
+    return bool(r) and r.get("supported") is not None
+
+
+def _backend_summary(plan: GridPlan, specs: list[dict[str, Any]], bid: str) -> dict[str, Any]:
+    use = [sp for sp in specs if _usable(sp, bid)]
+    ests = [sp["backends"][bid]["estimate"] for sp in use if sp["backends"][bid]["estimate"] is not None]
+    bounds = [b for sp in use for b in sp["backends"][bid]["boundaries"]]
+    return {"n_specifications": len(use), "n_unavailable": len(specs) - len(use),
+            "share_supported": _share([bool(sp["backends"][bid]["supported"]) for sp in use]),
+            "estimate_range": [min(ests), max(ests)] if ests else None,
+            "boundary_range_within_observed": [min(bounds), max(bounds)] if bounds else None,
+            "by_choice": _by_choice(plan, specs, bid)}
+
+
+def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any] | None:
+    """Simonsohn, Simmons & Nelson (2020): the share of specifications supported in the dominant direction
+    and the median estimate, against their distributions over null datasets.
+
+    The dominant direction is the sign of the median estimate, found anew in every null dataset so that
+    observed and null statistics are chosen alike; p = (1 + #{null ≥ observed}) / (1 + R), the median
+    compared in absolute value (two-sided).
+    """
+    have = [sp for sp in specs if "null" in sp and _usable(sp, NULL_TEST_BACKEND)]
+    if not have:
+        return None
+    obs_est = np.array([sp["backends"][NULL_TEST_BACKEND]["estimate"] for sp in have], dtype=float)
+    obs_sup = np.array([bool(sp["backends"][NULL_TEST_BACKEND]["supported"]) for sp in have])
+    med_obs = float(np.median(obs_est))
+    sign = 1.0 if med_obs >= 0 else -1.0
+    share_obs = float(np.mean(obs_sup & (np.sign(obs_est) == sign)))
+    null_est = np.vstack([sp["null"]["estimate"] for sp in have])  # specs × R
+    null_rej = np.vstack([sp["null"]["rejected"] for sp in have])
+    med_null = np.median(null_est, axis=0)
+    null_sign = np.where(med_null >= 0, 1.0, -1.0)
+    share_null = np.mean(null_rej & (np.sign(null_est) == null_sign), axis=0)
+    R = null_est.shape[1]
+    return {
+        "backend": NULL_TEST_BACKEND, "resamples": int(R), "n_specifications": len(have),
+        "direction": "positive" if sign > 0 else "negative",
+        "share_supported": share_obs, "share_supported_null_median": float(np.median(share_null)),
+        "share_supported_p": float((1 + np.sum(share_null >= share_obs)) / (1 + R)),
+        "median_estimate": med_obs, "median_estimate_null_median": float(np.median(med_null)),
+        "median_estimate_p": float((1 + np.sum(np.abs(med_null) >= abs(med_obs))) / (1 + R)),
+        "alpha": alpha,
+        "method": ("null datasets y* = fit without the product term + residual × Rademacher sign per row, the same "
+                   "signs for every specification; HC3 test per specification"),
+    }
+
+
+# ---- the entry point ---------------------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class GridResult:
+    plan: GridPlan
+    specifications: list[dict[str, Any]]
+    summary: dict[str, Any]
+    test: dict[str, Any] | None
+    seconds_estimate: float | None
+
+    def primary_index(self) -> int | None:
+        p = self.plan.primary
+        for sp in self.specifications:
+            c = sp["choices"]
+            if set(c["covariates"]) == set(p.covariates) and c["outcome"] == p.outcome and c["outliers"] == p.outliers:
+                return int(sp["index"])
+        return None
+
+    def to_dict(self) -> dict[str, Any]:
+        from .jsonvalues import jsonable  # noqa: PLC0415
+
+        specs = [{k: v for k, v in sp.items() if k != "null"} for sp in self.specifications]
+        return jsonable({
+            "n_specifications": len(specs), "backends": list(self.plan.backends),
+            "choices": {"covariates": list(self.plan.optional), "outcome": list(self.plan.outcomes),
+                        "outliers": list(self.plan.outliers)},
+            "primary": {**self.plan.primary.choices(), "index": self.primary_index()},
+            "specifications": specs, "summary": self.summary, "inferential_test": self.test,
+            "cautions": list(GRID_CAUTIONS),
+        })
+
+
+def grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
+         options: Mapping[str, Mapping[str, Any]] | None = None, engine: Any = None, resamples: int | None = None,
+         on_progress: Callable[[int, int], None] | None = None, announce: Callable[[str], None] | None = None
+         ) -> GridResult:
+    """Fit every specification of the grid; summarise support per back-end and run the inferential test.
+
+    ``engine`` is a robustmod.engines Engine (default: local, this process's cores). The first
+    specification is timed in this process and the projected time of the rest is announced.
+    """
+    plan = make_plan(spec, choices, backends=backends, options=options)
+    R = int(choices.get("resamples", NULL_RESAMPLES) if resamples is None else resamples)
+    if isinstance(R, bool) or R < 0 or (0 < R < 100) or R > 100_000:
+        raise option_error("resamples", "0 (no inferential test) or a whole number in [100, 100000]", R)
+    specs = plan.specifications()
+    root = np.random.SeedSequence(spec.seed)
+    task_seeds = root.generate_state(len(specs) + 1)
+    state = {"plan": plan, "specs": specs, "frame": data, "resamples": R, "null_seed": int(task_seeds[-1]),
+             "n_source": len(data)}
+    tasks = [(i, int(task_seeds[i])) for i in range(len(specs))]
+    t0 = time.perf_counter()
+    first = run_specification(state, *tasks[0])
+    one = time.perf_counter() - t0
+    if engine is None:
+        from .engines import make_engine  # noqa: PLC0415
+
+        engine = make_engine("local")
+    workers = max(1, engine.workers)
+    estimate = one * (len(specs) - 1) / workers
+    if announce is not None:
+        announce(f"{len(specs):,} specifications × {len(plan.backends)} back-end(s); the first took {one:.2f} s, "
+                 f"so the rest should take about {_duration(estimate)} on {workers} worker(s).")
+    done = [1]
+
+    def tick(_: int) -> None:
+        done[0] += 1
+        if on_progress is not None:
+            on_progress(done[0], len(specs))
+
+    rest = engine.map(run_specification, tasks[1:], state, on_done=tick)
+    results = [first, *rest]
+    summary = {b: _backend_summary(plan, results, b) for b in plan.backends}
+    test = inferential_test(results, spec.alpha) if R else None
+    return GridResult(plan, results, summary, test, estimate)
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    return f"{seconds / 60:.1f} min" if seconds < 5400 else f"{seconds / 3600:.1f} h"
+
+
+__all__ = ["GRID_CAUTIONS", "GridPlan", "GridResult", "OUTCOME_RULES", "OUTLIER_RULES", "Specification", "grid",
+           "inferential_test", "make_plan"]
