@@ -220,14 +220,16 @@ def outlier_mask(design: Design, rule: str) -> np.ndarray:
     return (e**2 * h / (k * s2 * one_minus_h**2)) > 4.0 / n
 
 
-def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification) -> tuple[Design, np.ndarray]:
-    """The specification's design (outcome transformed, outliers removed) and its 0-based source rows."""
-    spec = replace(plan.base, formula=plan.formula(s))
-    design = build_design(frame, spec)
+def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Design) -> tuple[Design, np.ndarray]:
+    """The specification's design (outcome transformed, outliers removed) and its 0-based source rows.
+
+    ``base`` is the design of the same covariates with no outcome or outlier rule: the rules only
+    change y (same X, same QR) or drop rows (a new design on the kept rows).
+    """
+    design = base
     if s.outcome != "none":
-        y = transform_outcome(design.y, s.outcome, plan.base.response)
-        design = replace(design, y=y)
-        design.__dict__["qr"] = thin_qr(design.X)  # same X: the factor of the untransformed fit would do as well
+        design = replace(base, y=transform_outcome(base.y, s.outcome, plan.base.response))
+        design.__dict__["qr"] = base.qr  # same X, same factor
     flagged = outlier_mask(design, s.outliers)
     rows = design.data.frame.index.to_numpy()
     if flagged.any():
@@ -235,7 +237,7 @@ def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification) -> tuple[
         sub = frame.iloc[keep].copy()
         if s.outcome != "none":
             sub[plan.base.response] = design.y[~flagged]
-        design = build_design(sub, replace(spec))
+        design = build_design(sub, base.spec)
         rows = keep[design.data.frame.index.to_numpy()]
     return design, rows
 
@@ -282,26 +284,41 @@ def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -
     return est, p < alpha
 
 
-def run_specification(state: dict[str, Any], index: int, seed: int) -> dict[str, Any]:
-    """Every back-end's answer on one specification, and its null draws (an engine task)."""
+def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError, seed: int,
+             v: np.ndarray | None) -> dict[str, Any]:
     plan: GridPlan = state["plan"]
-    s = state["specs"][index]
-    alpha = plan.base.alpha
-    out: dict[str, Any] = {"index": index, "choices": s.choices()}
+    out: dict[str, Any] = {"index": s.index, "choices": s.choices()}
     try:
-        design, rows = _design_for(state["frame"], plan, s)
+        if isinstance(base, InputError):
+            raise base
+        design, rows = _design_for(state["frame"], plan, s, base)
     except InputError as exc:
         out.update(rows_used=0, reason=str(exc), backends={b: None for b in plan.backends})
         return out
     seeds = np.random.SeedSequence(seed).generate_state(len(plan.backends))
     out["rows_used"] = design.n_obs
-    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), alpha)
+    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha)
                        for b, sd in zip(plan.backends, seeds)}
-    if len(design.interaction_columns) == 1 and state["resamples"]:
-        v = np.random.default_rng(state["null_seed"]).choice([-1.0, 1.0], size=(state["n_source"], state["resamples"]))
-        est, rej = _null_draws(design, rows, v, alpha)
+    if len(design.interaction_columns) == 1 and v is not None:
+        est, rej = _null_draws(design, rows, v, plan.base.alpha)
         out["null"] = {"estimate": est, "rejected": rej}
     return out
+
+
+def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple[int, ...],
+              seeds: tuple[int, ...]) -> list[dict[str, Any]]:
+    """The specifications that share one set of covariates (one model matrix): an engine task."""
+    plan: GridPlan = state["plan"]
+    base: Design | InputError
+    try:
+        base = build_design(state["frame"], replace(plan.base, formula=plan.formula(state["specs"][members[0]])))
+    except InputError as exc:
+        base = exc
+    v = None
+    if state["resamples"]:  # the same null signs for every specification: one draw per source row
+        rng = np.random.default_rng(state["null_seed"])
+        v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
+    return [_run_one(state, state["specs"][i], base, sd, v) for i, sd in zip(members, seeds)]
 
 
 # ---- summaries ---------------------------------------------------------------------------
@@ -420,32 +437,35 @@ def grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *, bac
     if isinstance(R, bool) or R < 0 or (0 < R < 100) or R > 100_000:
         raise option_error("resamples", "0 (no inferential test) or a whole number in [100, 100000]", R)
     specs = plan.specifications()
-    root = np.random.SeedSequence(spec.seed)
-    task_seeds = root.generate_state(len(specs) + 1)
-    state = {"plan": plan, "specs": specs, "frame": data, "resamples": R, "null_seed": int(task_seeds[-1]),
+    seeds = np.random.SeedSequence(spec.seed).generate_state(len(specs) + 1)
+    state = {"plan": plan, "specs": specs, "frame": data, "resamples": R, "null_seed": int(seeds[-1]),
              "n_source": len(data)}
-    tasks = [(i, int(task_seeds[i])) for i in range(len(specs))]
+    groups: dict[tuple[str, ...], list[int]] = {}
+    for s in specs:
+        groups.setdefault(s.covariates, []).append(s.index)
+    tasks = [(cov, tuple(m), tuple(int(seeds[i]) for i in m)) for cov, m in groups.items()]
     t0 = time.perf_counter()
-    first = run_specification(state, *tasks[0])
+    first = run_group(state, *tasks[0])
     one = time.perf_counter() - t0
     if engine is None:
         from .engines import make_engine  # noqa: PLC0415
 
         engine = make_engine("local")
     workers = max(1, engine.workers)
-    estimate = one * (len(specs) - 1) / workers
+    estimate = one * (len(tasks) - 1) / workers
     if announce is not None:
-        announce(f"{len(specs):,} specifications × {len(plan.backends)} back-end(s); the first took {one:.2f} s, "
-                 f"so the rest should take about {_duration(estimate)} on {workers} worker(s).")
-    done = [1]
+        announce(f"{len(specs):,} specifications × {len(plan.backends)} back-end(s) in {len(tasks)} group(s) of "
+                 f"shared covariates; the first group took {one:.2f} s, so the rest should take about "
+                 f"{_duration(estimate)} on {workers} worker(s).")
+    done = [len(first)]
 
-    def tick(_: int) -> None:
-        done[0] += 1
+    def tick(i: int) -> None:
+        done[0] += len(tasks[1 + i][1])
         if on_progress is not None:
             on_progress(done[0], len(specs))
 
-    rest = engine.map(run_specification, tasks[1:], state, on_done=tick)
-    results = [first, *rest]
+    rest = engine.map(run_group, tasks[1:], state, on_done=tick)
+    results = sorted([r for part in (first, *rest) for r in part], key=lambda r: r["index"])
     summary = {b: _backend_summary(plan, results, b) for b in plan.backends}
     test = inferential_test(results, spec.alpha) if R else None
     return GridResult(plan, results, summary, test, estimate)
