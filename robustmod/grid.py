@@ -247,14 +247,15 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
 
     fit = make_backend(bid, **dict(options)).fit(design, seed=seed, progress=False)
     if isinstance(fit, Unavailable):
-        return {"estimate": None, "se": None, "p": None, "supported": None, "boundaries": [], "reason": fit.reason}
+        return {"estimate": None, "se": None, "ci": None, "p": None, "supported": None, "boundaries": [],
+                "reason": fit.reason}
     it = effects.interaction(fit, design, alpha)
     reg = effects.significance_region(fit, design, alpha)
     inside: list[float] = []
     if reg is not None:
         lo, hi = reg["observed_range"]
         inside = [b for b in reg["boundaries"] if b is not None and lo <= b <= hi]
-    return {"estimate": it.get("estimate"), "se": it.get("se"), "p": it.get("p"),
+    return {"estimate": it.get("estimate"), "se": it.get("se"), "ci": it.get("ci"), "p": it.get("p"),
             "supported": bool(it["supported"]) if fit.reliable else None, "boundaries": inside,
             "reason": None if fit.reliable else "failed its own diagnostics"}
 
