@@ -39,7 +39,7 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
+from .base import Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, quadratic_forms
 from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -368,7 +368,7 @@ class BootstrapFit(Fit):
 
 
 # ---- the back-end --------------------------------------------------------------------------
-class WildBootstrapBackend:
+class WildBootstrapBackend(Backend):
     """Wild bootstrap with an HC-type t statistic; null imposed for the product term.
 
     Parameters
@@ -394,26 +394,31 @@ class WildBootstrapBackend:
     """
 
     id = "wild"
+    label = "Wild bootstrap (HC3-t, Rademacher)"
+    assumes_constant_variance = False
+    assumes_independent_rows = True
+    cost = "moderate"
+    options = (
+        Option("replications", "integer", 9999, "Bootstrap replicates B (B + 1 a multiple of 100 keeps "
+               "alpha·(B + 1) whole).", low=99, high=1_000_000),
+        Option("weights", "text", "rademacher", "Auxiliary weight distribution (Liu 1988; Mammen 1993; Webb 2014).",
+               choices=WEIGHT_KINDS, case="insensitive"),
+        Option("se", "text", "hc3", "HC estimator of the bootstrap t statistic.", choices=tuple(HC_WEIGHTS),
+               case="insensitive"),
+        Option("transform", "text", "hc2", "Rescaling of the base residuals: e/sqrt(1 - h), e/(1 - h) or none.",
+               choices=TRANSFORMS, case="insensitive"),
+    )
     #: Inside each simulated dataset of a calibration study fewer replications suffice.
     calibration_options = {"replications": 399}
     calibration_note = ("The wild bootstrap used 399 replications per simulated dataset "
                         "(the main comparison may use more).")
 
-    def __init__(self, *, replications: int = 9999, weights: str = "rademacher", se: str = "hc3",
-                 transform: str = "hc2") -> None:
-        if isinstance(replications, bool) or not isinstance(replications, (int, np.integer)) \
-                or not 99 <= replications <= 1_000_000:
-            raise option_error("replications", "a whole number from 99 to 1000000", replications)
-        if not isinstance(weights, str) or weights.lower() not in WEIGHT_KINDS:
-            raise option_error("weights", f"one of {', '.join(WEIGHT_KINDS)}", weights)
-        if not isinstance(se, str) or se.lower() not in HC_WEIGHTS:
-            raise option_error("se", f"one of {', '.join(HC_WEIGHTS)}", se)
-        if not isinstance(transform, str) or transform.lower() not in TRANSFORMS:
-            raise option_error("transform", f"one of {', '.join(TRANSFORMS)}", transform)
-        self.replications = int(replications)
-        self.weights = weights.lower()
-        self.se = se.lower()
-        self.transform = transform.lower()
+    replications: int
+    weights: str
+    se: str
+    transform: str
+
+    def finish_options(self) -> None:
         self.label = f"Wild bootstrap ({self.se.upper()}-t, {WEIGHT_LABELS[self.weights]})"
 
     # ---- shared pieces -------------------------------------------------------------------

@@ -35,7 +35,7 @@ import pandas as pd
 from scipy import linalg, optimize, special, stats
 
 from ..errors import InputError, option_error
-from .base import Unavailable, WaldFit
+from .base import Backend, Option, Unavailable, WaldFit
 from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -566,21 +566,7 @@ def variance_model_for(design: "Design", variance: str, variance_terms: tuple[st
 # --------------------------------------------------------------------------------------
 # The back-end
 # --------------------------------------------------------------------------------------
-def _as_names(value: Any, option: str) -> tuple[str, ...] | None:
-    if value is None:
-        return None
-    if isinstance(value, str):
-        items = [v.strip() for v in value.split(",") if v.strip()]
-    elif isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
-        items = [v.strip() for v in value if v.strip()]
-    else:
-        raise option_error(option, "a list of column names (or one comma-separated string)", value)
-    if not items:
-        raise option_error(option, "a non-empty list of column names", value)
-    return tuple(dict.fromkeys(items))
-
-
-class WLSBackend:
+class WLSBackend(Backend):
     """Weighted least squares with a modelled variance function.
 
     Parameters
@@ -599,33 +585,40 @@ class WLSBackend:
     """
 
     id = "wls"
-    label = "WLS with a modelled variance function"
+    label = "WLS, log-linear variance (ML) + HC3"
+    assumes_constant_variance = False
+    assumes_independent_rows = True
+    cost = "cheap"
+    options = (
+        Option("variance", "text", "loglinear", "The variance function: log-linear in z, a power of the mean, "
+               "one variance per group, or known weights.", choices=VARIANCE_FUNCTIONS),
+        Option("variance_terms", "names", None, "Columns of z of the log-linear model (an intercept is added); "
+               "default the focal predictor and the moderators."),
+        Option("group", "text", None, "Grouping column of variance='groups'; default the categorical moderator."),
+        Option("weights", "text", None, "Column of known inverse variances of variance='known'."),
+        Option("estimation", "text", "ml", "Joint maximum likelihood or two-step FGLS.", choices=ESTIMATIONS),
+        Option("se", "text", "robust", "HC3 on the weighted fit (robust) or s²(XᵀWX)⁻¹ (model).", choices=SE_TYPES),
+    )
 
-    def __init__(self, *, variance: str = "loglinear", variance_terms: Any = None, group: str | None = None,
-                 weights: str | None = None, estimation: str = "ml", se: str = "robust") -> None:
-        if variance not in VARIANCE_FUNCTIONS:
-            raise option_error("variance", "one of " + ", ".join(VARIANCE_FUNCTIONS), variance)
-        if estimation not in ESTIMATIONS:
-            raise option_error("estimation", "one of " + ", ".join(ESTIMATIONS), estimation)
-        if se not in SE_TYPES:
-            raise option_error("se", "one of " + ", ".join(SE_TYPES), se)
-        terms = _as_names(variance_terms, "variance_terms")
-        if terms is not None and variance != "loglinear":
-            raise option_error("variance_terms", "left unset unless variance='loglinear'", variance_terms)
-        if group is not None and (variance != "groups" or not isinstance(group, str) or not group.strip()):
-            raise option_error("group", "a column name, and given only with variance='groups'", group)
-        if variance == "known" and (not isinstance(weights, str) or not weights.strip()):
-            raise option_error("weights", "the name of a column of inverse variances when variance='known'", weights)
-        if weights is not None and variance != "known":
-            raise option_error("weights", "left unset unless variance='known'", weights)
-        self.variance = variance
-        self.variance_terms = terms
-        self.group = group.strip() if isinstance(group, str) else None
-        self.weights = weights.strip() if isinstance(weights, str) else None
-        self.estimation = estimation
-        self.se = se
-        est = "" if variance == "known" else (" (ML)" if estimation == "ml" else " (two-step FGLS)")
-        self.label = f"WLS, {_FUNCTION_LABELS[variance]}{est} + {'HC3' if se == 'robust' else 'model SE'}"
+    variance: str
+    variance_terms: tuple[str, ...] | None
+    group: str | None
+    weights: str | None
+    estimation: str
+    se: str
+
+    def finish_options(self) -> None:
+        if self.variance_terms is not None and self.variance != "loglinear":
+            raise option_error("variance_terms", "left unset unless variance='loglinear'", self.variance_terms, "wls")
+        if self.group is not None and self.variance != "groups":
+            raise option_error("group", "a column name, and given only with variance='groups'", self.group, "wls")
+        if self.variance == "known" and self.weights is None:
+            raise option_error("weights", "the name of a column of inverse variances when variance='known'",
+                               self.weights, "wls")
+        if self.weights is not None and self.variance != "known":
+            raise option_error("weights", "left unset unless variance='known'", self.weights, "wls")
+        est = "" if self.variance == "known" else (" (ML)" if self.estimation == "ml" else " (two-step FGLS)")
+        self.label = f"WLS, {_FUNCTION_LABELS[self.variance]}{est} + {'HC3' if self.se == 'robust' else 'model SE'}"
 
     def variance_model(self, design: "Design") -> VarianceModel:
         return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
