@@ -15,7 +15,7 @@ from __future__ import annotations
 import difflib
 import os
 from abc import ABC, abstractmethod
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Literal
@@ -404,7 +404,7 @@ def validate_options(backend_id: str, declared: tuple[Option, ...], given: Mappi
 def unknown_option(backend_id: str, name: str, valid: list[str]) -> OptionError:
     """"The back-end 'wild' has no option 'replicatons'; valid options: …; did you mean 'replications'?"."""
     if not valid:
-        return OptionError(f"The back-end '{backend_id}' has no option {name!r}; it takes no options.")
+        return OptionError(f"The back-end '{backend_id}' has no option {name!r}; it takes no options (remove the setting).")
     close = difflib.get_close_matches(name, valid, n=1, cutoff=0.6)
     hint = f"; did you mean {close[0]!r}?" if close else "."
     return OptionError(f"The back-end '{backend_id}' has no option {name!r}; valid options: "
@@ -474,3 +474,14 @@ class Backend(ABC):
     def __repr__(self) -> str:
         shown = ", ".join(f"{k}={v!r}" for k, v in self.get_options().items())
         return f"{type(self).__name__}({shown})"
+
+
+def one_row_table(key: str, title: str, source: str, cells: Sequence[tuple[str, str, str, Any]],
+                  notes: Sequence[str] = ()) -> "Table":
+    """A report table of one row from (machine key, human label, column kind, value) cells;
+    a value of None becomes a NotApplicable saying it was not computed."""
+    from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+
+    columns = [Column(k, lab, kind) for k, lab, kind, _ in cells]  # type: ignore[arg-type]
+    row = [NotApplicable("not computed for this fit") if v is None else v for *_, v in cells]
+    return make_table(key, title, columns, [row], notes=notes, source=source)

@@ -23,19 +23,20 @@ from __future__ import annotations
 import os
 import time
 import warnings as pywarnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg, special
 
 from ..errors import InputError, option_error
-from .base import Backend, Fit, Option, PosteriorFit, Unavailable
+from ..tables import format_number
+from .base import Backend, Fit, Option, PosteriorFit, Unavailable, one_row_table
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 #: Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021): rank-normalised R-hat and ESS thresholds.
 RHAT_MAX = 1.01
@@ -333,6 +334,76 @@ class BayesFit(PosteriorFit):
         self.gamma_names = tuple(gamma_names)
         self.sigma_hat = np.asarray(sigma_hat, dtype=float)
         self.sigma_hat.setflags(write=False)
+
+
+    def report_tables(self) -> tuple["Table", ...]:
+        """Sampler settings, convergence and the reliability verdict, PSIS-LOO against constant variance,
+        and the prior sensitivity when it was run — all from the fit's extras."""
+        ex = self.extras
+        src = self.backend_id
+        st = ex.get("sampler") or {}
+        settings = [
+            ("sampler", "Sampler", "text", st.get("sampler")), ("chains", "Chains", "integer", st.get("chains")),
+            ("draws", "Draws per chain", "integer", st.get("draws")),
+            ("tune", "Tuning steps per chain", "integer", st.get("tune")),
+            ("target_accept", "Target acceptance rate", "number", st.get("target_accept")),
+            ("likelihood", "Likelihood", "text", st.get("likelihood")), ("model", "Model", "text", st.get("model")),
+            ("prior_scale", "Prior SD multiplier", "number", st.get("prior_scale")),
+            ("qr", "QR reparameterisation", "flag", st.get("qr_reparameterisation")),
+        ]
+        tables = [one_row_table(f"{src}.sampler", "Sampler settings", src, settings)]
+        dg = ex.get("diagnostics") or {}
+        th = dg.get("thresholds") or {}
+        verdict = "reliable" if self.reliable else "unreliable (see the warnings)"
+        conv = [
+            ("max_rhat", "Largest R-hat", "number", dg.get("max_rhat")),
+            ("min_ess_bulk", "Smallest bulk ESS", "number", dg.get("min_ess_bulk")),
+            ("min_ess_tail", "Smallest tail ESS", "number", dg.get("min_ess_tail")),
+            ("divergences", "Divergent transitions", "integer", dg.get("divergences")),
+            ("verdict", "Verdict", "text", verdict),
+        ]
+        notes = [(f"Reliable means R-hat at most {th.get('rhat_max', RHAT_MAX)}, bulk and tail ESS at least "
+                  f"{th.get('ess_min', ESS_MIN)} and no divergent transitions (Vehtari et al. 2021).")]
+        tables.append(one_row_table(f"{src}.convergence", "Convergence of the sampler", src, conv, notes))
+        if isinstance(ex.get("loo"), Mapping):
+            tables.append(_loo_table(ex["loo"], src))
+        if isinstance(ex.get("prior_sensitivity"), Mapping):
+            tables.append(_sensitivity_table(ex["prior_sensitivity"], src))
+        return tuple(tables)
+
+
+def _loo_table(loo: Mapping[str, Any], src: str) -> "Table":
+    """PSIS-LOO of the modelled-variance and the constant-variance model, from ``extras['loo']``."""
+    from ..tables import Column, make_table  # noqa: PLC0415
+
+    names = {"heteroscedastic": "modelled variance", "constant_variance": "constant variance"}
+    rows = [(names[k], loo[k]["elpd_loo"], loo[k]["se"], loo[k]["p_loo"], loo[k]["pareto_k_above_0.7"])
+            for k in names if isinstance(loo.get(k), Mapping)]
+    cols = [Column("model", "Variance model", "text"), Column("elpd_loo", "elpd (PSIS-LOO)"), Column("se", "SE"),
+            Column("p_loo", "Effective parameters"), Column("high_pareto_k", "Rows with Pareto k > 0.7", "integer")]
+    notes = [(f"Difference in elpd (modelled − constant variance): {format_number(loo.get('elpd_difference'))} "
+              f"(SE {format_number(loo.get('elpd_difference_se'))}); preferred: "
+              f"{names.get(str(loo.get('preferred')), loo.get('preferred'))} (Vehtari, Gelman & Gabry 2017).")]
+    return make_table(f"{src}.loo", "Modelled against constant variance (PSIS-LOO)", cols, rows, notes=notes,
+                      source=src)
+
+
+def _sensitivity_table(ps: Mapping[str, Any], src: str) -> "Table":
+    """The product-term posterior at each prior-SD multiplier, from ``extras['prior_sensitivity']``."""
+    from ..tables import Column, make_table  # noqa: PLC0415
+
+    rows = []
+    for factor, terms in sorted(ps["product_term"].items(), key=lambda kv: float(kv[0])):
+        for term, v in terms.items():
+            rows.append((float(factor), term, v["mean"], v["sd"], v["ci"][0], v["ci"][1]))
+    level = next((v["level"] for t in ps["product_term"].values() for v in t.values()), None)
+    cols = [Column("prior_sd_factor", "Prior SDs multiplied by"), Column("term", "Product term", "text"),
+            Column("mean", "Posterior mean"), Column("sd", "Posterior SD"),
+            Column("lower", "Lower", level=level), Column("upper", "Upper", level=level)]
+    notes = [(f"Largest shift of the posterior mean: {format_number(ps.get('max_shift_in_posterior_sd'))} posterior "
+              "SDs (in posterior SDs at multiplier 1).")]
+    return make_table(f"{src}.prior_sensitivity", "Prior sensitivity of the product term", cols, rows, notes=notes,
+                      source=src, level=level)
 
 
 class BayesBackend(Backend):

@@ -40,8 +40,8 @@ class OLSBackend(Backend):
     options = (Option("id", "text", "hc3", "Classical SE ('ols') or an HC estimator (set by the back-end id).",
                       choices=tuple(LABELS), case="insensitive"),)
 
-    def __init__(self, id: str = "hc3") -> None:
-        super().__init__(id=id)
+    def __init__(self, id: str = "hc3", **options: Any) -> None:
+        super().__init__(id=id, **options)
 
     def message_id(self, options: Mapping[str, Any]) -> str:
         given = options.get("id")

@@ -16,6 +16,7 @@ from typing import Any
 
 from ..defaults import BACKENDS
 from ..errors import InputError
+from .base import unknown_option
 
 #: Okabe & Ito (2008) colour-blind-safe palette.
 OKABE_ITO: Mapping[str, str] = MappingProxyType({
@@ -184,6 +185,10 @@ def make_backend(backend_id: str, **options: Any) -> Any:
         raise InputError(f"The '{clash[0]}' option of back-end '{e.id}' is set by the back-end id; choose "
                          f"another id instead (valid ids: {', '.join(_ENTRIES)}).")
     klass = backend_class(e.id)
+    user = [o.name for o in getattr(klass, "options", ()) if o.name not in e.fixed]
+    for name in options:
+        if name not in user:
+            raise unknown_option(e.id, str(name), user)
     try:
         return klass(**e.fixed, **options)
     except TypeError as exc:

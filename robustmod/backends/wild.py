@@ -39,15 +39,18 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, quadratic_forms
+from .base import (Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, one_row_table,
+                   quadratic_forms)
 from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 WEIGHT_KINDS = ("rademacher", "mammen", "webb")
 TRANSFORMS = ("hc2", "hc3", "none")
 WEIGHT_LABELS = {"rademacher": "Rademacher", "mammen": "Mammen", "webb": "Webb six-point"}
+_TRANSFORM_WORDS = {"hc2": "e/√(1 − h)", "hc3": "e/(1 − h)", "none": "none"}
 
 #: Doubles per working array of a chunk (8 MB); bounds peak memory whatever B is.
 CHUNK_ELEMENTS = 1_000_000
@@ -361,6 +364,26 @@ class BootstrapFit(Fit):
             method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
         p = float(_share_at_least(W_star, np.array(W)))
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
+
+    def report_tables(self) -> tuple["Table", ...]:
+        """The settings of this bootstrap (from its extras): replications, weights, SE type, enumeration, null."""
+        ex = self.extras
+        weights = ex.get("weights")
+        notes = []
+        if ex.get("enumerated"):
+            notes.append(f"Every one of the {ex.get('sign_patterns')} Rademacher sign patterns was used instead of "
+                         f"{ex.get('replications_requested')} random draws.")
+        cells = [
+            ("replications", "Replications", "integer", ex.get("replications")),
+            ("weights", "Weight distribution", "text", WEIGHT_LABELS.get(weights, weights) if weights else None),
+            ("se", "Standard error of the bootstrap t", "text", str(ex["se"]).upper() if ex.get("se") else None),
+            ("residual_transform", "Residual rescaling", "text",
+             _TRANSFORM_WORDS.get(ex.get("residual_transform"), ex.get("residual_transform"))),
+            ("enumerated", "All sign patterns enumerated", "flag", ex.get("enumerated")),
+            ("null_imposed", "Null imposed for the product-term test", "flag", bool(self.null)),
+        ]
+        return (one_row_table(f"{self.backend_id}.settings", "Wild bootstrap settings", self.backend_id, cells,
+                              notes),)
 
     def _meat_full(self) -> np.ndarray:
         """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""

@@ -35,11 +35,12 @@ import pandas as pd
 from scipy import linalg, optimize, special, stats
 
 from ..errors import InputError, option_error
-from .base import Backend, Option, Unavailable, WaldFit
+from .base import Backend, Option, Unavailable, WaldFit, one_row_table
 from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
 ESTIMATIONS = ("ml", "twostep")
@@ -348,6 +349,47 @@ class WLSFit(WaldFit):
         self.sigma_hat.setflags(write=False)
         self.weights = np.asarray(weights, dtype=float)
         self.weights.setflags(write=False)
+
+
+    def report_tables(self) -> tuple["Table", ...]:
+        """The variance model (coefficients on the user's terms) and its fit: LR test against constant
+        variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
+        from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+
+        vm = self.extras["variance_model"]
+        src = self.backend_id
+        tables = []
+        gamma = vm.get("gamma") or {}
+        if gamma:
+            rows = [(_GAMMA_LABELS.get(name, name), g["estimate"],
+                     NotApplicable("no standard error for this estimate") if g["se"] is None else g["se"])
+                    for name, g in gamma.items()]
+            what = {"loglinear": "log σᵢ² = zᵢᵀγ", "power": "log σᵢ² = log σ² + 2θ·log|μᵢ|",
+                    "groups": "log σᵢ² = one value per group"}.get(vm["function"], "")
+            tables.append(make_table(f"{src}.variance_model", f"Variance model ({what})",
+                                     [Column("term", "Term", "text"), Column("estimate", "Estimate"),
+                                      Column("se", "SE")], rows, source=src,
+                                     notes=[f"Estimated by {_ESTIMATION_WORDS.get(vm['estimation'], vm['estimation'])}."]))
+        lr = vm.get("lr_test")
+        no_lr = NotApplicable("the variance model has no parameter beyond the scale to test")
+        cells = [
+            ("lr_statistic", "LR statistic against constant variance", "number", lr["statistic"] if lr else no_lr),
+            ("lr_df", "LR df", "df", lr["df"] if lr else no_lr), ("lr_p", "LR p", "p", lr["p"] if lr else no_lr),
+            ("aic", "AIC, modelled variance", "number", vm.get("aic")),
+            ("aic_constant", "AIC, constant variance", "number", vm.get("aic_constant")),
+            ("converged", "ML converged", "flag", vm.get("converged")),
+            ("iterations", "Iterations", "integer", vm.get("iterations") if vm.get("converged") is not None else None),
+            ("weight_ratio", "Largest / smallest weight", "number", vm.get("weight_ratio")),
+        ]
+        notes = [vm["loglik_note"].capitalize() + "."] if vm.get("loglik_note") else []
+        tables.append(one_row_table(f"{src}.variance_fit", "Fit of the variance model", src, cells, notes))
+        return tuple(tables)
+
+
+#: Human labels of the γ of the power-of-the-mean model (other models use the user's term names).
+_GAMMA_LABELS = {"log_sigma2": "log σ² (scale)", "theta": "θ (power of |mean|)"}
+_ESTIMATION_WORDS = {"ml": "maximum likelihood", "twostep": "two-step FGLS", "known": "known weights",
+                     "twostep (ML did not converge)": "two-step FGLS (maximum likelihood did not converge)"}
 
 
 def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | None) -> dict[str, Any]:
