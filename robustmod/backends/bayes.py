@@ -379,9 +379,9 @@ def _loo_table(loo: Mapping[str, Any], src: str) -> "Table":
     names = {"heteroscedastic": "modelled variance", "constant_variance": "constant variance"}
     rows = [(names[k], loo[k]["elpd_loo"], loo[k]["se"], loo[k]["p_loo"], loo[k]["pareto_k_above_0.7"])
             for k in names if isinstance(loo.get(k), Mapping)]
-    cols = [Column("model", "Variance model", "text"), Column("elpd_loo", "elpd (PSIS-LOO)"), Column("se", "SE"),
+    cols = [Column("model", "Variance model", "text"), Column("elpd_loo", "ELPD (PSIS-LOO)"), Column("se", "SE"),
             Column("p_loo", "Effective parameters"), Column("high_pareto_k", "Rows with Pareto k > 0.7", "integer")]
-    notes = [(f"Difference in elpd (modelled − constant variance): {format_number(loo.get('elpd_difference'))} "
+    notes = [(f"Difference in ELPD (modelled − constant variance): {format_number(loo.get('elpd_difference'))} "
               f"(SE {format_number(loo.get('elpd_difference_se'))}); preferred: "
               f"{names.get(str(loo.get('preferred')), loo.get('preferred'))} (Vehtari, Gelman & Gabry 2017).")]
     return make_table(f"{src}.loo", "Modelled against constant variance (PSIS-LOO)", cols, rows, notes=notes,
