@@ -351,3 +351,55 @@ def test_toy_jackknife_matches_a_refit_loop() -> None:
     fit = fitted("jackknife")
     np.testing.assert_allclose(fit.cov, ref, rtol=1e-9, atol=1e-14)
     np.testing.assert_allclose(fit.params, sm.OLS(y, X).fit().params, rtol=1e-10)
+
+
+# ---- contents of the back-ends' own tables ----------------------------------------------------
+def _by_key(fit: Fit) -> dict[str, Table]:
+    return {t.key: t for t in fit.report_tables()}
+
+
+def test_wls_tables_show_the_variance_model_the_fit_computed() -> None:
+    fit = fitted("wls")
+    vm = fit.extras["variance_model"]
+    tables = _by_key(fit)
+    model = tables["wls.variance_model"].records()
+    assert [r["term"] for r in model] == list(vm["gamma"])
+    assert [r["estimate"] for r in model] == [g["estimate"] for g in vm["gamma"].values()]
+    row = tables["wls.variance_fit"].records()[0]
+    assert (row["lr_statistic"], row["lr_df"], row["lr_p"]) == (vm["lr_test"]["statistic"], vm["lr_test"]["df"],
+                                                                vm["lr_test"]["p"])
+    assert row["aic"] < row["aic_constant"]  # the known truth has a fanning spread
+    assert row["converged"] is True and row["iterations"] > 0
+    # The largest-to-smallest weight ratio, from the weights the fit used (closed form).
+    assert row["weight_ratio"] == pytest.approx(fit.weights.max() / fit.weights.min(), rel=1e-12)
+
+
+def test_wls_with_known_weights_has_no_variance_test() -> None:
+    from robustmod.tables import NotApplicable
+
+    frame = design().data.frame.assign(inv_var=lambda f: np.exp(-0.7 * f["w"]))
+    d = build_design(frame[["y", "x", "w", "inv_var"]].reset_index(drop=True), SPEC)
+    tables = _by_key(make_backend("wls", variance="known", weights="inv_var").fit(d, seed=0))
+    assert "wls.variance_model" not in tables
+    row = tables["wls.variance_fit"].records()[0]
+    assert isinstance(row["lr_p"], NotApplicable) and isinstance(row["converged"], NotApplicable)
+
+
+def test_wild_table_shows_its_settings() -> None:
+    row = _by_key(fitted("wild"))["wild.settings"].records()[0]
+    assert row == {"replications": 199, "weights": "Rademacher", "se": "HC3", "residual_transform": "e/√(1 − h)",
+                   "enumerated": False, "null_imposed": True}
+
+
+@pytest.mark.slow
+def test_bayes_tables_include_loo_and_prior_sensitivity_when_run() -> None:
+    fit = make_backend("bayes", **FAST["bayes"], prior_sensitivity=True).fit(design(), seed=SEED)
+    tables = _by_key(fit)
+    assert {"bayes.sampler", "bayes.convergence", "bayes.loo", "bayes.prior_sensitivity"} <= set(tables)
+    assert tables["bayes.sampler"].records()[0]["draws"] == 150
+    conv = tables["bayes.convergence"].records()[0]
+    assert conv["max_rhat"] == fit.extras["diagnostics"]["max_rhat"]
+    assert conv["verdict"] == ("reliable" if fit.reliable else "unreliable (see the warnings)")
+    assert [r["model"] for r in tables["bayes.loo"].records()] == ["modelled variance", "constant variance"]
+    factors = sorted({r["prior_sd_factor"] for r in tables["bayes.prior_sensitivity"].records()})
+    assert factors == [0.5, 1.0, 2.0]
