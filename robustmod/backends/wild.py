@@ -378,7 +378,7 @@ class BootstrapFit(Fit):
             ("weights", "Weight distribution", "text", WEIGHT_LABELS.get(weights, weights) if weights else None),
             ("se", "Standard error of the bootstrap t", "text", str(ex["se"]).upper() if ex.get("se") else None),
             ("residual_transform", "Residual rescaling", "text",
-             _TRANSFORM_WORDS.get(ex.get("residual_transform"), ex.get("residual_transform"))),
+             _TRANSFORM_WORDS.get(str(ex.get("residual_transform")), ex.get("residual_transform"))),
             ("enumerated", "All sign patterns enumerated", "flag", ex.get("enumerated")),
             ("null_imposed", "Null imposed for the product-term test", "flag", bool(self.null)),
         ]
