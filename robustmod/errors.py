@@ -25,9 +25,13 @@ class OptionError(InputError):
     """An option has a value outside its allowed range."""
 
 
-def option_error(name: str, requirement: str, got: object) -> OptionError:
-    """The shared template: "The 'alpha' option must be a number in (0, 1); got 1.5."."""
-    return OptionError(f"The '{name}' option must be {requirement}; got {got!r}.")
+def option_error(name: str, requirement: str, got: object, backend: str | None = None) -> OptionError:
+    """The shared template: "The 'alpha' option must be a number in (0, 1); got 1.5.".
+
+    With ``backend``: "The 'replications' option of back-end 'wild' must be …; got 12.".
+    """
+    owner = f" of back-end '{backend}'" if backend else ""
+    return OptionError(f"The '{name}' option{owner} must be {requirement}; got {got!r}.")
 
 
 def close_matches(name: str, candidates: Iterable[str], n: int = 3) -> str:

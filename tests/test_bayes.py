@@ -253,7 +253,8 @@ def test_check_command_reports_the_bayesian_answers(wage1, tmp_path, capsys):
     wage1.to_csv(path, index=False)
     code = main(["check", str(path), "--formula", "lwage ~ educ * exper + tenure", "--focal", "educ",
                  "--moderator", "exper", "--backends", "hc3,bayes", "--json",
-                 "--set", "bayes.draws=300", "--set", "bayes.tune=300", "--set", "bayes.chains=2"])
+                 "--set", "bayes.draws=300", "--set", "bayes.tune=300", "--set", "bayes.chains=2",
+                 "--set", "bayes.prior_sensitivity=true"])
     assert code == 0
     res = json.loads(capsys.readouterr().out)
     b = res["backends"]["bayes"]

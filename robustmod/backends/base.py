@@ -12,12 +12,18 @@ Effects, regions and the comparison only call :meth:`Fit.estimate`,
 """
 from __future__ import annotations
 
+import difflib
+import os
 from abc import ABC, abstractmethod
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any, Protocol
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Literal
 
 import numpy as np
 from scipy import linalg, stats
+
+from ..errors import OptionError, option_error
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -251,11 +257,231 @@ class PosteriorFit(Fit):
                          f"posterior tail share beyond zero = {tail:.3f}", bool(tail < alpha))
 
 
-class Backend(Protocol):
-    """What the registry hands out: ``fit(design)`` returns a Fit or an Unavailable."""
 
-    id: str
-    label: str
+# ---------------------------------------------------------------------------------------
+# The declared back-end contract
+# ---------------------------------------------------------------------------------------
+OptionType = Literal["integer", "number", "flag", "text", "names", "path"]
+Cost = Literal["cheap", "moderate", "costly"]
+COSTS: tuple[str, ...] = ("cheap", "moderate", "costly")
 
-    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:  # pragma: no cover
-        ...
+
+def _bound(x: float) -> str:
+    """1000000 → '10^6' (a power of ten from 10^4 up), 0.5 → '0.5', 99 → '99'."""
+    if x >= 1e4 and float(np.log10(x)).is_integer():
+        return f"10^{int(np.log10(x))}"
+    return f"{x:g}"
+
+
+@dataclass(frozen=True)
+class Option:
+    """One declared option of a back-end: its type, default and allowed values.
+
+    ``type`` is 'integer' (a whole number; a whole float such as 1e4 is accepted), 'number',
+    'flag' (True/False), 'text' (free or one of ``choices``), 'names' (column names, a list or
+    one comma-separated string; stored as a tuple) or 'path' (a file in an existing folder).
+    ``low``/``high`` bound a number, each end closed unless ``low_open``/``high_open``.
+    ``case`` 'insensitive' matches ``choices`` in any case and stores the declared spelling.
+    A default of None means "unset" and None is then always accepted.
+    """
+
+    name: str
+    type: OptionType
+    default: Any
+    help: str
+    low: float | None = None
+    high: float | None = None
+    low_open: bool = False
+    high_open: bool = False
+    choices: tuple[str, ...] | None = None
+    case: Literal["exact", "insensitive"] = "exact"
+
+    @property
+    def requirement(self) -> str:
+        """The allowed values in words: "a whole number in [99, 10^6]", "one of 'a', 'b'"."""
+        noun = {"integer": "a whole number", "number": "a number", "flag": "true or false",
+                "text": "a non-empty text", "names": "a list of column names (or one comma-separated text)",
+                "path": "a file path in an existing folder"}[self.type]
+        if self.choices is not None:
+            noun = "one of " + ", ".join(repr(c) for c in self.choices)
+            noun += " (any case)" if self.case == "insensitive" else ""
+        if self.low is not None and self.high is not None:
+            noun += (f" in {'(' if self.low_open else '['}{_bound(self.low)}, "
+                     f"{_bound(self.high)}{')' if self.high_open else ']'}")
+        elif self.low is not None:
+            noun += f" {'greater than' if self.low_open else 'of at least'} {_bound(self.low)}"
+        elif self.high is not None:
+            noun += f" {'less than' if self.high_open else 'of at most'} {_bound(self.high)}"
+        return noun + (", or left unset" if self.default is None else "")
+
+    def describe(self) -> str:
+        """One line of help: "replications: a whole number in [99, 10^6] (default 9999). Bootstrap replicates."."""
+        default = "unset" if self.default is None else repr(self.default)
+        return f"{self.name}: {self.requirement} (default {default}). {self.help}"
+
+    def check(self, value: Any, backend_id: str) -> Any:
+        """The validated value (converted to its stored form), or an OptionError with the shared template."""
+        if value is None and self.default is None:
+            return None
+        out = _CONVERTERS[self.type](self, value)
+        if out is _BAD:
+            raise self.error(value, backend_id)
+        return out
+
+    def error(self, value: Any, backend_id: str) -> OptionError:
+        return option_error(self.name, self.requirement, value, backend_id)
+
+    def _in_range(self, x: float) -> bool:
+        lo_ok = self.low is None or (x > self.low if self.low_open else x >= self.low)
+        hi_ok = self.high is None or (x < self.high if self.high_open else x <= self.high)
+        return bool(lo_ok and hi_ok)
+
+
+_BAD = object()
+
+
+def _to_integer(opt: Option, v: Any) -> Any:
+    if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, np.integer, float, np.floating)):
+        return _BAD
+    if not np.isfinite(v) or float(v) != round(float(v)):
+        return _BAD
+    return int(v) if opt._in_range(float(v)) else _BAD
+
+
+def _to_number(opt: Option, v: Any) -> Any:
+    if isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, np.integer, float, np.floating)):
+        return _BAD
+    return float(v) if np.isfinite(v) and opt._in_range(float(v)) else _BAD
+
+
+def _to_flag(opt: Option, v: Any) -> Any:
+    return bool(v) if isinstance(v, (bool, np.bool_)) else _BAD
+
+
+def _to_text(opt: Option, v: Any) -> Any:
+    if not isinstance(v, str) or not v.strip():
+        return _BAD
+    text = v.strip()
+    if opt.choices is None:
+        return text
+    if opt.case == "insensitive":
+        found = {c.lower(): c for c in opt.choices}.get(text.lower())
+        return _BAD if found is None else found
+    return text if text in opt.choices else _BAD
+
+
+def _to_names(opt: Option, v: Any) -> Any:
+    if isinstance(v, str):
+        items = [p.strip() for p in v.split(",")]
+    elif isinstance(v, (list, tuple)) and all(isinstance(p, str) for p in v):
+        items = [p.strip() for p in v]
+    else:
+        return _BAD
+    items = [p for p in items if p]
+    return tuple(dict.fromkeys(items)) if items else _BAD
+
+
+def _to_path(opt: Option, v: Any) -> Any:
+    if not isinstance(v, (str, os.PathLike)) or not str(v).strip():
+        return _BAD
+    return str(v) if Path(v).parent.is_dir() else _BAD
+
+
+_CONVERTERS = {"integer": _to_integer, "number": _to_number, "flag": _to_flag, "text": _to_text,
+               "names": _to_names, "path": _to_path}
+
+
+def validate_options(backend_id: str, declared: tuple[Option, ...], given: Mapping[str, Any]) -> dict[str, Any]:
+    """Every declared option's value (given, else its default), checked; an unknown name is an OptionError
+    that lists the valid names and suggests the closest."""
+    by_name = {o.name: o for o in declared}
+    for name in given:
+        if name not in by_name:
+            raise unknown_option(backend_id, str(name), [o.name for o in declared])
+    return {o.name: o.check(given[o.name], backend_id) if o.name in given else o.default for o in declared}
+
+
+def unknown_option(backend_id: str, name: str, valid: list[str]) -> OptionError:
+    """"The back-end 'wild' has no option 'replicatons'; valid options: …; did you mean 'replications'?"."""
+    if not valid:
+        return OptionError(f"The back-end '{backend_id}' has no option {name!r}; it takes no options (remove the setting).")
+    close = difflib.get_close_matches(name, valid, n=1, cutoff=0.6)
+    hint = f"; did you mean {close[0]!r}?" if close else "."
+    return OptionError(f"The back-end '{backend_id}' has no option {name!r}; valid options: "
+                       f"{', '.join(valid)}{hint}")
+
+
+class _CostlyFlag:
+    """``costly`` read on the class or an instance: True when ``cost == "costly"``."""
+
+    def __get__(self, obj: Any, owner: type) -> bool:
+        return getattr(owner, "cost", "cheap") == "costly"
+
+
+class Backend(ABC):
+    """A back-end: declared facts as class attributes, validated options, ``fit(design) -> Fit``.
+
+    Subclasses declare ``id``, ``label``, ``assumes_constant_variance``, ``assumes_independent_rows``,
+    ``cost`` and ``options`` (a tuple of :class:`Option`); the calibration reads
+    ``calibration_options`` (options forced per simulated dataset), ``calibration_note`` and, when a
+    subclass defines it, ``reject_many(design, Y, alpha, *, seed)`` (a batched decision). The
+    constructor only validates and stores the options as attributes (scikit-learn style); rules that
+    tie several options together, and values derived from them such as the label, go in
+    :meth:`finish_options`.
+    """
+
+    id: str = ""
+    label: str = ""
+    assumes_constant_variance: bool = False
+    assumes_independent_rows: bool = True
+    cost: Cost = "cheap"
+    options: tuple[Option, ...] = ()
+    calibration_options: Mapping[str, Any] = {}
+    calibration_note: str = ""
+    costly = _CostlyFlag()
+
+    def __init_subclass__(cls, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if cls.cost not in COSTS:
+            raise TypeError(f"{cls.__name__}.cost must be one of {COSTS}")
+        names = [o.name for o in cls.options]
+        if len(set(names)) != len(names):
+            raise TypeError(f"{cls.__name__} declares an option twice")
+        if not set(cls.calibration_options) <= set(names):
+            raise TypeError(f"{cls.__name__}.calibration_options names undeclared options")
+
+    def __init__(self, **options: Any) -> None:
+        values = validate_options(self.message_id(options), type(self).options, options)
+        for name, value in values.items():
+            setattr(self, name, value)
+        self.finish_options()
+
+    def message_id(self, options: Mapping[str, Any]) -> str:
+        """The id that option messages name (the class's ``id``)."""
+        return type(self).id
+
+    def finish_options(self) -> None:
+        """Checks across options and derived settings; the default has none."""
+
+    def get_options(self) -> dict[str, Any]:
+        """The stored value of every declared option."""
+        return {o.name: getattr(self, o.name) for o in type(self).options}
+
+    @abstractmethod
+    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """Fit the moderation model on ``design``; an Unavailable says why no answer is possible."""
+
+    def __repr__(self) -> str:
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.get_options().items())
+        return f"{type(self).__name__}({shown})"
+
+
+def one_row_table(key: str, title: str, source: str, cells: Sequence[tuple[str, str, str, Any]],
+                  notes: Sequence[str] = ()) -> "Table":
+    """A report table of one row from (machine key, human label, column kind, value) cells;
+    a value of None becomes a NotApplicable saying it was not computed."""
+    from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+
+    columns = [Column(k, lab, kind) for k, lab, kind, _ in cells]  # type: ignore[arg-type]
+    row = [NotApplicable("not computed for this fit") if v is None else v for *_, v in cells]
+    return make_table(key, title, columns, [row], notes=notes, source=source)

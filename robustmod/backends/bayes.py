@@ -23,19 +23,20 @@ from __future__ import annotations
 import os
 import time
 import warnings as pywarnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg, special
 
 from ..errors import InputError, option_error
-from .base import Fit, PosteriorFit, Unavailable
+from ..tables import format_number
+from .base import Backend, Fit, Option, PosteriorFit, Unavailable, one_row_table
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 #: Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021): rank-normalised R-hat and ESS thresholds.
 RHAT_MAX = 1.01
@@ -61,6 +62,7 @@ PPC_DRAWS = 400
 
 LIKELIHOODS = ("normal", "student")
 MODELS = ("location-scale", "constant-conjugate")
+SAMPLERS = ("pymc", "nutpie", "numpyro")
 
 
 # ---------------------------------------------------------------------------------------
@@ -334,7 +336,77 @@ class BayesFit(PosteriorFit):
         self.sigma_hat.setflags(write=False)
 
 
-class BayesBackend:
+    def report_tables(self) -> tuple["Table", ...]:
+        """Sampler settings, convergence and the reliability verdict, PSIS-LOO against constant variance,
+        and the prior sensitivity when it was run — all from the fit's extras."""
+        ex = self.extras
+        src = self.backend_id
+        st = ex.get("sampler") or {}
+        settings = [
+            ("sampler", "Sampler", "text", st.get("sampler")), ("chains", "Chains", "integer", st.get("chains")),
+            ("draws", "Draws per chain", "integer", st.get("draws")),
+            ("tune", "Tuning steps per chain", "integer", st.get("tune")),
+            ("target_accept", "Target acceptance rate", "number", st.get("target_accept")),
+            ("likelihood", "Likelihood", "text", st.get("likelihood")), ("model", "Model", "text", st.get("model")),
+            ("prior_scale", "Prior SD multiplier", "number", st.get("prior_scale")),
+            ("qr", "QR reparameterisation", "flag", st.get("qr_reparameterisation")),
+        ]
+        tables = [one_row_table(f"{src}.sampler", "Sampler settings", src, settings)]
+        dg = ex.get("diagnostics") or {}
+        th = dg.get("thresholds") or {}
+        verdict = "reliable" if self.reliable else "unreliable (see the warnings)"
+        conv = [
+            ("max_rhat", "Largest R-hat", "number", dg.get("max_rhat")),
+            ("min_ess_bulk", "Smallest bulk ESS", "number", dg.get("min_ess_bulk")),
+            ("min_ess_tail", "Smallest tail ESS", "number", dg.get("min_ess_tail")),
+            ("divergences", "Divergent transitions", "integer", dg.get("divergences")),
+            ("verdict", "Verdict", "text", verdict),
+        ]
+        notes = [(f"Reliable means R-hat at most {th.get('rhat_max', RHAT_MAX)}, bulk and tail ESS at least "
+                  f"{th.get('ess_min', ESS_MIN)} and no divergent transitions (Vehtari et al. 2021).")]
+        tables.append(one_row_table(f"{src}.convergence", "Convergence of the sampler", src, conv, notes))
+        if isinstance(ex.get("loo"), Mapping):
+            tables.append(_loo_table(ex["loo"], src))
+        if isinstance(ex.get("prior_sensitivity"), Mapping):
+            tables.append(_sensitivity_table(ex["prior_sensitivity"], src))
+        return tuple(tables)
+
+
+def _loo_table(loo: Mapping[str, Any], src: str) -> "Table":
+    """PSIS-LOO of the modelled-variance and the constant-variance model, from ``extras['loo']``."""
+    from ..tables import Column, make_table  # noqa: PLC0415
+
+    names = {"heteroscedastic": "modelled variance", "constant_variance": "constant variance"}
+    rows = [(names[k], loo[k]["elpd_loo"], loo[k]["se"], loo[k]["p_loo"], loo[k]["pareto_k_above_0.7"])
+            for k in names if isinstance(loo.get(k), Mapping)]
+    cols = [Column("model", "Variance model", "text"), Column("elpd_loo", "ELPD (PSIS-LOO)"), Column("se", "SE"),
+            Column("p_loo", "Effective parameters"), Column("high_pareto_k", "Rows with Pareto k > 0.7", "integer")]
+    notes = [(f"Difference in ELPD (modelled − constant variance): {format_number(loo.get('elpd_difference'))} "
+              f"(SE {format_number(loo.get('elpd_difference_se'))}); preferred: "
+              f"{names.get(str(loo.get('preferred')), loo.get('preferred'))} (Vehtari, Gelman & Gabry 2017).")]
+    return make_table(f"{src}.loo", "Modelled against constant variance (PSIS-LOO)", cols, rows, notes=notes,
+                      source=src)
+
+
+def _sensitivity_table(ps: Mapping[str, Any], src: str) -> "Table":
+    """The product-term posterior at each prior-SD multiplier, from ``extras['prior_sensitivity']``."""
+    from ..tables import Column, make_table  # noqa: PLC0415
+
+    rows = []
+    for factor, terms in sorted(ps["product_term"].items(), key=lambda kv: float(kv[0])):
+        for term, v in terms.items():
+            rows.append((float(factor), term, v["mean"], v["sd"], v["ci"][0], v["ci"][1]))
+    level = next((v["level"] for t in ps["product_term"].values() for v in t.values()), None)
+    cols = [Column("prior_sd_factor", "Prior SDs multiplied by"), Column("term", "Product term", "text"),
+            Column("mean", "Posterior mean"), Column("sd", "Posterior SD"),
+            Column("lower", "Lower", level=level), Column("upper", "Upper", level=level)]
+    notes = [(f"Largest shift of the posterior mean: {format_number(ps.get('max_shift_in_posterior_sd'))} posterior "
+              "SDs (in posterior SDs at multiplier 1).")]
+    return make_table(f"{src}.prior_sensitivity", "Prior sensitivity of the product term", cols, rows, notes=notes,
+                      source=src, level=level)
+
+
+class BayesBackend(Backend):
     """Bayesian location–scale model (PyMC, NUTS, CPU).
 
     Parameters
@@ -347,7 +419,7 @@ class BayesBackend:
     variance_terms : list of str or comma-separated str, optional
         Data columns entering log σ besides the intercept (categorical ones as dummies);
         default the focal predictor and the moderators — the same variance model as ``wls``.
-    prior_sensitivity : bool, default=True
+    prior_sensitivity : bool, default=False
         Refit at prior scales × 0.5 and × 2.
     save_posterior : str or path, optional
         Write the InferenceData there as netCDF.
@@ -356,58 +428,54 @@ class BayesBackend:
     model : {"location-scale", "constant-conjugate"}, default="location-scale"
         The second is a constant-variance normal–inverse-gamma model with a closed-form
         posterior, for checking the sampler.
+    sampler : {"pymc", "nutpie", "numpyro"}, default="pymc"
+        The NUTS implementation.
     """
 
     id = "bayes"
     label = "Bayesian location–scale (PyMC)"
+    assumes_constant_variance = False
+    assumes_independent_rows = True
     #: Each simulated dataset of a calibration study is a full sampling run.
-    costly = True
+    cost = "costly"
+    options = (
+        Option("draws", "integer", 1000, "Posterior draws per chain after tuning.", low=50),
+        Option("tune", "integer", 1000, "Tuning steps per chain.", low=50),
+        Option("chains", "integer", 4, "Independent chains.", low=1),
+        Option("target_accept", "number", 0.9, "Target acceptance rate of NUTS (higher: smaller steps).",
+               low=0.5, high=1.0, high_open=True),
+        Option("likelihood", "text", "normal", "Normal or Student-t errors.", choices=LIKELIHOODS),
+        Option("prior_scale", "number", 1.0, "Multiplies every prior SD on the standardised scale.",
+               low=0.0, low_open=True),
+        Option("variance_terms", "names", None, "Columns entering log sigma besides the intercept; default the "
+               "focal predictor and the moderators."),
+        Option("prior_sensitivity", "flag", False, "Refit at prior scales x 0.5 and x 2."),
+        Option("save_posterior", "path", None, "Write the posterior (InferenceData) there as netCDF."),
+        Option("cores", "integer", None, "Chains run in parallel; default min(chains, CPU count).", low=1),
+        Option("model", "text", "location-scale", "The location–scale model, or a constant-variance conjugate "
+               "model with a closed-form posterior (for checking the sampler).", choices=MODELS),
+        Option("sampler", "text", "pymc", "The NUTS implementation.", choices=SAMPLERS, case="insensitive"),
+    )
     calibration_options = {"draws": 500, "tune": 500, "chains": 2, "prior_sensitivity": False}
     calibration_note = ("The Bayesian back-end was calibrated with 2 chains x 500 draws after 500 tuning steps "
                         "per simulated dataset and no prior-sensitivity refits.")
 
-    def __init__(self, *, draws: int = 1000, tune: int = 1000, chains: int = 4, target_accept: float = 0.9,
-                 likelihood: str = "normal", prior_scale: float = 1.0,
-                 variance_terms: Sequence[str] | str | None = None, prior_sensitivity: bool = True,
-                 save_posterior: str | os.PathLike[str] | None = None, cores: int | None = None,
-                 model: str = "location-scale") -> None:
-        for name, value, low in (("draws", draws, 50), ("tune", tune, 50), ("chains", chains, 1)):
-            if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or value < low:
-                raise option_error(name, f"a whole number of at least {low}", value)
-        if isinstance(target_accept, bool) or not isinstance(target_accept, (int, float)) or not 0.5 <= target_accept < 1:
-            raise option_error("target_accept", "a number in [0.5, 1)", target_accept)
-        if likelihood not in LIKELIHOODS:
-            raise option_error("likelihood", "'normal' or 'student'", likelihood)
-        if (isinstance(prior_scale, bool) or not isinstance(prior_scale, (int, float))
-                or not np.isfinite(prior_scale) or prior_scale <= 0):
-            raise option_error("prior_scale", "a positive number", prior_scale)
-        if variance_terms is not None:
-            if isinstance(variance_terms, str):
-                variance_terms = [t.strip() for t in variance_terms.split(",") if t.strip()]
-            if not all(isinstance(t, str) for t in variance_terms):
-                raise option_error("variance_terms", "a list of column names", variance_terms)
-            variance_terms = tuple(variance_terms)
-        if not isinstance(prior_sensitivity, bool):
-            raise option_error("prior_sensitivity", "true or false", prior_sensitivity)
-        if save_posterior is not None:
-            path = Path(save_posterior)
-            if not str(save_posterior).strip() or not path.parent.is_dir():
-                raise option_error("save_posterior", "a file path in an existing directory", str(save_posterior))
-        if cores is not None and (isinstance(cores, bool) or not isinstance(cores, (int, np.integer)) or cores < 1):
-            raise option_error("cores", "a whole number of at least 1", cores)
-        if model not in MODELS:
-            raise option_error("model", "'location-scale' or 'constant-conjugate'", model)
-        if model == "constant-conjugate" and likelihood != "normal":
-            raise option_error("likelihood", "'normal' with model='constant-conjugate'", likelihood)
-        self.draws, self.tune, self.chains = int(draws), int(tune), int(chains)
-        self.target_accept = float(target_accept)
-        self.likelihood = likelihood
-        self.prior_scale = float(prior_scale)
-        self.variance_terms = variance_terms
-        self.prior_sensitivity = prior_sensitivity
-        self.save_posterior = None if save_posterior is None else str(save_posterior)
-        self.cores = None if cores is None else int(cores)
-        self.model = model
+    draws: int
+    tune: int
+    chains: int
+    target_accept: float
+    likelihood: str
+    prior_scale: float
+    variance_terms: tuple[str, ...] | None
+    prior_sensitivity: bool
+    save_posterior: str | None
+    cores: int | None
+    model: str
+    sampler: str
+
+    def finish_options(self) -> None:
+        if self.model == "constant-conjugate" and self.likelihood != "normal":
+            raise option_error("likelihood", "'normal' with model='constant-conjugate'", self.likelihood, "bayes")
 
     # ---- variance model ------------------------------------------------------------
     # ---- fit ---------------------------------------------------------------------------

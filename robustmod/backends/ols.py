@@ -6,12 +6,13 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg
 
-from .base import Fit, Unavailable, WaldFit
+from .base import Backend, Fit, Option, Unavailable, WaldFit
 from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -24,14 +25,31 @@ LABELS = {
 }
 
 
-class OLSBackend:
-    """Ordinary least squares; ``covariance`` is 'classical' or one of hc0 … hc5."""
+class OLSBackend(Backend):
+    """Ordinary least squares; ``id`` is 'ols' (classical SE) or one of hc0 … hc5.
 
-    def __init__(self, id: str = "hc3") -> None:
-        if id not in LABELS:
-            raise ValueError(id)
-        self.id = id
-        self.label = LABELS[id]
+    One class serves several registry ids: the registry fixes ``id``, and the label and the
+    constant-variance flag follow it.
+    """
+
+    id = "hc3"
+    label = LABELS["hc3"]
+    assumes_constant_variance = False
+    assumes_independent_rows = True
+    cost = "cheap"
+    options = (Option("id", "text", "hc3", "Classical SE ('ols') or an HC estimator (set by the back-end id).",
+                      choices=tuple(LABELS), case="insensitive"),)
+
+    def __init__(self, id: str = "hc3", **options: Any) -> None:
+        super().__init__(id=id, **options)
+
+    def message_id(self, options: Mapping[str, Any]) -> str:
+        given = options.get("id")
+        return given.lower() if isinstance(given, str) and given.lower() in LABELS else type(self).id
+
+    def finish_options(self) -> None:
+        self.label = LABELS[self.id]
+        self.assumes_constant_variance = self.id == "ols"
 
     def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         Q, R = design.qr

@@ -39,15 +39,18 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
+from .base import (Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, one_row_table,
+                   quadratic_forms)
 from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 WEIGHT_KINDS = ("rademacher", "mammen", "webb")
 TRANSFORMS = ("hc2", "hc3", "none")
 WEIGHT_LABELS = {"rademacher": "Rademacher", "mammen": "Mammen", "webb": "Webb six-point"}
+_TRANSFORM_WORDS = {"hc2": "e/√(1 − h)", "hc3": "e/(1 − h)", "none": "none"}
 
 #: Doubles per working array of a chunk (8 MB); bounds peak memory whatever B is.
 CHUNK_ELEMENTS = 1_000_000
@@ -362,13 +365,33 @@ class BootstrapFit(Fit):
         p = float(_share_at_least(W_star, np.array(W)))
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
 
+    def report_tables(self) -> tuple["Table", ...]:
+        """The settings of this bootstrap (from its extras): replications, weights, SE type, enumeration, null."""
+        ex = self.extras
+        weights = ex.get("weights")
+        notes = []
+        if ex.get("enumerated"):
+            notes.append(f"Every one of the {ex.get('sign_patterns')} Rademacher sign patterns was used instead of "
+                         f"{ex.get('replications_requested')} random draws.")
+        cells = [
+            ("replications", "Replications", "integer", ex.get("replications")),
+            ("weights", "Weight distribution", "text", WEIGHT_LABELS.get(weights, weights) if weights else None),
+            ("se", "Standard error of the bootstrap t", "text", str(ex["se"]).upper() if ex.get("se") else None),
+            ("residual_transform", "Residual rescaling", "text",
+             _TRANSFORM_WORDS.get(str(ex.get("residual_transform")), ex.get("residual_transform"))),
+            ("enumerated", "All sign patterns enumerated", "flag", ex.get("enumerated")),
+            ("null_imposed", "Null imposed for the product-term test", "flag", bool(self.null)),
+        ]
+        return (one_row_table(f"{self.backend_id}.settings", "Wild bootstrap settings", self.backend_id, cells,
+                              notes),)
+
     def _meat_full(self) -> np.ndarray:
         """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""
         return _full_from_pairs(self.meat, self.params.size)
 
 
 # ---- the back-end --------------------------------------------------------------------------
-class WildBootstrapBackend:
+class WildBootstrapBackend(Backend):
     """Wild bootstrap with an HC-type t statistic; null imposed for the product term.
 
     Parameters
@@ -394,26 +417,31 @@ class WildBootstrapBackend:
     """
 
     id = "wild"
+    label = "Wild bootstrap (HC3-t, Rademacher)"
+    assumes_constant_variance = False
+    assumes_independent_rows = True
+    cost = "moderate"
+    options = (
+        Option("replications", "integer", 9999, "Bootstrap replicates B (B + 1 a multiple of 100 keeps "
+               "alpha·(B + 1) whole).", low=99, high=1_000_000),
+        Option("weights", "text", "rademacher", "Auxiliary weight distribution (Liu 1988; Mammen 1993; Webb 2014).",
+               choices=WEIGHT_KINDS, case="insensitive"),
+        Option("se", "text", "hc3", "HC estimator of the bootstrap t statistic.", choices=tuple(HC_WEIGHTS),
+               case="insensitive"),
+        Option("transform", "text", "hc2", "Rescaling of the base residuals: e/sqrt(1 - h), e/(1 - h) or none.",
+               choices=TRANSFORMS, case="insensitive"),
+    )
     #: Inside each simulated dataset of a calibration study fewer replications suffice.
     calibration_options = {"replications": 399}
     calibration_note = ("The wild bootstrap used 399 replications per simulated dataset "
                         "(the main comparison may use more).")
 
-    def __init__(self, *, replications: int = 9999, weights: str = "rademacher", se: str = "hc3",
-                 transform: str = "hc2") -> None:
-        if isinstance(replications, bool) or not isinstance(replications, (int, np.integer)) \
-                or not 99 <= replications <= 1_000_000:
-            raise option_error("replications", "a whole number from 99 to 1000000", replications)
-        if not isinstance(weights, str) or weights.lower() not in WEIGHT_KINDS:
-            raise option_error("weights", f"one of {', '.join(WEIGHT_KINDS)}", weights)
-        if not isinstance(se, str) or se.lower() not in HC_WEIGHTS:
-            raise option_error("se", f"one of {', '.join(HC_WEIGHTS)}", se)
-        if not isinstance(transform, str) or transform.lower() not in TRANSFORMS:
-            raise option_error("transform", f"one of {', '.join(TRANSFORMS)}", transform)
-        self.replications = int(replications)
-        self.weights = weights.lower()
-        self.se = se.lower()
-        self.transform = transform.lower()
+    replications: int
+    weights: str
+    se: str
+    transform: str
+
+    def finish_options(self) -> None:
         self.label = f"Wild bootstrap ({self.se.upper()}-t, {WEIGHT_LABELS[self.weights]})"
 
     # ---- shared pieces -------------------------------------------------------------------

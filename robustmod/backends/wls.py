@@ -35,11 +35,12 @@ import pandas as pd
 from scipy import linalg, optimize, special, stats
 
 from ..errors import InputError, option_error
-from .base import Unavailable, WaldFit
+from .base import Backend, Option, Unavailable, WaldFit, one_row_table
 from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..tables import Table
 
 VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
 ESTIMATIONS = ("ml", "twostep")
@@ -350,6 +351,47 @@ class WLSFit(WaldFit):
         self.weights.setflags(write=False)
 
 
+    def report_tables(self) -> tuple["Table", ...]:
+        """The variance model (coefficients on the user's terms) and its fit: LR test against constant
+        variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
+        from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+
+        vm = self.extras["variance_model"]
+        src = self.backend_id
+        tables = []
+        gamma = vm.get("gamma") or {}
+        if gamma:
+            rows = [(_GAMMA_LABELS.get(name, name), g["estimate"],
+                     NotApplicable("no standard error for this estimate") if g["se"] is None else g["se"])
+                    for name, g in gamma.items()]
+            what = {"loglinear": "log σᵢ² = zᵢᵀγ", "power": "log σᵢ² = log σ² + 2θ·log|μᵢ|",
+                    "groups": "log σᵢ² = one value per group"}.get(vm["function"], "")
+            tables.append(make_table(f"{src}.variance_model", f"Variance model ({what})",
+                                     [Column("term", "Term", "text"), Column("estimate", "Estimate"),
+                                      Column("se", "SE")], rows, source=src,
+                                     notes=[f"Estimated by {_ESTIMATION_WORDS.get(vm['estimation'], vm['estimation'])}."]))
+        lr = vm.get("lr_test")
+        no_lr = NotApplicable("the variance model has no parameter beyond the scale to test")
+        cells = [
+            ("lr_statistic", "LR statistic against constant variance", "number", lr["statistic"] if lr else no_lr),
+            ("lr_df", "LR df", "df", lr["df"] if lr else no_lr), ("lr_p", "LR p", "p", lr["p"] if lr else no_lr),
+            ("aic", "AIC, modelled variance", "number", vm.get("aic")),
+            ("aic_constant", "AIC, constant variance", "number", vm.get("aic_constant")),
+            ("converged", "ML converged", "flag", vm.get("converged")),
+            ("iterations", "Iterations", "integer", vm.get("iterations") if vm.get("converged") is not None else None),
+            ("weight_ratio", "Largest / smallest weight", "number", vm.get("weight_ratio")),
+        ]
+        notes = [vm["loglik_note"].capitalize() + "."] if vm.get("loglik_note") else []
+        tables.append(one_row_table(f"{src}.variance_fit", "Fit of the variance model", src, cells, notes))
+        return tuple(tables)
+
+
+#: Human labels of the γ of the power-of-the-mean model (other models use the user's term names).
+_GAMMA_LABELS = {"log_sigma2": "log σ² (scale)", "theta": "θ (power of |mean|)"}
+_ESTIMATION_WORDS = {"ml": "maximum likelihood", "twostep": "two-step FGLS", "known": "known weights",
+                     "twostep (ML did not converge)": "two-step FGLS (maximum likelihood did not converge)"}
+
+
 def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | None) -> dict[str, Any]:
     """LR test of the variance model against constant variance, AIC of both."""
     Q, _ = np.linalg.qr(X, mode="reduced")
@@ -566,21 +608,7 @@ def variance_model_for(design: "Design", variance: str, variance_terms: tuple[st
 # --------------------------------------------------------------------------------------
 # The back-end
 # --------------------------------------------------------------------------------------
-def _as_names(value: Any, option: str) -> tuple[str, ...] | None:
-    if value is None:
-        return None
-    if isinstance(value, str):
-        items = [v.strip() for v in value.split(",") if v.strip()]
-    elif isinstance(value, (list, tuple)) and all(isinstance(v, str) for v in value):
-        items = [v.strip() for v in value if v.strip()]
-    else:
-        raise option_error(option, "a list of column names (or one comma-separated string)", value)
-    if not items:
-        raise option_error(option, "a non-empty list of column names", value)
-    return tuple(dict.fromkeys(items))
-
-
-class WLSBackend:
+class WLSBackend(Backend):
     """Weighted least squares with a modelled variance function.
 
     Parameters
@@ -599,33 +627,40 @@ class WLSBackend:
     """
 
     id = "wls"
-    label = "WLS with a modelled variance function"
+    label = "WLS, log-linear variance (ML) + HC3"
+    assumes_constant_variance = False
+    assumes_independent_rows = True
+    cost = "cheap"
+    options = (
+        Option("variance", "text", "loglinear", "The variance function: log-linear in z, a power of the mean, "
+               "one variance per group, or known weights.", choices=VARIANCE_FUNCTIONS),
+        Option("variance_terms", "names", None, "Columns of z of the log-linear model (an intercept is added); "
+               "default the focal predictor and the moderators."),
+        Option("group", "text", None, "Grouping column of variance='groups'; default the categorical moderator."),
+        Option("weights", "text", None, "Column of known inverse variances of variance='known'."),
+        Option("estimation", "text", "ml", "Joint maximum likelihood or two-step FGLS.", choices=ESTIMATIONS),
+        Option("se", "text", "robust", "HC3 on the weighted fit (robust) or s²(XᵀWX)⁻¹ (model).", choices=SE_TYPES),
+    )
 
-    def __init__(self, *, variance: str = "loglinear", variance_terms: Any = None, group: str | None = None,
-                 weights: str | None = None, estimation: str = "ml", se: str = "robust") -> None:
-        if variance not in VARIANCE_FUNCTIONS:
-            raise option_error("variance", "one of " + ", ".join(VARIANCE_FUNCTIONS), variance)
-        if estimation not in ESTIMATIONS:
-            raise option_error("estimation", "one of " + ", ".join(ESTIMATIONS), estimation)
-        if se not in SE_TYPES:
-            raise option_error("se", "one of " + ", ".join(SE_TYPES), se)
-        terms = _as_names(variance_terms, "variance_terms")
-        if terms is not None and variance != "loglinear":
-            raise option_error("variance_terms", "left unset unless variance='loglinear'", variance_terms)
-        if group is not None and (variance != "groups" or not isinstance(group, str) or not group.strip()):
-            raise option_error("group", "a column name, and given only with variance='groups'", group)
-        if variance == "known" and (not isinstance(weights, str) or not weights.strip()):
-            raise option_error("weights", "the name of a column of inverse variances when variance='known'", weights)
-        if weights is not None and variance != "known":
-            raise option_error("weights", "left unset unless variance='known'", weights)
-        self.variance = variance
-        self.variance_terms = terms
-        self.group = group.strip() if isinstance(group, str) else None
-        self.weights = weights.strip() if isinstance(weights, str) else None
-        self.estimation = estimation
-        self.se = se
-        est = "" if variance == "known" else (" (ML)" if estimation == "ml" else " (two-step FGLS)")
-        self.label = f"WLS, {_FUNCTION_LABELS[variance]}{est} + {'HC3' if se == 'robust' else 'model SE'}"
+    variance: str
+    variance_terms: tuple[str, ...] | None
+    group: str | None
+    weights: str | None
+    estimation: str
+    se: str
+
+    def finish_options(self) -> None:
+        if self.variance_terms is not None and self.variance != "loglinear":
+            raise option_error("variance_terms", "left unset unless variance='loglinear'", self.variance_terms, "wls")
+        if self.group is not None and self.variance != "groups":
+            raise option_error("group", "a column name, and given only with variance='groups'", self.group, "wls")
+        if self.variance == "known" and self.weights is None:
+            raise option_error("weights", "the name of a column of inverse variances when variance='known'",
+                               self.weights, "wls")
+        if self.weights is not None and self.variance != "known":
+            raise option_error("weights", "left unset unless variance='known'", self.weights, "wls")
+        est = "" if self.variance == "known" else (" (ML)" if self.estimation == "ml" else " (two-step FGLS)")
+        self.label = f"WLS, {_FUNCTION_LABELS[self.variance]}{est} + {'HC3' if self.se == 'robust' else 'model SE'}"
 
     def variance_model(self, design: "Design") -> VarianceModel:
         return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
