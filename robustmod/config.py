@@ -1,17 +1,19 @@
 """A TOML file that holds a whole analysis, for ``robustmod appendix --config FILE.toml``.
 
-Example (relative paths are taken from the folder of the config file)::
+Example (relative paths are taken from the folder of the config file; a key left out takes
+its default from :mod:`robustmod.defaults`, as on the command line)::
 
     data = "trial.csv"
     formula = "grain_yield ~ fertiliser * soil_moisture + field_slope"
     focal = "fertiliser"
     moderators = ["soil_moisture"]
-    backends = ["ols", "hc3", "wild", "wls", "bayes"]
+    backends = ["ols", "hc3", "wild", "wls"]
     primary = "hc3"
-    alpha = 0.05
-    seed = 20240917
+    alpha = 0.1
+    seed = 7
     center = false
     calibration = 200
+    calibrate_costly = false
 
     [probe]
     soil_moisture = [15, 25, 35]      # or "sd", "percentiles", "percentiles:10,50,90"
@@ -29,6 +31,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+from . import defaults
 from .errors import InputError
 
 #: Top-level keys and what each must be (used in the error messages).
@@ -39,16 +42,18 @@ TOP_KEYS: dict[str, str] = {
     "moderators": "a list of one or two column names",
     "moderator": "a column name or a list of one or two (same as 'moderators')",
     "probe": "a table {moderator = [values] or \"sd\"} or one rule such as \"sd\"",
-    "backends": "a list of back-end ids",
-    "primary": "a back-end id (text)",
-    "alpha": "a number in (0, 1)",
-    "seed": "a whole number",
-    "center": "true or false",
-    "calibration": "a whole number of simulated datasets (at least 10)",
+    "backends": f"a list of back-end ids (default: {', '.join(defaults.BACKENDS)})",
+    "primary": f"a back-end id (text; default: {defaults.PRIMARY})",
+    "alpha": f"a number in (0, 1) (default: {defaults.ALPHA})",
+    "seed": f"a whole number (default: {defaults.SEED})",
+    "center": "true or false (default: false)",
+    "calibration": "a whole number of simulated datasets (at least 10; default: no calibration)",
+    "calibrate_costly": "true or false: also calibrate back-ends that need a full fit per dataset (default: false)",
     "options": "a table of tables, e.g. [options.wild] replications = 999",
     "output": "a table with 'folder' and 'force'",
 }
-OUTPUT_KEYS: dict[str, str] = {"folder": "a folder path (text)", "force": "true or false"}
+OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
+                               "force": "true or false (default: false)"}
 
 
 def _bad(key: str, got: Any, where: Path) -> InputError:
@@ -127,10 +132,11 @@ def load_config(path: str | Path) -> dict[str, Any]:
             if isinstance(v, bool) or not isinstance(v, int) or v < low:
                 raise _bad(key, v, p)
             out[key] = v
-    if "center" in raw:
-        if not isinstance(raw["center"], bool):
-            raise _bad("center", raw["center"], p)
-        out["center"] = raw["center"]
+    for key in ("center", "calibrate_costly"):
+        if key in raw:
+            if not isinstance(raw[key], bool):
+                raise _bad(key, raw[key], p)
+            out[key] = raw[key]
     if "options" in raw:
         opts = raw["options"]
         if not isinstance(opts, dict) or not all(isinstance(v, dict) for v in opts.values()):
@@ -155,5 +161,5 @@ def load_config(path: str | Path) -> dict[str, Any]:
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
-            "calibration", "options")
+            "calibration", "calibrate_costly", "options")
     return {k: config[k] for k in keys if k in config}
