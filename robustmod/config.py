@@ -57,70 +57,36 @@ OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaul
 
 
 def _bad(key: str, got: Any, where: Path) -> InputError:
-    return InputError(f"In the config file '{where.name}', '{key}' must be {TOP_KEYS.get(key) or OUTPUT_KEYS.get(key.split('.')[-1], 'valid')}; "
-                      f"got {got!r}.")
+    need = TOP_KEYS.get(key) or OUTPUT_KEYS.get(key.rsplit(".", maxsplit=1)[-1], "valid")
+    return InputError(f"In the config file '{where.name}', '{key}' must be {need}; got {got!r}.")
 
 
 def _unknown(keys: list[str], valid: dict[str, str], where: Path, section: str = "") -> None:
     bad = [k for k in keys if k not in valid]
     if bad:
         place = f"the [{section}] table of " if section else ""
-        raise InputError(f"Unknown key {bad[0]!r} in {place}the config file '{where.name}'; valid keys: {', '.join(valid)}.")
+        raise InputError(f"Unknown key {bad[0]!r} in {place}the config file '{where.name}'; "
+                         f"valid keys: {', '.join(valid)}.")
 
 
-def load_config(path: str | Path) -> dict[str, Any]:
-    """Read and check a TOML analysis file.
-
-    Returns a dict with the keys of :data:`TOP_KEYS` that the file sets, normalised:
-    ``data`` and ``out`` as absolute paths (relative ones resolved against the config
-    file's folder), ``moderator`` as a list, ``options`` as {backend: {option: value}},
-    ``out`` and ``force`` lifted out of the ``[output]`` table. Unknown keys are an error.
-    """
-    p = Path(path).expanduser()
+def _read(p: Path) -> dict[str, Any]:
     if not p.is_file():
         raise InputError(f"The config file '{p}' does not exist; check the path given to --config.")
     try:
-        raw = tomllib.loads(p.read_text(encoding="utf-8"))
+        return tomllib.loads(p.read_text(encoding="utf-8"))
     except UnicodeDecodeError:
         raise InputError(f"The config file '{p.name}' is not UTF-8 text; save it as UTF-8.") from None
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"The config file '{p.name}' is not valid TOML ({exc}).") from None
-    _unknown(list(raw), TOP_KEYS, p)
-    base = p.resolve().parent
-    out: dict[str, Any] = {}
+
+
+def _scalars(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """Text, numbers and switches: data, formula, focal, primary, alpha, seed, calibration, center, ..."""
     for key in ("data", "formula", "focal", "primary"):
         if key in raw:
             if not isinstance(raw[key], str) or not raw[key].strip():
                 raise _bad(key, raw[key], p)
             out[key] = raw[key]
-    if "data" in out:
-        out["data"] = str((base / Path(out["data"]).expanduser()).resolve())
-    if "moderators" in raw and "moderator" in raw:
-        raise InputError(f"The config file '{p.name}' sets both 'moderators' and 'moderator'; keep one.")
-    mods = raw.get("moderators", raw.get("moderator"))
-    if mods is not None:
-        key = "moderators" if "moderators" in raw else "moderator"
-        mods = [mods] if isinstance(mods, str) else mods
-        if not isinstance(mods, list) or not 1 <= len(mods) <= 2 or not all(isinstance(m, str) and m for m in mods):
-            raise _bad(key, raw[key], p)
-        out["moderator"] = list(mods)
-    if "probe" in raw:
-        probe = raw["probe"]
-        if isinstance(probe, dict):
-            for k, v in probe.items():
-                ok = isinstance(v, str) or (isinstance(v, list) and v and all(
-                    isinstance(x, (int, float, str)) and not isinstance(x, bool) for x in v))
-                if not ok:
-                    raise _bad("probe", {k: v}, p)
-        elif not isinstance(probe, (str, list)):
-            raise _bad("probe", probe, p)
-        out["probe"] = probe
-    if "backends" in raw:
-        b = raw["backends"]
-        b = [b] if isinstance(b, str) else b
-        if not isinstance(b, list) or not b or not all(isinstance(x, str) for x in b):
-            raise _bad("backends", raw["backends"], p)
-        out["backends"] = list(b)
     if "alpha" in raw:
         a = raw["alpha"]
         if isinstance(a, bool) or not isinstance(a, (int, float)) or not 0 < a < 1:
@@ -137,6 +103,38 @@ def load_config(path: str | Path) -> dict[str, Any]:
             if not isinstance(raw[key], bool):
                 raise _bad(key, raw[key], p)
             out[key] = raw[key]
+
+
+def _lists(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """Moderators, probe values and back-end ids."""
+    if "moderators" in raw and "moderator" in raw:
+        raise InputError(f"The config file '{p.name}' sets both 'moderators' and 'moderator'; keep one.")
+    key = "moderators" if "moderators" in raw else "moderator"
+    if key in raw:
+        mods = [raw[key]] if isinstance(raw[key], str) else raw[key]
+        if not isinstance(mods, list) or not 1 <= len(mods) <= 2 or not all(isinstance(m, str) and m for m in mods):
+            raise _bad(key, raw[key], p)
+        out["moderator"] = list(mods)
+    if "probe" in raw:
+        probe = raw["probe"]
+        if isinstance(probe, dict):
+            for k, v in probe.items():
+                ok = isinstance(v, str) or (isinstance(v, list) and v and all(
+                    isinstance(x, (int, float, str)) and not isinstance(x, bool) for x in v))
+                if not ok:
+                    raise _bad("probe", {k: v}, p)
+        elif not isinstance(probe, (str, list)):
+            raise _bad("probe", probe, p)
+        out["probe"] = probe
+    if "backends" in raw:
+        b = [raw["backends"]] if isinstance(raw["backends"], str) else raw["backends"]
+        if not isinstance(b, list) or not b or not all(isinstance(x, str) for x in b):
+            raise _bad("backends", raw["backends"], p)
+        out["backends"] = list(b)
+
+
+def _tables(raw: dict[str, Any], p: Path, base: Path, out: dict[str, Any]) -> None:
+    """The [options.*] tables and the [output] table."""
     if "options" in raw:
         opts = raw["options"]
         if not isinstance(opts, dict) or not all(isinstance(v, dict) for v in opts.values()):
@@ -155,6 +153,26 @@ def load_config(path: str | Path) -> dict[str, Any]:
             if not isinstance(o["force"], bool):
                 raise _bad("output.force", o["force"], p)
             out["force"] = o["force"]
+
+
+def load_config(path: str | Path) -> dict[str, Any]:
+    """Read and check a TOML analysis file.
+
+    Returns a dict with the keys of :data:`TOP_KEYS` that the file sets, normalised:
+    ``data`` and ``out`` as absolute paths (relative ones resolved against the config
+    file's folder), ``moderator`` as a list, ``options`` as {backend: {option: value}},
+    ``out`` and ``force`` lifted out of the ``[output]`` table. Unknown keys are an error.
+    """
+    p = Path(path).expanduser()
+    raw = _read(p)
+    _unknown(list(raw), TOP_KEYS, p)
+    base = p.resolve().parent
+    out: dict[str, Any] = {}
+    _scalars(raw, p, out)
+    if "data" in out:
+        out["data"] = str((base / Path(out["data"]).expanduser()).resolve())
+    _lists(raw, p, out)
+    _tables(raw, p, base, out)
     return out
 
 
