@@ -13,8 +13,16 @@ from typing import Any
 
 from .. import defaults
 from ..errors import InputError
-from .options import (add_model_options, add_prior_sensitivity, check_calibrate_costly, command_line,
-                      compare_kwargs, parse_settings, set_prior_sensitivity, step_lines)
+from .options import (
+    add_model_options,
+    add_prior_sensitivity,
+    check_calibrate_costly,
+    command_line,
+    compare_kwargs,
+    parse_settings,
+    set_prior_sensitivity,
+    step_lines,
+)
 
 
 def add_command(subparsers: Any) -> None:

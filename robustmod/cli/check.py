@@ -6,8 +6,15 @@ import json
 import sys
 from typing import Any
 
-from .options import (add_model_options, add_prior_sensitivity, check_calibrate_costly, compare_kwargs,
-                      parse_settings, set_prior_sensitivity, step_lines)
+from .options import (
+    add_model_options,
+    add_prior_sensitivity,
+    check_calibrate_costly,
+    compare_kwargs,
+    parse_settings,
+    set_prior_sensitivity,
+    step_lines,
+)
 
 
 def add_command(subparsers: Any) -> None:
