@@ -6,6 +6,7 @@ no source) and of the shared defaults module; the statistics are tested elsewher
 from __future__ import annotations
 
 import ast
+import importlib
 import inspect
 import json
 import subprocess
@@ -24,6 +25,11 @@ from robustmod.errors import InputError
 
 PACKAGE = Path(robustmod.__file__).resolve().parent
 HEAVY = ("pandas", "scipy")
+
+
+def compare_module() -> Any:  # noqa: N802  (reads as the module it returns)
+    """The module robustmod.compare (the package attribute of that name is the function)."""
+    return importlib.import_module("robustmod.compare")
 
 
 def _imported_after(code: str) -> dict[str, bool]:
@@ -48,7 +54,7 @@ def test_import_robustmod_is_lazy_and_keeps_its_public_names() -> None:
     # After the submodule of the same name is loaded, robustmod.compare is still the function.
     code = "import robustmod.compare\nimport robustmod\nassert callable(robustmod.compare), robustmod.compare"
     assert _imported_after(code)["pandas"] is True
-    assert robustmod.compare is sys.modules["robustmod.compare"].compare
+    assert robustmod.compare is compare_module().compare
     assert robustmod.ModelSpec.__module__ == "robustmod.spec" and robustmod.Design.__module__ == "robustmod.design"
     with pytest.raises(AttributeError, match="no attribute 'nothing'"):
         robustmod.nothing  # noqa: B018  (the attribute access is the test)
@@ -83,7 +89,7 @@ def test_help_states_the_shared_defaults(capsys: pytest.CaptureFixture[str]) -> 
 
 
 def test_the_api_takes_the_same_defaults() -> None:
-    params = inspect.signature(sys.modules["robustmod.compare"].compare).parameters
+    params = inspect.signature(compare_module().compare).parameters
     assert params["seed"].default == defaults.SEED
     assert params["alpha"].default == defaults.ALPHA
     assert params["primary"].default == defaults.PRIMARY
@@ -115,7 +121,7 @@ def captured(monkeypatch: pytest.MonkeyPatch) -> dict[str, Any]:
         seen.update(kwargs)
         raise _Captured("recorded")
 
-    monkeypatch.setattr(sys.modules["robustmod.compare"], "compare", record)
+    monkeypatch.setattr(compare_module(), "compare", record)
     return seen
 
 
@@ -125,6 +131,15 @@ def test_calibrate_costly_reaches_compare(demo_csv: Path, captured: dict[str, An
     captured.clear()
     assert main(_args(demo_csv, "--backends", "ols,hc3", "--calibrate", "--quiet")) == 2
     assert "calibrate_costly" not in captured and captured["calibration"] == defaults.CALIBRATION_DATASETS
+
+
+def test_calibrate_costly_from_the_config_file(demo_csv: Path, tmp_path: Path, captured: dict[str, Any]) -> None:
+    cfg = tmp_path / "analysis.toml"
+    cfg.write_text(f'data = "{demo_csv.name}"\nformula = "{DEMO_FORMULA}"\nfocal = "{DEMO_FOCAL}"\n'
+                   f'moderators = ["{DEMO_MODERATOR}"]\nbackends = ["ols", "hc3"]\ncalibration = 20\n'
+                   'calibrate_costly = true\n')
+    assert main(["appendix", "--config", str(cfg), "--out", str(tmp_path / "app"), "--quiet"]) == 2
+    assert captured["calibrate_costly"] is True and captured["calibration"] == 20
 
 
 def test_calibrate_costly_without_calibration_is_a_one_line_error(demo_csv: Path,
