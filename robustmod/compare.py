@@ -21,12 +21,14 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import CONSTANT_VARIANCE, DEFAULT_BACKENDS, check_ids, make_backend
+from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend
 from .data import read_table
+from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
 from .design import Design, build_design
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
 from .spec import ModelSpec
+from .steps import StepCallback, report_step
 
 SCHEMA = "robustmod/results-v1"
 
@@ -375,16 +377,17 @@ def compare(
     moderator: str | Sequence[str],
     *,
     backends: Sequence[str] | None = None,
-    primary: str = "hc3",
+    primary: str = PRIMARY,
     probe: Any = None,
-    alpha: float = 0.05,
-    seed: int = 20240917,
+    alpha: float = ALPHA,
+    seed: int = SEED,
     center: bool = False,
     options: Mapping[str, Mapping[str, Any]] | None = None,
     calibration: int | None = None,
     calibrate_costly: bool = False,
     workers: int | None = None,
     progress: bool = False,
+    on_step: StepCallback | None = None,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
 
@@ -398,13 +401,13 @@ def compare(
         The focal predictor and one or two moderators.
     backends : list of str, optional
         Back-end ids (see ``robustmod.backends.available_ids()``); default
-        ``DEFAULT_BACKENDS``. The primary is always included.
-    primary : str, default="hc3"
+        ``robustmod.defaults.BACKENDS``. The primary is always included.
+    primary : str, default=robustmod.defaults.PRIMARY
         The back-end chosen *before* looking at the results.
     probe : "sd", "percentiles", list or dict, optional
         Probe values of the moderator(s); see :class:`ModelSpec`.
-    alpha : float, default=0.05
-    seed : int
+    alpha : float, default=robustmod.defaults.ALPHA
+    seed : int, default=robustmod.defaults.SEED
         Seeds every random step (bootstrap, sampler, calibration).
     center : bool, default=False
         Mean-centre focal and moderators (coefficients then refer to the centred scale).
@@ -419,6 +422,9 @@ def compare(
         depend on it.
     progress : bool, default=False
         Show progress bars for long steps.
+    on_step : callable, optional
+        ``on_step(step, seconds)`` as each slow step finishes (design, each back-end,
+        diagnostics, calibration); see :mod:`robustmod.steps`.
 
     Returns
     -------
@@ -442,11 +448,12 @@ def compare(
     >>> res.results["hc3"].interaction["supported"]
     True
     """
+    started = time.perf_counter()
     frame, source = _load(data)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
                      alpha=alpha, seed=seed, center=center)
-    ids = check_ids(list(backends) if backends is not None else list(DEFAULT_BACKENDS))
+    ids = check_ids(list(backends) if backends is not None else list(BACKENDS))
     (primary,) = check_ids([primary])
     if primary not in ids:
         ids.insert(0, primary)
@@ -457,12 +464,14 @@ def compare(
     if calibration is not None and (isinstance(calibration, bool) or not isinstance(calibration, int) or calibration < 10):
         raise option_error("calibration", "a whole number of simulated datasets, at least 10", calibration)
     design = build_design(frame, spec)
+    report_step(on_step, "design", started)
     results: dict[str, BackendResult] = {}
     for bid in ids:
         backend = make_backend(bid, **dict(options.get(bid, {})))
         t0 = time.perf_counter()
         fit = backend.fit(design, seed=spec.seed, progress=progress)
         results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
+        report_step(on_step, f"back-end {bid}", t0)
     if not results[primary].available:
         raise InputError(
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
@@ -470,12 +479,16 @@ def compare(
         )
     from .diagnostics import variance_diagnostics  # noqa: PLC0415  (keeps import order one-way)
 
+    started = time.perf_counter()
     diagnostics = variance_diagnostics(design, alpha=spec.alpha)
+    report_step(on_step, "diagnostics", started)
     calib = None
     if calibration is not None:
         from .calibrate import calibrate  # noqa: PLC0415
 
+        started = time.perf_counter()
         calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
                           options=options, progress=progress)
+        report_step(on_step, f"calibration ({calibration} datasets)", started)
     warnings = tuple(design.warnings)
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)

@@ -1,17 +1,19 @@
 """A TOML file that holds a whole analysis, for ``robustmod appendix --config FILE.toml``.
 
-Example (relative paths are taken from the folder of the config file)::
+Example (relative paths are taken from the folder of the config file; a key left out takes
+its default from :mod:`robustmod.defaults`, as on the command line)::
 
     data = "trial.csv"
     formula = "grain_yield ~ fertiliser * soil_moisture + field_slope"
     focal = "fertiliser"
     moderators = ["soil_moisture"]
-    backends = ["ols", "hc3", "wild", "wls", "bayes"]
+    backends = ["ols", "hc3", "wild", "wls"]
     primary = "hc3"
-    alpha = 0.05
-    seed = 20240917
+    alpha = 0.1
+    seed = 7
     center = false
     calibration = 200
+    calibrate_costly = false
 
     [probe]
     soil_moisture = [15, 25, 35]      # or "sd", "percentiles", "percentiles:10,50,90"
@@ -29,6 +31,7 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+from . import defaults
 from .errors import InputError
 
 #: Top-level keys and what each must be (used in the error messages).
@@ -39,63 +42,76 @@ TOP_KEYS: dict[str, str] = {
     "moderators": "a list of one or two column names",
     "moderator": "a column name or a list of one or two (same as 'moderators')",
     "probe": "a table {moderator = [values] or \"sd\"} or one rule such as \"sd\"",
-    "backends": "a list of back-end ids",
-    "primary": "a back-end id (text)",
-    "alpha": "a number in (0, 1)",
-    "seed": "a whole number",
-    "center": "true or false",
-    "calibration": "a whole number of simulated datasets (at least 10)",
+    "backends": f"a list of back-end ids (default: {', '.join(defaults.BACKENDS)})",
+    "primary": f"a back-end id (text; default: {defaults.PRIMARY})",
+    "alpha": f"a number in (0, 1) (default: {defaults.ALPHA})",
+    "seed": f"a whole number (default: {defaults.SEED})",
+    "center": "true or false (default: false)",
+    "calibration": "a whole number of simulated datasets (at least 10; default: no calibration)",
+    "calibrate_costly": "true or false: also calibrate back-ends that need a full fit per dataset (default: false)",
     "options": "a table of tables, e.g. [options.wild] replications = 999",
     "output": "a table with 'folder' and 'force'",
 }
-OUTPUT_KEYS: dict[str, str] = {"folder": "a folder path (text)", "force": "true or false"}
+OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
+                               "force": "true or false (default: false)"}
 
 
 def _bad(key: str, got: Any, where: Path) -> InputError:
-    return InputError(f"In the config file '{where.name}', '{key}' must be {TOP_KEYS.get(key) or OUTPUT_KEYS.get(key.split('.')[-1], 'valid')}; "
-                      f"got {got!r}.")
+    need = TOP_KEYS.get(key) or OUTPUT_KEYS.get(key.rsplit(".", maxsplit=1)[-1], "valid")
+    return InputError(f"In the config file '{where.name}', '{key}' must be {need}; got {got!r}.")
 
 
 def _unknown(keys: list[str], valid: dict[str, str], where: Path, section: str = "") -> None:
     bad = [k for k in keys if k not in valid]
     if bad:
         place = f"the [{section}] table of " if section else ""
-        raise InputError(f"Unknown key {bad[0]!r} in {place}the config file '{where.name}'; valid keys: {', '.join(valid)}.")
+        raise InputError(f"Unknown key {bad[0]!r} in {place}the config file '{where.name}'; "
+                         f"valid keys: {', '.join(valid)}.")
 
 
-def load_config(path: str | Path) -> dict[str, Any]:
-    """Read and check a TOML analysis file.
-
-    Returns a dict with the keys of :data:`TOP_KEYS` that the file sets, normalised:
-    ``data`` and ``out`` as absolute paths (relative ones resolved against the config
-    file's folder), ``moderator`` as a list, ``options`` as {backend: {option: value}},
-    ``out`` and ``force`` lifted out of the ``[output]`` table. Unknown keys are an error.
-    """
-    p = Path(path).expanduser()
+def _read(p: Path) -> dict[str, Any]:
     if not p.is_file():
         raise InputError(f"The config file '{p}' does not exist; check the path given to --config.")
     try:
-        raw = tomllib.loads(p.read_text(encoding="utf-8"))
+        return tomllib.loads(p.read_text(encoding="utf-8"))
     except UnicodeDecodeError:
         raise InputError(f"The config file '{p.name}' is not UTF-8 text; save it as UTF-8.") from None
     except tomllib.TOMLDecodeError as exc:
         raise InputError(f"The config file '{p.name}' is not valid TOML ({exc}).") from None
-    _unknown(list(raw), TOP_KEYS, p)
-    base = p.resolve().parent
-    out: dict[str, Any] = {}
+
+
+def _scalars(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """Text, numbers and switches: data, formula, focal, primary, alpha, seed, calibration, center, ..."""
     for key in ("data", "formula", "focal", "primary"):
         if key in raw:
             if not isinstance(raw[key], str) or not raw[key].strip():
                 raise _bad(key, raw[key], p)
             out[key] = raw[key]
-    if "data" in out:
-        out["data"] = str((base / Path(out["data"]).expanduser()).resolve())
+    if "alpha" in raw:
+        a = raw["alpha"]
+        if isinstance(a, bool) or not isinstance(a, (int, float)) or not 0 < a < 1:
+            raise _bad("alpha", a, p)
+        out["alpha"] = float(a)
+    for key, low in (("seed", 0), ("calibration", 10)):
+        if key in raw:
+            v = raw[key]
+            if isinstance(v, bool) or not isinstance(v, int) or v < low:
+                raise _bad(key, v, p)
+            out[key] = v
+    for key in ("center", "calibrate_costly"):
+        if key in raw:
+            if not isinstance(raw[key], bool):
+                raise _bad(key, raw[key], p)
+            out[key] = raw[key]
+
+
+def _lists(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """Moderators, probe values and back-end ids."""
     if "moderators" in raw and "moderator" in raw:
         raise InputError(f"The config file '{p.name}' sets both 'moderators' and 'moderator'; keep one.")
-    mods = raw.get("moderators", raw.get("moderator"))
-    if mods is not None:
-        key = "moderators" if "moderators" in raw else "moderator"
-        mods = [mods] if isinstance(mods, str) else mods
+    key = "moderators" if "moderators" in raw else "moderator"
+    if key in raw:
+        mods = [raw[key]] if isinstance(raw[key], str) else raw[key]
         if not isinstance(mods, list) or not 1 <= len(mods) <= 2 or not all(isinstance(m, str) and m for m in mods):
             raise _bad(key, raw[key], p)
         out["moderator"] = list(mods)
@@ -111,26 +127,14 @@ def load_config(path: str | Path) -> dict[str, Any]:
             raise _bad("probe", probe, p)
         out["probe"] = probe
     if "backends" in raw:
-        b = raw["backends"]
-        b = [b] if isinstance(b, str) else b
+        b = [raw["backends"]] if isinstance(raw["backends"], str) else raw["backends"]
         if not isinstance(b, list) or not b or not all(isinstance(x, str) for x in b):
             raise _bad("backends", raw["backends"], p)
         out["backends"] = list(b)
-    if "alpha" in raw:
-        a = raw["alpha"]
-        if isinstance(a, bool) or not isinstance(a, (int, float)) or not 0 < a < 1:
-            raise _bad("alpha", a, p)
-        out["alpha"] = float(a)
-    for key, low in (("seed", 0), ("calibration", 10)):
-        if key in raw:
-            v = raw[key]
-            if isinstance(v, bool) or not isinstance(v, int) or v < low:
-                raise _bad(key, v, p)
-            out[key] = v
-    if "center" in raw:
-        if not isinstance(raw["center"], bool):
-            raise _bad("center", raw["center"], p)
-        out["center"] = raw["center"]
+
+
+def _tables(raw: dict[str, Any], p: Path, base: Path, out: dict[str, Any]) -> None:
+    """The [options.*] tables and the [output] table."""
     if "options" in raw:
         opts = raw["options"]
         if not isinstance(opts, dict) or not all(isinstance(v, dict) for v in opts.values()):
@@ -149,11 +153,31 @@ def load_config(path: str | Path) -> dict[str, Any]:
             if not isinstance(o["force"], bool):
                 raise _bad("output.force", o["force"], p)
             out["force"] = o["force"]
+
+
+def load_config(path: str | Path) -> dict[str, Any]:
+    """Read and check a TOML analysis file.
+
+    Returns a dict with the keys of :data:`TOP_KEYS` that the file sets, normalised:
+    ``data`` and ``out`` as absolute paths (relative ones resolved against the config
+    file's folder), ``moderator`` as a list, ``options`` as {backend: {option: value}},
+    ``out`` and ``force`` lifted out of the ``[output]`` table. Unknown keys are an error.
+    """
+    p = Path(path).expanduser()
+    raw = _read(p)
+    _unknown(list(raw), TOP_KEYS, p)
+    base = p.resolve().parent
+    out: dict[str, Any] = {}
+    _scalars(raw, p, out)
+    if "data" in out:
+        out["data"] = str((base / Path(out["data"]).expanduser()).resolve())
+    _lists(raw, p, out)
+    _tables(raw, p, base, out)
     return out
 
 
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
-            "calibration", "options")
+            "calibration", "calibrate_costly", "options")
     return {k: config[k] for k in keys if k in config}

@@ -90,7 +90,7 @@ def test_unknown_key_names_it_and_the_valid_ones(tmp_path: Path) -> None:
     ("alpha = 1.5", "alpha"), ("alpha = true", "alpha"), ("seed = 1.5", "seed"), ("calibration = 5", "calibration"),
     ("moderators = []", "moderators"), ('moderators = ["a", "b", "c"]', "moderators"), ("center = 1", "center"),
     ("backends = [1]", "backends"), ('options = { wild = 3 }', "options"), ("formula = 3", "formula"),
-    ("[output]\nforce = 'yes'", "output.force"), ("probe = 3", "probe"),
+    ("[output]\nforce = 'yes'", "output.force"), ("probe = 3", "probe"), ("calibrate_costly = 1", "calibrate_costly"),
 ])
 def test_bad_values_are_one_line_errors(tmp_path: Path, text: str, key: str) -> None:
     p = tmp_path / "bad.toml"

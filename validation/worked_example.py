@@ -10,7 +10,7 @@ from pathlib import Path
 from robustmod import compare
 from robustmod.compare import fmt, fmt_p
 from robustmod.demo import DEMO_FOCAL, DEMO_FORMULA, DEMO_MODERATOR, DEMO_SEED, demo_data
-from robustmod.report.cli import DEMO_BACKENDS, DEMO_CALIBRATION, DEMO_OPTIONS
+from robustmod.cli.demo import DEMO_BACKENDS, DEMO_CALIBRATION, DEMO_OPTIONS
 
 OUT = Path(__file__).resolve().parents[1] / "docs" / "worked-example.md"
 
