@@ -6,7 +6,6 @@ starts fast; the help text states the defaults of :mod:`robustmod.defaults`.
 from __future__ import annotations
 
 import argparse
-import inspect
 import shlex
 import sys
 from collections.abc import Sequence
@@ -168,11 +167,10 @@ def run_ids(kw: dict[str, Any]) -> list[str]:
 
 
 def takes_option(backend_id: str, name: str) -> bool:
-    """Whether the back-end's constructor declares the keyword option ``name``."""
+    """Whether the back-end declares the option ``name`` (its contract's option list)."""
     from ..backends.registry import backend_class  # noqa: PLC0415
 
-    params = inspect.signature(backend_class(backend_id)).parameters
-    return name in params and params[name].kind is inspect.Parameter.KEYWORD_ONLY
+    return any(opt.name == name for opt in getattr(backend_class(backend_id), "options", ()))
 
 
 def set_prior_sensitivity(kw: dict[str, Any], given: bool | None, *, default: bool | None,
