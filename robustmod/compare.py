@@ -22,7 +22,7 @@ import pandas as pd
 from . import effects
 from .backends.base import Fit, Unavailable
 from .backends.registry import CONSTANT_VARIANCE, DEFAULT_BACKENDS, check_ids, make_backend
-from .data import read_table
+from .data import NaValues, load_data
 from .design import Design, build_design
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
@@ -360,14 +360,6 @@ def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[s
     return s
 
 
-def _load(data: pd.DataFrame | str | Path) -> tuple[pd.DataFrame, str | None]:
-    if isinstance(data, (str, Path)):
-        return read_table(data), str(data)
-    if not isinstance(data, pd.DataFrame):
-        raise InputError(f"The data must be a pandas DataFrame or a file path; got {type(data).__name__}.")
-    return data, None
-
-
 def compare(
     data: pd.DataFrame | str | Path,
     formula: str,
@@ -385,13 +377,17 @@ def compare(
     calibrate_costly: bool = False,
     workers: int | None = None,
     progress: bool = False,
+    na_values: NaValues = None,
+    sep: str | None = None,
+    decimal: str | None = None,
+    sheet: str | int | None = None,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
 
     Parameters
     ----------
     data : DataFrame or path
-        The data (CSV, TSV, Parquet or xlsx when a path); never modified.
+        The data (CSV, TSV, Parquet, xlsx, Stata .dta or SPSS .sav when a path); never modified.
     formula : str
         Wilkinson formula such as ``"y ~ x * w + age"`` (allow-listed transforms only).
     focal, moderator : str
@@ -419,6 +415,12 @@ def compare(
         depend on it.
     progress : bool, default=False
         Show progress bars for long steps.
+    na_values : str or list of str, optional
+        Codes that mean "missing" besides empty cells, e.g. ``"."`` or ``[".", "-99"]`` (file or DataFrame).
+    sep, decimal : str, optional
+        Separator and decimal mark of a CSV/TSV file (detected when not given).
+    sheet : str or int, optional
+        Sheet of an Excel workbook by name or 0-based position (default: the first).
 
     Returns
     -------
@@ -442,7 +444,7 @@ def compare(
     >>> res.results["hc3"].interaction["supported"]
     True
     """
-    frame, source = _load(data)
+    frame, source = load_data(data, na_values=na_values, sep=sep, decimal=decimal, sheet=sheet)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
                      alpha=alpha, seed=seed, center=center)

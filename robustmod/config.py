@@ -12,6 +12,7 @@ Example (relative paths are taken from the folder of the config file)::
     seed = 20240917
     center = false
     calibration = 200
+    na_values = ["."]                 # codes that mean "missing" besides empty cells
 
     [probe]
     soil_moisture = [15, 25, 35]      # or "sd", "percentiles", "percentiles:10,50,90"
@@ -47,6 +48,7 @@ TOP_KEYS: dict[str, str] = {
     "calibration": "a whole number of simulated datasets (at least 10)",
     "options": "a table of tables, e.g. [options.wild] replications = 999",
     "output": "a table with 'folder' and 'force'",
+    "na_values": "a missing-value code or a list of them, e.g. \".\" or [\".\", \"-99\"]",
 }
 OUTPUT_KEYS: dict[str, str] = {"folder": "a folder path (text)", "force": "true or false"}
 
@@ -131,6 +133,13 @@ def load_config(path: str | Path) -> dict[str, Any]:
         if not isinstance(raw["center"], bool):
             raise _bad("center", raw["center"], p)
         out["center"] = raw["center"]
+    if "na_values" in raw:
+        na = raw["na_values"]
+        items = na if isinstance(na, list) else [na]
+        if not items or not all(isinstance(x, (str, int, float)) and not isinstance(x, bool) and str(x).strip()
+                                for x in items):
+            raise _bad("na_values", na, p)
+        out["na_values"] = items
     if "options" in raw:
         opts = raw["options"]
         if not isinstance(opts, dict) or not all(isinstance(v, dict) for v in opts.values()):
@@ -155,5 +164,5 @@ def load_config(path: str | Path) -> dict[str, Any]:
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
-            "calibration", "options")
+            "calibration", "options", "na_values")
     return {k: config[k] for k in keys if k in config}
