@@ -171,9 +171,14 @@ def read_table(path: str | Path, *, na_values: NaValues = None, sep: str | None 
         raise
     except Exception as exc:  # the readers raise many kinds; all mean "not a table"
         first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-        raise InputError(f"The data file '{p.name}' could not be read as {_a(KIND_NAMES[kind])} file ({first}).") from None
+        raise InputError(f"The data file '{p.name}' could not be read as {_a(KIND_NAMES[kind])} file ({first}); "
+                         "check that it is complete and of that kind, or export it again.") from None
     if df.shape[1] < 2:
-        hint = (" (is the separator right? name it with --sep, sep= in Python)" if kind in ("csv", "tsv") else "")
+        hint = ""
+        if kind in ("csv", "tsv"):
+            head = str(df.columns[0]) if df.shape[1] else ""
+            shown = head if len(head) <= 40 else head[:40] + "…"
+            hint = f" (its header reads {shown!r}: is the separator right? name it with --sep, sep= in Python)"
         raise InputError(
             f"The data file '{p.name}' has {df.shape[1]} column(s); a moderation model needs at least an "
             f"outcome, a focal predictor and a moderator{hint}."

@@ -77,9 +77,11 @@ def _untokenizable(formula: str, pos: int) -> InputError:
     """The message for a character outside the grammar: a column name with dots, spaces or other
     characters gets the suggestion to back-quote it; anything that looks like code does not."""
     if formula[pos] == "`":
+        inside = re.match(r"[^`~+\-*/:^(),=]+", formula[pos + 1 :])
+        name = inside.group().strip() if inside and inside.group().strip() else "Solar.R"
         return InputError(
             f"The formula has an unclosed back-quote at character {pos + 1}; close it after the column name, "
-            "e.g. `Solar.R`."
+            f"e.g. `{name}`."
         )
     start, end = pos, pos
     while start > 0 and not _NAME_STOP.match(formula[start - 1]):
