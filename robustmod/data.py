@@ -406,13 +406,14 @@ def _numbers_in_text(name: str, col: pd.Series) -> pd.Series:
 
 
 def _check_many_levels(name: str, col: pd.Series, role: str) -> None:
+    kind = "text" if _is_text(col) else "categorical"
     levels = col.dropna().unique()
     n = int(col.notna().sum())
     k = len(levels)
     if k > MAX_LEVELS or (k >= SHARE_RULE_FROM and k > MAX_LEVEL_SHARE * n):
         eg = ", ".join(repr(str(v)) for v in levels[:3])
         raise InputError(
-            f"Column {name!r} is text with {k} different values in {n} rows (e.g. {eg}); as a {role} it would "
+            f"Column {name!r} is {kind} with {k} different values in {n} rows (e.g. {eg}); as a {role} it would "
             f"become {k - 1} dummy columns. Recode it into fewer groups, declare it numeric if it holds numbers, "
             "or mark its missing-value codes with --na-values."
         )

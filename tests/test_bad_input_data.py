@@ -99,34 +99,20 @@ def case_text_outcome(tmp: Path) -> tuple[list[str], Path]:
     return args(p), p
 
 
-def case_dotted_name_not_back_quoted(tmp: Path) -> tuple[list[str], Path]:
-    p = tmp / "wage.csv"
-    wage().rename(columns={"exper": "exper.yrs"}).to_csv(p, index=False)
-    return args(p, "lwage ~ educ * exper.yrs", "educ", "exper.yrs"), p
+def _renamed(new: str, formula: str, moderator: str) -> Callable[[Path], tuple[list[str], Path]]:
+    """A case whose file names the moderator ``new`` and whose formula is ``formula``."""
+    def case(tmp: Path) -> tuple[list[str], Path]:
+        p = tmp / "wage.csv"
+        wage().rename(columns={"exper": new}).to_csv(p, index=False)
+        return args(p, formula, "educ", moderator), p
+    return case
 
 
-def case_name_with_space_not_back_quoted(tmp: Path) -> tuple[list[str], Path]:
-    p = tmp / "wage.csv"
-    wage().rename(columns={"exper": "exper years"}).to_csv(p, index=False)
-    return args(p, "lwage ~ educ * exper years", "educ", "exper years"), p
-
-
-def case_name_with_hyphen_not_back_quoted(tmp: Path) -> tuple[list[str], Path]:
-    p = tmp / "wage.csv"
-    wage().rename(columns={"exper": "exper-1976"}).to_csv(p, index=False)
-    return args(p, "lwage ~ educ * exper-1976", "educ", "exper-1976"), p
-
-
-def case_unclosed_back_quote(tmp: Path) -> tuple[list[str], Path]:
-    p = tmp / "wage.csv"
-    wage().rename(columns={"exper": "exper.yrs"}).to_csv(p, index=False)
-    return args(p, "lwage ~ educ * `exper.yrs", "educ", "exper.yrs"), p
-
-
-def case_back_quoted_name_misspelled(tmp: Path) -> tuple[list[str], Path]:
-    p = tmp / "wage.csv"
-    wage().rename(columns={"exper": "exper years"}).to_csv(p, index=False)
-    return args(p, "lwage ~ educ * `exper yrs`", "educ", "exper yrs"), p
+case_dotted_name_not_back_quoted = _renamed("exper.yrs", "lwage ~ educ * exper.yrs", "exper.yrs")
+case_name_with_space_not_back_quoted = _renamed("exper years", "lwage ~ educ * exper years", "exper years")
+case_name_with_hyphen_not_back_quoted = _renamed("exper-1976", "lwage ~ educ * exper-1976", "exper-1976")
+case_unclosed_back_quote = _renamed("exper.yrs", "lwage ~ educ * `exper.yrs", "exper.yrs")
+case_back_quoted_name_misspelled = _renamed("exper years", "lwage ~ educ * `exper yrs`", "exper yrs")
 
 
 def case_log_of_zeros(tmp: Path) -> tuple[list[str], Path]:
