@@ -241,3 +241,27 @@ def test_config_file_carries_na_values(wage, tmp_path):
     cfg.write_text("na_values = [true]\n")
     with pytest.raises(InputError, match="'na_values' must be a missing-value code or a list of them"):
         load_config(cfg)
+
+
+def test_appendix_from_a_config_with_na_values_and_back_quoted_names(wage, tmp_path):
+    # The config key na_values reaches the reader, and back-quoted names reach every output of the appendix.
+    import json
+
+    from robustmod.cli import main
+
+    odd = wage.rename(columns={"educ": "educ.yrs", "exper": "exper years"})
+    odd.loc[[4, 8], "tenure"] = np.nan
+    p = tmp_path / "odd.csv"
+    odd.to_csv(p, index=False, na_rep=".")
+    before = _sha(p)
+    cfg = tmp_path / "analysis.toml"
+    cfg.write_text('data = "odd.csv"\nformula = "lwage ~ `educ.yrs` * `exper years` + tenure"\nfocal = "educ.yrs"\n'
+                   'moderators = ["exper years"]\nbackends = ["ols", "hc3"]\nna_values = ["."]\n'
+                   '[output]\nfolder = "appendix"\n')
+    assert main(["appendix", "--config", str(cfg), "--quiet"]) == 0
+    out = json.loads((tmp_path / "appendix" / "results.json").read_text())
+    assert out["model"]["interaction_terms"] == ["educ.yrs:exper years"] and out["model"]["n_dropped"] == 2
+    ref = robustmod.compare(wage.drop(index=[4, 8]), "lwage ~ educ * exper + tenure", "educ", "exper", backends=["hc3"])
+    np.testing.assert_allclose(out["backends"]["hc3"]["interaction"]["se"], ref.results["hc3"].interaction["se"], rtol=1e-9)
+    assert "educ.yrs" in (tmp_path / "appendix" / "appendix.md").read_text()
+    assert _sha(p) == before
