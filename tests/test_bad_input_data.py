@@ -149,6 +149,14 @@ def case_excel_data_on_second_sheet(tmp: Path) -> tuple[list[str], Path]:
     return args(p), p
 
 
+def case_dot_in_excel_column(tmp: Path) -> tuple[list[str], Path]:
+    d = wage().astype(object)
+    d.loc[[7, 8], "tenure"] = "."
+    p = tmp / "wage.xlsx"
+    d.to_excel(p, index=False)
+    return args(p), p
+
+
 def case_broken_stata_file(tmp: Path) -> tuple[list[str], Path]:
     p = tmp / "wage.dta"
     wage().to_stata(p, write_index=False)
@@ -194,6 +202,7 @@ EXPECT: dict[str, list[str]] = {
     "decimal_comma_in_comma_separated_file": ["'lwage'", "decimal comma", "--decimal ,"],
     "unknown_separator": ["1 column(s)", "--sep"],
     "excel_data_on_second_sheet": ["'Notes'", "'data'", "--sheet NAME"],
+    "dot_in_excel_column": ["'tenure'", "data rows 8, 9", "--na-values ."],
     "broken_stata_file": ["'wage.dta'", "Stata file"],
     "broken_spss_file": ["'wage.sav'", "SPSS file"],
     "unread_file_ending": ["'.sas7bdat'", ".dta", ".sav"],
