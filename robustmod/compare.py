@@ -22,7 +22,7 @@ import pandas as pd
 from . import effects
 from .backends.base import Fit, Unavailable
 from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend
-from .data import read_table
+from .data import NaValues, load_data
 from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
 from .design import Design, build_design
 from .errors import InputError, option_error
@@ -362,14 +362,6 @@ def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[s
     return s
 
 
-def _load(data: pd.DataFrame | str | Path) -> tuple[pd.DataFrame, str | None]:
-    if isinstance(data, (str, Path)):
-        return read_table(data), str(data)
-    if not isinstance(data, pd.DataFrame):
-        raise InputError(f"The data must be a pandas DataFrame or a file path; got {type(data).__name__}.")
-    return data, None
-
-
 def compare(
     data: pd.DataFrame | str | Path,
     formula: str,
@@ -388,13 +380,17 @@ def compare(
     workers: int | None = None,
     progress: bool = False,
     on_step: StepCallback | None = None,
+    na_values: NaValues = None,
+    sep: str | None = None,
+    decimal: str | None = None,
+    sheet: str | int | None = None,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
 
     Parameters
     ----------
     data : DataFrame or path
-        The data (CSV, TSV, Parquet or xlsx when a path); never modified.
+        The data (CSV, TSV, Parquet, xlsx, Stata .dta or SPSS .sav when a path); never modified.
     formula : str
         Wilkinson formula such as ``"y ~ x * w + age"`` (allow-listed transforms only).
     focal, moderator : str
@@ -425,6 +421,12 @@ def compare(
     on_step : callable, optional
         ``on_step(step, seconds)`` as each slow step finishes (design, each back-end,
         diagnostics, calibration); see :mod:`robustmod.steps`.
+    na_values : str or list of str, optional
+        Codes that mean "missing" besides empty cells, e.g. ``"."`` or ``[".", "-99"]`` (file or DataFrame).
+    sep, decimal : str, optional
+        Separator and decimal mark of a CSV/TSV file (detected when not given).
+    sheet : str or int, optional
+        Sheet of an Excel workbook by name or 0-based position (default: the first).
 
     Returns
     -------
@@ -449,7 +451,7 @@ def compare(
     True
     """
     started = time.perf_counter()
-    frame, source = _load(data)
+    frame, source = load_data(data, na_values=na_values, sep=sep, decimal=decimal, sheet=sheet)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
                      alpha=alpha, seed=seed, center=center)

@@ -14,6 +14,7 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
     center = false
     calibration = 200
     calibrate_costly = false
+    na_values = ["."]                 # codes that mean "missing" besides empty cells
 
     [probe]
     soil_moisture = [15, 25, 35]      # or "sd", "percentiles", "percentiles:10,50,90"
@@ -51,6 +52,7 @@ TOP_KEYS: dict[str, str] = {
     "calibrate_costly": "true or false: also calibrate back-ends that need a full fit per dataset (default: false)",
     "options": "a table of tables, e.g. [options.wild] replications = 999",
     "output": "a table with 'folder' and 'force'",
+    "na_values": "a missing-value code or a list of them, e.g. \".\" or [\".\", \"-99\"]",
 }
 OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
                                "force": "true or false (default: false)"}
@@ -131,6 +133,13 @@ def _lists(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
         if not isinstance(b, list) or not b or not all(isinstance(x, str) for x in b):
             raise _bad("backends", raw["backends"], p)
         out["backends"] = list(b)
+    if "na_values" in raw:
+        na = raw["na_values"]
+        items = na if isinstance(na, list) else [na]
+        if not items or not all(isinstance(x, (str, int, float)) and not isinstance(x, bool) and str(x).strip()
+                                for x in items):
+            raise _bad("na_values", na, p)
+        out["na_values"] = items
 
 
 def _tables(raw: dict[str, Any], p: Path, base: Path, out: dict[str, Any]) -> None:
@@ -179,5 +188,5 @@ def load_config(path: str | Path) -> dict[str, Any]:
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
-            "calibration", "calibrate_costly", "options")
+            "calibration", "calibrate_costly", "options", "na_values")
     return {k: config[k] for k in keys if k in config}

@@ -61,17 +61,64 @@ def tokenize_formula(formula: str) -> list[Token]:
     while pos < len(formula):
         m = _TOKEN.match(formula, pos)
         if m is None:
-            bad = formula[pos : pos + 12]
-            raise InputError(
-                f"The formula contains {bad!r} at character {pos + 1}, which is not allowed; "
-                "use column names, numbers, the operators ~ + - * : / ** ( ) and the "
-                f"transforms {', '.join(sorted(ALLOWED_FUNCTIONS))}."
-            )
+            raise _untokenizable(formula, pos)
         kind = m.lastgroup or ""
         if kind != "ws":
             tokens.append(Token(kind, m.group(), pos))
         pos = m.end()
     return tokens
+
+
+#: Characters that end a would-be column name in a formula (operators, brackets, quotes, white space).
+_NAME_STOP = re.compile(r"[\s~+\-*/:^(),=`'\"\[\]{}<>;|\\]")
+
+
+def _untokenizable(formula: str, pos: int) -> InputError:
+    """The message for a character outside the grammar: a column name with dots, spaces or other
+    characters gets the suggestion to back-quote it; anything that looks like code does not."""
+    if formula[pos] == "`":
+        inside = re.match(r"[^`~+\-*/:^(),=]+", formula[pos + 1 :])
+        name = inside.group().strip() if inside and inside.group().strip() else "Solar.R"
+        return InputError(
+            f"The formula has an unclosed back-quote at character {pos + 1}; close it after the column name, "
+            f"e.g. `{name}`."
+        )
+    start, end = pos, pos
+    while start > 0 and not _NAME_STOP.match(formula[start - 1]):
+        start -= 1
+    while end < len(formula) and not _NAME_STOP.match(formula[end]):
+        end += 1
+    word = formula[start:end]
+    after = formula[end:].lstrip()
+    looks_like_name = (
+        end > pos and not _NAME_STOP.match(formula[pos]) and re.search(r"[A-Za-z]", word) is not None
+        and "__" not in word and not after.startswith("(")
+    )
+    if looks_like_name:
+        return InputError(
+            f"The formula contains {word!r} at character {start + 1}, which is not a plain name; a column name "
+            f"with dots, spaces or other characters must be written in back-quotes: write it as `{word}`."
+        )
+    return InputError(
+        f"The formula contains {formula[pos : pos + 12]!r} at character {pos + 1}, which is not allowed; "
+        "use column names, numbers, the operators ~ + - * : / ** ( ) and the "
+        f"transforms {', '.join(sorted(ALLOWED_FUNCTIONS))}."
+    )
+
+
+def column_calls(formula: str) -> tuple[tuple[str, str], ...]:
+    """(transform, column) for every call whose first argument is a bare column, e.g. ``log(cigs)`` →
+    ("log", "cigs") and ``C(w, Treatment('a'))`` → ("C", "w"); calls on expressions are left out."""
+    tokens = tokenize_formula(formula)
+    out: list[tuple[str, str]] = []
+    for i in range(len(tokens) - 3):
+        fn, open_, arg, close = tokens[i : i + 4]
+        if (fn.kind == "name" and fn.text in ALLOWED_FUNCTIONS and open_.text == "("
+                and arg.kind in ("name", "quoted") and close.text in (")", ",")):
+            pair = (fn.text, arg.text[1:-1] if arg.kind == "quoted" else arg.text)
+            if pair not in out:
+                out.append(pair)
+    return tuple(out)
 
 
 def check_formula(formula: str) -> tuple[str, list[str]]:
@@ -228,6 +275,7 @@ class ModelSpec:
         response, variables = check_formula(self.formula)
         object.__setattr__(self, "_response", response)
         object.__setattr__(self, "_variables", tuple(variables))
+        object.__setattr__(self, "_column_calls", column_calls(self.formula))
 
     @property
     def response(self) -> str:
@@ -238,6 +286,11 @@ class ModelSpec:
     def variables(self) -> tuple[str, ...]:
         """Every column name the formula mentions, outcome first."""
         return self._variables  # type: ignore[attr-defined]
+
+    @property
+    def column_calls(self) -> tuple[tuple[str, str], ...]:
+        """(transform, column) pairs of the formula's calls on bare columns; see :func:`column_calls`."""
+        return self._column_calls  # type: ignore[attr-defined]
 
 
 def parse_probe_rule(rule: Any, moderator: str) -> tuple[str, tuple[float, ...]]:

@@ -30,7 +30,7 @@ def add_command(subparsers: Any) -> None:
         "appendix", help="write the sensitivity appendix folder (HTML, Markdown, LaTeX, figures, JSON)",
         description="Fit the moderation model with each back-end and write the sensitivity appendix folder. "
                     "Options given on the command line override those of --config.")
-    p.add_argument("data", nargs="?", default=None, help="data file: .csv, .tsv, .parquet or .xlsx "
+    p.add_argument("data", nargs="?", default=None, help="data file: .csv, .tsv, .parquet, .xlsx, .dta (Stata) or .sav (SPSS) "
                    "(default: 'data' of --config)")
     p.add_argument("--config", metavar="FILE.toml", default=None,
                    help="TOML file holding the whole analysis (default: none)")
@@ -122,7 +122,8 @@ def given_on_command_line(args: argparse.Namespace, base: dict[str, Any]) -> dic
         for b, o in kw["options"].items():
             merged.setdefault(b, {}).update(o)
         out["options"] = merged
-    for k in ("backends", "primary", "alpha", "seed", "calibration", "center", "calibrate_costly"):
+    for k in ("backends", "primary", "alpha", "seed", "calibration", "center", "calibrate_costly", "na_values",
+              "sep", "decimal", "sheet"):
         if k in kw:
             out[k] = kw[k]
     return out

@@ -21,7 +21,7 @@ def add_command(subparsers: Any) -> None:
     p = subparsers.add_parser("check", help="fit and compare in the terminal (or as JSON)",
                               description="Fit the moderation model with each back-end and print the comparison. "
                                           "Each slow step prints its time on stderr (on a terminal, unless --quiet).")
-    p.add_argument("data", help="data file: .csv, .tsv, .parquet or .xlsx")
+    p.add_argument("data", help="data file: .csv, .tsv, .parquet, .xlsx, .dta (Stata) or .sav (SPSS)")
     add_model_options(p)
     add_prior_sensitivity(p, default_on=False)
     p.add_argument("--json", action="store_true",

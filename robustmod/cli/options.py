@@ -120,6 +120,31 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
                         "(the sampler), on a few datasets (default: off)")
     p.add_argument("--quiet", action="store_true",
                    help="no progress bars or step timings on stderr (default: shown on a terminal)")
+    add_reading_options(p)
+
+
+def add_reading_options(p: argparse.ArgumentParser) -> None:
+    """How the data file is read: missing-value codes, separator, decimal mark, Excel sheet."""
+    p.add_argument("--na-values", metavar="TOKEN[,TOKEN…]", default=None,
+                   help="codes that mean 'missing' besides empty cells, e.g. '.' or '.,-99' (default: none)")
+    p.add_argument("--sep", default=None, help="column separator of a CSV/TSV file, e.g. ';' or 'tab' "
+                                               "(default: detected)")
+    p.add_argument("--decimal", default=None, help="decimal mark of a CSV/TSV file, '.' or ',' (default: detected)")
+    p.add_argument("--sheet", default=None, help="Excel sheet by name or 0-based position (default: the first)")
+
+
+def reading_kwargs(args: argparse.Namespace) -> dict[str, Any]:
+    """The reading options given on the command line, as keyword arguments of compare()."""
+    kw: dict[str, Any] = {}
+    if getattr(args, "na_values", None) is not None:
+        kw["na_values"] = [t for t in (x.strip() for x in args.na_values.split(",")) if t] or None
+    for name in ("sep", "decimal"):
+        if getattr(args, name, None) is not None:
+            kw[name] = getattr(args, name)
+    sheet = getattr(args, "sheet", None)
+    if sheet is not None:
+        kw["sheet"] = int(sheet) if sheet.strip().isdigit() else sheet
+    return kw
 
 
 def add_prior_sensitivity(p: argparse.ArgumentParser, *, default_on: bool) -> None:
@@ -147,6 +172,7 @@ def compare_kwargs(args: argparse.Namespace) -> dict[str, Any]:
     if args.calibrate_costly:
         kw["calibrate_costly"] = True
     kw["progress"] = not args.quiet and stderr_is_terminal()
+    kw.update(reading_kwargs(args))
     return kw
 
 
