@@ -8,12 +8,13 @@ coefficients — in one of three ways (see DESIGN.md):
 * :class:`PosteriorFit` draws of L·β from the posterior.
 
 Effects, regions and the comparison only call :meth:`Fit.estimate`,
-:meth:`Fit.joint_test` and :meth:`Fit.margin`, so a new back-end needs nothing else.
+:meth:`Fit.joint_test`, :meth:`Fit.test_coefficients` and :meth:`Fit.margin`, so a new back-end needs nothing else.
 """
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
 from dataclasses import dataclass, field
+from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
@@ -110,6 +111,28 @@ class Fit(ABC):
     @abstractmethod
     def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
         """Test of H0: L·β = 0 for all rows of L at once."""
+
+    def test_coefficients(self, columns: Sequence[int], alpha: float) -> JointTest:
+        """Test of H0: β_j = 0 for every j in ``columns`` — the caller names the hypothesis.
+
+        One column: the fit's own test of that coefficient (its t test, or for a posterior the
+        (1 − alpha) interval); several: :meth:`joint_test` of the unit rows. A back-end that can
+        impose the null (the wild bootstrap) overrides this; :meth:`estimate` never guesses it.
+        """
+        cols = [int(c) for c in columns]
+        if not cols:
+            raise ValueError("test_coefficients needs at least one column")
+        L = np.zeros((len(cols), self.params.size))
+        L[np.arange(len(cols)), cols] = 1.0
+        if len(cols) > 1:
+            return self.joint_test(L, alpha)
+        est = self.estimate(L, alpha)
+        p = None if est.p is None else float(est.p[0])
+        stat = est.extra.get("statistic")
+        supported = bool(p < alpha) if p is not None else bool(est.significant[0])
+        if stat is None:
+            stat = np.array([est.estimate[0] / est.se[0] if est.se[0] > 0 else 0.0])
+        return JointTest(float(stat[0]), 1, None, p, est.interval, supported)
 
     def margin(self, L: np.ndarray, alpha: float) -> np.ndarray:
         """max(lower, −upper): positive exactly where the interval excludes zero.

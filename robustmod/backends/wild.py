@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -305,18 +305,13 @@ class BootstrapFit(Fit):
         W, W_star = self._null_wald(cols)
         return float(_share_at_least(W_star, np.array(W)))
 
-    def _product_columns(self, L: np.ndarray) -> np.ndarray:
-        """For each row of L, the product-term column it picks out as a unit row, else −1."""
-        col = np.argmax(np.abs(L), axis=1)
-        unit = (np.count_nonzero(L, axis=1) == 1) & (L[np.arange(L.shape[0]), col] == 1.0)
-        product = np.isin(col, [c for (c, *rest) in self.null if not rest])
-        return np.where(unit & product, col, -1)
-
     # ---- the Fit interface -----------------------------------------------------------------
     def estimate(self, L: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
-        """L·β̂, HC se, bootstrap-t interval (sup-t band when ``simultaneous``) and bootstrap p.
+        """L·β̂, HC se, bootstrap-t interval (sup-t band when ``simultaneous``) and the symmetric
+        unrestricted bootstrap p (share of |t*| ≥ |t|).
 
-        Rows equal to a product-term unit row get the null-imposed p (Davidson & Flachaire 2008).
+        The answer for c·L is the answer for L scaled by c (p unchanged) for any c ≠ 0; the
+        null-imposed test is asked for by name with :meth:`test_coefficients`.
         """
         L = _as_rows(L, self.params.size)
         m = L.shape[0]
@@ -332,9 +327,6 @@ class BootstrapFit(Fit):
             p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
             if simultaneous:
                 np.maximum(sup, np.abs(ts).max(axis=0), out=sup)
-        cols = self._product_columns(L)
-        for col in np.unique(cols[cols >= 0]):  # one lookup per product term
-            p[cols == col] = self.null_p[(int(col),)]
         if simultaneous and m > 1:
             c = float(np.quantile(sup, 1 - alpha, method="weibull"))
             lower, upper, label = est - c * se, est + c * se, f"{self.interval_label}, sup-t band"
@@ -343,23 +335,33 @@ class BootstrapFit(Fit):
         return Estimates(est, se, lower, upper, p, 1 - alpha, label, {"statistic": t})
 
     def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
-        """Bootstrap HC Wald test of L·β = 0: null imposed when L picks out the product terms,
-        unrestricted (W* centred at β̂) otherwise; p = share of W* ≥ W. Statistic reported as W/q."""
+        """Unrestricted bootstrap HC Wald test of L·β = 0 (W* centred at β̂); p = share of W* ≥ W.
+
+        Statistic reported as W/q. Invariant to rescaling the rows of L.
+        """
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
-        cols = self._product_columns(L)
-        key = tuple(sorted(int(c) for c in cols))
-        if np.all(cols >= 0) and len(set(key)) == q and key in self.null:
-            W, W_star = self._null_wald(key)
-            method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
-        else:
-            r = L @ self.params
-            W = float(_batched_wald(r, L @ self.cov @ L.T))
-            d = self.delta @ L.T  # B × q
-            S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
-            W_star = _batched_wald(d, S)
-            method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
+        r = L @ self.params
+        W = float(_batched_wald(r, L @ self.cov @ L.T))
+        d = self.delta @ L.T  # B × q
+        S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
+        W_star = _batched_wald(d, S)
         p = float(_share_at_least(W_star, np.array(W)))
+        method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
+        return JointTest(W / q, q, None, p, method, bool(p < alpha))
+
+    def test_coefficients(self, columns: Sequence[int], alpha: float) -> JointTest:
+        """Null-imposed test of β_j = 0 for j in ``columns`` (Davidson & Flachaire 2008) when the
+        fit drew the restricted bootstrap for exactly those columns (the product terms, alone or
+        together); otherwise the unrestricted test of the unit rows. p = share of W* ≥ W, with
+        W = t² for one column; the statistic is W/q."""
+        key = tuple(sorted({int(c) for c in columns}))
+        if key not in self.null:
+            return super().test_coefficients(columns, alpha)
+        W, W_star = self._null_wald(key)
+        p = self.null_p[key]
+        q = len(key)
+        method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
 
     def _meat_full(self) -> np.ndarray:
