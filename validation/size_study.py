@@ -67,7 +67,6 @@ def run_cell(n: int, pattern: str, err: str, n_datasets: int, seed: int, backend
     info = design.moderators["w"]
     w0 = info.mean + info.sd
     L_slope = design.slope_rows_along("w", np.array([w0]))
-    L_int = design.interaction_rows()
     rows = []
     for label, bid, opts in backends:
         backend = make_backend(bid, **opts)

@@ -358,7 +358,7 @@ class BootstrapFit(Fit):
         key = tuple(sorted({int(c) for c in columns}))
         if key not in self.null:
             return super().test_coefficients(columns, alpha)
-        W, W_star = self._null_wald(key)
+        W, _ = self._null_wald(key)
         p = self.null_p[key]
         q = len(key)
         method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
