@@ -20,6 +20,8 @@ from typing import TYPE_CHECKING, Any, Protocol
 import numpy as np
 from scipy import linalg, stats
 
+from .kernels import wald_test
+
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
     from ..tables import Table
@@ -200,9 +202,7 @@ class WaldFit(Fit):
         se = np.sqrt(np.maximum(var, 0.0))
         rank = int(np.linalg.matrix_rank(L)) if simultaneous else 1
         crit = self.critical_value(alpha, rank)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            t = np.where(se > 0, est / se, 0.0)
-        p = 2 * self._dist().sf(np.abs(t))
+        t, p = wald_test(est[:, None], var[:, None, None], self.df)  # each row its own t test
         ref = "normal" if self.df is None else f"t (df {self.df:g})"
         kind = f"Scheffé band, rank {rank}" if simultaneous and rank > 1 else ref
         return Estimates(est, se, est - crit * se, est + crit * se, p, 1 - alpha, kind, {"statistic": t})
@@ -211,20 +211,11 @@ class WaldFit(Fit):
         """Wald F = (Lβ)ᵀ (L V Lᵀ)⁻¹ (Lβ) / q, solved with Cholesky; χ²/q when df is None."""
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
-        r = L @ self.params
-        S = L @ self.cov @ L.T
-        try:
-            c = linalg.cho_factor(S, check_finite=False)
-            stat = float(r @ linalg.cho_solve(c, r, check_finite=False)) / q
-        except linalg.LinAlgError:
-            stat = float(r @ linalg.lstsq(S, r)[0]) / q
-        if self.df is None:
-            p = float(stats.chi2.sf(stat * q, q))
-            method = f"Wald chi-square ({q} df)"
-        else:
-            p = float(stats.f.sf(stat, q, self.df))
-            method = f"Wald F ({q}, {self.df:g})"
-        return JointTest(stat, q, self.df, p, method, bool(p < alpha))
+        stat, p_arr = wald_test((L @ self.params)[None, :], (L @ self.cov @ L.T)[None], self.df)
+        F = float(stat[0]) ** 2 if q == 1 else float(stat[0])  # t² = F(1, df) for one row
+        p = float(p_arr[0])
+        method = f"Wald chi-square ({q} df)" if self.df is None else f"Wald F ({q}, {self.df:g})"
+        return JointTest(F, q, self.df, p, method, bool(p < alpha))
 
 
 class PosteriorFit(Fit):

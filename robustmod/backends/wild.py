@@ -40,7 +40,8 @@ from scipy import linalg
 
 from ..errors import InputError, option_error
 from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
-from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
+from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_mask, leverages, r_inverse, sandwich
+from .kernels import batched_quadratic, design_row_numbers, leverage_one_reason
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -110,7 +111,7 @@ def _enumerate(kind: str, n: int, replications: int) -> bool:
 
 def residual_factor(transform: str, h: np.ndarray) -> np.ndarray:
     """Rescaling of residuals: 1/√(1−h) (hc2), 1/(1−h) (hc3) or 1; 0 at leverage one (residual is 0)."""
-    one = h >= 1.0 - 1e-10
+    one = leverage_one_mask(h)
     safe = np.where(one, 0.5, h)
     f = {"hc2": 1.0 / np.sqrt(1.0 - safe), "hc3": 1.0 / (1.0 - safe), "none": np.ones_like(h)}[transform]
     return np.where(one, 0.0, f)
@@ -214,15 +215,6 @@ def _safe_ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
         return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
 
 
-def _batched_wald(d: np.ndarray, S: np.ndarray) -> np.ndarray:
-    """dᵦᵀ Sᵦ⁻¹ dᵦ for a batch (… × q and … × q × q), by batched solves (pseudo-inverse if singular)."""
-    try:
-        x = np.linalg.solve(S, d[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        x = (np.linalg.pinv(S) @ d[..., None])[..., 0]
-    return np.einsum("...i,...i->...", d, x)
-
-
 def _full_from_pairs(Mp: np.ndarray, q: int) -> np.ndarray:
     """Symmetric q × q blocks (… × q × q) from their upper-triangle entries (… × q(q+1)/2)."""
     jj, ll = np.triu_indices(q)
@@ -297,8 +289,8 @@ class BootstrapFit(Fit):
         b, m = self.null[cols]
         beta = self.params[list(cols)]
         V = self.cov[np.ix_(cols, cols)]
-        W = float(_batched_wald(beta, V))
-        W_star = _batched_wald(b, _full_from_pairs(m, len(cols)))
+        W = float(batched_quadratic(beta, V))
+        W_star = batched_quadratic(b, _full_from_pairs(m, len(cols)))
         return W, W_star
 
     def _null_p(self, cols: tuple[int, ...]) -> float:
@@ -342,10 +334,10 @@ class BootstrapFit(Fit):
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
         r = L @ self.params
-        W = float(_batched_wald(r, L @ self.cov @ L.T))
+        W = float(batched_quadratic(r, L @ self.cov @ L.T))
         d = self.delta @ L.T  # B × q
         S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
-        W_star = _batched_wald(d, S)
+        W_star = batched_quadratic(d, S)
         p = float(_share_at_least(W_star, np.array(W)))
         method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
@@ -424,12 +416,9 @@ class WildBootstrapBackend:
         Q, R = design.qr
         n, k = Q.shape
         h = leverages(Q)
-        ones = leverage_one_rows(h)
-        if ones.size and self.se in NEEDS_LEVERAGE_BELOW_ONE:
-            rows = np.asarray(design.data.frame.index, dtype=int)[ones] + 1
-            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
-            return (f"{self.se.upper()} is undefined: data row(s) {shown} have leverage 1 (each alone determines "
-                    f"a coefficient); drop them or set wild.se=hc0.")
+        if self.se in NEEDS_LEVERAGE_BELOW_ONE and (reason := leverage_one_reason(
+                h, self.se.upper(), design_row_numbers(design), "drop them or set wild.se=hc0")):
+            return reason
         A = r_inverse(R) @ Q.T
         return A, hc_weights(self.se, h, n, k), h
 
@@ -460,7 +449,7 @@ class WildBootstrapBackend:
         qty = Q.T @ y
         beta = linalg.solve_triangular(R, qty, check_finite=False)
         resid = y - Q @ qty
-        cov = (A * (omega * resid**2)) @ A.T
+        cov = sandwich(Q, r_inverse(R), omega * resid**2)
         warnings: list[str] = []
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
@@ -544,7 +533,7 @@ class WildBootstrapBackend:
         Q, _ = design.qr
         E = Y - Q @ (Q.T @ Y)
         b_obs = A[list(cols)] @ Y  # q × D
-        W_obs = _batched_wald(b_obs.T, _full_from_pairs((P @ E**2).T, q))
+        W_obs = batched_quadratic(b_obs.T, _full_from_pairs((P @ E**2).T, q))
         Et = self._restricted(X, cols, Y)  # n × D transformed restricted residuals
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
@@ -581,7 +570,7 @@ class WildBootstrapBackend:
                     sq = sq_const
                 else:
                     sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
-                W_star = _batched_wald(D[..., list(cols)], _full_from_pairs(sq - 2.0 * cross + quad, q))
+                W_star = batched_quadratic(D[..., list(cols)], _full_from_pairs(sq - 2.0 * cross + quad, q))
                 hits[a:b] += (W_star >= W_obs[a:b, None]).sum(axis=1)
         p_values = hits / B
         return p_values

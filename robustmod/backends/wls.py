@@ -36,7 +36,9 @@ from scipy import linalg, optimize, special, stats
 
 from ..errors import InputError, option_error
 from .base import Unavailable, WaldFit
-from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+from ..defaults import LEVERAGE_ONE_TOL
+from .hc import hc_weights, leverages, r_inverse, sandwich
+from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -433,13 +435,10 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     label_fn = _FUNCTION_LABELS[vm.function]
     est_label = {"ml": "ML", "twostep": "two-step FGLS", "known": "known"}.get(used, "two-step FGLS")
     if se == "robust":
-        ones = leverage_one_rows(h)
-        if ones.size:
-            rows = row_numbers[ones] if row_numbers is not None else ones + 1
-            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
-            return Unavailable(backend_id, f"WLS, {label_fn}",
-                               f"HC3 on the weighted fit is undefined: data row(s) {shown} have leverage 1; "
-                               "use --set wls.se=model or drop those rows.")
+        reason = leverage_one_reason(h, "HC3 on the weighted fit", row_numbers,
+                                     "use --set wls.se=model or drop those rows")
+        if reason:
+            return Unavailable(backend_id, f"WLS, {label_fn}", reason)
         cov = sandwich(Q, Rinv, hc_weights("hc3", h, n, k) * ew**2)
         se_label = "HC3 on the weighted fit"
     else:
@@ -633,7 +632,7 @@ class WLSBackend:
     def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
         """Fit on the design (deterministic: ``seed`` is not used)."""
         vm = self.variance_model(design)
-        rows = np.asarray(design.data.frame.index, dtype=int) + 1
+        rows = design_row_numbers(design)
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", WLSWarning)  # the notes travel in fit.warnings
             return fit_wls(design.y, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
@@ -765,18 +764,10 @@ def _reject_product(X: np.ndarray, Yd: np.ndarray, W: np.ndarray, L: np.ndarray,
     Mt = np.linalg.solve(np.swapaxes(R, 1, 2), np.broadcast_to(L.T, (D, k, q)))
     if se == "robust":
         h = np.einsum("dnk,dnk->dn", Q, Q)
-        u = ew**2 / np.maximum(1.0 - h, 1e-12) ** 2
+        u = hc_weights("hc3", np.minimum(h, 1.0 - LEVERAGE_ONE_TOL), n, k) * ew**2
         G = np.einsum("dnk,dkq->dnq", Q, Mt)
         V = np.einsum("dnq,dn,dnr->dqr", G, u, G)
     else:
         s2 = (ew**2).sum(axis=1) / (n - k)
         V = s2[:, None, None] * np.einsum("dkq,dkr->dqr", Mt, Mt)
-    est = beta @ L.T  # D × q
-    df = n - k
-    if q == 1:
-        t = est[:, 0] / np.sqrt(np.maximum(V[:, 0, 0], np.finfo(float).tiny))
-        return 2 * stats.t.sf(np.abs(t), df) < alpha
-    c = np.linalg.cholesky(V)
-    z = np.linalg.solve(c, est[:, :, None])[:, :, 0]
-    F = (z**2).sum(axis=1) / q
-    return stats.f.sf(F, q, df) < alpha
+    return wald_test(beta @ L.T, V, n - k)[1] < alpha
