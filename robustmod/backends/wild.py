@@ -130,6 +130,27 @@ class _Source:
     pairs: np.ndarray  # indices into the upper-triangle pair list
 
 
+def _expanded_factor(A: np.ndarray, X: np.ndarray, P: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The fixed parts of the expanded kernel: [A; (Xⱼ·Pₚ)ⱼₚ] ((k + k·m) × n, to be scaled by the
+    base residuals) and T (m × k²) with Tₚⱼₗ = Σᵢ Pₚᵢ XᵢⱼXᵢₗ."""
+    k, n = A.shape
+    m = P.shape[0]
+    base = np.vstack([A, (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)])
+    return base, np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
+
+
+def _expanded_meat(G: np.ndarray, T: np.ndarray, sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(D, M) from G = V·(base ⊙ ẽ)ᵀ (… × (k + k·m)): D = β* − β_base and
+    M_p = sq_p − 2 Σⱼ Dⱼ Cⱼₚ + Σⱼₗ DⱼDₗ Tₚⱼₗ, sq_p = Σᵢ Pₚᵢ vᵢ²ẽᵢ² (see :class:`_Kernel`)."""
+    m = T.shape[0]
+    k = G.shape[-1] // (1 + m)
+    D = np.ascontiguousarray(G[..., :k])
+    C = G[..., k:].reshape(*G.shape[:-1], k, m)
+    cross = np.einsum("...j,...jp->...p", D, C)
+    quad = (D[..., :, None] * D[..., None, :]).reshape(*D.shape[:-1], k * k) @ T.T
+    return D, sq - 2.0 * cross + quad
+
+
 class _Kernel:
     """β* − β_base and M for chunks of weights, for several residual sources at once.
 
@@ -161,14 +182,12 @@ class _Kernel:
             if not self.expanded[i]:
                 self.Pt[i] = np.ascontiguousarray(Pi.T)
                 continue
-            m = Pi.shape[0]
-            F = np.zeros((k + k * m, width))
-            F[:k, :n] = A * s.resid
-            F[k:, :n] = (X.T[:, None, :] * Pi[None, :, :]).reshape(k * m, n) * s.resid
+            base, self.T[i] = _expanded_factor(A, X, Pi)
+            F = np.zeros((base.shape[0], width))
+            F[:, :n] = base * s.resid
             blocks.append(F)
             self.offsets[i] = (row, row + F.shape[0])
             row += F.shape[0]
-            self.T[i] = np.einsum("pi,ij,il->pjl", Pi, X, X).reshape(m, k * k)
             self.S2[i] = Pi @ s.resid**2
             self.Pe2[i] = np.ascontiguousarray((Pi * s.resid**2).T)
         self.F_t = np.ascontiguousarray(np.vstack(blocks).T) if blocks else None  # width × rows
@@ -182,14 +201,8 @@ class _Kernel:
         for i, s in enumerate(self.sources):
             if self.expanded[i]:
                 a, b = self.offsets[i]
-                g = G[:, a:b]
-                m = len(s.pairs)
-                D = np.ascontiguousarray(g[:, :k])
-                C = g[:, k:].reshape(-1, k, m)
-                cross = np.einsum("bj,bjp->bp", D, C)
-                quad = (D[:, :, None] * D[:, None, :]).reshape(-1, k * k) @ self.T[i].T
                 sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
-                out.append((D, sq - 2.0 * cross + quad))
+                out.append(_expanded_meat(G[:, a:b], self.T[i], sq))
                 continue
             U = V[:, :n] * s.resid
             D = U @ self.At
@@ -528,7 +541,6 @@ class WildBootstrapBackend:
         pairs = _pairs_within(cols, k)
         jj, ll = _pair_index(k)
         P = A[jj[pairs]] * A[ll[pairs]] * omega  # m × n
-        m = P.shape[0]
         # Observed HC Wald (t² for one term) of every dataset.
         Q, _ = design.qr
         E = Y - Q @ (Q.T @ Y)
@@ -538,10 +550,7 @@ class WildBootstrapBackend:
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
         width = n if enum else _weight_width(self.weights, n)
-        base = np.zeros((k + k * m, width))
-        base[:k, :n] = A
-        base[k:, :n] = (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)
-        T = np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
+        base, T = _expanded_factor(A, X, P)
         rng = np.random.default_rng(seed)
         Dn = Y.shape[1]
         hits = np.zeros(Dn)
@@ -552,8 +561,8 @@ class WildBootstrapBackend:
         for a, b in _chunks(Dn, data_step):
             c = b - a
             e = Et[:, a:b].T  # c × n
-            F = np.zeros((c, width, k + k * m))
-            F[:, :n, :] = (base[None, :, :n] * e[:, None, :]).transpose(0, 2, 1)
+            F = np.zeros((c, width, base.shape[0]))
+            F[:, :n, :] = (base[None, :, :] * e[:, None, :]).transpose(0, 2, 1)
             sq_const = (P[None] * e[:, None, :] ** 2).sum(axis=2)[:, None, :]  # c × 1 × m
             for r0, r1 in _chunks(B, B if c > 1 else rep_step):
                 r = r1 - r0
@@ -561,16 +570,12 @@ class WildBootstrapBackend:
                     V = np.broadcast_to(sign_patterns(n, r0, r1), (c, r, n))
                 else:
                     V = _weight_chunk(self.weights, n, c * r, rng).reshape(c, r, width)
-                G = V @ F  # c × r × (k + k·m)
-                D = G[..., :k]
-                C = G[..., k:].reshape(c, r, k, m)
-                cross = np.einsum("dbj,dbjp->dbp", D, C)
-                quad = (D[..., :, None] * D[..., None, :]).reshape(c, r, k * k) @ T.T
                 if self.weights == "rademacher":
                     sq = sq_const
                 else:
                     sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
-                W_star = batched_quadratic(D[..., list(cols)], _full_from_pairs(sq - 2.0 * cross + quad, q))
+                D, M = _expanded_meat(V @ F, T, sq)  # V @ F: c × r × (k + k·m)
+                W_star = batched_quadratic(D[..., list(cols)], _full_from_pairs(M, q))
                 hits[a:b] += (W_star >= W_obs[a:b, None]).sum(axis=1)
         p_values = hits / B
         return p_values
