@@ -32,13 +32,22 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, optimize, special, stats
+from scipy import linalg, optimize, stats
 
 from ..errors import InputError, option_error
 from .base import Unavailable, WaldFit
 from ..defaults import LEVERAGE_ONE_TOL
 from .hc import hc_weights, leverages, r_inverse, sandwich
-from .kernels import design_row_numbers, leverage_one_reason, wald_test
+from .kernels import (
+    ETA_LIMIT,
+    LOG_CHI2_CORRECTION,
+    ZERO_RESIDUAL_FLOOR,
+    design_row_numbers,
+    floored_squares,
+    leverage_one_reason,
+    log_square_regression,
+    wald_test,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -46,16 +55,10 @@ if TYPE_CHECKING:  # pragma: no cover
 VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
 ESTIMATIONS = ("ml", "twostep")
 SE_TYPES = ("robust", "model")
-#: −E[log χ²₁] = −(ψ(1/2) + log 2) ≈ 1.2704, the intercept correction of the log ê² regression.
-LOG_CHI2_CORRECTION = float(-(special.digamma(0.5) + math.log(2.0)))
-#: Squared residuals below this share of their mean are raised to it before the log.
-ZERO_RESIDUAL_FLOOR = 1e-8
 #: A ratio of largest to smallest weight above this earns a warning.
 WEIGHT_RATIO_WARNING = 1e6
 #: |μᵢ| below this share of mean |y| is raised to it in the power-of-the-mean model.
 MEAN_FLOOR = 1e-6
-#: log-variances are clipped here so that exp() never overflows.
-ETA_LIMIT = 600.0
 ML_MAXITER = 200
 ML_GTOL = 1e-7
 #: An ML fit stopped with ½ gᵀH⁻¹g below this (log-likelihood units) counts as converged.
@@ -141,13 +144,6 @@ def _profile_nll(X: np.ndarray, Y: np.ndarray, eta: np.ndarray) -> tuple[np.ndar
 # --------------------------------------------------------------------------------------
 # Two-step FGLS
 # --------------------------------------------------------------------------------------
-def _floored_squares(E: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """ê² raised to ZERO_RESIDUAL_FLOOR·mean(ê²) per dataset (rows of E), and the count raised."""
-    e2 = E**2
-    floor = ZERO_RESIDUAL_FLOOR * np.maximum(e2.mean(axis=1, keepdims=True), np.finfo(float).tiny)
-    return np.maximum(e2, floor), (e2 < floor).sum(axis=1)
-
-
 def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Two-step variance parameters for each dataset (rows of Y, D × n).
 
@@ -156,10 +152,10 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
     + 1.2704 (Harvey 1976), SEs from the auxiliary regression. Groups: log of the mean ê² of
     each group, SE by the delta method sqrt(var(ê²) / (n_g·mean(ê²)²)).
     """
-    Qx, Rx = np.linalg.qr(X, mode="reduced")
+    Qx, _ = np.linalg.qr(X, mode="reduced")
     fitted = (Y @ Qx) @ Qx.T
     E = Y - fitted
-    e2, raised = _floored_squares(E)
+    e2, raised = floored_squares(E)
     if vm.function == "groups":
         G = vm.Z  # one-hot, n × p
         counts = G.sum(axis=0)
@@ -168,34 +164,13 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
         var = np.maximum(second - mean**2, 0.0) * counts / np.maximum(counts - 1, 1)
         return np.log(mean), np.sqrt(var / (counts * mean**2)), raised
     if vm.function == "power":
-        floor = vm.mean_floor(Y[0])
-        logm = np.log(np.maximum(np.abs(fitted), floor))
-        # Each dataset has its own regressor log|μ̂|: solve the 2 × 2 normal equations in closed form.
-        n = Y.shape[1]
-        ly = np.log(e2)
-        mx, my = logm.mean(axis=1), ly.mean(axis=1)
-        sxx = ((logm - mx[:, None]) ** 2).sum(axis=1)
-        sxy = ((logm - mx[:, None]) * (ly - my[:, None])).sum(axis=1)
-        slope = sxy / np.where(sxx > 0, sxx, np.inf)
-        icpt = my - slope * mx
-        res = ly - icpt[:, None] - slope[:, None] * logm
-        s2 = (res**2).sum(axis=1) / (n - 2)
-        se_slope = np.sqrt(s2 / np.where(sxx > 0, sxx, np.inf))
-        se_icpt = np.sqrt(s2 * (1.0 / n + mx**2 / np.where(sxx > 0, sxx, np.inf)))
-        gamma = np.column_stack([icpt + LOG_CHI2_CORRECTION, slope / 2.0])
-        return gamma, np.column_stack([se_icpt, se_slope / 2.0]), raised
-    Z = vm.Z
-    Qz, Rz = np.linalg.qr(Z, mode="reduced")
-    ly = np.log(e2)
-    coef = linalg.solve_triangular(Rz, Qz.T @ ly.T, check_finite=False).T  # D × p
-    res = ly - coef @ Z.T
-    n, p = Z.shape
-    s2 = (res**2).sum(axis=1) / (n - p)
-    Rinv = r_inverse(Rz)
-    diag = (Rinv**2).sum(axis=1)
-    # The correction goes where z spans the constant: a with Z a = 1.
-    a = linalg.solve_triangular(Rz, Qz.T @ np.ones(n), check_finite=False)
-    return coef + LOG_CHI2_CORRECTION * a[None, :], np.sqrt(s2[:, None] * diag[None, :]), raised
+        # Each dataset has its own regressor log|μ̂|: z = [1, log|μ̂|], slope 2θ.
+        logm = np.log(np.maximum(np.abs(fitted), vm.mean_floor(Y[0])))
+        Z = np.stack([np.ones_like(logm), logm], axis=2)
+        coef, se = log_square_regression(np.log(e2), Z)
+        return coef * [1.0, 0.5], se * [1.0, 0.5], raised
+    coef, se = log_square_regression(np.log(e2), vm.Z)
+    return coef, se, raised
 
 
 # --------------------------------------------------------------------------------------
