@@ -13,10 +13,13 @@ Estimation
     *two-step FGLS* (Harvey 1976; Wooldridge, Introductory Econometrics, ch. 8): OLS
     residuals ê, regress log ê² on z, add −E[log χ²₁] = 1.2704 to the intercept, weight by
     wᵢ = exp(−ẑᵢᵀγ̂). For groups the variance of a group is the mean of its ê².
-    *ML* (default) maximises ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − μᵢ)² e^{−ηᵢ}] in (β, γ) jointly
-    with scipy's trust-region method, analytic gradient and the expected information
-    J_μᵀ W J_μ + ½ J_ηᵀ J_η as the Hessian, in coordinates whitened by the information at the
-    two-step start. Non-convergence falls back to the two-step estimate with a warning.
+    *ML* (default) maximises ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − μᵢ)² e^{−ηᵢ}] from the two-step
+    start by Fisher scoring with step halving: in γ with β profiled out by WLS when η = Zγ
+    (log-linear, groups; the information of γ is ½ZᵀZ), jointly in (β, c, θ) for the power of
+    the mean with the expected information J_μᵀ W J_μ + ½ J_ηᵀ J_η. One routine per variance
+    function, batched over datasets: a single fit is a batch of one. Converged means the Newton
+    decrement ½ gᵀJ⁻¹g fell below 1e-8 (log-likelihood units); otherwise the two-step estimate is
+    kept with a warning.
 
 Standard errors of β (the weighted regression of √w·y on √w·X, thin QR, no inverse of XᵀWX)
     *robust* (default): HC3 on the weighted regression, valid when the variance function is
@@ -32,7 +35,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, optimize, stats
+from scipy import linalg, stats
 
 from ..errors import InputError, option_error
 from .base import Unavailable, WaldFit
@@ -60,7 +63,6 @@ WEIGHT_RATIO_WARNING = 1e6
 #: |μᵢ| below this share of mean |y| is raised to it in the power-of-the-mean model.
 MEAN_FLOOR = 1e-6
 ML_MAXITER = 200
-ML_GTOL = 1e-7
 #: An ML fit stopped with ½ gᵀH⁻¹g below this (log-likelihood units) counts as converged.
 ML_DECREMENT_TOL = 1e-8
 
@@ -197,71 +199,29 @@ def _information_factor(vm: VarianceModel, X: np.ndarray, beta: np.ndarray, gamm
 
 def ml_fit(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta0: np.ndarray, gamma0: np.ndarray
            ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, bool, int, str]:
-    """Joint ML of (β, γ) from a start; returns (β̂, γ̂, information factor R̂, converged, iterations, message).
-
-    The problem is solved in u with θ = θ₀ + R₀⁻¹u, R₀ the triangular factor of the expected
-    information at the start, so the model Hessian starts as the identity.
-    """
-    k = X.shape[1]
+    """Joint ML of (β, γ) of one dataset from a start: the batched routine of :meth:`WLSBackend.reject_many`
+    on a batch of one (:func:`batched_ml_gamma` with β profiled out for η = Zγ, :func:`batched_ml_power`
+    for the power of the mean). Returns (β̂, γ̂, information factor R̂ with R̂ᵀR̂ the expected
+    information, converged, iterations, message)."""
     floor = vm.mean_floor(y)
-    theta0 = np.concatenate([beta0, gamma0])
-    try:
-        R0 = np.linalg.qr(_information_factor(vm, X, beta0, gamma0, floor), mode="r")
-        T = r_inverse(R0)
-    except (np.linalg.LinAlgError, ValueError) as exc:
-        return beta0, gamma0, None, False, 0, f"information at the start is singular ({exc})"
-    if not np.all(np.isfinite(T)):
-        return beta0, gamma0, None, False, 0, "information at the start is singular"
-    log2pi = math.log(2 * math.pi)
-
-    def split(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        th = theta0 + T @ u
-        return th[:k], th[k:]
-
-    def fun(u: np.ndarray) -> float:
-        b, g = split(u)
-        eta = vm.eta(X, b, g, floor)
-        if not np.all(np.isfinite(eta)) or np.abs(eta).max() > ETA_LIMIT:
-            return np.inf
-        e = y - X @ b
-        return float(0.5 * np.sum(log2pi + eta + e**2 * np.exp(-eta)))
-
-    def jac(u: np.ndarray) -> np.ndarray:
-        b, g = split(u)
-        eta = np.clip(vm.eta(X, b, g, floor), -ETA_LIMIT, ETA_LIMIT)
-        w = np.exp(-eta)
-        e = y - X @ b
-        half = 0.5 * (e**2 * w - 1.0)
-        d_beta, d_gamma = vm.jacobians(X, b, g, floor)
-        g_beta = X.T @ (w * e) + (0.0 if d_beta is None else d_beta.T @ half)
-        score = np.concatenate([g_beta, d_gamma.T @ half])
-        return -(T.T @ score)
-
-    def hess(u: np.ndarray) -> np.ndarray:
-        b, g = split(u)
-        JT = _information_factor(vm, X, b, g, floor) @ T
-        return JT.T @ JT
-
-    with _warnings.catch_warnings():
-        _warnings.simplefilter("ignore", RuntimeWarning)
-        res = optimize.minimize(fun, np.zeros(theta0.size), jac=jac, hess=hess, method="trust-exact",
-                                options={"gtol": ML_GTOL, "maxiter": ML_MAXITER})
-    b, g = split(res.x)
-    ok = bool(np.isfinite(res.fun) and np.all(np.isfinite(res.x)))
-    if ok and not res.success:
-        # The expected information is not the exact Hessian, so the trust region can stall at the
-        # optimum; judge convergence by the Newton decrement ½ gᵀH⁻¹g (log-likelihood units) instead.
-        grad = jac(res.x)
-        try:
-            decrement = 0.5 * float(grad @ linalg.solve(hess(res.x), grad, assume_a="pos"))
-        except (linalg.LinAlgError, ValueError):
-            decrement = np.inf
-        ok = decrement < ML_DECREMENT_TOL
-    R = None
+    if vm.function == "power":
+        B, G, done, iters = batched_ml_power(X, y[None, :], beta0[None, :], gamma0[None, :], floor)
+        b, g = B[0], G[0]
+    else:
+        G, done, iters = batched_ml_gamma(vm, X, y[None, :], gamma0[None, :])
+        g = G[0]
+        W = np.exp(-np.clip(vm.Z @ g, -ETA_LIMIT, ETA_LIMIT))
+        Q, R = weighted_qr(X, W[None, :])
+        b = linalg.solve_triangular(R[0], Q[0].T @ (np.sqrt(W) * y), check_finite=False)
+    ok = bool(done[0] and np.all(np.isfinite(b)) and np.all(np.isfinite(g)))
+    message = "converged" if ok else (f"iteration limit reached ({int(iters[0])} iterations)"
+                                      if int(iters[0]) >= ML_MAXITER else "no step improved the likelihood")
+    Rinfo = None
     if ok:
-        R = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
-        ok = bool(np.all(np.isfinite(R)) and np.all(np.abs(np.diag(R)) > 0))
-    return b, g, R, ok, int(res.nit), str(res.message)
+        Rinfo = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
+        ok = bool(np.all(np.isfinite(Rinfo)) and np.all(np.abs(np.diag(Rinfo)) > 0))
+        message = message if ok else "the information at the optimum is singular"
+    return b, g, Rinfo, ok, int(iters[0]), message
 
 
 def _backtrack(trial: Any, t: np.ndarray, f_old: np.ndarray, halvings: int = 30) -> tuple[np.ndarray, np.ndarray, Any]:
@@ -278,11 +238,13 @@ def _backtrack(trial: Any, t: np.ndarray, f_old: np.ndarray, halvings: int = 30)
 
 
 def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np.ndarray,
-                     *, maxiter: int = 60, tol: float = ML_DECREMENT_TOL) -> tuple[np.ndarray, np.ndarray]:
+                     *, maxiter: int = ML_MAXITER, tol: float = ML_DECREMENT_TOL
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """ML of γ for η = Zγ across datasets at once (rows of Y), β profiled out by WLS.
 
     Fisher scoring with step halving: γ ← γ + t·(ZᵀZ)⁻¹ Zᵀ(r − 1), rᵢ = ê²ᵢ e^{−ηᵢ}
-    (Harvey 1976); the expected information of γ is ½ZᵀZ whatever β. Returns (γ̂, converged).
+    (Harvey 1976); the expected information of γ is ½ZᵀZ whatever β. Returns (γ̂, converged,
+    iterations) per dataset.
     """
     Z = vm.Z
     Qz, Rz = np.linalg.qr(Z, mode="reduced")
@@ -290,6 +252,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
     f, r = _profile_nll(X, Y, G @ Z.T)
     done = np.zeros(G.shape[0], dtype=bool)
     failed = np.zeros(G.shape[0], dtype=bool)
+    iters = np.zeros(G.shape[0], dtype=int)
     for _ in range(maxiter):
         act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
         if act.size == 0:
@@ -300,6 +263,8 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         decrement = 0.25 * (rhs**2).sum(axis=1)  # ½ scoreᵀ info⁻¹ score, in ℓ units
         now = decrement < tol
         done[act[now]] = True
+        iters[act[~now]] += 1
+
         def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             cand = Ga + t[:, None] * step
             fc, rc = _profile_nll(X, Y[act], cand @ Z.T)
@@ -310,7 +275,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         G[act] = np.where(ok[:, None], cand, Ga)
         f[act] = np.where(ok, fc, fa)
         r[act] = np.where(ok[:, None], rc, ra)
-    return G, done
+    return G, done, iters
 
 
 # --------------------------------------------------------------------------------------
@@ -638,7 +603,7 @@ class WLSBackend:
                 W = self._power_weights(vm, X, Yd, gamma, floor)
             else:
                 if self.estimation == "ml":
-                    g_ml, ok = batched_ml_gamma(vm, X, Yd, gamma)
+                    g_ml, ok, _ = batched_ml_gamma(vm, X, Yd, gamma)
                     gamma = np.where(ok[:, None], g_ml, gamma)
                 W = np.exp(-np.clip(gamma @ vm.Z.T, -ETA_LIMIT, ETA_LIMIT))
         return _reject_product(X, Yd, W, design.interaction_rows(), alpha, self.se)
@@ -651,7 +616,7 @@ class WLSBackend:
         Q, R = weighted_qr(X, W)
         B = np.linalg.solve(R, np.einsum("dnk,dn->dk", Q, np.sqrt(W) * Yd)[:, :, None])[:, :, 0]
         if self.estimation == "ml":
-            B_ml, g_ml, ok = batched_ml_power(X, Yd, B, gamma, floor)
+            B_ml, g_ml, ok, _ = batched_ml_power(X, Yd, B, gamma, floor)
             B = np.where(ok[:, None], B_ml, B)
             gamma = np.where(ok[:, None], g_ml, gamma)
         return np.exp(-np.clip(_power_eta(X, B, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
@@ -671,11 +636,11 @@ def _power_nll(X: np.ndarray, Y: np.ndarray, B: np.ndarray, G: np.ndarray, floor
 
 
 def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarray, floor: float,
-                     *, maxiter: int = 100) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                     *, maxiter: int = ML_MAXITER) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Joint ML of (β, c, θ) of the power-of-the-mean model across datasets (rows of Y).
 
-    Fisher scoring with step halving, the expected information J_μᵀWJ_μ + ½J_ηᵀJ_η as in
-    :func:`ml_fit`. Returns (β̂, γ̂, converged).
+    Fisher scoring with step halving and the expected information J_μᵀWJ_μ + ½J_ηᵀJ_η
+    (:func:`_information_factor`). Returns (β̂, γ̂, converged, iterations) per dataset.
     """
     D, n = Y.shape
     k = X.shape[1]
@@ -683,6 +648,7 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
     f = _power_nll(X, Y, B, G, floor)
     done = np.zeros(D, dtype=bool)
     failed = np.zeros(D, dtype=bool)
+    iters = np.zeros(D, dtype=int)
     for _ in range(maxiter):
         act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
         if act.size == 0:
@@ -712,6 +678,8 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         decrement = 0.5 * np.einsum("di,di->d", score, step)
         now = np.isfinite(decrement) & (decrement < ML_DECREMENT_TOL)
         done[act[now]] = True
+        iters[act[~now]] += 1
+
         def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             Bc, Gc = Ba + t[:, None] * step[:, :k], Ga + t[:, None] * step[:, k:]
             return _power_nll(X, Ya, Bc, Gc, floor), (Bc, Gc)
@@ -721,7 +689,7 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         B[act] = np.where(ok[:, None], Bc, Ba)
         G[act] = np.where(ok[:, None], Gc, Ga)
         f[act] = np.where(ok, fc, fa)
-    return B, G, done
+    return B, G, done, iters
 
 
 def _reject_product(X: np.ndarray, Yd: np.ndarray, W: np.ndarray, L: np.ndarray, alpha: float, se: str) -> np.ndarray:
