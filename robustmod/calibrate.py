@@ -102,8 +102,7 @@ def _rejections(backend: Any, design: Design, Y: np.ndarray, alpha: float, seed:
     out = np.zeros(Y.shape[1], dtype=bool)
     failed = 0
     for j in range(Y.shape[1]):  # a back-end without a batched path: one fit per dataset
-        dj = dataclasses.replace(design, y=Y[:, j].copy())
-        dj.__dict__["qr"] = design.qr  # same X, same factor
+        dj = dataclasses.replace(design, y=Y[:, j].copy())  # same X, so the same QR factor
         fit = backend.fit(dj, seed=int(seeds[j]), progress=False)
         if isinstance(fit, Unavailable):
             failed += 1
