@@ -152,23 +152,33 @@ def _clip_to_window(intervals: list[list[float | None]], window: tuple[float, fl
 
 
 def _grid_region(fit: Fit, design: Design, alpha: float, moderator: str, fixed: dict[str, Any],
-                 band: str, window: tuple[float, float]) -> tuple[list[float], list[list[float | None]], str]:
-    """Roots of the margin on a grid over the window: Brent-refined (pointwise) or interpolated (band)."""
+                 band: str, window: tuple[float, float], lin: tuple[np.ndarray, np.ndarray] | None
+                 ) -> tuple[list[float], list[list[float | None]], str]:
+    """Roots of the margin on a grid over the window: Brent-refined (pointwise) or interpolated (band).
+
+    A slope linear in the moderator is answered along the fit's :meth:`Fit.along` line, so a
+    bootstrap reads its replicates once for the grid and every refinement step.
+    """
     grid = np.linspace(window[0], window[1], GRID_POINTS)
-    L = design.slope_rows_along(moderator, grid, fixed)
+    line = fit.along(*lin) if lin is not None else None
+
+    def rows_estimate(w: np.ndarray, simultaneous: bool = False) -> Any:
+        if line is not None:
+            return line.estimate(w, alpha, simultaneous=simultaneous)
+        return fit.estimate(design.slope_rows_along(moderator, w, fixed), alpha, simultaneous=simultaneous)
+
     roots: list[float] = []
+    est = rows_estimate(grid, band == "simultaneous")
+    margin = np.maximum(est.lower, -est.upper)
     if band == "simultaneous":
-        est = fit.estimate(L, alpha, simultaneous=True)
-        margin = np.maximum(est.lower, -est.upper)
         for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
             t = margin[i] / (margin[i] - margin[i + 1])
             roots.append(float(grid[i] + t * (grid[i + 1] - grid[i])))
         method = "grid, simultaneous band, linear interpolation"
     else:
-        margin = fit.margin(L, alpha)
-
         def f(w: float) -> float:
-            return float(fit.margin(design.slope_rows_along(moderator, np.array([w]), fixed), alpha)[0])
+            e = rows_estimate(np.array([w]))
+            return float(max(e.lower[0], -e.upper[0]))
 
         xtol = 1e-10 * max(1.0, abs(window[1] - window[0]))
         for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
@@ -213,7 +223,7 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
         intervals = _clip_to_window(intervals, window)
         method = "closed form (quadratic)"
     else:
-        roots, intervals, method = _grid_region(fit, design, alpha, moderator, fixed, band, window)
+        roots, intervals, method = _grid_region(fit, design, alpha, moderator, fixed, band, window, lin)
     roots = sorted(roots)
     obs = (info.minimum, info.maximum)
     return {
@@ -290,6 +300,7 @@ def slope_curve(fit: Fit, design: Design, alpha: float, points: int = CURVE_POIN
     m = conts[0]
     info = design.moderators[m]
     grid = np.linspace(info.minimum, info.maximum, points)
-    est = fit.estimate(design.slope_rows_along(m, grid), alpha)
+    lin = design.slope_is_linear_in(m)
+    est = fit.along(*lin).estimate(grid, alpha) if lin is not None else fit.estimate(design.slope_rows_along(m, grid), alpha)
     return {"moderator": m, "values": [num(v) for v in grid], "estimate": [num(v) for v in est.estimate],
             "lower": [num(v) for v in est.lower], "upper": [num(v) for v in est.upper], "level": 1 - alpha}

@@ -453,3 +453,21 @@ def test_null_p_many_same_with_replicate_chunks(monkeypatch: pytest.MonkeyPatch)
     whole = be.null_p_many(design, Y, seed=3)
     monkeypatch.setattr(wild_module, "CHUNK_ELEMENTS", 30 * 50)  # 50 replicates of 30 rows per chunk
     np.testing.assert_array_equal(be.null_p_many(design, Y, seed=3), whole)
+
+
+def test_answers_along_a_moderator_reuse_the_replicates_and_equal_row_answers() -> None:
+    # The line form d0 + w·d1 over sqrt(s00 + 2w·s01 + w²·s11) is algebra on the same draws
+    # (common practice, no source): it must equal the answers for the explicit rows.
+    design = _design("y ~ x * w + z")
+    fit = WildBootstrapBackend(replications=199, weights="webb").fit(design, seed=3)
+    w = np.linspace(-1.0, 3.0, 17)
+    lin = design.slope_is_linear_in("w")
+    assert lin is not None
+    line = fit.along(*lin)
+    rows = design.slope_rows_along("w", w)
+    for simultaneous in (False, True):
+        a = line.estimate(w, 0.05, simultaneous=simultaneous)
+        b = fit.estimate(rows, 0.05, simultaneous=simultaneous)
+        for name in ("estimate", "se", "lower", "upper", "p"):
+            np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(line.t_star(w), fit.t_star(rows), rtol=1e-9, atol=1e-10)

@@ -144,6 +144,14 @@ class Fit(ABC):
         est = self.estimate(L, alpha)
         return np.maximum(est.lower, -est.upper)
 
+    def along(self, L0: np.ndarray, L1: np.ndarray) -> Line:
+        """Answers for the rows L(w) = L0 + w·L1 as w runs (a slope linear in a moderator).
+
+        The default builds the rows and asks :meth:`estimate`; a back-end whose answers are
+        costly per row (the wild bootstrap) overrides this to reuse work across every w.
+        """
+        return Line(self, L0, L1)
+
     def report_tables(self) -> tuple["Table", ...]:
         """Tables this back-end contributes to every display (its own settings, checks, models).
 
@@ -158,6 +166,28 @@ class Fit(ABC):
 
     def __repr__(self) -> str:
         return f"<{type(self).__name__} {self.backend_id}: {len(self.term_names)} terms>"
+
+
+class Line:
+    """The answers of a fit along L(w) = L0 + w·L1: :meth:`estimate` and :meth:`margin` at values w."""
+
+    def __init__(self, fit: Fit, L0: np.ndarray, L1: np.ndarray) -> None:
+        self.fit = fit
+        self.L0 = np.asarray(L0, dtype=float)
+        self.L1 = np.asarray(L1, dtype=float)
+
+    def rows(self, w: np.ndarray) -> np.ndarray:
+        """The L rows at the values w (len(w) × k)."""
+        return self.L0[None, :] + np.asarray(w, dtype=float)[:, None] * self.L1[None, :]
+
+    def estimate(self, w: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
+        """As :meth:`Fit.estimate` for the rows L(w)."""
+        return self.fit.estimate(self.rows(w), alpha, simultaneous=simultaneous)
+
+    def margin(self, w: np.ndarray, alpha: float) -> np.ndarray:
+        """max(lower, −upper) at each w: positive exactly where the interval excludes zero."""
+        est = self.estimate(w, alpha)
+        return np.maximum(est.lower, -est.upper)
 
 
 def _as_rows(L: np.ndarray, k: int) -> np.ndarray:

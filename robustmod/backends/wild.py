@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -39,7 +39,7 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
+from .base import Estimates, Fit, JointTest, Line, Unavailable, _as_rows, quadratic_forms
 from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_mask, leverages, r_inverse, sandwich
 from .kernels import batched_quadratic, design_row_numbers, leverage_one_reason
 
@@ -319,15 +319,20 @@ class BootstrapFit(Fit):
         null-imposed test is asked for by name with :meth:`test_coefficients`.
         """
         L = _as_rows(L, self.params.size)
-        m = L.shape[0]
         est = L @ self.params
         se = np.sqrt(np.maximum(quadratic_forms(L, self.cov), 0.0))
+        return self._answer(est, se, lambda a, b: self.t_star(L[a:b]), alpha, simultaneous)
+
+    def _answer(self, est: np.ndarray, se: np.ndarray, t_star: Callable[[int, int], np.ndarray], alpha: float,
+                simultaneous: bool) -> Estimates:
+        """Bootstrap-t intervals, p and sup-t band from the draws ``t_star(a, b)`` of rows a … b − 1."""
+        m = est.size
         t = _safe_ratio(est, se)
         q_lo, q_hi, p = np.empty(m), np.empty(m), np.empty(m)
         sup = np.zeros(self.replications)
         step = max(1, ROW_CHUNK_ELEMENTS // max(1, self.replications))
         for a, b in _chunks(m, step):
-            ts = self.t_star(L[a:b])
+            ts = t_star(a, b)
             q_lo[a:b], q_hi[a:b] = np.quantile(ts, [alpha / 2, 1 - alpha / 2], axis=1, method="weibull")
             p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
             if simultaneous:
@@ -338,6 +343,10 @@ class BootstrapFit(Fit):
         else:
             lower, upper, label = est - q_hi * se, est - q_lo * se, self.interval_label
         return Estimates(est, se, lower, upper, p, 1 - alpha, label, {"statistic": t})
+
+    def along(self, L0: np.ndarray, L1: np.ndarray) -> Line:
+        """Answers along L(w) = L0 + w·L1 from one pass over the replicates (see :class:`_BootstrapLine`)."""
+        return _BootstrapLine(self, L0, L1)
 
     def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
         """Unrestricted bootstrap HC Wald test of L·β = 0 (W* centred at β̂); p = share of W* ≥ W.
@@ -372,6 +381,37 @@ class BootstrapFit(Fit):
     def _meat_full(self) -> np.ndarray:
         """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""
         return _full_from_pairs(self.meat, self.params.size)
+
+
+class _BootstrapLine(Line):
+    """A bootstrap fit along L(w) = L0 + w·L1, with the replicates read once.
+
+    Lβ* − Lβ̂ = d₀ + w·d₁ and se*(L(w))² = s₀₀ + 2w·s₀₁ + w²·s₁₁ with B-vectors d₀, d₁, s₀₀, s₀₁,
+    s₁₁ computed once from the stored draws, so the grid search, its root refinement, the band
+    and the curve cost O(B) per value w instead of a pass over the B × k(k+1)/2 draws.
+    """
+
+    def __init__(self, fit: BootstrapFit, L0: np.ndarray, L1: np.ndarray) -> None:
+        super().__init__(fit, L0, L1)
+        self.boot = fit
+        L = np.vstack([self.L0, self.L1])
+        self.d0, self.d1 = L @ fit.delta.T
+        jj, ll, mult = fit._jj, fit._ll, fit._mult
+        cross = 0.5 * (L[0, jj] * L[1, ll] + L[1, jj] * L[0, ll]) * mult
+        self.s00, self.s01, self.s11 = np.vstack([L[0, jj] * L[0, ll] * mult, cross, L[1, jj] * L[1, ll] * mult]) @ fit.meat.T
+
+    def t_star(self, w: np.ndarray) -> np.ndarray:
+        """t* at each w (len(w) × B)."""
+        w = np.asarray(w, dtype=float)[:, None]
+        var = self.s00[None, :] + 2.0 * w * self.s01[None, :] + w * w * self.s11[None, :]
+        return _safe_ratio(self.d0[None, :] + w * self.d1[None, :], np.sqrt(np.maximum(var, 0.0)))
+
+    def estimate(self, w: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
+        w = np.atleast_1d(np.asarray(w, dtype=float))
+        L = self.rows(w)
+        est = L @ self.boot.params
+        se = np.sqrt(np.maximum(quadratic_forms(L, self.boot.cov), 0.0))
+        return self.boot._answer(est, se, lambda a, b: self.t_star(w[a:b]), alpha, simultaneous)
 
 
 # ---- the back-end --------------------------------------------------------------------------
