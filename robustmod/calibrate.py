@@ -27,7 +27,12 @@ import numpy as np
 
 from .backends.base import Unavailable
 from .backends.kernels import twostep_fgls
-from .backends.registry import SIMULATION_BACKEND, backend_class, check_ids, make_backend
+from .backends.registry import (
+    SIMULATION_BACKEND,
+    backend_class,
+    check_ids,
+    make_backend,
+)
 from .design import Design
 from .errors import InputError, option_error
 

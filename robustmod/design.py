@@ -274,28 +274,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     for name in frame.columns:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
-    try:
-        mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
-    except InputError:
-        raise
-    except Exception as exc:  # formulaic raises many kinds; report the first line
-        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(f"The formula {spec.formula!r} could not be built on these data: {msg}") from None
-    lhs = np.asarray(mm.lhs, dtype=float)
-    if lhs.ndim != 2 or lhs.shape[1] != 1:
-        raise InputError(f"The outcome side of {spec.formula!r} must give one numeric column; it gave {lhs.shape[1]}.")
-    y = lhs[:, 0].copy()
-    X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
-    term_names = tuple(str(c) for c in mm.rhs.columns)
-    rows = prepared.frame.index
-    for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
-        bad = ~np.isfinite(arr)
-        if bad.any():
-            i, j = np.argwhere(bad)[0]
-            raise InputError(
-                f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
-                f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
-            )
+    y, X, term_names, model_spec = _model_matrices(spec, frame, prepared.frame.index)
     n, k = X.shape
     if n <= k + 1:
         raise InputError(
@@ -304,7 +283,6 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         )
     qr = thin_qr(X)
     _check_rank(X, qr[1], term_names)
-    model_spec = mm.rhs.model_spec
     interaction_columns = _interaction_columns(model_spec, spec, term_names)
     moderators = _moderator_info(prepared, spec)
     warnings = list(prepared.warnings)
@@ -333,6 +311,32 @@ def _focal_enters_linearly(design: Design) -> bool:
         lo[design.focal], hi[design.focal] = x0, x0 + 1.0
         diffs.append(design._matrix(hi) - design._matrix(lo))
     return bool(np.allclose(diffs[0], diffs[1], rtol=1e-9, atol=1e-12))
+
+
+def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any]:
+    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row."""
+    try:
+        mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
+    except InputError:
+        raise
+    except Exception as exc:  # formulaic raises many kinds; report the first line
+        msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"The formula {spec.formula!r} could not be built on these data: {msg}") from None
+    lhs = np.asarray(mm.lhs, dtype=float)
+    if lhs.ndim != 2 or lhs.shape[1] != 1:
+        raise InputError(f"The outcome side of {spec.formula!r} must give one numeric column; it gave {lhs.shape[1]}.")
+    y = lhs[:, 0].copy()
+    X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
+    term_names = tuple(str(c) for c in mm.rhs.columns)
+    for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
+        bad = ~np.isfinite(arr)
+        if bad.any():
+            i, j = np.argwhere(bad)[0]
+            raise InputError(
+                f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
+                f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
+            )
+    return y, X, term_names, mm.rhs.model_spec
 
 
 def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -13,7 +13,14 @@ from scipy import linalg
 
 from ..errors import InputError
 from .base import Fit, Unavailable, WaldFit
-from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+from .hc import (
+    NEEDS_LEVERAGE_BELOW_ONE,
+    hc_weights,
+    leverage_one_rows,
+    leverages,
+    r_inverse,
+    sandwich,
+)
 from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -55,7 +62,6 @@ class OLSBackend:
         n, k = Q.shape
         df = n - k
         L = design.interaction_rows()
-        q = L.shape[0]
         QtY = Q.T @ Y
         E = Y - Q @ QtY
         r = L @ linalg.solve_triangular(R, QtY, check_finite=False)  # q × D

@@ -39,8 +39,24 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import Estimates, Fit, JointTest, Line, Unavailable, _as_rows, quadratic_forms
-from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_mask, leverages, r_inverse, sandwich
+from .base import (
+    Estimates,
+    Fit,
+    JointTest,
+    Line,
+    Unavailable,
+    _as_rows,
+    quadratic_forms,
+)
+from .hc import (
+    HC_WEIGHTS,
+    NEEDS_LEVERAGE_BELOW_ONE,
+    hc_weights,
+    leverage_one_mask,
+    leverages,
+    r_inverse,
+    sandwich,
+)
 from .kernels import batched_quadratic, design_row_numbers, leverage_one_reason
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -194,7 +210,7 @@ class _Kernel:
 
     def run(self, V: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """(D, M) for every source from a chunk of weights V (c × width)."""
-        k, n = self.k, self.n
+        n = self.n
         G = V @ self.F_t if self.F_t is not None else None
         V2 = None if self.unit_square or G is None else np.square(V[:, :n])
         out = []

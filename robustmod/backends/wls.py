@@ -37,13 +37,12 @@ import numpy as np
 import pandas as pd
 from scipy import linalg, stats
 
+from ..defaults import LEVERAGE_ONE_TOL
 from ..errors import InputError, option_error
 from .base import Unavailable, WaldFit
-from ..defaults import LEVERAGE_ONE_TOL
 from .hc import hc_weights, leverages, r_inverse, sandwich
 from .kernels import (
     ETA_LIMIT,
-    LOG_CHI2_CORRECTION,
     ZERO_RESIDUAL_FLOOR,
     design_row_numbers,
     floored_squares,
@@ -309,13 +308,25 @@ def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | 
     return out
 
 
-def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
-            estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
-            backend_id: str = "wls") -> WLSFit | Unavailable:
-    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
-    y = np.asarray(y, dtype=float)
-    X = np.asarray(X, dtype=float)
-    n, k = X.shape
+@dataclass
+class _VarianceEstimate:
+    """What the variance-model step hands to the weighted fit."""
+
+    W: np.ndarray
+    gamma: np.ndarray
+    gamma_se: np.ndarray | None
+    beta_ml: np.ndarray | None
+    converged: bool | None
+    iterations: int
+    used: str
+    raised: int
+    notes: list[str]
+
+
+def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimation: str) -> _VarianceEstimate:
+    """Weights from the variance model: known, two-step FGLS, or ML from the two-step start
+    (kept only if it converged and does not lower the log-likelihood; otherwise two-step with a note)."""
+    k = X.shape[1]
     notes: list[str] = []
     converged: bool | None = None
     iterations = 0
@@ -357,6 +368,19 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
                 notes.append(f"ML of the variance model did not converge ({message}); the two-step FGLS "
                              "estimate is reported instead.")
                 _warnings.warn(notes[-1], WLSWarning, stacklevel=2)
+    return _VarianceEstimate(W, gamma, gamma_se, beta_ml, converged, iterations, used, raised, notes)
+
+
+def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
+            estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
+            backend_id: str = "wls") -> WLSFit | Unavailable:
+    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
+    y = np.asarray(y, dtype=float)
+    X = np.asarray(X, dtype=float)
+    n, k = X.shape
+    floor = vm.mean_floor(y)
+    ve = _estimate_variance(vm, X, y, estimation)
+    W, gamma, gamma_se, notes, used, converged = ve.W, ve.gamma, ve.gamma_se, ve.notes, ve.used, ve.converged
     ratio = float(W.max() / W.min())
     if not math.isfinite(ratio) or ratio > WEIGHT_RATIO_WARNING:
         notes.append(f"The largest weight is {ratio:.3g} times the smallest; a few rows dominate the fit "
@@ -389,7 +413,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     if vm.function == "known":
         ll = _loglik_known(y, X, beta, W)
     elif converged:
-        ll = loglik(vm, X, y, beta_ml, gamma, floor)
+        ll = loglik(vm, X, y, ve.beta_ml, gamma, floor)
     else:
         ll = _loglik_profiled_scale(vm, X, y, beta, gamma, floor)
     p = vm.n_gamma
@@ -404,8 +428,8 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
         "loglik": ll, "loglik_constant": lr["loglik_constant"],
         "lr_test": lr["lr_test"], "aic": lr["aic"], "aic_constant": lr["aic_constant"],
         "weight_ratio": ratio, "scale_s2": s2,
-        "estimation": used, "se_type": se, "converged": converged, "iterations": iterations,
-        "zero_residuals_raised": raised,
+        "estimation": used, "se_type": se, "converged": converged, "iterations": ve.iterations,
+        "zero_residuals_raised": ve.raised,
     }
     if vm.function == "power":
         design_info["sigma"] = float(math.exp(0.5 * gamma[0]))
