@@ -471,3 +471,15 @@ def test_answers_along_a_moderator_reuse_the_replicates_and_equal_row_answers() 
         for name in ("estimate", "se", "lower", "upper", "p"):
             np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(line.t_star(w), fit.t_star(rows), rtol=1e-9, atol=1e-10)
+
+
+def test_coefficient_table_uses_the_null_imposed_p_of_product_terms() -> None:
+    # The coefficient table asks "is beta_j = 0" for every j; for a product term the fit drew the
+    # restricted bootstrap (Davidson & Flachaire 2008), and that test answers.
+    design = _design("y ~ x * w + z")
+    fit = WildBootstrapBackend(replications=199).fit(design, seed=6)
+    co = fit.coefficients(0.05)
+    j = design.interaction_columns[0]
+    assert co.p[j] == fit.test_coefficients([j], 0.05).p == fit.extras["interaction_p"]
+    other = [c for c in range(design.n_params) if c != j]
+    np.testing.assert_array_equal(co.p[other], fit.estimate(np.eye(design.n_params)[other], 0.05).p)

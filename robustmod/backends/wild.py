@@ -29,6 +29,7 @@ correction of the t statistic itself is left to its HC3 standard error (MacKinno
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -379,6 +380,16 @@ class BootstrapFit(Fit):
         p = float(_share_at_least(W_star, np.array(W)))
         method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
+
+    def coefficients(self, alpha: float) -> Estimates:
+        """Every coefficient (L = identity); the p of β_j = 0 is the null-imposed one for each
+        product-term column j, whose restricted bootstrap the fit drew (:meth:`test_coefficients`)."""
+        est = self.estimate(np.eye(self.params.size), alpha)
+        p = est.p.copy() if est.p is not None else None
+        for cols in self.null:
+            if len(cols) == 1 and p is not None:
+                p[cols[0]] = self.null_p[cols]
+        return dataclasses.replace(est, p=p)
 
     def test_coefficients(self, columns: Sequence[int], alpha: float) -> JointTest:
         """Null-imposed test of β_j = 0 for j in ``columns`` (Davidson & Flachaire 2008) when the
