@@ -26,7 +26,13 @@ from typing import Any
 import numpy as np
 
 from .backends.base import Unavailable
-from .backends.registry import SIMULATION_BACKEND, backend_class, check_ids, make_backend
+from .backends.kernels import twostep_fgls
+from .backends.registry import (
+    SIMULATION_BACKEND,
+    backend_class,
+    check_ids,
+    make_backend,
+)
 from .design import Design
 from .errors import InputError, option_error
 
@@ -37,8 +43,6 @@ CHUNK = 50
 COSTLY_DATASETS = 20
 #: Run the remaining chunks in worker processes when they would take longer than this (s).
 PARALLEL_MIN_SECONDS = 2.0
-#: E[log χ²₁] = ψ(1/2) + log 2, the offset of a log-squared-residual regression (Harvey 1976).
-LOG_CHISQ1_MEAN = -1.2703628454614782
 
 
 # ---- the simulation model ----------------------------------------------------------
@@ -66,22 +70,11 @@ def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | 
             return (np.array(fit.params, dtype=float), sigma,
                     f"the fitted variance model of the wls back-end ({fit.label}), observed X kept", [])
         reason = "its fit gave no usable per-row error SD (sigma_hat)"
-    beta, sigma = _harvey_model(design)
+    beta, sigma = twostep_fgls(design.X, design.y, design.X)
     return (beta, sigma,
             "a multiplicative variance model log σ² = Xγ fitted to log ê² (Harvey 1976) with an FGLS mean, observed X kept",
             [f"The wls back-end could not supply the variance model ({reason}); a multiplicative variance "
              "model was used instead."])
-
-
-def _harvey_model(design: Design) -> tuple[np.ndarray, np.ndarray]:
-    Q, R = design.qr
-    e = design.y - Q @ (Q.T @ design.y)
-    e2 = np.maximum(e * e, 1e-12 * max(float(np.mean(e * e)), 1e-300))
-    logsig2 = Q @ (Q.T @ np.log(e2)) - LOG_CHISQ1_MEAN
-    sigma = np.exp(0.5 * logsig2)
-    Xw = design.X / sigma[:, None]
-    beta = np.linalg.lstsq(Xw, design.y / sigma, rcond=None)[0]
-    return beta, sigma
 
 
 # ---- one chunk of datasets (runs in the parent or in a worker) ----------------------
@@ -114,8 +107,7 @@ def _rejections(backend: Any, design: Design, Y: np.ndarray, alpha: float, seed:
     out = np.zeros(Y.shape[1], dtype=bool)
     failed = 0
     for j in range(Y.shape[1]):  # a back-end without a batched path: one fit per dataset
-        dj = dataclasses.replace(design, y=Y[:, j].copy())
-        dj.__dict__["qr"] = design.qr  # same X, same factor
+        dj = dataclasses.replace(design, y=Y[:, j].copy())  # same X, so the same QR factor
         fit = backend.fit(dj, seed=int(seeds[j]), progress=False)
         if isinstance(fit, Unavailable):
             failed += 1

@@ -9,6 +9,7 @@ three-way terms and categorical moderators need no special cases.
 """
 from __future__ import annotations
 
+import dataclasses
 import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -65,6 +66,7 @@ class Design:
     focal_linear: bool
     focal_mean: float
     warnings: tuple[str, ...]
+    qr: tuple[np.ndarray, np.ndarray] = field(repr=False)  # thin QR of X, shared by the back-ends
     _model_spec: Any = field(repr=False)
     _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
 
@@ -90,9 +92,11 @@ class Design:
         return tuple(m for m, info in self.moderators.items() if not info.categorical)
 
     @cached_property
-    def qr(self) -> tuple[np.ndarray, np.ndarray]:
-        """Thin QR of X (computed once, shared by the back-ends that use the raw X)."""
-        return thin_qr(self.X)
+    def probe_rows(self) -> np.ndarray:
+        """L rows of the conditional effects at the probe points (asked by every back-end)."""
+        rows = self._slope_rows(self.probe_points) if self.probe_points else np.zeros((0, self.n_params))
+        rows.setflags(write=False)
+        return rows
 
     # ---- L rows ------------------------------------------------------------------
     def interaction_rows(self) -> np.ndarray:
@@ -109,13 +113,9 @@ class Design:
         """
         if len(points) == 0:
             return np.zeros((0, self.n_params))
-        probe = tuple(points) == self.probe_points  # asked by every back-end: build once
-        if probe and "_probe_rows" in self.__dict__:
-            return self.__dict__["_probe_rows"].copy()
-        rows = self._slope_rows(points)
-        if probe:
-            self.__dict__["_probe_rows"] = rows.copy()
-        return rows
+        if tuple(points) == self.probe_points:
+            return self.probe_rows.copy()
+        return self._slope_rows(points)
 
     def _slope_rows(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> np.ndarray:
         base = self._points_frame(points)
@@ -141,17 +141,13 @@ class Design:
         info = self.moderators[moderator]
         if info.categorical:
             return None
-        key = (moderator, tuple(sorted((k, str(v)) for k, v in (fixed or {}).items())))
-        cache = self.__dict__.setdefault("_linear_cache", {})
-        if key not in cache:
-            span = (info.maximum - info.minimum) or 1.0
-            w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
-            Ls = self.slope_rows_along(moderator, w, fixed)
-            L1 = (Ls[1] - Ls[0]) / (w[1] - w[0])
-            L0 = Ls[0] - w[0] * L1
-            scale = np.maximum(np.abs(Ls).max(axis=0), 1.0)
-            cache[key] = (L0, L1) if np.all(np.abs(L0 + w[2] * L1 - Ls[2]) <= 1e-8 * scale) else None
-        return cache[key]
+        span = (info.maximum - info.minimum) or 1.0
+        w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
+        Ls = self.slope_rows_along(moderator, w, fixed)
+        L1 = (Ls[1] - Ls[0]) / (w[1] - w[0])
+        L0 = Ls[0] - w[0] * L1
+        scale = np.maximum(np.abs(Ls).max(axis=0), 1.0)
+        return (L0, L1) if np.all(np.abs(L0 + w[2] * L1 - Ls[2]) <= 1e-8 * scale) else None
 
     def model_rows(self, point: dict[str, Any], focal_values: np.ndarray) -> np.ndarray:
         """Rows of the model matrix at one moderator point as the focal predictor runs over
@@ -203,7 +199,7 @@ class Design:
             else:
                 cat = pd.Categorical(col.astype(str))
                 blocks.append((cat.codes[:, None] == np.arange(1, len(cat.categories))[None, :]).astype(float))
-                labels.extend(f"{name}[{lv}]" for lv in list(cat.categories)[1:])
+                labels.extend(f"{name}[T.{lv}]" for lv in list(cat.categories)[1:])  # the mean model's spelling
         Z = np.hstack(blocks)
         R = np.linalg.qr(Z, mode="r")
         norms = np.linalg.norm(Z, axis=0)
@@ -278,6 +274,47 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     for name in frame.columns:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
+    y, X, term_names, model_spec = _model_matrices(spec, frame, prepared.frame.index)
+    n, k = X.shape
+    if n <= k + 1:
+        raise InputError(
+            f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
+            "(fewer terms or more data)."
+        )
+    qr = thin_qr(X)
+    _check_rank(X, qr[1], term_names)
+    interaction_columns = _interaction_columns(model_spec, spec, term_names)
+    moderators = _moderator_info(prepared, spec)
+    warnings = list(prepared.warnings)
+    probe_points = _probe_points(spec, moderators, warnings)
+    reference = _reference(frame, spec, prepared)
+    focal_mean = float(prepared.frame[spec.focal].astype(float).mean())
+    design = Design(
+        spec=spec, y=y, X=X, term_names=term_names, interaction_columns=interaction_columns,
+        moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
+        data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings), qr=qr,
+        _model_spec=model_spec, _frame=frame,
+    )
+    if _focal_enters_linearly(design):
+        return design
+    return dataclasses.replace(design, focal_linear=False, warnings=design.warnings + (
+        f"The focal predictor {spec.focal!r} enters the model non-linearly; its conditional effect is "
+        f"the derivative d E[y] / d {spec.focal} at {spec.focal} = {focal_mean:.4g} (its mean).",))
+
+
+def _focal_enters_linearly(design: Design) -> bool:
+    """Do unit differences of the focal predictor give the same model-matrix row at two places?"""
+    base = design._points_frame([{}])  # the reference point
+    diffs = []
+    for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
+        lo, hi = base.copy(), base.copy()
+        lo[design.focal], hi[design.focal] = x0, x0 + 1.0
+        diffs.append(design._matrix(hi) - design._matrix(lo))
+    return bool(np.allclose(diffs[0], diffs[1], rtol=1e-9, atol=1e-12))
+
+
+def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any]:
+    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row."""
     try:
         mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
     except InputError:
@@ -291,7 +328,6 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     y = lhs[:, 0].copy()
     X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
     term_names = tuple(str(c) for c in mm.rhs.columns)
-    rows = prepared.frame.index
     for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
         bad = ~np.isfinite(arr)
         if bad.any():
@@ -300,42 +336,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
                 f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
                 f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
             )
-    n, k = X.shape
-    if n <= k + 1:
-        raise InputError(
-            f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
-            "(fewer terms or more data)."
-        )
-    qr = thin_qr(X)
-    _check_rank(X, qr[1], term_names)
-    model_spec = mm.rhs.model_spec
-    interaction_columns = _interaction_columns(model_spec, spec, term_names)
-    moderators = _moderator_info(prepared, spec)
-    warnings = list(prepared.warnings)
-    probe_points = _probe_points(spec, moderators, warnings)
-    reference = _reference(frame, spec, prepared)
-    focal_mean = float(prepared.frame[spec.focal].astype(float).mean())
-    design = Design(
-        spec=spec, y=y, X=X, term_names=term_names, interaction_columns=interaction_columns,
-        moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
-        data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings),
-        _model_spec=model_spec, _frame=frame,
-    )
-    design.__dict__["qr"] = qr  # the cached_property's slot: one QR per design
-    # Is the focal predictor linear in the model? Compare unit differences at two places.
-    pt = [dict()]  # reference point
-    base = design._points_frame(pt)
-    diffs = []
-    for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
-        lo, hi = base.copy(), base.copy()
-        lo[spec.focal], hi[spec.focal] = x0, x0 + 1.0
-        diffs.append(design._matrix(hi) - design._matrix(lo))
-    if not np.allclose(diffs[0], diffs[1], rtol=1e-9, atol=1e-12):
-        object.__setattr__(design, "focal_linear", False)
-        object.__setattr__(design, "warnings", design.warnings + (
-            f"The focal predictor {spec.focal!r} enters the model non-linearly; its conditional effect is "
-            f"the derivative d E[y] / d {spec.focal} at {spec.focal} = {focal_mean:.4g} (its mean).",))
-    return design
+    return y, X, term_names, mm.rhs.model_spec
 
 
 def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

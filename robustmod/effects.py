@@ -7,7 +7,9 @@ Var θ(w) = v₀₀ + 2w·v₀₁ + w²·v₁₁, the boundaries solve the quadr
 (a + bw)² = c²·Var θ(w) with c = t_{1−α/2, df} (pointwise) or the Scheffé-type
 c = sqrt(2·F_{2, df; 1−α}) for a simultaneous band (Potthoff 1964). Every other fit
 kind (and non-linear slopes) uses a grid plus Brent root refinement of the margin
-max(lower, −upper), which is positive exactly where the interval excludes zero.
+max(lower, −upper), which is positive exactly where the interval excludes zero. Both report
+boundaries inside one search window, the observed range widened by half its width on each side
+(docs/methods.md), so back-ends that agree look as if they agree.
 """
 from __future__ import annotations
 
@@ -18,11 +20,14 @@ import numpy as np
 from scipy import optimize
 
 from .backends.base import Fit, WaldFit
+from .defaults import CURVE_POINTS
 from .design import Design
 from .jsonvalues import num
 
-#: Grid points of the general region search, and how far beyond the observed range it looks.
+#: Grid points of the general region search.
 GRID_POINTS = 241
+#: Every back-end looks for region boundaries over the observed moderator range widened by this
+#: share of its width on each side (:func:`search_window`); beyond it a region is extrapolation.
 SEARCH_EXTENSION = 0.5
 GRID_2D = 41
 
@@ -40,19 +45,22 @@ def _point(est: Any, i: int) -> dict[str, Any]:
 
 
 def interaction(fit: Fit, design: Design, alpha: float) -> dict[str, Any]:
-    """The product term: its estimate and interval (one term) or the joint test (several)."""
-    L = design.interaction_rows()
+    """The product term: its estimate and interval (one term) or the joint test (several).
+
+    The test is asked for by name (H0: every product-term coefficient is zero), so a back-end
+    that imposes the null (the wild bootstrap) answers with that test; its p decides, and a
+    posterior (no p) decides by its interval.
+    """
     terms = list(design.interaction_terms)
-    if L.shape[0] == 1:
-        est = fit.estimate(L, alpha)
-        # A test's p decides where there is one (a bootstrap's null-imposed p can differ a little
-        # from its interval); a posterior's interval decides otherwise.
-        supported = bool(est.p[0] < alpha) if est.p is not None else bool(est.significant[0])
-        return {"terms": terms, **_point(est, 0), "supported": supported, "interval": est.interval, "level": est.level}
-    jt = fit.joint_test(L, alpha)
-    return {"terms": terms, "estimate": None, "se": None, "ci": None, "p": num(jt.p),
-            "supported": jt.supported, "joint_test": {"statistic": num(jt.statistic), "df_num": jt.df_num,
-                                                        "df_den": num(jt.df_den), "method": jt.method}}
+    test = fit.test_coefficients(design.interaction_columns, alpha)
+    if len(terms) == 1:
+        est = fit.estimate(design.interaction_rows(), alpha)
+        out = {"terms": terms, **_point(est, 0)}
+        out["p"] = num(test.p) if test.p is not None else out["p"]
+        return {**out, "supported": test.supported, "interval": est.interval, "level": est.level}
+    return {"terms": terms, "estimate": None, "se": None, "ci": None, "p": num(test.p),
+            "supported": test.supported, "joint_test": {"statistic": num(test.statistic), "df_num": test.df_num,
+                                                          "df_den": num(test.df_den), "method": test.method}}
 
 
 def conditional_effects(fit: Fit, design: Design, alpha: float) -> list[dict[str, Any]]:
@@ -124,12 +132,75 @@ def _closed_form(fit: WaldFit, L0: np.ndarray, L1: np.ndarray, crit: float, cent
     return [r1, r2], [[r1, r2]]
 
 
+def search_window(info: Any) -> tuple[float, float]:
+    """The moderator values every back-end searches for region boundaries: the observed range
+    widened by SEARCH_EXTENSION of its width on each side (one unit each side if constant)."""
+    span = (info.maximum - info.minimum) or 1.0
+    return info.minimum - SEARCH_EXTENSION * span, info.maximum + SEARCH_EXTENSION * span
+
+
+def _clip_to_window(intervals: list[list[float | None]], window: tuple[float, float]) -> list[list[float | None]]:
+    """Significant intervals restricted to the window; an end at or beyond the window edge stays open (None)."""
+    out: list[list[float | None]] = []
+    for lo, hi in intervals:
+        lo_v = -np.inf if lo is None else lo
+        hi_v = np.inf if hi is None else hi
+        if hi_v < window[0] or lo_v > window[1]:
+            continue
+        out.append([None if lo_v <= window[0] else lo, None if hi_v >= window[1] else hi])
+    return out
+
+
+def _grid_region(fit: Fit, design: Design, alpha: float, moderator: str, fixed: dict[str, Any],
+                 band: str, window: tuple[float, float], lin: tuple[np.ndarray, np.ndarray] | None
+                 ) -> tuple[list[float], list[list[float | None]], str]:
+    """Roots of the margin on a grid over the window: Brent-refined (pointwise) or interpolated (band).
+
+    A slope linear in the moderator is answered along the fit's :meth:`Fit.along` line, so a
+    bootstrap reads its replicates once for the grid and every refinement step.
+    """
+    grid = np.linspace(window[0], window[1], GRID_POINTS)
+    line = fit.along(*lin) if lin is not None else None
+
+    def rows_estimate(w: np.ndarray, simultaneous: bool = False) -> Any:
+        if line is not None:
+            return line.estimate(w, alpha, simultaneous=simultaneous)
+        return fit.estimate(design.slope_rows_along(moderator, w, fixed), alpha, simultaneous=simultaneous)
+
+    roots: list[float] = []
+    est = rows_estimate(grid, band == "simultaneous")
+    margin = np.maximum(est.lower, -est.upper)
+    if band == "simultaneous":
+        for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
+            t = margin[i] / (margin[i] - margin[i + 1])
+            roots.append(float(grid[i] + t * (grid[i + 1] - grid[i])))
+        method = "grid, simultaneous band, linear interpolation"
+    else:
+        def f(w: float) -> float:
+            e = rows_estimate(np.array([w]))
+            return float(max(e.lower[0], -e.upper[0]))
+
+        xtol = 1e-10 * max(1.0, abs(window[1] - window[0]))
+        for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
+            if margin[i] == 0:
+                roots.append(float(grid[i]))
+                continue
+            try:
+                roots.append(float(optimize.brentq(f, grid[i], grid[i + 1], xtol=xtol)))
+            except ValueError:
+                roots.append(float(0.5 * (grid[i] + grid[i + 1])))
+        method = "grid with Brent root refinement"
+    return roots, _intervals_from_mask(grid, margin > 0, roots), method
+
+
 def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: str | None = None,
                         fixed: dict[str, Any] | None = None, band: str = "pointwise") -> dict[str, Any] | None:
     """Johnson–Neyman region of the focal slope along ``moderator`` (first continuous one by default).
 
     ``band`` is "pointwise" (each w tested alone) or "simultaneous" (a band over all w).
-    Returns None when no moderator is continuous.
+    Every back-end reports boundaries inside the same :func:`search_window`; closed-form roots
+    beyond it are listed under ``boundaries_outside_window``. Returns None when no moderator is
+    continuous.
     """
     conts = design.continuous_moderators
     if moderator is None:
@@ -140,41 +211,19 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
     if info.categorical:
         return None
     fixed = dict(fixed or {})
-    span = info.maximum - info.minimum
-    search = (info.minimum - SEARCH_EXTENSION * span, info.maximum + SEARCH_EXTENSION * span)
+    window = search_window(info)
     lin = design.slope_is_linear_in(moderator, fixed)
+    outside: list[float] = []
     if isinstance(fit, WaldFit) and lin is not None:
         crit = fit.critical_value(alpha, rank=2 if band == "simultaneous" else 1)
-        roots, intervals = _closed_form(fit, lin[0], lin[1], crit, 0.5 * (info.minimum + info.maximum), span or 1.0)
+        span = (info.maximum - info.minimum) or 1.0
+        roots, intervals = _closed_form(fit, lin[0], lin[1], crit, 0.5 * (info.minimum + info.maximum), span)
+        outside = [r for r in roots if not window[0] <= r <= window[1]]
+        roots = [r for r in roots if window[0] <= r <= window[1]]
+        intervals = _clip_to_window(intervals, window)
         method = "closed form (quadratic)"
     else:
-        grid = np.linspace(search[0], search[1], GRID_POINTS)
-        L = design.slope_rows_along(moderator, grid, fixed)
-        if band == "simultaneous":
-            est = fit.estimate(L, alpha, simultaneous=True)
-            margin = np.maximum(est.lower, -est.upper)
-            roots = []
-            for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
-                t = margin[i] / (margin[i] - margin[i + 1])
-                roots.append(float(grid[i] + t * (grid[i + 1] - grid[i])))
-            method = "grid, simultaneous band, linear interpolation"
-        else:
-            margin = fit.margin(L, alpha)
-
-            def f(w: float) -> float:
-                return float(fit.margin(design.slope_rows_along(moderator, np.array([w]), fixed), alpha)[0])
-
-            roots = []
-            for i in np.flatnonzero(np.sign(margin[:-1]) != np.sign(margin[1:])):
-                if margin[i] == 0:
-                    roots.append(float(grid[i]))
-                    continue
-                try:
-                    roots.append(float(optimize.brentq(f, grid[i], grid[i + 1], xtol=1e-10 * max(1.0, abs(span)))))
-                except ValueError:
-                    roots.append(float(0.5 * (grid[i] + grid[i + 1])))
-            method = "grid with Brent root refinement"
-        intervals = _intervals_from_mask(grid, margin > 0, roots)
+        roots, intervals, method = _grid_region(fit, design, alpha, moderator, fixed, band, window, lin)
     roots = sorted(roots)
     obs = (info.minimum, info.maximum)
     return {
@@ -182,11 +231,15 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
         "band": band,
         "level": 1 - alpha,
         "boundaries": [num(r) for r in roots],
-        "boundaries_detail": [{"value": num(r), "within_observed": bool(obs[0] <= r <= obs[1])} for r in roots],
+        "boundaries_detail": [{"value": num(r), "within_observed": bool(obs[0] <= r <= obs[1]),
+                               "inside_observed": bool(obs[0] <= r <= obs[1])} for r in roots],
+        "boundaries_outside_window": [num(r) for r in sorted(outside)],
         "significant_intervals": [[num(lo) if lo is not None else None, num(hi) if hi is not None else None]
                                   for lo, hi in intervals],
         "observed_range": [num(obs[0]), num(obs[1])],
-        "search_range": None if method.startswith("closed") else [num(search[0]), num(search[1])],
+        "search_window": [num(window[0]), num(window[1])],
+        "search_window_rule": f"observed range widened by {SEARCH_EXTENSION:.0%} of its width on each side",
+        "search_range": [num(window[0]), num(window[1])],
         "share_of_observed_significant": num(_share_observed(intervals, info.values)),
         "fixed": {k: (num(v) if isinstance(v, float) else v) for k, v in fixed.items()},
         "method": method,
@@ -238,7 +291,7 @@ def slope_grid(fit: Fit, design: Design, alpha: float, points: int = GRID_2D) ->
     }
 
 
-def slope_curve(fit: Fit, design: Design, alpha: float, points: int = 101) -> dict[str, Any] | None:
+def slope_curve(fit: Fit, design: Design, alpha: float, points: int = CURVE_POINTS) -> dict[str, Any] | None:
     """Conditional slope with pointwise interval along the first continuous moderator over its
     observed range (other moderators at reference) — the table the slope figure draws."""
     conts = design.continuous_moderators
@@ -247,6 +300,7 @@ def slope_curve(fit: Fit, design: Design, alpha: float, points: int = 101) -> di
     m = conts[0]
     info = design.moderators[m]
     grid = np.linspace(info.minimum, info.maximum, points)
-    est = fit.estimate(design.slope_rows_along(m, grid), alpha)
+    lin = design.slope_is_linear_in(m)
+    est = fit.along(*lin).estimate(grid, alpha) if lin is not None else fit.estimate(design.slope_rows_along(m, grid), alpha)
     return {"moderator": m, "values": [num(v) for v in grid], "estimate": [num(v) for v in est.estimate],
             "lower": [num(v) for v in est.lower], "upper": [num(v) for v in est.upper], "level": 1 - alpha}

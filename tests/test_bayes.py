@@ -295,7 +295,7 @@ def test_categorical_moderator_gives_joint_answer_and_spread_by_level(wage1):
                   options={"bayes": {"draws": 150, "tune": 150, "chains": 2, "prior_sensitivity": False}})
     b = res.to_dict()["backends"]["bayes"]
     fit = res.results["bayes"].fit
-    assert fit.gamma_names == ("Intercept", "educ", "sex[m]")
+    assert fit.gamma_names == ("Intercept", "educ", "sex[T.m]")  # spelled as in the mean model
     assert b["interaction"]["p"] is None and b["significance_region"] is None
     assert [ce["at"]["sex"] for ce in b["conditional_effects"]] == ["f", "m"]
     ppc = b["extras"]["predictive_check"]

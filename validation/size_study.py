@@ -67,7 +67,6 @@ def run_cell(n: int, pattern: str, err: str, n_datasets: int, seed: int, backend
     info = design.moderators["w"]
     w0 = info.mean + info.sd
     L_slope = design.slope_rows_along("w", np.array([w0]))
-    L_int = design.interaction_rows()
     rows = []
     for label, bid, opts in backends:
         backend = make_backend(bid, **opts)
@@ -81,8 +80,8 @@ def run_cell(n: int, pattern: str, err: str, n_datasets: int, seed: int, backend
             if isinstance(fit, Unavailable):
                 failed += 1
                 continue
-            p = fit.estimate(L_int, 0.05).p
-            reject[j] = bool(p[0] < 0.05)
+            test = fit.test_coefficients(design.interaction_columns, 0.05)
+            reject[j] = bool(test.p < 0.05) if test.p is not None else test.supported
             est = fit.estimate(L_slope, 0.05)
             cover[j] = bool(est.lower[0] <= 1.0 <= est.upper[0])
         used = n_datasets - failed

@@ -8,7 +8,7 @@ coefficients — in one of three ways (see DESIGN.md):
 * :class:`PosteriorFit` draws of L·β from the posterior.
 
 Effects, regions and the comparison only call :meth:`Fit.estimate`,
-:meth:`Fit.joint_test` and :meth:`Fit.margin`, so a new back-end needs nothing else.
+:meth:`Fit.joint_test`, :meth:`Fit.test_coefficients` and :meth:`Fit.margin`, so a new back-end needs nothing else.
 """
 from __future__ import annotations
 
@@ -24,6 +24,7 @@ import numpy as np
 from scipy import linalg, stats
 
 from ..errors import OptionError, option_error
+from .kernels import wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -117,6 +118,28 @@ class Fit(ABC):
     def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
         """Test of H0: L·β = 0 for all rows of L at once."""
 
+    def test_coefficients(self, columns: Sequence[int], alpha: float) -> JointTest:
+        """Test of H0: β_j = 0 for every j in ``columns`` — the caller names the hypothesis.
+
+        One column: the fit's own test of that coefficient (its t test, or for a posterior the
+        (1 − alpha) interval); several: :meth:`joint_test` of the unit rows. A back-end that can
+        impose the null (the wild bootstrap) overrides this; :meth:`estimate` never guesses it.
+        """
+        cols = [int(c) for c in columns]
+        if not cols:
+            raise ValueError("test_coefficients needs at least one column")
+        L = np.zeros((len(cols), self.params.size))
+        L[np.arange(len(cols)), cols] = 1.0
+        if len(cols) > 1:
+            return self.joint_test(L, alpha)
+        est = self.estimate(L, alpha)
+        p = None if est.p is None else float(est.p[0])
+        stat = est.extra.get("statistic")
+        supported = bool(p < alpha) if p is not None else bool(est.significant[0])
+        if stat is None:
+            stat = np.array([est.estimate[0] / est.se[0] if est.se[0] > 0 else 0.0])
+        return JointTest(float(stat[0]), 1, None, p, est.interval, supported)
+
     def margin(self, L: np.ndarray, alpha: float) -> np.ndarray:
         """max(lower, −upper): positive exactly where the interval excludes zero.
 
@@ -124,6 +147,14 @@ class Fit(ABC):
         """
         est = self.estimate(L, alpha)
         return np.maximum(est.lower, -est.upper)
+
+    def along(self, L0: np.ndarray, L1: np.ndarray) -> Line:
+        """Answers for the rows L(w) = L0 + w·L1 as w runs (a slope linear in a moderator).
+
+        The default builds the rows and asks :meth:`estimate`; a back-end whose answers are
+        costly per row (the wild bootstrap) overrides this to reuse work across every w.
+        """
+        return Line(self, L0, L1)
 
     def report_tables(self) -> tuple["Table", ...]:
         """Tables this back-end contributes to every display (its own settings, checks, models).
@@ -139,6 +170,28 @@ class Fit(ABC):
 
     def __repr__(self) -> str:
         return f"<{type(self).__name__} {self.backend_id}: {len(self.term_names)} terms>"
+
+
+class Line:
+    """The answers of a fit along L(w) = L0 + w·L1: :meth:`estimate` and :meth:`margin` at values w."""
+
+    def __init__(self, fit: Fit, L0: np.ndarray, L1: np.ndarray) -> None:
+        self.fit = fit
+        self.L0 = np.asarray(L0, dtype=float)
+        self.L1 = np.asarray(L1, dtype=float)
+
+    def rows(self, w: np.ndarray) -> np.ndarray:
+        """The L rows at the values w (len(w) × k)."""
+        return self.L0[None, :] + np.asarray(w, dtype=float)[:, None] * self.L1[None, :]
+
+    def estimate(self, w: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
+        """As :meth:`Fit.estimate` for the rows L(w)."""
+        return self.fit.estimate(self.rows(w), alpha, simultaneous=simultaneous)
+
+    def margin(self, w: np.ndarray, alpha: float) -> np.ndarray:
+        """max(lower, −upper) at each w: positive exactly where the interval excludes zero."""
+        est = self.estimate(w, alpha)
+        return np.maximum(est.lower, -est.upper)
 
 
 def _as_rows(L: np.ndarray, k: int) -> np.ndarray:
@@ -183,9 +236,7 @@ class WaldFit(Fit):
         se = np.sqrt(np.maximum(var, 0.0))
         rank = int(np.linalg.matrix_rank(L)) if simultaneous else 1
         crit = self.critical_value(alpha, rank)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            t = np.where(se > 0, est / se, 0.0)
-        p = 2 * self._dist().sf(np.abs(t))
+        t, p = wald_test(est[:, None], var[:, None, None], self.df)  # each row its own t test
         ref = "normal" if self.df is None else f"t (df {self.df:g})"
         kind = f"Scheffé band, rank {rank}" if simultaneous and rank > 1 else ref
         return Estimates(est, se, est - crit * se, est + crit * se, p, 1 - alpha, kind, {"statistic": t})
@@ -194,20 +245,11 @@ class WaldFit(Fit):
         """Wald F = (Lβ)ᵀ (L V Lᵀ)⁻¹ (Lβ) / q, solved with Cholesky; χ²/q when df is None."""
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
-        r = L @ self.params
-        S = L @ self.cov @ L.T
-        try:
-            c = linalg.cho_factor(S, check_finite=False)
-            stat = float(r @ linalg.cho_solve(c, r, check_finite=False)) / q
-        except linalg.LinAlgError:
-            stat = float(r @ linalg.lstsq(S, r)[0]) / q
-        if self.df is None:
-            p = float(stats.chi2.sf(stat * q, q))
-            method = f"Wald chi-square ({q} df)"
-        else:
-            p = float(stats.f.sf(stat, q, self.df))
-            method = f"Wald F ({q}, {self.df:g})"
-        return JointTest(stat, q, self.df, p, method, bool(p < alpha))
+        stat, p_arr = wald_test((L @ self.params)[None, :], (L @ self.cov @ L.T)[None], self.df)
+        F = float(stat[0]) ** 2 if q == 1 else float(stat[0])  # t² = F(1, df) for one row
+        p = float(p_arr[0])
+        method = f"Wald chi-square ({q} df)" if self.df is None else f"Wald F ({q}, {self.df:g})"
+        return JointTest(F, q, self.df, p, method, bool(p < alpha))
 
 
 class PosteriorFit(Fit):

@@ -21,8 +21,7 @@ from collections.abc import Callable
 import numpy as np
 from scipy import linalg
 
-#: Leverages this close to one make the weights of HC2–HC5 undefined.
-LEVERAGE_ONE_TOL = 1e-10
+from ..defaults import LEVERAGE_ONE_TOL
 
 
 def _power(exponent: Callable[[np.ndarray, int, int], np.ndarray]) -> Callable[[np.ndarray, int, int], np.ndarray]:
@@ -42,7 +41,8 @@ def _hc4m_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
 
 def _hc5_exp(h: np.ndarray, n: int, k: int) -> np.ndarray:
     r = h * n / k
-    return 0.5 * np.minimum(r, max(4.0, 0.7 * float(h.max()) * n / k))
+    # h_max per dataset (last axis), so a batch of D leverage rows gives D single-fit answers.
+    return 0.5 * np.minimum(r, np.maximum(4.0, 0.7 * h.max(axis=-1, keepdims=True) * n / k))
 
 
 #: Weight ωᵢ of êᵢ² for each estimator, as a function of (h, n, k).
@@ -65,13 +65,19 @@ def leverages(Q: np.ndarray) -> np.ndarray:
     return np.einsum("ij,ij->i", Q, Q)
 
 
+def leverage_one_mask(h: np.ndarray) -> np.ndarray:
+    """True for rows whose leverage is one to working precision (hᵢ ≥ 1 − LEVERAGE_ONE_TOL)."""
+    return np.asarray(h) >= 1.0 - LEVERAGE_ONE_TOL
+
+
 def leverage_one_rows(h: np.ndarray) -> np.ndarray:
     """Indices (0-based) of rows whose leverage is one to working precision."""
-    return np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
+    return np.flatnonzero(leverage_one_mask(h))
 
 
 def hc_weights(kind: str, h: np.ndarray, n: int, k: int) -> np.ndarray:
-    """ωᵢ for estimator ``kind``; callers must first exclude leverage-one rows for HC2–HC5."""
+    """ωᵢ for estimator ``kind`` (h of shape n, or D × n for a batch of fits); callers must first
+    exclude leverage-one rows for HC2–HC5."""
     return HC_WEIGHTS[kind](h, n, k)
 
 

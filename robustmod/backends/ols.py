@@ -12,8 +12,10 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from scipy import linalg
 
+from ..errors import InputError
 from .base import Backend, Fit, Option, Unavailable, WaldFit
 from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -53,7 +55,7 @@ class OLSBackend(Backend):
 
     def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         Q, R = design.qr
-        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design.data.frame.index)
+        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design))
 
     def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
@@ -61,11 +63,9 @@ class OLSBackend(Backend):
         All D datasets share X = QR: B = R⁻¹QᵀY and E = Y − QQᵀY in one product each. With
         C = Q R⁻ᵀ Lᵀ (n × q) the product-term covariance is Cᵀ diag(ωᵢ êᵢ²) C (HC) or
         s²·CᵀC (classical); one term gives the t test, several the Wald F(q, n − k), as
-        :meth:`WaldFit.estimate` / :meth:`WaldFit.joint_test` decide for a single fit.
+        :func:`.kernels.wald_test` decides, as for a single fit.
         ``seed`` is unused (nothing here is random).
         """
-        from scipy import stats  # noqa: PLC0415
-
         Q, R = design.qr
         Y = np.asarray(Y, dtype=float)
         if Y.ndim != 2 or Y.shape[0] != Q.shape[0]:
@@ -73,7 +73,6 @@ class OLSBackend(Backend):
         n, k = Q.shape
         df = n - k
         L = design.interaction_rows()
-        q = L.shape[0]
         QtY = Q.T @ Y
         E = Y - Q @ QtY
         r = L @ linalg.solve_triangular(R, QtY, check_finite=False)  # q × D
@@ -84,17 +83,12 @@ class OLSBackend(Backend):
             S = (C.T @ C)[None, :, :] * s2[:, None, None]  # D × q × q
         else:
             h = leverages(Q)
-            if leverage_one_rows(h).size and self.id in NEEDS_LEVERAGE_BELOW_ONE:
-                raise ValueError(f"{self.id.upper()} is undefined: some rows have leverage 1")
+            if self.id in NEEDS_LEVERAGE_BELOW_ONE and (
+                    reason := leverage_one_reason(h, self.id.upper(), design_row_numbers(design), "drop them or use HC0/HC1")):
+                raise InputError(reason)
             w = hc_weights(self.id, h, n, k)
             S = np.einsum("ia,ib,id->dab", C * w[:, None], C, E2, optimize=True)
-        if q == 1:
-            se = np.sqrt(np.maximum(S[:, 0, 0], 0.0))
-            with np.errstate(divide="ignore", invalid="ignore"):
-                t = np.where(se > 0, r[0] / se, 0.0)
-            return 2 * stats.t.sf(np.abs(t), df) < alpha
-        stat = np.einsum("da,da->d", r.T, np.linalg.solve(S, r.T[:, :, None])[:, :, 0]) / q
-        return stats.f.sf(stat, q, df) < alpha
+        return wald_test(r.T, S, df)[1] < alpha
 
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
@@ -102,7 +96,7 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
             backend_id: str | None = None) -> Fit | Unavailable:
     """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
 
-    ``row_numbers``: 0-based positions of the rows in the user's data (named in messages 1-based).
+    ``row_numbers``: 1-based data row numbers of the design rows (for messages; default 1 … n).
     """
     n, k = Q.shape
     backend_id = backend_id or kind
@@ -124,15 +118,11 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
         se_label = "classical (homoscedastic)"
     else:
         h = leverages(Q)
-        ones = leverage_one_rows(h)
-        if ones.size and kind in NEEDS_LEVERAGE_BELOW_ONE:
-            rows = np.asarray(row_numbers)[ones] + 1 if row_numbers is not None else ones + 1
-            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
-            return Unavailable(backend_id, label,
-                               f"{kind.upper()} is undefined: data row(s) {shown} have leverage 1 "
-                               "(each alone determines a coefficient); drop them or use HC0/HC1.")
-        if ones.size:
-            warnings.append(f"{ones.size} row(s) have leverage 1; their residuals are zero and carry no variance information.")
+        if kind in NEEDS_LEVERAGE_BELOW_ONE and (
+                reason := leverage_one_reason(h, kind.upper(), row_numbers, "drop them or use HC0/HC1")):
+            return Unavailable(backend_id, label, reason)
+        if (ones := int(leverage_one_rows(h).size)):
+            warnings.append(f"{ones} row(s) have leverage 1; their residuals are zero and carry no variance information.")
         w = hc_weights(kind, h, n, k)
         cov = sandwich(Q, Rinv, w * resid**2)
         se_label = kind.upper()

@@ -29,9 +29,10 @@ correction of the t statistic itself is left to its HC3 standard error (MacKinno
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -39,9 +40,28 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
-from .base import (Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, one_row_table,
-                   quadratic_forms)
-from .hc import HC_WEIGHTS, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse
+from .base import (
+    Backend,
+    Estimates,
+    Fit,
+    JointTest,
+    Line,
+    Option,
+    Unavailable,
+    _as_rows,
+    one_row_table,
+    quadratic_forms,
+)
+from .hc import (
+    HC_WEIGHTS,
+    NEEDS_LEVERAGE_BELOW_ONE,
+    hc_weights,
+    leverage_one_mask,
+    leverages,
+    r_inverse,
+    sandwich,
+)
+from .kernels import batched_quadratic, design_row_numbers, leverage_one_reason
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -113,7 +133,7 @@ def _enumerate(kind: str, n: int, replications: int) -> bool:
 
 def residual_factor(transform: str, h: np.ndarray) -> np.ndarray:
     """Rescaling of residuals: 1/√(1−h) (hc2), 1/(1−h) (hc3) or 1; 0 at leverage one (residual is 0)."""
-    one = h >= 1.0 - 1e-10
+    one = leverage_one_mask(h)
     safe = np.where(one, 0.5, h)
     f = {"hc2": 1.0 / np.sqrt(1.0 - safe), "hc3": 1.0 / (1.0 - safe), "none": np.ones_like(h)}[transform]
     return np.where(one, 0.0, f)
@@ -130,6 +150,27 @@ class _Source:
 
     resid: np.ndarray  # (n,) transformed base residuals
     pairs: np.ndarray  # indices into the upper-triangle pair list
+
+
+def _expanded_factor(A: np.ndarray, X: np.ndarray, P: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The fixed parts of the expanded kernel: [A; (Xⱼ·Pₚ)ⱼₚ] ((k + k·m) × n, to be scaled by the
+    base residuals) and T (m × k²) with Tₚⱼₗ = Σᵢ Pₚᵢ XᵢⱼXᵢₗ."""
+    k, n = A.shape
+    m = P.shape[0]
+    base = np.vstack([A, (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)])
+    return base, np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
+
+
+def _expanded_meat(G: np.ndarray, T: np.ndarray, sq: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(D, M) from G = V·(base ⊙ ẽ)ᵀ (… × (k + k·m)): D = β* − β_base and
+    M_p = sq_p − 2 Σⱼ Dⱼ Cⱼₚ + Σⱼₗ DⱼDₗ Tₚⱼₗ, sq_p = Σᵢ Pₚᵢ vᵢ²ẽᵢ² (see :class:`_Kernel`)."""
+    m = T.shape[0]
+    k = G.shape[-1] // (1 + m)
+    D = np.ascontiguousarray(G[..., :k])
+    C = G[..., k:].reshape(*G.shape[:-1], k, m)
+    cross = np.einsum("...j,...jp->...p", D, C)
+    quad = (D[..., :, None] * D[..., None, :]).reshape(*D.shape[:-1], k * k) @ T.T
+    return D, sq - 2.0 * cross + quad
 
 
 class _Kernel:
@@ -163,35 +204,27 @@ class _Kernel:
             if not self.expanded[i]:
                 self.Pt[i] = np.ascontiguousarray(Pi.T)
                 continue
-            m = Pi.shape[0]
-            F = np.zeros((k + k * m, width))
-            F[:k, :n] = A * s.resid
-            F[k:, :n] = (X.T[:, None, :] * Pi[None, :, :]).reshape(k * m, n) * s.resid
+            base, self.T[i] = _expanded_factor(A, X, Pi)
+            F = np.zeros((base.shape[0], width))
+            F[:, :n] = base * s.resid
             blocks.append(F)
             self.offsets[i] = (row, row + F.shape[0])
             row += F.shape[0]
-            self.T[i] = np.einsum("pi,ij,il->pjl", Pi, X, X).reshape(m, k * k)
             self.S2[i] = Pi @ s.resid**2
             self.Pe2[i] = np.ascontiguousarray((Pi * s.resid**2).T)
         self.F_t = np.ascontiguousarray(np.vstack(blocks).T) if blocks else None  # width × rows
 
     def run(self, V: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """(D, M) for every source from a chunk of weights V (c × width)."""
-        k, n = self.k, self.n
+        n = self.n
         G = V @ self.F_t if self.F_t is not None else None
         V2 = None if self.unit_square or G is None else np.square(V[:, :n])
         out = []
         for i, s in enumerate(self.sources):
             if self.expanded[i]:
                 a, b = self.offsets[i]
-                g = G[:, a:b]
-                m = len(s.pairs)
-                D = np.ascontiguousarray(g[:, :k])
-                C = g[:, k:].reshape(-1, k, m)
-                cross = np.einsum("bj,bjp->bp", D, C)
-                quad = (D[:, :, None] * D[:, None, :]).reshape(-1, k * k) @ self.T[i].T
                 sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
-                out.append((D, sq - 2.0 * cross + quad))
+                out.append(_expanded_meat(G[:, a:b], self.T[i], sq))
                 continue
             U = V[:, :n] * s.resid
             D = U @ self.At
@@ -215,15 +248,6 @@ def _share_at_least(stat_star: np.ndarray, stat: np.ndarray) -> np.ndarray:
 def _safe_ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
-
-
-def _batched_wald(d: np.ndarray, S: np.ndarray) -> np.ndarray:
-    """dᵦᵀ Sᵦ⁻¹ dᵦ for a batch (… × q and … × q × q), by batched solves (pseudo-inverse if singular)."""
-    try:
-        x = np.linalg.solve(S, d[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        x = (np.linalg.pinv(S) @ d[..., None])[..., 0]
-    return np.einsum("...i,...i->...", d, x)
 
 
 def _full_from_pairs(Mp: np.ndarray, q: int) -> np.ndarray:
@@ -300,44 +324,41 @@ class BootstrapFit(Fit):
         b, m = self.null[cols]
         beta = self.params[list(cols)]
         V = self.cov[np.ix_(cols, cols)]
-        W = float(_batched_wald(beta, V))
-        W_star = _batched_wald(b, _full_from_pairs(m, len(cols)))
+        W = float(batched_quadratic(beta, V))
+        W_star = batched_quadratic(b, _full_from_pairs(m, len(cols)))
         return W, W_star
 
     def _null_p(self, cols: tuple[int, ...]) -> float:
         W, W_star = self._null_wald(cols)
         return float(_share_at_least(W_star, np.array(W)))
 
-    def _product_columns(self, L: np.ndarray) -> np.ndarray:
-        """For each row of L, the product-term column it picks out as a unit row, else −1."""
-        col = np.argmax(np.abs(L), axis=1)
-        unit = (np.count_nonzero(L, axis=1) == 1) & (L[np.arange(L.shape[0]), col] == 1.0)
-        product = np.isin(col, [c for (c, *rest) in self.null if not rest])
-        return np.where(unit & product, col, -1)
-
     # ---- the Fit interface -----------------------------------------------------------------
     def estimate(self, L: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
-        """L·β̂, HC se, bootstrap-t interval (sup-t band when ``simultaneous``) and bootstrap p.
+        """L·β̂, HC se, bootstrap-t interval (sup-t band when ``simultaneous``) and the symmetric
+        unrestricted bootstrap p (share of |t*| ≥ |t|).
 
-        Rows equal to a product-term unit row get the null-imposed p (Davidson & Flachaire 2008).
+        The answer for c·L is the answer for L scaled by c (p unchanged) for any c ≠ 0; the
+        null-imposed test is asked for by name with :meth:`test_coefficients`.
         """
         L = _as_rows(L, self.params.size)
-        m = L.shape[0]
         est = L @ self.params
         se = np.sqrt(np.maximum(quadratic_forms(L, self.cov), 0.0))
+        return self._answer(est, se, lambda a, b: self.t_star(L[a:b]), alpha, simultaneous)
+
+    def _answer(self, est: np.ndarray, se: np.ndarray, t_star: Callable[[int, int], np.ndarray], alpha: float,
+                simultaneous: bool) -> Estimates:
+        """Bootstrap-t intervals, p and sup-t band from the draws ``t_star(a, b)`` of rows a … b − 1."""
+        m = est.size
         t = _safe_ratio(est, se)
         q_lo, q_hi, p = np.empty(m), np.empty(m), np.empty(m)
         sup = np.zeros(self.replications)
         step = max(1, ROW_CHUNK_ELEMENTS // max(1, self.replications))
         for a, b in _chunks(m, step):
-            ts = self.t_star(L[a:b])
+            ts = t_star(a, b)
             q_lo[a:b], q_hi[a:b] = np.quantile(ts, [alpha / 2, 1 - alpha / 2], axis=1, method="weibull")
             p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
             if simultaneous:
                 np.maximum(sup, np.abs(ts).max(axis=0), out=sup)
-        cols = self._product_columns(L)
-        for col in np.unique(cols[cols >= 0]):  # one lookup per product term
-            p[cols == col] = self.null_p[(int(col),)]
         if simultaneous and m > 1:
             c = float(np.quantile(sup, 1 - alpha, method="weibull"))
             lower, upper, label = est - c * se, est + c * se, f"{self.interval_label}, sup-t band"
@@ -345,24 +366,48 @@ class BootstrapFit(Fit):
             lower, upper, label = est - q_hi * se, est - q_lo * se, self.interval_label
         return Estimates(est, se, lower, upper, p, 1 - alpha, label, {"statistic": t})
 
+    def along(self, L0: np.ndarray, L1: np.ndarray) -> Line:
+        """Answers along L(w) = L0 + w·L1 from one pass over the replicates (see :class:`_BootstrapLine`)."""
+        return _BootstrapLine(self, L0, L1)
+
     def joint_test(self, L: np.ndarray, alpha: float) -> JointTest:
-        """Bootstrap HC Wald test of L·β = 0: null imposed when L picks out the product terms,
-        unrestricted (W* centred at β̂) otherwise; p = share of W* ≥ W. Statistic reported as W/q."""
+        """Unrestricted bootstrap HC Wald test of L·β = 0 (W* centred at β̂); p = share of W* ≥ W.
+
+        Statistic reported as W/q. Invariant to rescaling the rows of L.
+        """
         L = _as_rows(L, self.params.size)
         q = L.shape[0]
-        cols = self._product_columns(L)
-        key = tuple(sorted(int(c) for c in cols))
-        if np.all(cols >= 0) and len(set(key)) == q and key in self.null:
-            W, W_star = self._null_wald(key)
-            method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
-        else:
-            r = L @ self.params
-            W = float(_batched_wald(r, L @ self.cov @ L.T))
-            d = self.delta @ L.T  # B × q
-            S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
-            W_star = _batched_wald(d, S)
-            method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
+        r = L @ self.params
+        W = float(batched_quadratic(r, L @ self.cov @ L.T))
+        d = self.delta @ L.T  # B × q
+        S = np.einsum("aj,bl,rjl->rab", L, L, self._meat_full())
+        W_star = batched_quadratic(d, S)
         p = float(_share_at_least(W_star, np.array(W)))
+        method = f"wild bootstrap HC Wald, unrestricted ({q} df, B = {self.replications})"
+        return JointTest(W / q, q, None, p, method, bool(p < alpha))
+
+    def coefficients(self, alpha: float) -> Estimates:
+        """Every coefficient (L = identity); the p of β_j = 0 is the null-imposed one for each
+        product-term column j, whose restricted bootstrap the fit drew (:meth:`test_coefficients`)."""
+        est = self.estimate(np.eye(self.params.size), alpha)
+        p = est.p.copy() if est.p is not None else None
+        for cols in self.null:
+            if len(cols) == 1 and p is not None:
+                p[cols[0]] = self.null_p[cols]
+        return dataclasses.replace(est, p=p)
+
+    def test_coefficients(self, columns: Sequence[int], alpha: float) -> JointTest:
+        """Null-imposed test of β_j = 0 for j in ``columns`` (Davidson & Flachaire 2008) when the
+        fit drew the restricted bootstrap for exactly those columns (the product terms, alone or
+        together); otherwise the unrestricted test of the unit rows. p = share of W* ≥ W, with
+        W = t² for one column; the statistic is W/q."""
+        key = tuple(sorted({int(c) for c in columns}))
+        if key not in self.null:
+            return super().test_coefficients(columns, alpha)
+        W, _ = self._null_wald(key)
+        p = self.null_p[key]
+        q = len(key)
+        method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
 
     def report_tables(self) -> tuple["Table", ...]:
@@ -388,6 +433,37 @@ class BootstrapFit(Fit):
     def _meat_full(self) -> np.ndarray:
         """B × k × k HC covariance draws of β* (only built for joint tests of arbitrary L)."""
         return _full_from_pairs(self.meat, self.params.size)
+
+
+class _BootstrapLine(Line):
+    """A bootstrap fit along L(w) = L0 + w·L1, with the replicates read once.
+
+    Lβ* − Lβ̂ = d₀ + w·d₁ and se*(L(w))² = s₀₀ + 2w·s₀₁ + w²·s₁₁ with B-vectors d₀, d₁, s₀₀, s₀₁,
+    s₁₁ computed once from the stored draws, so the grid search, its root refinement, the band
+    and the curve cost O(B) per value w instead of a pass over the B × k(k+1)/2 draws.
+    """
+
+    def __init__(self, fit: BootstrapFit, L0: np.ndarray, L1: np.ndarray) -> None:
+        super().__init__(fit, L0, L1)
+        self.boot = fit
+        L = np.vstack([self.L0, self.L1])
+        self.d0, self.d1 = L @ fit.delta.T
+        jj, ll, mult = fit._jj, fit._ll, fit._mult
+        cross = 0.5 * (L[0, jj] * L[1, ll] + L[1, jj] * L[0, ll]) * mult
+        self.s00, self.s01, self.s11 = np.vstack([L[0, jj] * L[0, ll] * mult, cross, L[1, jj] * L[1, ll] * mult]) @ fit.meat.T
+
+    def t_star(self, w: np.ndarray) -> np.ndarray:
+        """t* at each w (len(w) × B)."""
+        w = np.asarray(w, dtype=float)[:, None]
+        var = self.s00[None, :] + 2.0 * w * self.s01[None, :] + w * w * self.s11[None, :]
+        return _safe_ratio(self.d0[None, :] + w * self.d1[None, :], np.sqrt(np.maximum(var, 0.0)))
+
+    def estimate(self, w: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
+        w = np.atleast_1d(np.asarray(w, dtype=float))
+        L = self.rows(w)
+        est = L @ self.boot.params
+        se = np.sqrt(np.maximum(quadratic_forms(L, self.boot.cov), 0.0))
+        return self.boot._answer(est, se, lambda a, b: self.t_star(w[a:b]), alpha, simultaneous)
 
 
 # ---- the back-end --------------------------------------------------------------------------
@@ -450,12 +526,9 @@ class WildBootstrapBackend(Backend):
         Q, R = design.qr
         n, k = Q.shape
         h = leverages(Q)
-        ones = leverage_one_rows(h)
-        if ones.size and self.se in NEEDS_LEVERAGE_BELOW_ONE:
-            rows = np.asarray(design.data.frame.index, dtype=int)[ones] + 1
-            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
-            return (f"{self.se.upper()} is undefined: data row(s) {shown} have leverage 1 (each alone determines "
-                    f"a coefficient); drop them or set wild.se=hc0.")
+        if self.se in NEEDS_LEVERAGE_BELOW_ONE and (reason := leverage_one_reason(
+                h, self.se.upper(), design_row_numbers(design), "drop them or set wild.se=hc0")):
+            return reason
         A = r_inverse(R) @ Q.T
         return A, hc_weights(self.se, h, n, k), h
 
@@ -486,7 +559,7 @@ class WildBootstrapBackend(Backend):
         qty = Q.T @ y
         beta = linalg.solve_triangular(R, qty, check_finite=False)
         resid = y - Q @ qty
-        cov = (A * (omega * resid**2)) @ A.T
+        cov = sandwich(Q, r_inverse(R), omega * resid**2)
         warnings: list[str] = []
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
@@ -565,20 +638,16 @@ class WildBootstrapBackend(Backend):
         pairs = _pairs_within(cols, k)
         jj, ll = _pair_index(k)
         P = A[jj[pairs]] * A[ll[pairs]] * omega  # m × n
-        m = P.shape[0]
         # Observed HC Wald (t² for one term) of every dataset.
         Q, _ = design.qr
         E = Y - Q @ (Q.T @ Y)
         b_obs = A[list(cols)] @ Y  # q × D
-        W_obs = _batched_wald(b_obs.T, _full_from_pairs((P @ E**2).T, q))
+        W_obs = batched_quadratic(b_obs.T, _full_from_pairs((P @ E**2).T, q))
         Et = self._restricted(X, cols, Y)  # n × D transformed restricted residuals
         enum = _enumerate(self.weights, n, self.replications)
         B = 2**n if enum else self.replications
         width = n if enum else _weight_width(self.weights, n)
-        base = np.zeros((k + k * m, width))
-        base[:k, :n] = A
-        base[k:, :n] = (X.T[:, None, :] * P[None, :, :]).reshape(k * m, n)
-        T = np.einsum("pi,ij,il->pjl", P, X, X).reshape(m, k * k)
+        base, T = _expanded_factor(A, X, P)
         rng = np.random.default_rng(seed)
         Dn = Y.shape[1]
         hits = np.zeros(Dn)
@@ -589,8 +658,8 @@ class WildBootstrapBackend(Backend):
         for a, b in _chunks(Dn, data_step):
             c = b - a
             e = Et[:, a:b].T  # c × n
-            F = np.zeros((c, width, k + k * m))
-            F[:, :n, :] = (base[None, :, :n] * e[:, None, :]).transpose(0, 2, 1)
+            F = np.zeros((c, width, base.shape[0]))
+            F[:, :n, :] = (base[None, :, :] * e[:, None, :]).transpose(0, 2, 1)
             sq_const = (P[None] * e[:, None, :] ** 2).sum(axis=2)[:, None, :]  # c × 1 × m
             for r0, r1 in _chunks(B, B if c > 1 else rep_step):
                 r = r1 - r0
@@ -598,16 +667,12 @@ class WildBootstrapBackend(Backend):
                     V = np.broadcast_to(sign_patterns(n, r0, r1), (c, r, n))
                 else:
                     V = _weight_chunk(self.weights, n, c * r, rng).reshape(c, r, width)
-                G = V @ F  # c × r × (k + k·m)
-                D = G[..., :k]
-                C = G[..., k:].reshape(c, r, k, m)
-                cross = np.einsum("dbj,dbjp->dbp", D, C)
-                quad = (D[..., :, None] * D[..., None, :]).reshape(c, r, k * k) @ T.T
                 if self.weights == "rademacher":
                     sq = sq_const
                 else:
                     sq = np.square(V[..., :n]) @ (P[None] * e[:, None, :] ** 2).transpose(0, 2, 1)
-                W_star = _batched_wald(D[..., list(cols)], _full_from_pairs(sq - 2.0 * cross + quad, q))
+                D, M = _expanded_meat(V @ F, T, sq)  # V @ F: c × r × (k + k·m)
+                W_star = batched_quadratic(D[..., list(cols)], _full_from_pairs(M, q))
                 hits[a:b] += (W_star >= W_obs[a:b, None]).sum(axis=1)
         p_values = hits / B
         return p_values

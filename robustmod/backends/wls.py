@@ -13,10 +13,13 @@ Estimation
     *two-step FGLS* (Harvey 1976; Wooldridge, Introductory Econometrics, ch. 8): OLS
     residuals ê, regress log ê² on z, add −E[log χ²₁] = 1.2704 to the intercept, weight by
     wᵢ = exp(−ẑᵢᵀγ̂). For groups the variance of a group is the mean of its ê².
-    *ML* (default) maximises ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − μᵢ)² e^{−ηᵢ}] in (β, γ) jointly
-    with scipy's trust-region method, analytic gradient and the expected information
-    J_μᵀ W J_μ + ½ J_ηᵀ J_η as the Hessian, in coordinates whitened by the information at the
-    two-step start. Non-convergence falls back to the two-step estimate with a warning.
+    *ML* (default) maximises ℓ = −½ Σ [log 2π + ηᵢ + (yᵢ − μᵢ)² e^{−ηᵢ}] from the two-step
+    start by Fisher scoring with step halving: in γ with β profiled out by WLS when η = Zγ
+    (log-linear, groups; the information of γ is ½ZᵀZ), jointly in (β, c, θ) for the power of
+    the mean with the expected information J_μᵀ W J_μ + ½ J_ηᵀ J_η. One routine per variance
+    function, batched over datasets: a single fit is a batch of one. Converged means the Newton
+    decrement ½ gᵀJ⁻¹g fell below 1e-8 (log-likelihood units); otherwise the two-step estimate is
+    kept with a warning.
 
 Standard errors of β (the weighted regression of √w·y on √w·X, thin QR, no inverse of XᵀWX)
     *robust* (default): HC3 on the weighted regression, valid when the variance function is
@@ -32,11 +35,21 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from scipy import linalg, optimize, special, stats
+from scipy import linalg, stats
 
+from ..defaults import LEVERAGE_ONE_TOL
 from ..errors import InputError, option_error
 from .base import Backend, Option, Unavailable, WaldFit, one_row_table
-from .hc import hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+from .hc import hc_weights, leverages, r_inverse, sandwich
+from .kernels import (
+    ETA_LIMIT,
+    ZERO_RESIDUAL_FLOOR,
+    design_row_numbers,
+    floored_squares,
+    leverage_one_reason,
+    log_square_regression,
+    wald_test,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -45,18 +58,11 @@ if TYPE_CHECKING:  # pragma: no cover
 VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
 ESTIMATIONS = ("ml", "twostep")
 SE_TYPES = ("robust", "model")
-#: −E[log χ²₁] = −(ψ(1/2) + log 2) ≈ 1.2704, the intercept correction of the log ê² regression.
-LOG_CHI2_CORRECTION = float(-(special.digamma(0.5) + math.log(2.0)))
-#: Squared residuals below this share of their mean are raised to it before the log.
-ZERO_RESIDUAL_FLOOR = 1e-8
 #: A ratio of largest to smallest weight above this earns a warning.
 WEIGHT_RATIO_WARNING = 1e6
 #: |μᵢ| below this share of mean |y| is raised to it in the power-of-the-mean model.
 MEAN_FLOOR = 1e-6
-#: log-variances are clipped here so that exp() never overflows.
-ETA_LIMIT = 600.0
 ML_MAXITER = 200
-ML_GTOL = 1e-7
 #: An ML fit stopped with ½ gᵀH⁻¹g below this (log-likelihood units) counts as converged.
 ML_DECREMENT_TOL = 1e-8
 
@@ -140,13 +146,6 @@ def _profile_nll(X: np.ndarray, Y: np.ndarray, eta: np.ndarray) -> tuple[np.ndar
 # --------------------------------------------------------------------------------------
 # Two-step FGLS
 # --------------------------------------------------------------------------------------
-def _floored_squares(E: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """ê² raised to ZERO_RESIDUAL_FLOOR·mean(ê²) per dataset (rows of E), and the count raised."""
-    e2 = E**2
-    floor = ZERO_RESIDUAL_FLOOR * np.maximum(e2.mean(axis=1, keepdims=True), np.finfo(float).tiny)
-    return np.maximum(e2, floor), (e2 < floor).sum(axis=1)
-
-
 def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Two-step variance parameters for each dataset (rows of Y, D × n).
 
@@ -155,10 +154,10 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
     + 1.2704 (Harvey 1976), SEs from the auxiliary regression. Groups: log of the mean ê² of
     each group, SE by the delta method sqrt(var(ê²) / (n_g·mean(ê²)²)).
     """
-    Qx, Rx = np.linalg.qr(X, mode="reduced")
+    Qx, _ = np.linalg.qr(X, mode="reduced")
     fitted = (Y @ Qx) @ Qx.T
     E = Y - fitted
-    e2, raised = _floored_squares(E)
+    e2, raised = floored_squares(E)
     if vm.function == "groups":
         G = vm.Z  # one-hot, n × p
         counts = G.sum(axis=0)
@@ -167,34 +166,13 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
         var = np.maximum(second - mean**2, 0.0) * counts / np.maximum(counts - 1, 1)
         return np.log(mean), np.sqrt(var / (counts * mean**2)), raised
     if vm.function == "power":
-        floor = vm.mean_floor(Y[0])
-        logm = np.log(np.maximum(np.abs(fitted), floor))
-        # Each dataset has its own regressor log|μ̂|: solve the 2 × 2 normal equations in closed form.
-        n = Y.shape[1]
-        ly = np.log(e2)
-        mx, my = logm.mean(axis=1), ly.mean(axis=1)
-        sxx = ((logm - mx[:, None]) ** 2).sum(axis=1)
-        sxy = ((logm - mx[:, None]) * (ly - my[:, None])).sum(axis=1)
-        slope = sxy / np.where(sxx > 0, sxx, np.inf)
-        icpt = my - slope * mx
-        res = ly - icpt[:, None] - slope[:, None] * logm
-        s2 = (res**2).sum(axis=1) / (n - 2)
-        se_slope = np.sqrt(s2 / np.where(sxx > 0, sxx, np.inf))
-        se_icpt = np.sqrt(s2 * (1.0 / n + mx**2 / np.where(sxx > 0, sxx, np.inf)))
-        gamma = np.column_stack([icpt + LOG_CHI2_CORRECTION, slope / 2.0])
-        return gamma, np.column_stack([se_icpt, se_slope / 2.0]), raised
-    Z = vm.Z
-    Qz, Rz = np.linalg.qr(Z, mode="reduced")
-    ly = np.log(e2)
-    coef = linalg.solve_triangular(Rz, Qz.T @ ly.T, check_finite=False).T  # D × p
-    res = ly - coef @ Z.T
-    n, p = Z.shape
-    s2 = (res**2).sum(axis=1) / (n - p)
-    Rinv = r_inverse(Rz)
-    diag = (Rinv**2).sum(axis=1)
-    # The correction goes where z spans the constant: a with Z a = 1.
-    a = linalg.solve_triangular(Rz, Qz.T @ np.ones(n), check_finite=False)
-    return coef + LOG_CHI2_CORRECTION * a[None, :], np.sqrt(s2[:, None] * diag[None, :]), raised
+        # Each dataset has its own regressor log|μ̂|: z = [1, log|μ̂|], slope 2θ.
+        logm = np.log(np.maximum(np.abs(fitted), vm.mean_floor(Y[0])))
+        Z = np.stack([np.ones_like(logm), logm], axis=2)
+        coef, se = log_square_regression(np.log(e2), Z)
+        return coef * [1.0, 0.5], se * [1.0, 0.5], raised
+    coef, se = log_square_regression(np.log(e2), vm.Z)
+    return coef, se, raised
 
 
 # --------------------------------------------------------------------------------------
@@ -221,71 +199,29 @@ def _information_factor(vm: VarianceModel, X: np.ndarray, beta: np.ndarray, gamm
 
 def ml_fit(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta0: np.ndarray, gamma0: np.ndarray
            ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None, bool, int, str]:
-    """Joint ML of (β, γ) from a start; returns (β̂, γ̂, information factor R̂, converged, iterations, message).
-
-    The problem is solved in u with θ = θ₀ + R₀⁻¹u, R₀ the triangular factor of the expected
-    information at the start, so the model Hessian starts as the identity.
-    """
-    k = X.shape[1]
+    """Joint ML of (β, γ) of one dataset from a start: the batched routine of :meth:`WLSBackend.reject_many`
+    on a batch of one (:func:`batched_ml_gamma` with β profiled out for η = Zγ, :func:`batched_ml_power`
+    for the power of the mean). Returns (β̂, γ̂, information factor R̂ with R̂ᵀR̂ the expected
+    information, converged, iterations, message)."""
     floor = vm.mean_floor(y)
-    theta0 = np.concatenate([beta0, gamma0])
-    try:
-        R0 = np.linalg.qr(_information_factor(vm, X, beta0, gamma0, floor), mode="r")
-        T = r_inverse(R0)
-    except (np.linalg.LinAlgError, ValueError) as exc:
-        return beta0, gamma0, None, False, 0, f"information at the start is singular ({exc})"
-    if not np.all(np.isfinite(T)):
-        return beta0, gamma0, None, False, 0, "information at the start is singular"
-    log2pi = math.log(2 * math.pi)
-
-    def split(u: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        th = theta0 + T @ u
-        return th[:k], th[k:]
-
-    def fun(u: np.ndarray) -> float:
-        b, g = split(u)
-        eta = vm.eta(X, b, g, floor)
-        if not np.all(np.isfinite(eta)) or np.abs(eta).max() > ETA_LIMIT:
-            return np.inf
-        e = y - X @ b
-        return float(0.5 * np.sum(log2pi + eta + e**2 * np.exp(-eta)))
-
-    def jac(u: np.ndarray) -> np.ndarray:
-        b, g = split(u)
-        eta = np.clip(vm.eta(X, b, g, floor), -ETA_LIMIT, ETA_LIMIT)
-        w = np.exp(-eta)
-        e = y - X @ b
-        half = 0.5 * (e**2 * w - 1.0)
-        d_beta, d_gamma = vm.jacobians(X, b, g, floor)
-        g_beta = X.T @ (w * e) + (0.0 if d_beta is None else d_beta.T @ half)
-        score = np.concatenate([g_beta, d_gamma.T @ half])
-        return -(T.T @ score)
-
-    def hess(u: np.ndarray) -> np.ndarray:
-        b, g = split(u)
-        JT = _information_factor(vm, X, b, g, floor) @ T
-        return JT.T @ JT
-
-    with _warnings.catch_warnings():
-        _warnings.simplefilter("ignore", RuntimeWarning)
-        res = optimize.minimize(fun, np.zeros(theta0.size), jac=jac, hess=hess, method="trust-exact",
-                                options={"gtol": ML_GTOL, "maxiter": ML_MAXITER})
-    b, g = split(res.x)
-    ok = bool(np.isfinite(res.fun) and np.all(np.isfinite(res.x)))
-    if ok and not res.success:
-        # The expected information is not the exact Hessian, so the trust region can stall at the
-        # optimum; judge convergence by the Newton decrement ½ gᵀH⁻¹g (log-likelihood units) instead.
-        grad = jac(res.x)
-        try:
-            decrement = 0.5 * float(grad @ linalg.solve(hess(res.x), grad, assume_a="pos"))
-        except (linalg.LinAlgError, ValueError):
-            decrement = np.inf
-        ok = decrement < ML_DECREMENT_TOL
-    R = None
+    if vm.function == "power":
+        B, G, done, iters = batched_ml_power(X, y[None, :], beta0[None, :], gamma0[None, :], floor)
+        b, g = B[0], G[0]
+    else:
+        G, done, iters = batched_ml_gamma(vm, X, y[None, :], gamma0[None, :])
+        g = G[0]
+        W = np.exp(-np.clip(vm.Z @ g, -ETA_LIMIT, ETA_LIMIT))
+        Q, R = weighted_qr(X, W[None, :])
+        b = linalg.solve_triangular(R[0], Q[0].T @ (np.sqrt(W) * y), check_finite=False)
+    ok = bool(done[0] and np.all(np.isfinite(b)) and np.all(np.isfinite(g)))
+    message = "converged" if ok else (f"iteration limit reached ({int(iters[0])} iterations)"
+                                      if int(iters[0]) >= ML_MAXITER else "no step improved the likelihood")
+    Rinfo = None
     if ok:
-        R = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
-        ok = bool(np.all(np.isfinite(R)) and np.all(np.abs(np.diag(R)) > 0))
-    return b, g, R, ok, int(res.nit), str(res.message)
+        Rinfo = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
+        ok = bool(np.all(np.isfinite(Rinfo)) and np.all(np.abs(np.diag(Rinfo)) > 0))
+        message = message if ok else "the information at the optimum is singular"
+    return b, g, Rinfo, ok, int(iters[0]), message
 
 
 def _backtrack(trial: Any, t: np.ndarray, f_old: np.ndarray, halvings: int = 30) -> tuple[np.ndarray, np.ndarray, Any]:
@@ -302,11 +238,13 @@ def _backtrack(trial: Any, t: np.ndarray, f_old: np.ndarray, halvings: int = 30)
 
 
 def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np.ndarray,
-                     *, maxiter: int = 60, tol: float = ML_DECREMENT_TOL) -> tuple[np.ndarray, np.ndarray]:
+                     *, maxiter: int = ML_MAXITER, tol: float = ML_DECREMENT_TOL
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """ML of γ for η = Zγ across datasets at once (rows of Y), β profiled out by WLS.
 
     Fisher scoring with step halving: γ ← γ + t·(ZᵀZ)⁻¹ Zᵀ(r − 1), rᵢ = ê²ᵢ e^{−ηᵢ}
-    (Harvey 1976); the expected information of γ is ½ZᵀZ whatever β. Returns (γ̂, converged).
+    (Harvey 1976); the expected information of γ is ½ZᵀZ whatever β. Returns (γ̂, converged,
+    iterations) per dataset.
     """
     Z = vm.Z
     Qz, Rz = np.linalg.qr(Z, mode="reduced")
@@ -314,6 +252,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
     f, r = _profile_nll(X, Y, G @ Z.T)
     done = np.zeros(G.shape[0], dtype=bool)
     failed = np.zeros(G.shape[0], dtype=bool)
+    iters = np.zeros(G.shape[0], dtype=int)
     for _ in range(maxiter):
         act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
         if act.size == 0:
@@ -324,6 +263,8 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         decrement = 0.25 * (rhs**2).sum(axis=1)  # ½ scoreᵀ info⁻¹ score, in ℓ units
         now = decrement < tol
         done[act[now]] = True
+        iters[act[~now]] += 1
+
         def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             cand = Ga + t[:, None] * step
             fc, rc = _profile_nll(X, Y[act], cand @ Z.T)
@@ -334,7 +275,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         G[act] = np.where(ok[:, None], cand, Ga)
         f[act] = np.where(ok, fc, fa)
         r[act] = np.where(ok[:, None], rc, ra)
-    return G, done
+    return G, done, iters
 
 
 # --------------------------------------------------------------------------------------
@@ -409,13 +350,25 @@ def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | 
     return out
 
 
-def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
-            estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
-            backend_id: str = "wls") -> WLSFit | Unavailable:
-    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
-    y = np.asarray(y, dtype=float)
-    X = np.asarray(X, dtype=float)
-    n, k = X.shape
+@dataclass
+class _VarianceEstimate:
+    """What the variance-model step hands to the weighted fit."""
+
+    W: np.ndarray
+    gamma: np.ndarray
+    gamma_se: np.ndarray | None
+    beta_ml: np.ndarray | None
+    converged: bool | None
+    iterations: int
+    used: str
+    raised: int
+    notes: list[str]
+
+
+def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimation: str) -> _VarianceEstimate:
+    """Weights from the variance model: known, two-step FGLS, or ML from the two-step start
+    (kept only if it converged and does not lower the log-likelihood; otherwise two-step with a note)."""
+    k = X.shape[1]
     notes: list[str] = []
     converged: bool | None = None
     iterations = 0
@@ -457,6 +410,19 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
                 notes.append(f"ML of the variance model did not converge ({message}); the two-step FGLS "
                              "estimate is reported instead.")
                 _warnings.warn(notes[-1], WLSWarning, stacklevel=2)
+    return _VarianceEstimate(W, gamma, gamma_se, beta_ml, converged, iterations, used, raised, notes)
+
+
+def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
+            estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
+            backend_id: str = "wls") -> WLSFit | Unavailable:
+    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
+    y = np.asarray(y, dtype=float)
+    X = np.asarray(X, dtype=float)
+    n, k = X.shape
+    floor = vm.mean_floor(y)
+    ve = _estimate_variance(vm, X, y, estimation)
+    W, gamma, gamma_se, notes, used, converged = ve.W, ve.gamma, ve.gamma_se, ve.notes, ve.used, ve.converged
     ratio = float(W.max() / W.min())
     if not math.isfinite(ratio) or ratio > WEIGHT_RATIO_WARNING:
         notes.append(f"The largest weight is {ratio:.3g} times the smallest; a few rows dominate the fit "
@@ -475,13 +441,10 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     label_fn = _FUNCTION_LABELS[vm.function]
     est_label = {"ml": "ML", "twostep": "two-step FGLS", "known": "known"}.get(used, "two-step FGLS")
     if se == "robust":
-        ones = leverage_one_rows(h)
-        if ones.size:
-            rows = row_numbers[ones] if row_numbers is not None else ones + 1
-            shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
-            return Unavailable(backend_id, f"WLS, {label_fn}",
-                               f"HC3 on the weighted fit is undefined: data row(s) {shown} have leverage 1; "
-                               "use --set wls.se=model or drop those rows.")
+        reason = leverage_one_reason(h, "HC3 on the weighted fit", row_numbers,
+                                     "use --set wls.se=model or drop those rows")
+        if reason:
+            return Unavailable(backend_id, f"WLS, {label_fn}", reason)
         cov = sandwich(Q, Rinv, hc_weights("hc3", h, n, k) * ew**2)
         se_label = "HC3 on the weighted fit"
     else:
@@ -492,7 +455,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     if vm.function == "known":
         ll = _loglik_known(y, X, beta, W)
     elif converged:
-        ll = loglik(vm, X, y, beta_ml, gamma, floor)
+        ll = loglik(vm, X, y, ve.beta_ml, gamma, floor)
     else:
         ll = _loglik_profiled_scale(vm, X, y, beta, gamma, floor)
     p = vm.n_gamma
@@ -507,8 +470,8 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
         "loglik": ll, "loglik_constant": lr["loglik_constant"],
         "lr_test": lr["lr_test"], "aic": lr["aic"], "aic_constant": lr["aic_constant"],
         "weight_ratio": ratio, "scale_s2": s2,
-        "estimation": used, "se_type": se, "converged": converged, "iterations": iterations,
-        "zero_residuals_raised": raised,
+        "estimation": used, "se_type": se, "converged": converged, "iterations": ve.iterations,
+        "zero_residuals_raised": ve.raised,
     }
     if vm.function == "power":
         design_info["sigma"] = float(math.exp(0.5 * gamma[0]))
@@ -668,7 +631,7 @@ class WLSBackend(Backend):
     def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
         """Fit on the design (deterministic: ``seed`` is not used)."""
         vm = self.variance_model(design)
-        rows = np.asarray(design.data.frame.index, dtype=int) + 1
+        rows = design_row_numbers(design)
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", WLSWarning)  # the notes travel in fit.warnings
             return fit_wls(design.y, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
@@ -699,7 +662,7 @@ class WLSBackend(Backend):
                 W = self._power_weights(vm, X, Yd, gamma, floor)
             else:
                 if self.estimation == "ml":
-                    g_ml, ok = batched_ml_gamma(vm, X, Yd, gamma)
+                    g_ml, ok, _ = batched_ml_gamma(vm, X, Yd, gamma)
                     gamma = np.where(ok[:, None], g_ml, gamma)
                 W = np.exp(-np.clip(gamma @ vm.Z.T, -ETA_LIMIT, ETA_LIMIT))
         return _reject_product(X, Yd, W, design.interaction_rows(), alpha, self.se)
@@ -712,7 +675,7 @@ class WLSBackend(Backend):
         Q, R = weighted_qr(X, W)
         B = np.linalg.solve(R, np.einsum("dnk,dn->dk", Q, np.sqrt(W) * Yd)[:, :, None])[:, :, 0]
         if self.estimation == "ml":
-            B_ml, g_ml, ok = batched_ml_power(X, Yd, B, gamma, floor)
+            B_ml, g_ml, ok, _ = batched_ml_power(X, Yd, B, gamma, floor)
             B = np.where(ok[:, None], B_ml, B)
             gamma = np.where(ok[:, None], g_ml, gamma)
         return np.exp(-np.clip(_power_eta(X, B, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
@@ -732,11 +695,11 @@ def _power_nll(X: np.ndarray, Y: np.ndarray, B: np.ndarray, G: np.ndarray, floor
 
 
 def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarray, floor: float,
-                     *, maxiter: int = 100) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                     *, maxiter: int = ML_MAXITER) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Joint ML of (β, c, θ) of the power-of-the-mean model across datasets (rows of Y).
 
-    Fisher scoring with step halving, the expected information J_μᵀWJ_μ + ½J_ηᵀJ_η as in
-    :func:`ml_fit`. Returns (β̂, γ̂, converged).
+    Fisher scoring with step halving and the expected information J_μᵀWJ_μ + ½J_ηᵀJ_η
+    (:func:`_information_factor`). Returns (β̂, γ̂, converged, iterations) per dataset.
     """
     D, n = Y.shape
     k = X.shape[1]
@@ -744,6 +707,7 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
     f = _power_nll(X, Y, B, G, floor)
     done = np.zeros(D, dtype=bool)
     failed = np.zeros(D, dtype=bool)
+    iters = np.zeros(D, dtype=int)
     for _ in range(maxiter):
         act = np.flatnonzero(~done & ~failed)  # work only on the datasets still moving
         if act.size == 0:
@@ -773,6 +737,8 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         decrement = 0.5 * np.einsum("di,di->d", score, step)
         now = np.isfinite(decrement) & (decrement < ML_DECREMENT_TOL)
         done[act[now]] = True
+        iters[act[~now]] += 1
+
         def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             Bc, Gc = Ba + t[:, None] * step[:, :k], Ga + t[:, None] * step[:, k:]
             return _power_nll(X, Ya, Bc, Gc, floor), (Bc, Gc)
@@ -782,7 +748,7 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         B[act] = np.where(ok[:, None], Bc, Ba)
         G[act] = np.where(ok[:, None], Gc, Ga)
         f[act] = np.where(ok, fc, fa)
-    return B, G, done
+    return B, G, done, iters
 
 
 def _reject_product(X: np.ndarray, Yd: np.ndarray, W: np.ndarray, L: np.ndarray, alpha: float, se: str) -> np.ndarray:
@@ -800,18 +766,10 @@ def _reject_product(X: np.ndarray, Yd: np.ndarray, W: np.ndarray, L: np.ndarray,
     Mt = np.linalg.solve(np.swapaxes(R, 1, 2), np.broadcast_to(L.T, (D, k, q)))
     if se == "robust":
         h = np.einsum("dnk,dnk->dn", Q, Q)
-        u = ew**2 / np.maximum(1.0 - h, 1e-12) ** 2
+        u = hc_weights("hc3", np.minimum(h, 1.0 - LEVERAGE_ONE_TOL), n, k) * ew**2
         G = np.einsum("dnk,dkq->dnq", Q, Mt)
         V = np.einsum("dnq,dn,dnr->dqr", G, u, G)
     else:
         s2 = (ew**2).sum(axis=1) / (n - k)
         V = s2[:, None, None] * np.einsum("dkq,dkr->dqr", Mt, Mt)
-    est = beta @ L.T  # D × q
-    df = n - k
-    if q == 1:
-        t = est[:, 0] / np.sqrt(np.maximum(V[:, 0, 0], np.finfo(float).tiny))
-        return 2 * stats.t.sf(np.abs(t), df) < alpha
-    c = np.linalg.cholesky(V)
-    z = np.linalg.solve(c, est[:, :, None])[:, :, 0]
-    F = (z**2).sum(axis=1) / q
-    return stats.f.sf(F, q, df) < alpha
+    return wald_test(beta @ L.T, V, n - k)[1] < alpha
