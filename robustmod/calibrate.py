@@ -26,15 +26,23 @@ from typing import Any
 import numpy as np
 
 from .backends.base import Unavailable
-from .backends.registry import SIMULATION_BACKEND, backend_class, check_ids, make_backend
+from .backends.registry import (
+    SIMULATION_BACKEND,
+    backend_class,
+    check_ids,
+    make_backend,
+)
 from .design import Design
 from .errors import InputError, option_error
+from .tables import Column, NotApplicable, Table, format_number, join_notes, make_table
 
 #: Datasets per chunk; fixed so that results do not depend on the number of workers.
 CHUNK = 50
 #: Datasets a costly back-end (one whose class sets ``costly = True``, e.g. a sampler) gets
 #: when it is asked for; each one is a full fit.
 COSTLY_DATASETS = 20
+#: Allowed numbers of simulated datasets (fewer says nothing; more takes hours on 2 cores).
+MIN_DATASETS, MAX_DATASETS = 10, 100_000
 #: Run the remaining chunks in worker processes when they would take longer than this (s).
 PARALLEL_MIN_SECONDS = 2.0
 #: E[log χ²₁] = ψ(1/2) + log 2, the offset of a log-squared-residual regression (Harvey 1976).
@@ -90,7 +98,7 @@ _WORKER: dict[str, Any] = {}
 
 def _init_worker(state: dict[str, Any]) -> None:
     try:  # one BLAS thread per worker process: the workers already fill the cores
-        from threadpoolctl import threadpool_limits  # noqa: PLC0415
+        from threadpoolctl import threadpool_limits
 
         threadpool_limits(1)
     except ImportError:  # pragma: no cover
@@ -108,7 +116,7 @@ def _rejections(backend: Any, design: Design, Y: np.ndarray, alpha: float, seed:
     """(rejected?, number of datasets the back-end could not fit); batched when it can be."""
     if hasattr(backend, "reject_many"):
         return np.asarray(backend.reject_many(design, Y, alpha, seed=seed), dtype=bool), 0
-    from . import effects  # noqa: PLC0415
+    from . import effects
 
     seeds = np.random.SeedSequence(seed).generate_state(Y.shape[1])
     out = np.zeros(Y.shape[1], dtype=bool)
@@ -211,8 +219,10 @@ def calibrate(
     SE of a rate p̂ over N datasets is sqrt(p̂(1 − p̂)/N). Design in the style of Long & Ervin (2000).
     """
     ids = check_ids(list(backend_ids))
-    if isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer)) or n_datasets < 10:
-        raise option_error("n_datasets", "a whole number of simulated datasets, at least 10", n_datasets)
+    if (isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer))
+            or not MIN_DATASETS <= n_datasets <= MAX_DATASETS):
+        raise option_error("n_datasets", f"a whole number of simulated datasets from {MIN_DATASETS} to {MAX_DATASETS:,}",
+                           n_datasets)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise option_error("seed", "a whole number ≥ 0", seed)
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1):
@@ -237,14 +247,14 @@ def calibrate(
     for bid in ids:
         klass = backend_class(bid)
         run_opts[bid].update(getattr(klass, "calibration_options", {}))
-        if getattr(klass, "calibration_note", ""):
-            notes.append(klass.calibration_note)
         if getattr(klass, "costly", False):
             costly.append(bid)
+        if getattr(klass, "calibration_note", "") and (include_costly or bid not in costly):
+            notes.append(klass.calibration_note)  # said only of a back-end that is calibrated
     if not include_costly:
         for bid in costly:
-            notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); "
-                         "ask for it with include_costly=True.")
+            notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); ask for it "
+                         "with calibrate_costly=True (on the command line: --calibrate-costly).")
         ids = [b for b in ids if b not in costly]
         costly = []
     unavailable: dict[str, str] = {}
@@ -332,7 +342,7 @@ def calibrate(
 def _progress_bar(progress: bool, total: int) -> Any:
     if not progress:
         return None
-    from rich.progress import Progress  # noqa: PLC0415
+    from rich.progress import Progress
 
     bar = Progress(transient=True)
     bar.start()
@@ -343,3 +353,27 @@ def _progress_bar(progress: bool, total: int) -> Any:
 def _advance(bar: Any, bound: tuple[int, int]) -> None:
     if bar is not None:
         bar.advance(bar.task_ids[0], bound[1] - bound[0])
+
+
+def calibration_table(cal: Mapping[str, Any]) -> Table:
+    """False-positive rate and power of each back-end, with Monte Carlo SEs and one paragraph of notes."""
+    fpr, power = cal.get("false_positive_rate") or {}, cal.get("power") or {}
+    methods, unavailable = cal.get("methods") or {}, cal.get("unavailable") or {}
+    rows = []
+    for bid in list(fpr) + [b for b in power if b not in fpr]:
+        f, p = fpr.get(bid) or {}, power.get(bid)
+        na = NotApplicable("power was not simulated") if p is None else None
+        p = p or {}
+        how = methods.get(bid) or ("not calibrated: " + unavailable[bid] if bid in unavailable else "")
+        rows.append((bid, f.get("rate"), f.get("mc_se"), na or p.get("rate"), na or p.get("mc_se"), f.get("n"),
+                     f.get("failed"), how))
+    alpha = float(cal.get("alpha", 0.05))
+    cols = (Column("backend", "back-end", "code"), Column("false_positive_rate", f"false-positive rate (nominal {alpha:g})"),
+            Column("false_positive_mc_se", "Monte Carlo SE"), Column("power", "power"),
+            Column("power_mc_se", "Monte Carlo SE"), Column("n", "datasets used", "integer"),
+            Column("failed", "failed fits", "integer"), Column("how", "how it was run", "text"))
+    head = (f"{cal.get('n_datasets')} datasets simulated from {cal.get('simulated_from', 'the fitted model')}, with "
+            "the product term set to zero (false-positive rate) and to its estimate (power). At the nominal level a "
+            f"rate's Monte Carlo SE is {format_number(cal.get('nominal_mc_se'))}.")
+    return make_table("calibration", f"Calibration on this design ({cal.get('n_datasets')} simulated datasets)", cols,
+                      rows, source="calibrate", level=1 - alpha, notes=(head, join_notes(cal.get("notes") or [])))

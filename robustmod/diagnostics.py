@@ -13,6 +13,7 @@
 """
 from __future__ import annotations
 
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
@@ -21,9 +22,10 @@ from scipy import linalg, stats
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
-from .jsonvalues import num as _num
 from .errors import option_error
+from .jsonvalues import num as _num
 from .linearity import binning_check
+from .tables import Column, NotApplicable, Table, format_number, make_table
 
 #: Share of middle rows the Goldfeld–Quandt split drops.
 GQ_DROP = 0.2
@@ -225,4 +227,72 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
     }
     tests = [out[k] for k in ("breusch_pagan", "white", "goldfeld_quandt") if out[k] is not None]
     out["non_constant_variance"] = any(t["p"] is not None and t["p"] < alpha for t in tests)
+    return out
+
+
+# ---- the tables every display renders ---------------------------------------------------------
+
+_TESTS = (("breusch_pagan", "Breusch–Pagan (Koenker)"), ("white", "White"), ("goldfeld_quandt", "Goldfeld–Quandt"))
+
+
+def _dfs(df: Any) -> tuple[Any, Any]:
+    if isinstance(df, (list, tuple)):
+        return (df[0], df[1]) if len(df) == 2 else (df[0], NotApplicable("one df"))
+    return df, NotApplicable("a χ² test has one df")
+
+
+def variance_tests_table(diag: Mapping[str, Any]) -> Table:
+    """Breusch–Pagan, White and Goldfeld–Quandt: statistic, df, p and the form of each test."""
+    rows = []
+    for key, name in _TESTS:
+        t = diag.get(key)
+        if t is None:
+            na = NotApplicable("not computed for this design (no continuous moderator or too few rows)")
+            rows.append((key, name, na, na, na, na, na.reason))
+            continue
+        df1, df2 = _dfs(t.get("df"))
+        rows.append((key, name, t.get("statistic"), df1, df2, t.get("p"), t.get("form", "")))
+    cols = (Column("test", "test id", "code"), Column("name", "test", "text"), Column("statistic", "statistic"),
+            Column("df", "df", "df"), Column("df_denominator", "denominator df", "df"), Column("p", "p", "p"),
+            Column("form", "form", "text"))
+    verdict = ("at least one test rejects constant spread" if diag.get("non_constant_variance")
+               else "no test rejects constant spread (which does not prove it constant)")
+    return make_table("variance_tests", "Variance diagnostics of the OLS residuals", cols, rows, source="diagnostics",
+                      notes=(f"At alpha = {diag.get('alpha', 0.05):g}, {verdict}.",), meta={"field": "diagnostics"})
+
+
+def residual_spread_table(spread: Mapping[str, Any]) -> Table:
+    """Residual SD within moderator bins (or levels)."""
+    rows = []
+    for b in spread.get("bins") or []:
+        r = b.get("range")
+        lo, hi = (r[0], r[1]) if r else (NotApplicable("a level"), NotApplicable("a level"))
+        rows.append((str(b["level"]) if b.get("level") is not None else "bin", lo, hi, b.get("n"), b.get("sd")))
+    cols = (Column("level", "level or bin", "text"), Column("low", "moderator range", pair="high"), Column("high", "to"),
+            Column("n", "rows", "integer"), Column("sd", "residual SD"))
+    return make_table("residual_spread", f"Residual spread across {spread.get('moderator')} (raw scale)", cols, rows,
+                      source="diagnostics", scale="raw scale of the moderator",
+                      notes=(f"Largest over smallest SD: {format_number(spread.get('ratio'))}; {spread.get('form', '')}.",))
+
+
+def se_gap_table(gap: Mapping[str, Any]) -> Table:
+    """Classical against HC3 SE of each product term (King & Roberts 2015)."""
+    terms = gap.get("terms") or []
+    rows = [(t, gap["classical_se"][i], gap["hc3_se"][i], gap["ratio"][i]) for i, t in enumerate(terms)]
+    cols = (Column("term", "product term", "code"), Column("classical_se", "classical SE"),
+            Column("hc3_se", "HC3 SE"), Column("ratio", "HC3 / classical"))
+    large = "a large gap" if gap.get("large") else "no large gap"
+    return make_table("se_gap", "Classical against HC3 standard error of the product term", cols, rows,
+                      source="diagnostics",
+                      notes=((f"{large.capitalize()} (threshold: a ratio beyond "
+                              f"{format_number(gap.get('threshold'))} either way)."), str(gap.get("note", ""))))
+
+
+def diagnostics_tables(diag: Mapping[str, Any]) -> list[Table]:
+    """Every diagnostics table of :func:`variance_diagnostics` output, in display order."""
+    out = [variance_tests_table(diag)]
+    if diag.get("residual_spread"):
+        out.append(residual_spread_table(diag["residual_spread"]))
+    if diag.get("se_gap"):
+        out.append(se_gap_table(diag["se_gap"]))
     return out

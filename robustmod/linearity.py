@@ -18,7 +18,7 @@ a slope that rests on extrapolation; both are flagged.
 """
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -27,8 +27,9 @@ from scipy import linalg
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
-from .jsonvalues import num as _num
 from .errors import InputError, option_error
+from .jsonvalues import num as _num
+from .tables import Column, Table, format_df, format_number, format_p, make_table
 
 #: Default number of quantile bins (terciles, as Hainmueller, Mummolo & Xu 2019 use).
 DEFAULT_BINS = 3
@@ -249,3 +250,33 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
         "alpha": float(alpha),
         "notes": notes,
     }
+
+
+def linearity_table(lin: Mapping[str, Any]) -> Table:
+    """The binning check as a table: each bin's own slope beside the linear model's slope there."""
+    rows = []
+    for b in lin.get("bins") or []:
+        flags = [name for name, key in (("few rows", "thin"), ("focal barely varies", "low_focal_variation"),
+                                        ("linear slope outside the bin's interval", "outside")) if b.get(key)]
+        r, ci, lci = b.get("range") or [None, None], b.get("ci") or [None, None], b.get("linear_ci") or [None, None]
+        rows.append((r[0], r[1], b.get("n"), b.get("median"), b.get("estimate"), ci[0], ci[1],
+                     b.get("linear_prediction"), lci[0], lci[1], "; ".join(flags) or "none"))
+    level = 1 - float(lin.get("alpha", 0.05))
+    lv = f"{100 * level:g}%"
+    cols = (Column("low", "moderator range", pair="high"), Column("high", "to"), Column("n", "rows", "integer"),
+            Column("median", "median"), Column("estimate", "slope in bin"),
+            Column("ci_low", f"{lv} interval", pair="ci_high", level=level), Column("ci_high", "to"),
+            Column("linear_prediction", "linear model's slope"),
+            Column("linear_ci_low", f"its {lv} interval", pair="linear_ci_high", level=level),
+            Column("linear_ci_high", "to"), Column("flags", "flags", "text"))
+    w = lin.get("wald") or {}
+    if w:
+        df = w.get("df") or [None, None]
+        test = (f"Test that the bins add nothing ({w.get('method', '')}): statistic {format_number(w.get('statistic'))}, "
+                f"df {format_df(df[0])} and {format_df(df[1])}, p {format_p(w.get('p'))}.")
+    else:
+        test = "No test that the bins add nothing was possible."
+    notes = (str(lin.get("method", "")) + ".", test, *[str(n) for n in lin.get("notes") or []])
+    return make_table("linearity", f"Binning check of the linear interaction along {lin.get('moderator')}", cols, rows,
+                      source="linearity", level=level, scale="raw scale of the moderator and the focal predictor",
+                      notes=notes)
