@@ -38,7 +38,7 @@ from .design import Design, build_design
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
 from .spec import ModelSpec
-from .tables import Table, display_rows, format_number, render_html, render_text
+from .tables import Table, display_rows, render_html, render_text
 
 SCHEMA = "robustmod/results-v1"
 
@@ -207,10 +207,8 @@ class Comparison:
             reg = by_key["regions"].to_frame().set_index("backend")
             frame = frame.join(reg.drop(columns=[c for c in ("label",) if c in reg]))
         slopes = by_key["slopes"].to_frame()
-        at_cols = [k for k in slopes.columns if k.startswith("at_")]
         for _, row in slopes.iterrows():
-            at = ", ".join(f"{k[3:]}={format_number(row[k]) if not isinstance(row[k], str) else row[k]}" for k in at_cols)
-            frame.loc[row["backend"], f"slope at {at}"] = row["estimate"]
+            frame.loc[row["backend"], f"slope at {row['at']}"] = row["estimate"]
         return frame
 
     # ---- one set of tables, every display ---------------------------------------------

@@ -8,16 +8,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
-from .tables import (
-    MINUS,
-    Column,
-    NotApplicable,
-    Table,
-    format_number,
-    human_label,
-    make_table,
-    region_words,
-)
+from .tables import MINUS, Column, NotApplicable, Table, format_number, human_label, make_table, region_words, signed
 
 if TYPE_CHECKING:  # pragma: no cover
     from .compare import BackendResult, Comparison
@@ -105,10 +96,12 @@ def slopes_table(c: Comparison) -> Table:
         for ce in r.conditional_effects:
             se, psd, p, pp = _uncertainty(r, ce)
             ci = ce.get("ci") or [None, None]
-            rows.append([bid, *[ce["at"].get(m) for m in mods], ce.get("estimate"), se, psd, ci[0], ci[1], p, pp,
+            at = ", ".join(f"{m} = {v if isinstance(v, str) else signed(v)}" for m, v in ce["at"].items())
+            rows.append([bid, at, *[ce["at"].get(m) for m in mods], ce.get("estimate"), se, psd, ci[0], ci[1], p, pp,
                          bool(ce.get("significant")), bool(ce.get("within_observed", True))])
-    at_cols = [Column(f"at_{m}", f"{m} =", "text" if c.design.moderators[m].categorical else "number") for m in mods]
-    cols = [Column("backend", "back-end", "code"), *at_cols, Column("estimate", "slope"), Column("se", "SE"),
+    at_cols = [Column(f"at_{m}", m, "text" if c.design.moderators[m].categorical else "number", hidden=True)
+               for m in mods]
+    cols = [Column("backend", "back-end", "code"), Column("at", "at", "text"), *at_cols, Column("estimate", "slope"), Column("se", "SE"),
             Column("posterior_sd", "posterior SD"), Column("ci_low", f"{lv} interval", pair="ci_high", level=level),
             Column("ci_high", "to", level=level), Column("p", "p", "p"), Column("prob_positive", "P(>0)", "prob"),
             Column("significant", "interval excludes 0", "flag"),

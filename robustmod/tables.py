@@ -54,6 +54,8 @@ class Column:
     #: Key of a second column shown together with this one as "[low, high]" (an interval);
     #: CSV and JSON keep the two ends as separate numeric columns.
     pair: str | None = None
+    #: Kept for CSV/JSON and frames but not shown (e.g. numeric twins of a worded column).
+    hidden: bool = False
 
 
 Cell = float | int | str | bool | NotApplicable | None
@@ -203,7 +205,7 @@ def display_columns(table: Table) -> list[DisplayColumn]:
     partners = {c.pair for c in table.columns if c.pair}
     out = []
     for j, c in enumerate(table.columns):
-        if c.key in partners:
+        if c.key in partners or c.hidden:
             continue
         if table.rows and all(isinstance(r[j], NotApplicable) for r in table.rows) and c.kind != "text":
             continue  # a quantity no row has (e.g. a posterior SD with no posterior): CSV/JSON keep it

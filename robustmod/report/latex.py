@@ -86,7 +86,7 @@ def column_widths(header: Sequence[str], rows: Sequence[Sequence[str]], numeric:
 
 def _cell(text: str, numeric: bool) -> str:
     align = r"\raggedleft" if numeric else r"\raggedright"
-    return rf"{align}\hspace{{0pt}}{latex_escape(text, breakable=True)}"
+    return rf"{align}\hspace{{0pt}}{latex_escape(text, breakable=not numeric)}"
 
 
 def table_latex(t: Table) -> list[str]:
