@@ -252,13 +252,14 @@ def variance_tests_table(diag: Mapping[str, Any]) -> Table:
             continue
         df1, df2 = _dfs(t.get("df"))
         rows.append((key, name, t.get("statistic"), df1, df2, t.get("p"), t.get("form", "")))
-    cols = (Column("test", "test id", "code"), Column("name", "test", "text"), Column("statistic", "statistic"),
+    cols = (Column("test", "test id", "code", hidden=True), Column("name", "test", "text"), Column("statistic", "statistic"),
             Column("df", "df", "df"), Column("df_denominator", "denominator df", "df"), Column("p", "p", "p"),
-            Column("form", "form", "text"))
+            Column("form", "form", "text", hidden=True))
     verdict = ("at least one test rejects constant spread" if diag.get("non_constant_variance")
                else "no test rejects constant spread (which does not prove it constant)")
+    forms = [f"{name}: {row[-1]}." for (_, name), row in zip(_TESTS, rows)]
     return make_table("variance_tests", "Variance diagnostics of the OLS residuals", cols, rows, source="diagnostics",
-                      notes=(f"At alpha = {diag.get('alpha', 0.05):g}, {verdict}.",), meta={"field": "diagnostics"})
+                      notes=(f"At alpha = {diag.get('alpha', 0.05):g}, {verdict}.", *forms), meta={"field": "diagnostics"})
 
 
 def residual_spread_table(spread: Mapping[str, Any]) -> Table:
