@@ -201,7 +201,7 @@ def data_figure(comparison: "Comparison") -> "Figure":
             ax.plot(xs, mu, color=line_col(pt[m]), linewidth=1.8, label=f"fitted at {label}")
         ax.set_xlabel(f"{d.focal}")
         ax.set_ylabel(str(d.spec.formula.split("~")[0].strip()))
-        ax.set_title(f"Data with fitted lines at the probe values ({c.primary}; other terms at reference)")
+        ax.set_title(f"Data with fitted lines at chosen moderator values ({c.primary}; other terms at reference)")
         ax.legend(loc="best")
     return fig
 
@@ -257,8 +257,8 @@ def residual_figure(comparison: "Comparison") -> "Figure":
 
 # ---- variance function -----------------------------------------------------------------
 def variance_figure(comparison: "Comparison") -> "Figure":
-    """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance
-    , against the focal predictor and the first moderator."""
+    """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance,
+    against the focal predictor and the first moderator."""
     c = comparison
     d = c.design
     found = []

@@ -71,8 +71,8 @@ def column_widths(header: Sequence[str], rows: Sequence[Sequence[str]], numeric:
     wants = [_natural(col[1:] + [max(col[0].split(), key=len, default="")], num) for col, num in zip(columns, numeric)]
     text = [not n for n in numeric]
     for size, cw in _SIZES:
-        want = [w * cw + 2 * _TABCOLSEP for w, _ in wants]
-        least = [m * cw + 2 * _TABCOLSEP for _, m in wants]
+        want = [(w + 1) * cw + 2 * _TABCOLSEP for w, _ in wants]  # one character spare: letters vary in width
+        least = [(m + 1) * cw + 2 * _TABCOLSEP for _, m in wants]
         if sum(want) <= _TEXT_WIDTH:
             return size, [w / _TEXT_WIDTH for w in want]
         fitted = _shrink(want, least, text, _TEXT_WIDTH)
