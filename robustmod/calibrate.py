@@ -249,8 +249,9 @@ def calibrate(
         run_opts[bid].update(getattr(klass, "calibration_options", {}))
         if getattr(klass, "costly", False):
             costly.append(bid)
-        if getattr(klass, "calibration_note", "") and (include_costly or bid not in costly):
-            notes.append(klass.calibration_note)  # said only of a back-end that is calibrated
+        note = getattr(klass, "calibration_note", "")
+        if note and (include_costly or bid not in costly):
+            notes.append(note)  # said only of a back-end that is calibrated
     if not include_costly:
         for bid in costly:
             notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); ask for it "

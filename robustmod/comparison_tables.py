@@ -8,7 +8,8 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
-from .tables import MINUS, Column, NotApplicable, Table, format_number, human_label, make_table, region_words, signed
+from .tables import (FINE_KEYS, MINUS, Column, NotApplicable, Table, format_number, human_label, make_table,
+                     region_words, signed)
 
 if TYPE_CHECKING:  # pragma: no cover
     from .compare import BackendResult, Comparison
@@ -118,7 +119,7 @@ def regions_table(c: Comparison) -> Table:
     level, lv = _level(c)
     regs = {b: r.significance_region for b, r in c.results.items()}
     width = max((len(g["boundaries"]) for g in regs.values() if g), default=0)
-    rows = []
+    rows: list[list[Any]] = []
     for bid, g in regs.items():
         if g is None:
             na = NotApplicable(c.results[bid].reason or "no region")
@@ -167,7 +168,7 @@ def _column(key: str, values: list[Any]) -> Column:
     if plain and all(isinstance(v, bool) for v in plain):
         kind = "flag"
     elif plain and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in plain):
-        kind = "number"
+        kind = "fine" if key in FINE_KEYS else "number"
     else:
         kind = "text"
     return Column(str(key), human_label(str(key)), kind)  # type: ignore[arg-type]
@@ -178,7 +179,7 @@ def _mapping_table(key: str, title: str, rows_by: Mapping[str, Mapping[str, Any]
     for x in rows_by.values():
         names += [n for n in x if n not in names]
     raw = [[str(name)] + [_cell(x.get(n)) for n in names] for name, x in rows_by.items()]
-    cols = [Column("name", first, "text")] + [_column(n, [row[j + 1] for row in raw]) for j, n in enumerate(names)]
+    cols = [Column("name", first, "code")] + [_column(n, [row[j + 1] for row in raw]) for j, n in enumerate(names)]
     return make_table(key, title, cols, raw, source=source)
 
 
@@ -195,20 +196,22 @@ def extras_tables(bid: str, label: str, extras: Mapping[str, Any]) -> list[Table
             nested = {k: x for k, x in value.items() if isinstance(x, Mapping)}
             if inner:
                 out.append(make_table(f"{bid}.{key}", title, (Column("quantity", "quantity", "text"), Column("value", "value", "text")),
-                                      [(human_label(str(k)), _text(x)) for k, x in inner], source=bid))
+                                      [(human_label(str(k)), _text(x, str(k))) for k, x in inner], source=bid))
             out += extras_tables(f"{bid}.{key}", title, nested)
         elif isinstance(value, list) and value and all(isinstance(x, Mapping) for x in value) and len(value) <= 50:
             out.append(_mapping_table(f"{bid}.{key}", title, {str(i + 1): x for i, x in enumerate(value)}, "row", bid))
         else:
-            plain.append((human_label(str(key)), _text(value)))
+            plain.append((human_label(str(key)), _text(value, str(key))))
     if plain:
         out.insert(0, make_table(f"{bid}.settings", f"{label}: settings and checks",
                                  (Column("quantity", "quantity", "text"), Column("value", "value", "text")), plain, source=bid))
     return out
 
 
-def _text(v: Any) -> str:
+def _text(v: Any, key: str = "") -> str:
     c = _cell(v)
+    if key in FINE_KEYS and isinstance(c, float):
+        return f"{c:.4f}"
     if isinstance(c, bool):
         return "yes" if c else "no"
     if isinstance(c, (int, float)):

@@ -20,6 +20,9 @@ from typing import TYPE_CHECKING, Any, Literal
 if TYPE_CHECKING:  # pragma: no cover
     import pandas as pd
 
+#: Keys whose values need four decimals to be read (an R-hat of 1.004 is not "1").
+FINE_KEYS = frozenset({"rhat", "max_rhat", "r_hat"})
+
 #: How a renderer formats a column's cells.
 #: text: as is; number: 3 significant digits; integer: whole number; p: "< 0.001" or 3 decimals;
 #: prob: a probability from draws ("> 0.999" / "< 0.001" at the ends); flag: yes/no;
@@ -134,6 +137,8 @@ def format_number(x: Any, digits: int = 3) -> str:
         return "0"
     if abs(x) >= 1e5 or abs(x) < 1e-3:
         return f"{x:.{digits - 1}e}"
+    if abs(x) >= 10 ** digits:  # 1234.5 reads "1235", not "1.23e+03"
+        return f"{x:.0f}"
     return f"{x:.{digits}g}"
 
 
@@ -175,6 +180,8 @@ def format_cell(cell: Cell, kind: ColumnKind, *, unicode_minus: bool = False) ->
         out = format_prob(cell)
     elif kind == "df":
         out = format_df(cell)
+    elif kind == "fine":
+        out = "—" if not isinstance(cell, (int, float)) or not math.isfinite(cell) else f"{float(cell):.4f}"
     elif kind == "integer":
         out = "—" if cell is None or isinstance(cell, NotApplicable) else str(int(cell))  # type: ignore[arg-type]
     else:
@@ -184,7 +191,7 @@ def format_cell(cell: Cell, kind: ColumnKind, *, unicode_minus: bool = False) ->
     return out
 
 
-NUMERIC_KINDS = frozenset({"number", "integer", "p", "prob", "df"})
+NUMERIC_KINDS = frozenset({"number", "integer", "p", "prob", "df", "fine"})
 
 
 @dataclass(frozen=True)
