@@ -168,6 +168,110 @@ def _cpu_count() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+def _check_arguments(n_datasets: Any, seed: Any, workers: Any, costly_datasets: Any, alpha: Any) -> float:
+    """One-line errors for bad calibration options; returns alpha as a float."""
+    if (isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer))
+            or not MIN_DATASETS <= n_datasets <= MAX_DATASETS):
+        raise option_error("n_datasets", f"a whole number of simulated datasets from {MIN_DATASETS} to {MAX_DATASETS:,}",
+                           n_datasets)
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise option_error("seed", "a whole number ≥ 0", seed)
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1):
+        raise option_error("workers", "a whole number ≥ 1 (or None for the available cores)", workers)
+    if isinstance(costly_datasets, bool) or not isinstance(costly_datasets, (int, np.integer)) or costly_datasets < 1:
+        raise option_error("costly_datasets", "a whole number ≥ 1", costly_datasets)
+    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
+        raise option_error("alpha", "a number in (0, 1)", alpha)
+    return float(alpha)
+
+
+def _prepare_backends(design: Design, ids: list[str], options: Mapping[str, Mapping[str, Any]], notes: list[str],
+                      include_costly: bool, seed: int
+                      ) -> tuple[list[str], dict[str, dict[str, Any]], list[str], dict[str, str], dict[str, str]]:
+    """Options per back-end (with each class's calibration options), the costly ones, those that
+    cannot answer on the observed data, and how each is run; appends the notes that apply."""
+    run_opts: dict[str, dict[str, Any]] = {bid: dict(options.get(bid, {})) for bid in ids}
+    costly: list[str] = []
+    for bid in ids:
+        klass = backend_class(bid)
+        run_opts[bid].update(getattr(klass, "calibration_options", {}))
+        if getattr(klass, "costly", False):
+            costly.append(bid)
+        note = getattr(klass, "calibration_note", "")
+        if note and (include_costly or bid not in costly):
+            notes.append(note)  # said only of a back-end that is calibrated
+    if not include_costly:
+        for bid in costly:
+            notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); ask for it "
+                         "with calibrate_costly=True (on the command line: --calibrate-costly).")
+        ids = [b for b in ids if b not in costly]
+        costly = []
+    unavailable: dict[str, str] = {}
+    methods: dict[str, str] = {}
+    for bid in ids:  # can each back-end answer on the observed data? (a costly one is not tried twice)
+        try:
+            backend = make_backend(bid, **run_opts[bid])
+            fit = backend.fit(design, seed=seed, progress=False) if bid not in costly else None
+        except InputError as exc:
+            unavailable[bid] = str(exc)
+            continue
+        if isinstance(fit, Unavailable):
+            unavailable[bid] = fit.reason
+            continue
+        methods[bid] = "batched across datasets" if hasattr(backend, "reject_many") else "refitted per dataset"
+    return ids, run_opts, costly, unavailable, methods
+
+
+def _run_study(state: dict[str, Any], freq: list[str], costly: list[str], unavailable: dict[str, str],
+               bounds: list[tuple[int, int]], chunk_seqs: list[np.random.SeedSequence], chunk_root: np.random.SeedSequence,
+               n_workers: int, notes: list[str], *, progress: bool, n_datasets: int, costly_datasets: int
+               ) -> tuple[dict[str, Any], dict[str, Any], int]:
+    """Run every chunk of datasets (in worker processes when that pays), then the costly back-ends
+    on their few datasets: rejection rates per back-end under the null and under power, and the
+    number of worker processes used."""
+    results: list[dict[str, Any] | None] = [None] * len(bounds)
+    alpha, power = state["alpha"], state["power"]
+    bar = _progress_bar(progress, n_datasets)
+    try:
+        used_workers = 1
+        if freq:
+            t0 = time.perf_counter()
+            results[0] = _run_chunk(state, *bounds[0], chunk_seqs[0])
+            _advance(bar, bounds[0])
+            rest = list(range(1, len(bounds)))
+            expected = (time.perf_counter() - t0) * len(rest)
+            if rest and n_workers > 1 and expected > PARALLEL_MIN_SECONDS:
+                used_workers = n_workers
+                with ProcessPoolExecutor(max_workers=n_workers, initializer=_init_worker, initargs=(state,)) as pool:
+                    futs = {i: pool.submit(_worker_chunk, *bounds[i], chunk_seqs[i]) for i in rest}
+                    for i, fut in futs.items():
+                        results[i] = fut.result()
+                        _advance(bar, bounds[i])
+            else:
+                for i in rest:
+                    results[i] = _run_chunk(state, *bounds[i], chunk_seqs[i])
+                    _advance(bar, bounds[i])
+        fp: dict[str, Any] = {}
+        pw: dict[str, Any] = {}
+        for bid in freq:
+            parts = [r[bid] for r in results if r is not None]
+            for key, target in (("null", fp), ("power", pw)):
+                if key in parts[0]:
+                    target[bid] = _rate(np.concatenate([p[key][0] for p in parts]), sum(p[key][1] for p in parts))
+        for bid in (b for b in costly if b not in unavailable):
+            m = min(costly_datasets, n_datasets)
+            res = _run_chunk({**state, "ids": [bid]}, 0, m, chunk_root.spawn(1)[0])
+            fp[bid] = _rate(*res[bid]["null"])
+            if power:
+                pw[bid] = _rate(*res[bid]["power"])
+            notes.append(f"{bid} was run on the first {m} datasets only (each is a full fit); its rate is the share "
+                         f"whose {100 * (1 - alpha):g}% interval of the product term excludes zero.")
+    finally:
+        if bar is not None:
+            bar.stop()
+    return fp, pw, used_workers
+
+
 def calibrate(
     design: Design,
     backend_ids: Sequence[str],
@@ -219,19 +323,7 @@ def calibrate(
     SE of a rate p̂ over N datasets is sqrt(p̂(1 − p̂)/N). Design in the style of Long & Ervin (2000).
     """
     ids = check_ids(list(backend_ids))
-    if (isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer))
-            or not MIN_DATASETS <= n_datasets <= MAX_DATASETS):
-        raise option_error("n_datasets", f"a whole number of simulated datasets from {MIN_DATASETS} to {MAX_DATASETS:,}",
-                           n_datasets)
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise option_error("seed", "a whole number ≥ 0", seed)
-    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer)) or workers < 1):
-        raise option_error("workers", "a whole number ≥ 1 (or None for the available cores)", workers)
-    if isinstance(costly_datasets, bool) or not isinstance(costly_datasets, (int, np.integer)) or costly_datasets < 1:
-        raise option_error("costly_datasets", "a whole number ≥ 1", costly_datasets)
-    alpha = design.spec.alpha if alpha is None else alpha
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
-        raise option_error("alpha", "a number in (0, 1)", alpha)
+    alpha = _check_arguments(n_datasets, seed, workers, costly_datasets, design.spec.alpha if alpha is None else alpha)
     options = {str(k).lower(): dict(v) for k, v in dict(options or {}).items()}
     t_start = time.perf_counter()
     n_datasets = int(n_datasets)
@@ -242,81 +334,18 @@ def calibrate(
     noise_root, chunk_root = np.random.SeedSequence(int(seed)).spawn(2)
     noise_seqs = noise_root.spawn(n_datasets)
 
-    run_opts: dict[str, dict[str, Any]] = {bid: dict(options.get(bid, {})) for bid in ids}
-    costly: list[str] = []
-    for bid in ids:
-        klass = backend_class(bid)
-        run_opts[bid].update(getattr(klass, "calibration_options", {}))
-        if getattr(klass, "costly", False):
-            costly.append(bid)
-        note = getattr(klass, "calibration_note", "")
-        if note and (include_costly or bid not in costly):
-            notes.append(note)  # said only of a back-end that is calibrated
-    if not include_costly:
-        for bid in costly:
-            notes.append(f"{bid} was not calibrated (each simulated dataset would need a full fit); ask for it "
-                         "with calibrate_costly=True (on the command line: --calibrate-costly).")
-        ids = [b for b in ids if b not in costly]
-        costly = []
-    unavailable: dict[str, str] = {}
-    methods: dict[str, str] = {}
-    for bid in ids:  # can each back-end answer on the observed data? (a costly one is not tried twice)
-        try:
-            backend = make_backend(bid, **run_opts[bid])
-            fit = backend.fit(design, seed=int(seed), progress=False) if bid not in costly else None
-        except InputError as exc:
-            unavailable[bid] = str(exc)
-            continue
-        if isinstance(fit, Unavailable):
-            unavailable[bid] = fit.reason
-            continue
-        methods[bid] = "batched across datasets" if hasattr(backend, "reject_many") else "refitted per dataset"
+    ids, run_opts, costly, unavailable, methods = _prepare_backends(design, ids, options, notes, include_costly,
+                                                                    int(seed))
     freq = [b for b in ids if b not in unavailable and b not in costly]
     state = {"design": design, "ids": freq, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
              "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power)}
     bounds = [(s, min(s + CHUNK, n_datasets)) for s in range(0, n_datasets, CHUNK)]
     chunk_seqs = chunk_root.spawn(len(bounds))
-    results: list[dict[str, Any] | None] = [None] * len(bounds)
     n_workers = min(_cpu_count() if workers is None else int(workers), len(bounds))
 
-    bar = _progress_bar(progress, n_datasets)
-    try:
-        used_workers = 1
-        if freq:
-            t0 = time.perf_counter()
-            results[0] = _run_chunk(state, *bounds[0], chunk_seqs[0])
-            _advance(bar, bounds[0])
-            rest = list(range(1, len(bounds)))
-            expected = (time.perf_counter() - t0) * len(rest)
-            if rest and n_workers > 1 and expected > PARALLEL_MIN_SECONDS:
-                used_workers = n_workers
-                with ProcessPoolExecutor(max_workers=n_workers, initializer=_init_worker, initargs=(state,)) as pool:
-                    futs = {i: pool.submit(_worker_chunk, *bounds[i], chunk_seqs[i]) for i in rest}
-                    for i, fut in futs.items():
-                        results[i] = fut.result()
-                        _advance(bar, bounds[i])
-            else:
-                for i in rest:
-                    results[i] = _run_chunk(state, *bounds[i], chunk_seqs[i])
-                    _advance(bar, bounds[i])
-        fp: dict[str, Any] = {}
-        pw: dict[str, Any] = {}
-        for bid in freq:
-            parts = [r[bid] for r in results if r is not None]
-            for key, target in (("null", fp), ("power", pw)):
-                if key in parts[0]:
-                    target[bid] = _rate(np.concatenate([p[key][0] for p in parts]), sum(p[key][1] for p in parts))
-        for bid in (b for b in costly if b not in unavailable):
-            m = min(int(costly_datasets), n_datasets)
-            res = _run_chunk({**state, "ids": [bid]}, 0, m, chunk_root.spawn(1)[0])
-            fp[bid] = _rate(*res[bid]["null"])
-            if power:
-                pw[bid] = _rate(*res[bid]["power"])
-            notes.append(f"{bid} was run on the first {m} datasets only (each is a full fit); its rate is the share "
-                         f"whose {100 * (1 - alpha):g}% interval of the product term excludes zero.")
-    finally:
-        if bar is not None:
-            bar.stop()
+    fp, pw, used_workers = _run_study(state, freq, costly, unavailable, bounds, chunk_seqs, chunk_root, n_workers, notes,
+                                      progress=progress, n_datasets=n_datasets,
+                                      costly_datasets=int(costly_datasets))
     for bid, reason in unavailable.items():
         fp[bid] = {"rate": None, "mc_se": None, "n": 0, "failed": n_datasets}
         if power:
