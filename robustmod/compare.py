@@ -171,6 +171,7 @@ class Comparison:
         }
         if self.calibration is not None:
             out["calibration"] = jsonable(self.calibration)
+        out["tables"] = [jsonable(t.to_dict()) for t in self._tables]
         return out
 
     def tables(self) -> list[Table]:

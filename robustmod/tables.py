@@ -101,6 +101,20 @@ class Table:
         """Rows as dicts keyed by column key (NotApplicable kept as is)."""
         return [dict(zip(self.keys, row)) for row in self.rows]
 
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON: columns with their labels, kinds, level and scale; rows keyed by column;
+        a cell that does not apply is null and its reason is listed under ``not_applicable``."""
+        reasons = [{"row": i, "column": k, "reason": c.reason}
+                   for i, row in enumerate(self.rows) for k, c in zip(self.keys, row) if isinstance(c, NotApplicable)]
+        return {
+            "key": self.key, "title": self.title, "source": self.source, "level": self.level, "scale": self.scale,
+            "columns": [{"key": c.key, "label": c.label, "kind": c.kind, "level": c.level, "scale": c.scale,
+                         "pair": c.pair, "hidden": c.hidden} for c in self.columns],
+            "rows": [{k: (None if isinstance(c, NotApplicable) else c) for k, c in zip(self.keys, row)}
+                     for row in self.rows],
+            "not_applicable": reasons, "notes": list(self.notes),
+        }
+
     def to_frame(self) -> pd.DataFrame:
         """A pandas DataFrame with machine keys as columns; NotApplicable becomes None."""
         import pandas as pd

@@ -266,3 +266,15 @@ def test_figures_with_labels_have_legends(demo: object) -> None:
             labelled = [h for h in ax.get_legend_handles_labels()[1] if not h.startswith("_")]
             if labelled:
                 assert ax.get_legend() is not None or fig.legends, (func.__name__, labelled)
+
+
+def test_results_json_carries_the_tables_beside_the_contract(appendix: Path) -> None:
+    import json
+
+    res = json.loads((appendix / "results.json").read_text())
+    tables = {t["key"]: t for t in res["tables"]}
+    assert list(tables)[:3] == ["product_term", "slopes", "regions"]
+    for row in tables["product_term"]["rows"]:
+        assert row["estimate"] == res["backends"][row["backend"]]["interaction"]["estimate"]
+    reasons = tables["product_term"]["not_applicable"]
+    assert reasons and all(r["reason"] for r in reasons)  # e.g. no posterior SD for a Wald fit
