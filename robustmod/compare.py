@@ -20,19 +20,10 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import (
-    CONSTANT_VARIANCE,
-    DEFAULT_BACKENDS,
-    check_ids,
-    make_backend,
-)
-from .calibrate import MAX_DATASETS, MIN_DATASETS
-from .comparison_tables import (
-    backend_tables,
-    product_term_table,
-    regions_table,
-    slopes_table,
-)
+from .backends.registry import CONSTANT_VARIANCE, DEFAULT_BACKENDS, check_ids, make_backend
+from .calibrate import MAX_DATASETS, MIN_DATASETS, calibrate, calibration_table
+from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
+from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .data import read_table
 from .design import Design, build_design
 from .errors import InputError, option_error
@@ -134,7 +125,7 @@ class Comparison:
     design: Design
     results: dict[str, BackendResult]
     primary: str
-    diagnostics: dict[str, Any]
+    diagnostics: VarianceDiagnostics
     calibration: dict[str, Any] | None
     warnings: tuple[str, ...]
     data_source: str | None = None
@@ -182,16 +173,10 @@ class Comparison:
 
     @cached_property
     def _tables(self) -> tuple[Table, ...]:
-        from .calibrate import calibration_table
-        from .diagnostics import diagnostics_tables
-        from .linearity import linearity_table
-
         out = [product_term_table(self), slopes_table(self)]
         if any(r.significance_region for r in self.results.values()):
             out.append(regions_table(self))
-        out += diagnostics_tables(self.diagnostics)
-        if self.diagnostics.get("linearity") and self.diagnostics["linearity"].get("bins"):
-            out.append(linearity_table(self.diagnostics["linearity"]))
+        out += self.diagnostics.tables()
         if self.calibration:
             out.append(calibration_table(self.calibration))
         for r in self.results.values():
@@ -432,13 +417,9 @@ def compare(
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
             "Choose another primary back-end (e.g. hc0) or fix the data."
         )
-    from .diagnostics import variance_diagnostics
-
     diagnostics = variance_diagnostics(design, alpha=spec.alpha)
     calib = None
     if calibration is not None:
-        from .calibrate import calibrate
-
         calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
                           options=options, progress=progress)
     warnings = tuple(design.warnings)

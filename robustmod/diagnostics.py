@@ -13,7 +13,8 @@
 """
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -24,7 +25,7 @@ from .backends.ols import ols_fit
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
-from .linearity import binning_check
+from .linearity import binning_check, linearity_table
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
 #: Share of middle rows the Goldfeld–Quandt split drops.
@@ -194,7 +195,58 @@ def se_gap(design: Design) -> dict[str, Any] | None:
     }
 
 
-def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
+@dataclass(frozen=True)
+class VarianceDiagnostics(Mapping[str, Any]):
+    """The variance diagnostics of one design: each test's result, and for a check that does
+    not apply (no continuous moderator, too few rows) a :class:`NotApplicable` with the reason.
+
+    Reads as a mapping with the keys of the results contract (``breusch_pagan``, ``white``,
+    ``goldfeld_quandt``, ``residual_spread``, ``se_gap``, ``linearity``, ``non_constant_variance``,
+    ``alpha``; a check that does not apply is None there); ``to_dict()`` is that mapping as a dict.
+    """
+
+    alpha: float
+    breusch_pagan: dict[str, Any]
+    white: dict[str, Any]
+    goldfeld_quandt: dict[str, Any] | NotApplicable
+    residual_spread: dict[str, Any] | NotApplicable
+    se_gap: dict[str, Any] | NotApplicable
+    linearity: dict[str, Any] | NotApplicable
+    non_constant_variance: bool
+    source: str = "diagnostics"
+    scale: str = "OLS residuals, in outcome units; moderator bins on the raw scale"
+
+    _KEYS = ("alpha", "breusch_pagan", "white", "goldfeld_quandt", "residual_spread", "se_gap", "linearity",
+             "non_constant_variance")
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: None if isinstance(v, NotApplicable) else v for k in self._KEYS for v in (getattr(self, k),)}
+
+    def __getitem__(self, key: str) -> Any:
+        if key not in self._KEYS:
+            raise KeyError(key)
+        v = getattr(self, key)
+        return None if isinstance(v, NotApplicable) else v
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._KEYS)
+
+    def __len__(self) -> int:
+        return len(self._KEYS)
+
+    def tables(self) -> list[Table]:
+        """The diagnostics tables, in display order (the linearity check included)."""
+        out = diagnostics_tables(self)
+        if not isinstance(self.linearity, NotApplicable) and self.linearity.get("bins"):
+            out.append(linearity_table(self.linearity))
+        return out
+
+
+def _or_reason(value: dict[str, Any] | None, reason: str) -> dict[str, Any] | NotApplicable:
+    return NotApplicable(reason) if value is None else value
+
+
+def variance_diagnostics(design: Design, alpha: float = 0.05) -> VarianceDiagnostics:
     """All diagnostics of the results contract; every value JSON-ready (finite floats or None).
 
     Parameters
@@ -204,8 +256,9 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
 
     Returns
     -------
-    dict with ``breusch_pagan``, ``white``, ``goldfeld_quandt``, ``residual_spread``, ``se_gap``,
-    ``linearity`` and ``non_constant_variance``.
+    VarianceDiagnostics
+        A mapping with ``breusch_pagan``, ``white``, ``goldfeld_quandt``, ``residual_spread``,
+        ``se_gap``, ``linearity`` and ``non_constant_variance``; ``to_dict()`` gives a plain dict.
 
     Notes
     -----
@@ -216,18 +269,16 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
     e = ols_residuals(design)
-    out: dict[str, Any] = {
-        "alpha": float(alpha),
-        "breusch_pagan": breusch_pagan(design, e),
-        "white": white(design, e),
-        "goldfeld_quandt": goldfeld_quandt(design),
-        "residual_spread": residual_spread(design, e),
-        "se_gap": se_gap(design),
-        "linearity": binning_check(design, alpha=alpha),
-    }
-    tests = [out[k] for k in ("breusch_pagan", "white", "goldfeld_quandt") if out[k] is not None]
-    out["non_constant_variance"] = any(t["p"] is not None and t["p"] < alpha for t in tests)
-    return out
+    bp, wh, gq = breusch_pagan(design, e), white(design, e), goldfeld_quandt(design)
+    tests = [t for t in (bp, wh, gq) if t is not None]
+    return VarianceDiagnostics(
+        alpha=float(alpha), breusch_pagan=bp, white=wh,
+        goldfeld_quandt=_or_reason(gq, "no continuous moderator, or halves too small to fit"),
+        residual_spread=_or_reason(residual_spread(design, e), "no moderator"),
+        se_gap=_or_reason(se_gap(design), "a standard error could not be computed (e.g. leverage 1)"),
+        linearity=_or_reason(binning_check(design, alpha=alpha), "no continuous moderator"),
+        non_constant_variance=any(t["p"] is not None and t["p"] < alpha for t in tests),
+    )
 
 
 # ---- the tables every display renders ---------------------------------------------------------

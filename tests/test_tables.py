@@ -278,3 +278,21 @@ def test_results_json_carries_the_tables_beside_the_contract(appendix: Path) -> 
         assert row["estimate"] == res["backends"][row["backend"]]["interaction"]["estimate"]
     reasons = tables["product_term"]["not_applicable"]
     assert reasons and all(r["reason"] for r in reasons)  # e.g. no posterior SD for a Wald fit
+
+
+def test_variance_diagnostics_are_typed_with_reasons() -> None:
+    from robustmod.design import build_design
+    from robustmod.diagnostics import VarianceDiagnostics, variance_diagnostics
+    from robustmod.spec import ModelSpec
+
+    df = demo_data()
+    df["site"] = np.array(["north", "south"])[np.arange(len(df)) % 2]
+    spec = ModelSpec(formula="grain_yield ~ fertiliser * C(site)", focal="fertiliser", moderators=("site",))
+    diag = variance_diagnostics(build_design(df, spec))
+    assert isinstance(diag, VarianceDiagnostics)
+    # Goldfeld–Quandt needs a continuous moderator to sort by (Goldfeld & Quandt 1965): the reason is kept.
+    assert isinstance(diag.goldfeld_quandt, NotApplicable) and diag.goldfeld_quandt.reason
+    assert diag["goldfeld_quandt"] is None and diag.to_dict()["goldfeld_quandt"] is None
+    tests = next(t for t in diag.tables() if t.key == "variance_tests")
+    gq = next(r for r in tests.records() if r["test"] == "goldfeld_quandt")
+    assert isinstance(gq["p"], NotApplicable)
