@@ -19,7 +19,8 @@ import dataclasses
 import math
 import os
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass
 from concurrent.futures import ProcessPoolExecutor
 from typing import Any
 
@@ -168,6 +169,51 @@ def _cpu_count() -> int:
         return max(1, os.cpu_count() or 1)
 
 
+@dataclass(frozen=True)
+class Calibration(Mapping[str, Any]):
+    """Simulated false-positive rate and power of each back-end on one design.
+
+    Reads as a mapping with the keys of the results contract (``to_dict()`` gives the dict);
+    rates are shares of ``n_datasets`` simulated datasets at level ``alpha`` with their Monte
+    Carlo SEs; a back-end that could not be calibrated has null rates and its reason under
+    ``unavailable``; ``notes`` are sentences.
+    """
+
+    n_datasets: int
+    alpha: float
+    seed: int
+    false_positive_rate: dict[str, dict[str, Any]]
+    power: dict[str, dict[str, Any]] | None
+    nominal_mc_se: float
+    simulated_from: str
+    product_term_under_power: dict[str, float]
+    methods: dict[str, str]
+    unavailable: dict[str, str]
+    workers: int
+    seconds: float
+    notes: tuple[str, ...]
+    source: str = "calibrate"
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {f.name: getattr(self, f.name) for f in dataclasses.fields(self) if f.name != "source"}
+        out["notes"] = list(self.notes)
+        return out
+
+    def __getitem__(self, key: str) -> Any:
+        if key == "source" or key not in self.__dataclass_fields__:
+            raise KeyError(key)
+        return list(self.notes) if key == "notes" else getattr(self, key)
+
+    def __iter__(self) -> Iterator[str]:
+        return (f.name for f in dataclasses.fields(self) if f.name != "source")
+
+    def __len__(self) -> int:
+        return len(dataclasses.fields(self)) - 1
+
+    def tables(self) -> list[Table]:
+        return [calibration_table(self)]
+
+
 def _check_arguments(n_datasets: Any, seed: Any, workers: Any, costly_datasets: Any, alpha: Any) -> float:
     """One-line errors for bad calibration options; returns alpha as a float."""
     if (isinstance(n_datasets, bool) or not isinstance(n_datasets, (int, np.integer))
@@ -285,7 +331,7 @@ def calibrate(
     alpha: float | None = None,
     costly_datasets: int = COSTLY_DATASETS,
     include_costly: bool = True,
-) -> dict[str, Any]:
+) -> Calibration:
     """Simulated false-positive rate and power of the product-term test of each back-end.
 
     Parameters
@@ -313,8 +359,9 @@ def calibrate(
 
     Returns
     -------
-    dict with ``n_datasets``, ``alpha``, ``false_positive_rate`` and ``power``
-    ({id: {rate, mc_se, n, failed}}), ``simulated_from`` and ``notes``.
+    Calibration
+        A mapping with ``n_datasets``, ``alpha``, ``false_positive_rate`` and ``power``
+        ({id: {rate, mc_se, n, failed}}), ``simulated_from`` and ``notes``; ``to_dict()`` is a dict.
 
     Notes
     -----
@@ -352,21 +399,15 @@ def calibrate(
             pw[bid] = {"rate": None, "mc_se": None, "n": 0, "failed": n_datasets}
         notes.append(f"{bid}: not calibrated ({reason})")
     inter = design.interaction_rows() @ beta
-    return {
-        "n_datasets": n_datasets,
-        "alpha": float(alpha),
-        "seed": int(seed),
-        "false_positive_rate": {b: fp[b] for b in ids if b in fp},
-        "power": {b: pw[b] for b in ids if b in pw} if power else None,
-        "nominal_mc_se": math.sqrt(alpha * (1 - alpha) / n_datasets),
-        "simulated_from": source,
-        "product_term_under_power": {t: float(v) for t, v in zip(design.interaction_terms, inter)},
-        "methods": methods,
-        "unavailable": unavailable,
-        "workers": used_workers,
-        "seconds": time.perf_counter() - t_start,
-        "notes": notes,
-    }
+    return Calibration(
+        n_datasets=n_datasets, alpha=float(alpha), seed=int(seed),
+        false_positive_rate={b: fp[b] for b in ids if b in fp},
+        power={b: pw[b] for b in ids if b in pw} if power else None,
+        nominal_mc_se=math.sqrt(alpha * (1 - alpha) / n_datasets), simulated_from=source,
+        product_term_under_power={t: float(v) for t, v in zip(design.interaction_terms, inter)},
+        methods=methods, unavailable=unavailable, workers=used_workers, seconds=time.perf_counter() - t_start,
+        notes=tuple(notes),
+    )
 
 
 def _progress_bar(progress: bool, total: int) -> Any:

@@ -21,7 +21,7 @@ import pandas as pd
 from . import effects
 from .backends.base import Fit, Unavailable
 from .backends.registry import CONSTANT_VARIANCE, DEFAULT_BACKENDS, check_ids, make_backend
-from .calibrate import MAX_DATASETS, MIN_DATASETS, calibrate, calibration_table
+from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
 from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
 from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .data import read_table
@@ -126,7 +126,7 @@ class Comparison:
     results: dict[str, BackendResult]
     primary: str
     diagnostics: VarianceDiagnostics
-    calibration: dict[str, Any] | None
+    calibration: Calibration | None
     warnings: tuple[str, ...]
     data_source: str | None = None
 
@@ -178,7 +178,7 @@ class Comparison:
             out.append(regions_table(self))
         out += self.diagnostics.tables()
         if self.calibration:
-            out.append(calibration_table(self.calibration))
+            out += self.calibration.tables()
         for r in self.results.values():
             out += backend_tables(r)
         return tuple(out)
