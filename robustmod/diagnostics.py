@@ -25,7 +25,7 @@ from .backends.ols import ols_fit
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
-from .linearity import binning_check, linearity_table
+from .linearity import BinningCheck, binning_check
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
 #: Share of middle rows the Goldfeld–Quandt split drops.
@@ -211,7 +211,7 @@ class VarianceDiagnostics(Mapping[str, Any]):
     goldfeld_quandt: dict[str, Any] | NotApplicable
     residual_spread: dict[str, Any] | NotApplicable
     se_gap: dict[str, Any] | NotApplicable
-    linearity: dict[str, Any] | NotApplicable
+    linearity: BinningCheck | NotApplicable
     non_constant_variance: bool
     source: str = "diagnostics"
     scale: str = "OLS residuals, in outcome units; moderator bins on the raw scale"
@@ -220,7 +220,10 @@ class VarianceDiagnostics(Mapping[str, Any]):
              "non_constant_variance")
 
     def to_dict(self) -> dict[str, Any]:
-        return {k: None if isinstance(v, NotApplicable) else v for k in self._KEYS for v in (getattr(self, k),)}
+        out = {k: None if isinstance(v, NotApplicable) else v for k in self._KEYS for v in (getattr(self, k),)}
+        if out["linearity"] is not None:
+            out["linearity"] = out["linearity"].to_dict()
+        return out
 
     def __getitem__(self, key: str) -> Any:
         if key not in self._KEYS:
@@ -238,11 +241,11 @@ class VarianceDiagnostics(Mapping[str, Any]):
         """The diagnostics tables, in display order (the linearity check included)."""
         out = diagnostics_tables(self)
         if not isinstance(self.linearity, NotApplicable) and self.linearity.get("bins"):
-            out.append(linearity_table(self.linearity))
+            out.append(self.linearity.table())
         return out
 
 
-def _or_reason(value: dict[str, Any] | None, reason: str) -> dict[str, Any] | NotApplicable:
+def _or_reason(value: Any, reason: str) -> Any:
     return NotApplicable(reason) if value is None else value
 
 

@@ -18,7 +18,8 @@ a slope that rests on extrapolation; both are flagged.
 """
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
@@ -40,6 +41,44 @@ MIN_BIN_ROWS = 20
 MIN_FOCAL_SPREAD = 0.25
 #: Relative size below which a residualised column counts as spanned by the model.
 SPAN_TOL = 1e-8
+
+
+@dataclass(frozen=True)
+class BinningCheck(Mapping[str, Any]):
+    """The binning check of one design along one moderator (raw scale), at level 1 − alpha.
+
+    Reads as a mapping with the keys of the results (``to_dict()`` gives the dict); ``wald`` and
+    ``nonlinear`` are None when no test was possible, and ``notes`` say why.
+    """
+
+    moderator: str
+    cut_points: list[float]
+    bins: list[dict[str, Any]]
+    wald: dict[str, Any] | None
+    nonlinear: bool | None
+    alpha: float
+    notes: tuple[str, ...]
+    thin_bins: bool = False
+    low_focal_variation: bool = False
+    method: str = "binning estimator (Hainmueller, Mummolo & Xu 2019), HC3"
+    source: str = "linearity"
+
+    def to_dict(self) -> dict[str, Any]:
+        return {k: self[k] for k in self}
+
+    def __getitem__(self, key: str) -> Any:
+        if key == "source" or key not in self.__dataclass_fields__:
+            raise KeyError(key)
+        return list(self.notes) if key == "notes" else getattr(self, key)
+
+    def __iter__(self) -> Iterator[str]:
+        return (f.name for f in fields(self) if f.name != "source")
+
+    def __len__(self) -> int:
+        return len(fields(self)) - 1
+
+    def table(self) -> Table:
+        return linearity_table(self)
 
 
 def _bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
@@ -192,7 +231,7 @@ def _bin_rows(G: np.ndarray, w: np.ndarray, d: np.ndarray, idx: np.ndarray, pres
 
 def binning_check(design: Design, *, moderator: str | None = None, bins: int | Sequence[float] = DEFAULT_BINS,
                   alpha: float = 0.05, min_bin_rows: int = MIN_BIN_ROWS,
-                  min_focal_spread: float = MIN_FOCAL_SPREAD) -> dict[str, Any] | None:
+                  min_focal_spread: float = MIN_FOCAL_SPREAD) -> BinningCheck | None:
     """Binning estimator and Wald test of linearity (Hainmueller, Mummolo & Xu 2019).
 
     Parameters
@@ -210,7 +249,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
 
     Returns
     -------
-    dict or None
+    BinningCheck or None
         None when the model has no continuous moderator. ``nonlinear`` is True when the Wald
         test rejects linearity at ``alpha``.
 
@@ -243,8 +282,9 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
         notes.append("Some bins are empty (many tied moderator values); they were left out.")
     J = present.size
     if J < 2:
-        return {"moderator": moderator, "cut_points": [float(c) for c in cuts], "bins": [], "wald": None,
-                "nonlinear": None, "alpha": alpha, "notes": notes + ["Fewer than two non-empty bins; no check possible."]}
+        return BinningCheck(moderator=moderator, cut_points=[float(c) for c in cuts], bins=[], wald=None,
+                            nonlinear=None, alpha=float(alpha),
+                            notes=(*notes, "Fewer than two non-empty bins; no check possible."))
 
     G = (idx[:, None] == present[None, :]).astype(float)  # n × J
     med = np.array([np.median(w[idx == j]) for j in present])  # J bins, not rows
@@ -269,18 +309,9 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
 
     wald = _linearity_wald(design, Xbin, alpha, notes)
     nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < alpha)
-    return {
-        "moderator": moderator,
-        "method": "binning estimator (Hainmueller, Mummolo & Xu 2019), HC3",
-        "cut_points": [float(c) for c in cuts],
-        "bins": bin_rows,
-        "wald": wald,
-        "nonlinear": nonlinear,
-        "thin_bins": thin_any,
-        "low_focal_variation": sparse_any,
-        "alpha": float(alpha),
-        "notes": notes,
-    }
+    return BinningCheck(moderator=moderator, cut_points=[float(c) for c in cuts], bins=bin_rows, wald=wald,
+                        nonlinear=nonlinear, alpha=float(alpha), notes=tuple(notes), thin_bins=thin_any,
+                        low_focal_variation=sparse_any)
 
 
 def linearity_table(lin: Mapping[str, Any]) -> Table:

@@ -337,10 +337,10 @@ def test_slope_figure_draws_the_slope_curves(small: tuple[object, Path]) -> None
     fig = F.slope_figure(c)
     ax = fig.axes[0]
     for bid, r in c.results.items():
-        line = next(l for l in ax.lines if l.get_label().startswith(f"{bid}"))
+        line = next(ln for ln in ax.lines if ln.get_label().startswith(f"{bid}"))
         np.testing.assert_array_equal(line.get_ydata(), np.asarray(r.slope_curve["estimate"], dtype=float))
     # Johnson-Neyman boundaries inside the shown range appear as vertical lines.
-    shown = {round(float(l.get_xdata()[0]), 9) for l in ax.lines if len(set(l.get_xdata())) == 1 and len(l.get_xdata()) == 2}
+    shown = {round(float(ln.get_xdata()[0]), 9) for ln in ax.lines if len(set(ln.get_xdata())) == 1 and len(ln.get_xdata()) == 2}
     info = c.design.moderators[DEMO_MODERATOR]
     for r in c.results.values():
         for b in r.significance_region["boundaries"]:

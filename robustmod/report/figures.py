@@ -301,7 +301,7 @@ def linearity_figure(comparison: "Comparison") -> "Figure":
     """The binning check: the focal slope estimated within bins of the moderator, against the
     linear-interaction line (drawn from ``diagnostics['linearity']``)."""
     lin = (comparison.diagnostics or {}).get("linearity")
-    if not isinstance(lin, dict):
+    if lin is None:
         raise MissingInput("the diagnostics hold no binning (linearity) check")
     if not lin.get("bins"):
         raise MissingInput("the binning check holds no per-bin slopes")
