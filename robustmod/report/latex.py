@@ -28,7 +28,7 @@ _BREAK_AFTER = set("_:./")
 _SIZES = ((r"\footnotesize", 4.1), (r"\scriptsize", 3.6), (r"\tiny", 2.7))
 #: The text width assumed when sharing out columns: article class at 10 pt, 345 pt.
 _TEXT_WIDTH = 345.0
-_TABCOLSEP = 3.0
+_TABCOLSEP = 2.5
 
 
 def latex_escape(text: Any, *, breakable: bool = False) -> str:
@@ -45,14 +45,17 @@ def latex_escape(text: Any, *, breakable: bool = False) -> str:
     return "".join(out)
 
 
-def _natural(texts: Sequence[str], numeric: bool) -> tuple[float, float]:
-    """(wanted, smallest) width of a column in characters."""
-    longest = max((len(t) for t in texts), default=1)
-    word = max((len(w) for t in texts for w in re.split(r"[\s_:./]", t)), default=1)
+def _natural(header: str, texts: Sequence[str], numeric: bool) -> tuple[float, float]:
+    """(wanted, smallest) width of a column in characters. A header word may be hyphenated, so
+    it asks for at most six characters of the smallest width."""
+    words = lambda t: re.split(r"[\s_:./\-–]", t)  # noqa: E731  (TeX may break after these)
+    head = min(max((len(w) for w in words(header)), default=1), 6)
+    longest = max([len(t) for t in texts] + [min(len(header), 12)], default=1)
     if numeric:
-        half = max((max(len(p) for p in t.split(", ")) + 1 for t in texts), default=1)
-        return float(longest), float(max(half, min(word, 10)))
-    return float(min(longest, 28)), float(min(max(word, 4), 12))
+        half = max((max(len(p) for p in t.split(", ")) for t in texts), default=1)
+        return float(longest), float(max(half, head))
+    word = max((len(w) for t in texts for w in words(t)), default=1)
+    return float(min(longest, 28)), float(max(min(max(word, 4), 12) + 1, head))  # letters run wider than digits
 
 
 def _shrink(want: list[float], least: list[float], pick: list[bool], room: float) -> list[float]:
@@ -67,8 +70,7 @@ def column_widths(header: Sequence[str], rows: Sequence[Sequence[str]], numeric:
     """The font size and each column's share of the line (the shares add up to at most 1).
 
     Text columns give way first; numbers keep their full width while they can."""
-    columns = [[h, *[r[j] for r in rows]] for j, h in enumerate(header)]
-    wants = [_natural(col[1:] + [max(col[0].split(), key=len, default="")], num) for col, num in zip(columns, numeric)]
+    wants = [_natural(h, [r[j] for r in rows], num) for j, (h, num) in enumerate(zip(header, numeric))]
     text = [not n for n in numeric]
     for size, cw in _SIZES:
         want = [(w + 1) * cw + 2 * _TABCOLSEP for w, _ in wants]  # one character spare: letters vary in width
