@@ -8,7 +8,6 @@ the appendix never disagree.
 from __future__ import annotations
 
 import html
-import math
 import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -22,13 +21,17 @@ import pandas as pd
 from . import effects
 from .backends.base import Fit, Unavailable
 from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend
+from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
+from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
 from .data import NaValues, load_data
 from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
+from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .design import Design, build_design
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
 from .spec import ModelSpec
 from .steps import StepCallback, report_step
+from .tables import Table, display_rows, render_html, render_text
 
 SCHEMA = "robustmod/results-v1"
 
@@ -53,30 +56,6 @@ CAUTION_LINE = ("Cautions: the primary back-end must be chosen before looking (t
                 "menu); interactions need a hypothesis and overfit easily; regions outside the observed moderator "
                 "range are extrapolation; association is not causation; follow your field's reporting standards "
                 "and consult a qualified statistician where decisions carry consequences.")
-
-
-def fmt(x: Any, digits: int = 3) -> str:
-    """Compact number for tables: 3 significant digits, '—' for missing."""
-    if x is None:
-        return "—"
-    if isinstance(x, (bool, np.bool_)):
-        return "yes" if x else "no"
-    if isinstance(x, (int, np.integer)):
-        return str(int(x))
-    x = float(x)
-    if not math.isfinite(x):
-        return "—"
-    if x == 0:
-        return "0"
-    if abs(x) >= 1e5 or abs(x) < 1e-3:
-        return f"{x:.{digits - 1}e}"
-    return f"{x:.{digits}g}"
-
-
-def fmt_p(p: Any) -> str:
-    if p is None:
-        return "—"
-    return "< 0.001" if p < 0.001 else f"{p:.3f}"
 
 
 @dataclass(frozen=True, eq=False)
@@ -148,8 +127,8 @@ class Comparison:
     design: Design
     results: dict[str, BackendResult]
     primary: str
-    diagnostics: dict[str, Any]
-    calibration: dict[str, Any] | None
+    diagnostics: VarianceDiagnostics
+    calibration: Calibration | None
     warnings: tuple[str, ...]
     data_source: str | None = None
 
@@ -185,91 +164,59 @@ class Comparison:
         }
         if self.calibration is not None:
             out["calibration"] = jsonable(self.calibration)
+        out["tables"] = [jsonable(t.to_dict()) for t in self._tables]
         return out
 
-    def table(self) -> pd.DataFrame:
-        """One row per back-end: the product term, its interval, p, support, region boundaries, slopes."""
-        rows = []
-        for bid, r in self.results.items():
-            row: dict[str, Any] = {"backend": bid, "label": r.label}
-            it = r.interaction or {}
-            row["estimate"] = it.get("estimate")
-            ci = it.get("ci") or [None, None]
-            row["ci_low"], row["ci_high"] = ci
-            row["p"] = it.get("p")
-            row["prob_positive"] = it.get("prob_positive")
-            row["supported"] = it.get("supported") if r.available else None
-            row["reliable"] = r.reliable
-            reg = r.significance_region
-            row["jn_boundaries"] = ", ".join(fmt(b) for b in reg["boundaries"]) if reg and reg["boundaries"] else ("none" if reg else None)
-            for ce in r.conditional_effects:
-                key = "slope at " + ", ".join(f"{k}={fmt(v) if not isinstance(v, str) else v}" for k, v in ce["at"].items())
-                row[key] = ce["estimate"]
-            rows.append(row)
-        return pd.DataFrame(rows).set_index("backend")
+    def tables(self) -> list[Table]:
+        """The one ordered set of named tables every display renders (terminal, Jupyter, appendix
+        HTML, Markdown, LaTeX, CSV): product term, slopes at chosen moderator values, significance
+        regions, variance diagnostics, linearity check, calibration, then each back-end's own."""
+        return list(self._tables)
 
-    # ---- one summary, three displays --------------------------------------------
+    @cached_property
+    def _tables(self) -> tuple[Table, ...]:
+        out = [product_term_table(self), slopes_table(self)]
+        if any(r.significance_region for r in self.results.values()):
+            out.append(regions_table(self))
+        out += self.diagnostics.tables()
+        if self.calibration:
+            out += self.calibration.tables()
+        for r in self.results.values():
+            out += backend_tables(r)
+        return tuple(out)
+
+    def table(self) -> pd.DataFrame:
+        """One row per back-end (index ``backend``): the product term with ``se`` and interval ends,
+        p, support, the significance region in words with numeric ``boundary_1``, ``boundary_2``, …,
+        and the slope at each chosen moderator value. Taken from :meth:`tables`."""
+        frame = self._tables[0].to_frame().set_index("backend")
+        by_key = {t.key: t for t in self._tables}
+        if "regions" in by_key:
+            reg = by_key["regions"].to_frame().set_index("backend")
+            frame = frame.join(reg.drop(columns=[c for c in ("label",) if c in reg]))
+        slopes = by_key["slopes"].to_frame()
+        for _, row in slopes.iterrows():
+            frame.loc[row["backend"], f"slope at {row['at']}"] = row["estimate"]
+        return frame
+
+    # ---- one set of tables, every display ---------------------------------------------
     def summary_lines(self) -> list[tuple[str, list[list[str]]]]:
-        """Sections of (title, rows of cells) that every display renders."""
-        d, alpha = self.design, self.spec.alpha
-        level = f"{100 * (1 - alpha):g}%"
-        head = [["back-end", "estimate", f"{level} interval", "p / P(>0)", "supported", "JN boundaries"]]
-        for bid, r in self.results.items():
-            if not r.available:
-                head.append([bid, "—", "—", "—", "unavailable", r.reason or ""])
-                continue
-            it = r.interaction or {}
-            if it.get("estimate") is None:
-                est, ci = "joint test", it.get("joint_test", {}).get("method", "")
-            else:
-                est, ci = fmt(it["estimate"]), f"[{fmt(it['ci'][0])}, {fmt(it['ci'][1])}]"
-            pp = fmt_p(it.get("p")) if it.get("p") is not None else (f"P(>0)={fmt(it.get('prob_positive'))}" if it.get("prob_positive") is not None else "—")
-            reg = r.significance_region
-            jn = (", ".join(fmt(b) for b in reg["boundaries"]) or "none") if reg else "n/a"
-            sup = ("yes" if it.get("supported") else "no") + ("" if r.reliable else " (unreliable)")
-            head.append([bid, est, ci, pp, sup, jn])
-        slopes = [["back-end", "at", "slope", f"{level} interval", "p"]]
-        for bid, r in self.results.items():
-            for ce in r.conditional_effects:
-                at = ", ".join(f"{k} = {fmt(v) if not isinstance(v, str) else v}" for k, v in ce["at"].items())
-                slopes.append([bid, at, fmt(ce["estimate"]), f"[{fmt(ce['ci'][0])}, {fmt(ce['ci'][1])}]", fmt_p(ce["p"])])
-        terms = " + ".join(d.interaction_terms)
-        out = [(f"Product term {terms} ({d.n_obs} rows used, {d.data.n_dropped} dropped; alpha = {alpha:g})", head),
-               (f"Conditional effect of {self.spec.focal} at probe values (raw moderator scale)", slopes)]
-        cal = self.calibration
-        if cal:
-            rows = [["back-end", f"false-positive rate (nominal {cal['alpha']:g})", "MC SE", "power", "MC SE"]]
-            power = cal.get("power") or {}
-            for bid, fp in cal["false_positive_rate"].items():
-                pw = power.get(bid) or {}
-                rows.append([bid, fmt(fp.get("rate")), fmt(fp.get("mc_se")), fmt(pw.get("rate")), fmt(pw.get("mc_se"))])
-            out.append((f"Calibration on this design ({cal['n_datasets']} simulated datasets; {cal.get('simulated_from', '')})",
-                        rows))
+        """Each table as (title, [header, *rows]) of display text, for renderers of their own."""
+        out = []
+        for t in self._tables:
+            cols, rows = display_rows(t)
+            out.append((t.title, [[c.label for c in cols], *rows]))
         return out
 
     def __str__(self) -> str:
-        out = []
-        for title, rows in self.summary_lines():
-            widths = [max(len(str(r[i])) for r in rows) for i in range(len(rows[0]))]
-            out.append(title)
-            for j, r in enumerate(rows):
-                out.append("  " + "  ".join(str(c).ljust(w) for c, w in zip(r, widths)))
-                if j == 0:
-                    out.append("  " + "  ".join("-" * w for w in widths))
-            out.append("")
-        out.append(self.summary["sentence"])
-        out.append(CAUTION_LINE)
-        return "\n".join(out)
+        parts = [render_text(t) for t in self._tables]
+        return "\n\n".join(parts) + "\n\n" + self.summary["sentence"] + "\n" + CAUTION_LINE
 
     def __repr__(self) -> str:
         return f"<Comparison of {len(self.results)} back-ends on {self.spec.formula!r}; primary {self.primary}>"
 
     def _repr_html_(self) -> str:
-        parts = []
-        for title, rows in self.summary_lines():
-            head = "".join(f"<th>{html.escape(c)}</th>" for c in rows[0])
-            body = "".join("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in r) + "</tr>" for r in rows[1:])
-            parts.append(f"<p><b>{html.escape(title)}</b></p><table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>")
+        parts = [render_html(t, heading="h4") for t in self._tables]
         parts.append(f"<p>{html.escape(self.summary['sentence'])}</p>")
         parts.append(f"<p><small>{html.escape(CAUTION_LINE)}</small></p>")
         return "\n".join(parts)
@@ -463,8 +410,10 @@ def compare(
     for key in options:
         if key not in ids:
             raise option_error("options", f"keyed by back-ends being run ({', '.join(ids)})", key)
-    if calibration is not None and (isinstance(calibration, bool) or not isinstance(calibration, int) or calibration < 10):
-        raise option_error("calibration", "a whole number of simulated datasets, at least 10", calibration)
+    if calibration is not None and (isinstance(calibration, bool) or not isinstance(calibration, int)
+                                    or not MIN_DATASETS <= calibration <= MAX_DATASETS):
+        raise option_error("calibration", f"a whole number of simulated datasets from {MIN_DATASETS} to "
+                           f"{MAX_DATASETS:,}", calibration)
     design = build_design(frame, spec)
     report_step(on_step, "design", started)
     results: dict[str, BackendResult] = {}
@@ -479,15 +428,11 @@ def compare(
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
             "Choose another primary back-end (e.g. hc0) or fix the data."
         )
-    from .diagnostics import variance_diagnostics  # noqa: PLC0415  (keeps import order one-way)
-
     started = time.perf_counter()
     diagnostics = variance_diagnostics(design, alpha=spec.alpha)
     report_step(on_step, "diagnostics", started)
     calib = None
     if calibration is not None:
-        from .calibrate import calibrate  # noqa: PLC0415
-
         started = time.perf_counter()
         calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
                           options=options, progress=progress)

@@ -13,6 +13,8 @@
 """
 from __future__ import annotations
 
+from collections.abc import Iterator, Mapping
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -21,9 +23,10 @@ from scipy import linalg, stats
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
-from .jsonvalues import num as _num
 from .errors import option_error
-from .linearity import binning_check
+from .jsonvalues import num as _num
+from .linearity import BinningCheck, binning_check
+from .tables import Column, NotApplicable, Table, format_number, make_table
 
 #: Share of middle rows the Goldfeld–Quandt split drops.
 GQ_DROP = 0.2
@@ -192,7 +195,61 @@ def se_gap(design: Design) -> dict[str, Any] | None:
     }
 
 
-def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
+@dataclass(frozen=True)
+class VarianceDiagnostics(Mapping[str, Any]):
+    """The variance diagnostics of one design: each test's result, and for a check that does
+    not apply (no continuous moderator, too few rows) a :class:`NotApplicable` with the reason.
+
+    Reads as a mapping with the keys of the results contract (``breusch_pagan``, ``white``,
+    ``goldfeld_quandt``, ``residual_spread``, ``se_gap``, ``linearity``, ``non_constant_variance``,
+    ``alpha``; a check that does not apply is None there); ``to_dict()`` is that mapping as a dict.
+    """
+
+    alpha: float
+    breusch_pagan: dict[str, Any]
+    white: dict[str, Any]
+    goldfeld_quandt: dict[str, Any] | NotApplicable
+    residual_spread: dict[str, Any] | NotApplicable
+    se_gap: dict[str, Any] | NotApplicable
+    linearity: BinningCheck | NotApplicable
+    non_constant_variance: bool
+    source: str = "diagnostics"
+    scale: str = "OLS residuals, in outcome units; moderator bins on the raw scale"
+
+    _KEYS = ("alpha", "breusch_pagan", "white", "goldfeld_quandt", "residual_spread", "se_gap", "linearity",
+             "non_constant_variance")
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {k: None if isinstance(v, NotApplicable) else v for k in self._KEYS for v in (getattr(self, k),)}
+        if out["linearity"] is not None:
+            out["linearity"] = out["linearity"].to_dict()
+        return out
+
+    def __getitem__(self, key: str) -> Any:
+        if key not in self._KEYS:
+            raise KeyError(key)
+        v = getattr(self, key)
+        return None if isinstance(v, NotApplicable) else v
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._KEYS)
+
+    def __len__(self) -> int:
+        return len(self._KEYS)
+
+    def tables(self) -> list[Table]:
+        """The diagnostics tables, in display order (the linearity check included)."""
+        out = diagnostics_tables(self)
+        if not isinstance(self.linearity, NotApplicable) and self.linearity.get("bins"):
+            out.append(self.linearity.table())
+        return out
+
+
+def _or_reason(value: Any, reason: str) -> Any:
+    return NotApplicable(reason) if value is None else value
+
+
+def variance_diagnostics(design: Design, alpha: float = 0.05) -> VarianceDiagnostics:
     """All diagnostics of the results contract; every value JSON-ready (finite floats or None).
 
     Parameters
@@ -202,8 +259,9 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
 
     Returns
     -------
-    dict with ``breusch_pagan``, ``white``, ``goldfeld_quandt``, ``residual_spread``, ``se_gap``,
-    ``linearity`` and ``non_constant_variance``.
+    VarianceDiagnostics
+        A mapping with ``breusch_pagan``, ``white``, ``goldfeld_quandt``, ``residual_spread``,
+        ``se_gap``, ``linearity`` and ``non_constant_variance``; ``to_dict()`` gives a plain dict.
 
     Notes
     -----
@@ -214,15 +272,82 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> dict[str, Any]:
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
     e = ols_residuals(design)
-    out: dict[str, Any] = {
-        "alpha": float(alpha),
-        "breusch_pagan": breusch_pagan(design, e),
-        "white": white(design, e),
-        "goldfeld_quandt": goldfeld_quandt(design),
-        "residual_spread": residual_spread(design, e),
-        "se_gap": se_gap(design),
-        "linearity": binning_check(design, alpha=alpha),
-    }
-    tests = [out[k] for k in ("breusch_pagan", "white", "goldfeld_quandt") if out[k] is not None]
-    out["non_constant_variance"] = any(t["p"] is not None and t["p"] < alpha for t in tests)
+    bp, wh, gq = breusch_pagan(design, e), white(design, e), goldfeld_quandt(design)
+    tests = [t for t in (bp, wh, gq) if t is not None]
+    return VarianceDiagnostics(
+        alpha=float(alpha), breusch_pagan=bp, white=wh,
+        goldfeld_quandt=_or_reason(gq, "no continuous moderator, or halves too small to fit"),
+        residual_spread=_or_reason(residual_spread(design, e), "no moderator"),
+        se_gap=_or_reason(se_gap(design), "a standard error could not be computed (e.g. leverage 1)"),
+        linearity=_or_reason(binning_check(design, alpha=alpha), "no continuous moderator"),
+        non_constant_variance=any(t["p"] is not None and t["p"] < alpha for t in tests),
+    )
+
+
+# ---- the tables every display renders ---------------------------------------------------------
+
+_TESTS = (("breusch_pagan", "Breusch–Pagan (Koenker)"), ("white", "White"), ("goldfeld_quandt", "Goldfeld–Quandt"))
+
+
+def _dfs(df: Any) -> tuple[Any, Any]:
+    if isinstance(df, (list, tuple)):
+        return (df[0], df[1]) if len(df) == 2 else (df[0], NotApplicable("one df"))
+    return df, NotApplicable("a χ² test has one df")
+
+
+def variance_tests_table(diag: Mapping[str, Any]) -> Table:
+    """Breusch–Pagan, White and Goldfeld–Quandt: statistic, df, p and the form of each test."""
+    rows = []
+    for key, name in _TESTS:
+        t = diag.get(key)
+        if t is None:
+            na = NotApplicable("not computed for this design (no continuous moderator or too few rows)")
+            rows.append((key, name, na, na, na, na, na.reason))
+            continue
+        df1, df2 = _dfs(t.get("df"))
+        rows.append((key, name, t.get("statistic"), df1, df2, t.get("p"), t.get("form", "")))
+    cols = (Column("test", "test id", "code", hidden=True), Column("name", "test", "text"), Column("statistic", "statistic"),
+            Column("df", "df", "df"), Column("df_denominator", "denominator df", "df"), Column("p", "p", "p"),
+            Column("form", "form", "text", hidden=True))
+    verdict = ("at least one test rejects constant spread" if diag.get("non_constant_variance")
+               else "no test rejects constant spread (which does not prove it constant)")
+    forms = [f"{name}: {row[-1]}." for (_, name), row in zip(_TESTS, rows)]
+    return make_table("variance_tests", "Variance diagnostics of the OLS residuals", cols, rows, source="diagnostics",
+                      notes=(f"At alpha = {diag.get('alpha', 0.05):g}, {verdict}.", *forms), meta={"field": "diagnostics"})
+
+
+def residual_spread_table(spread: Mapping[str, Any]) -> Table:
+    """Residual SD within moderator bins (or levels)."""
+    rows = []
+    for b in spread.get("bins") or []:
+        r = b.get("range")
+        lo, hi = (r[0], r[1]) if r else (NotApplicable("a level"), NotApplicable("a level"))
+        rows.append((str(b["level"]) if b.get("level") is not None else "bin", lo, hi, b.get("n"), b.get("sd")))
+    cols = (Column("level", "level or bin", "text"), Column("low", "moderator range", pair="high"), Column("high", "to"),
+            Column("n", "rows", "integer"), Column("sd", "residual SD"))
+    return make_table("residual_spread", f"Residual spread across {spread.get('moderator')} (raw scale)", cols, rows,
+                      source="diagnostics", scale="raw scale of the moderator",
+                      notes=(f"Largest over smallest SD: {format_number(spread.get('ratio'))}; {spread.get('form', '')}.",))
+
+
+def se_gap_table(gap: Mapping[str, Any]) -> Table:
+    """Classical against HC3 SE of each product term (King & Roberts 2015)."""
+    terms = gap.get("terms") or []
+    rows = [(t, gap["classical_se"][i], gap["hc3_se"][i], gap["ratio"][i]) for i, t in enumerate(terms)]
+    cols = (Column("term", "product term", "code"), Column("classical_se", "classical SE"),
+            Column("hc3_se", "HC3 SE"), Column("ratio", "HC3 / classical"))
+    large = "a large gap" if gap.get("large") else "no large gap"
+    return make_table("se_gap", "Classical against HC3 standard error of the product term", cols, rows,
+                      source="diagnostics",
+                      notes=((f"{large.capitalize()} (threshold: a ratio beyond "
+                              f"{format_number(gap.get('threshold'))} either way)."), str(gap.get("note", ""))))
+
+
+def diagnostics_tables(diag: Mapping[str, Any]) -> list[Table]:
+    """Every diagnostics table of :func:`variance_diagnostics` output, in display order."""
+    out = [variance_tests_table(diag)]
+    if diag.get("residual_spread"):
+        out.append(residual_spread_table(diag["residual_spread"]))
+    if diag.get("se_gap"):
+        out.append(se_gap_table(diag["se_gap"]))
     return out

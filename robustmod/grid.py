@@ -24,7 +24,7 @@ from scipy import special, stats
 
 from .backends.base import Unavailable
 from .backends.registry import check_ids, make_backend
-from .design import Design, build_design, thin_qr
+from .design import Design, build_design
 from .errors import InputError, close_matches, option_error
 from .spec import ModelSpec
 

@@ -7,9 +7,10 @@ from pathlib import Path
 
 import pytest
 
-from robustmod.compare import compare, fmt
+from robustmod.compare import compare
 from robustmod.demo import demo_data
 from robustmod.report import write_appendix
+from robustmod.tables import format_cell
 
 pytestmark = pytest.mark.browser
 
@@ -72,7 +73,7 @@ def test_page_renders_without_errors_and_shows_results(driver, page: Path, tmp_p
     for cell in cells:
         est = res["backends"][cell.get_attribute("data-backend")]["interaction"]["estimate"]
         assert json.loads(cell.get_attribute("data-value")) == est
-        assert cell.text == fmt(est)
+        assert cell.text == format_cell(est, "number", unicode_minus=True)
     for cell in driver.find_elements(By.CSS_SELECTOR, '[data-field="interaction-p"]'):
         p = res["backends"][cell.get_attribute("data-backend")]["interaction"]["p"]
         assert json.loads(cell.get_attribute("data-value")) == p

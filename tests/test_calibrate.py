@@ -41,7 +41,7 @@ def test_classical_ols_over_rejects_while_hc3_and_wild_hold_their_level(hetero):
     assert abs(fp["wild"]["rate"] - 0.05) <= 2 * mc, fp
     assert any("399 replications" in note for note in out["notes"])
     assert "wls" in out["simulated_from"]
-    json.dumps(out, allow_nan=False)
+    json.dumps(out.to_dict(), allow_nan=False)
 
 
 def test_monte_carlo_se_and_power(hetero):

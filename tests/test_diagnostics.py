@@ -194,7 +194,7 @@ def test_se_gap_matches_statsmodels_classical_and_hc3(hprice1):
 def test_variance_diagnostics_is_json_ready_and_complete(hprice1):
     d = _design(hprice1, "price ~ lotsize * sqrft + bdrms", "lotsize", "sqrft")
     out = variance_diagnostics(d, alpha=0.05)
-    text = json.dumps(out, allow_nan=False)  # raises on NaN/inf or numpy scalars
+    text = json.dumps(out.to_dict(), allow_nan=False)  # raises on NaN/inf or numpy scalars
     back = json.loads(text)
     for key in ("breusch_pagan", "white", "goldfeld_quandt", "linearity", "residual_spread", "se_gap"):
         assert back[key] is not None
@@ -214,7 +214,7 @@ def test_categorical_moderator_has_no_split_or_binning():
     out = variance_diagnostics(d)
     assert out["goldfeld_quandt"] is None and out["linearity"] is None
     assert out["breusch_pagan"]["df"] == d.n_params - 1
-    json.dumps(out, allow_nan=False)
+    json.dumps(out.to_dict(), allow_nan=False)
 
 
 def test_bad_options_give_one_line_input_errors(hprice1):

@@ -114,7 +114,7 @@ def test_thin_bins_and_lack_of_common_support_are_flagged():
     thin = binning_check(d, bins=cuts)
     assert [b["thin"] for b in thin["bins"]] == [False, False, True]
     assert thin["bins"][2]["n"] == int((w > cuts[1]).sum())
-    json.dumps(thin, allow_nan=False)
+    json.dumps(thin.to_dict(), allow_nan=False)
 
 
 def test_a_clean_linear_design_raises_no_flags():

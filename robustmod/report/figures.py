@@ -28,7 +28,8 @@ OKABE_ITO = {
     "black": "#000000", "orange": "#E69F00", "sky": "#56B4E9", "green": "#009E73",
     "yellow": "#F0E442", "blue": "#0072B2", "vermillion": "#D55E00", "purple": "#CC79A7",
 }
-#: A fixed colour per back-end id, so a back-end looks the same in every figure.
+#: A fixed colour per back-end id, so a back-end looks the same in every figure. The one local
+#: fallback, used only while the back-end registry offers no ``colour(id)`` of its own.
 BACKEND_COLOURS = {
     "ols": OKABE_ITO["black"], "hc3": OKABE_ITO["blue"], "wild": OKABE_ITO["orange"],
     "wls": OKABE_ITO["green"], "bayes": OKABE_ITO["purple"], "hc0": OKABE_ITO["sky"],
@@ -63,7 +64,16 @@ class FigureRecord:
 
 
 def colour(bid: str, i: int = 0) -> str:
-    """The back-end's colour (fixed ids first, then the palette in order)."""
+    """The back-end's colour: the registry's when it has one, else the local fallback, else the
+    palette in order (``i``)."""
+    from ..backends import registry  # noqa: PLC0415
+
+    own = getattr(registry, "colour", None)
+    if callable(own) and bid in registry.REGISTRY:
+        try:
+            return str(own(bid))
+        except Exception:  # noqa: BLE001  (an entry without a colour falls back to the palette)
+            pass
     if bid in BACKEND_COLOURS:
         return BACKEND_COLOURS[bid]
     cycle = list(OKABE_ITO.values())
@@ -191,7 +201,7 @@ def data_figure(comparison: "Comparison") -> "Figure":
             ax.plot(xs, mu, color=line_col(pt[m]), linewidth=1.8, label=f"fitted at {label}")
         ax.set_xlabel(f"{d.focal}")
         ax.set_ylabel(str(d.spec.formula.split("~")[0].strip()))
-        ax.set_title(f"Data with fitted lines at the probe values ({c.primary}; other terms at reference)")
+        ax.set_title(f"Data with fitted lines at chosen moderator values ({c.primary}; other terms at reference)")
         ax.legend(loc="best")
     return fig
 
@@ -247,8 +257,8 @@ def residual_figure(comparison: "Comparison") -> "Figure":
 
 # ---- variance function -----------------------------------------------------------------
 def variance_figure(comparison: "Comparison") -> "Figure":
-    """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance
-    (wls, bayes), against the focal predictor and the first moderator."""
+    """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance,
+    against the focal predictor and the first moderator."""
     c = comparison
     d = c.design
     found = []
@@ -261,7 +271,7 @@ def variance_figure(comparison: "Comparison") -> "Figure":
             if sig.shape == d.y.shape:
                 found.append((bid, sig))
     if not found:
-        raise MissingInput("no fit with a fitted variance function (wls, bayes) is in this comparison")
+        raise MissingInput("no fit with a fitted variance function is in this comparison")
     m = d.spec.moderators[0]
     x = d.data.frame[d.focal].to_numpy(dtype=float)
     info = d.moderators[m]
@@ -291,24 +301,14 @@ def linearity_figure(comparison: "Comparison") -> "Figure":
     """The binning check: the focal slope estimated within bins of the moderator, against the
     linear-interaction line (drawn from ``diagnostics['linearity']``)."""
     lin = (comparison.diagnostics or {}).get("linearity")
-    if not isinstance(lin, dict):
+    if lin is None:
         raise MissingInput("the diagnostics hold no binning (linearity) check")
-    bins = lin.get("bins")
-    if not isinstance(bins, list) or not bins or not all(isinstance(b, dict) for b in bins):
+    if not lin.get("bins"):
         raise MissingInput("the binning check holds no per-bin slopes")
+    from ..linearity import linearity_table  # noqa: PLC0415
 
-    def val(b: dict[str, Any], *keys: str) -> float:
-        for k in keys:
-            v = b.get(k)
-            if isinstance(v, (int, float)) and not isinstance(v, bool):
-                return float(v)
-        return float("nan")
-
-    centre = np.array([val(b, "center", "centre", "median", "moderator", "at") for b in bins])
-    est = np.array([val(b, "estimate", "slope") for b in bins])
-    ci = [b.get("ci") or [None, None] for b in bins]
-    lo = np.array([np.nan if v[0] is None else v[0] for v in ci], dtype=float)
-    hi = np.array([np.nan if v[1] is None else v[1] for v in ci], dtype=float)
+    frame = linearity_table(lin).to_frame()
+    centre, est, lo, hi = (frame[k].to_numpy(dtype=float, na_value=np.nan) for k in ("median", "estimate", "ci_low", "ci_high"))
     if not np.isfinite(centre).any() or not np.isfinite(est).any():
         raise MissingInput("the binning check holds no bin centres or slopes to draw")
     c = comparison
@@ -360,18 +360,18 @@ def calibration_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- Bayesian ------------------------------------------------------------------------------
-def _bayes(comparison: "Comparison") -> Any:
+def _posterior(comparison: "Comparison") -> Any:
     for r in comparison.results.values():
         if r.available and r.fit is not None and r.kind == "posterior" and getattr(r.fit, "idata", None) is not None:
             return r
-    raise MissingInput("no Bayesian fit in this comparison (add the bayes back-end)")
+    raise MissingInput("no posterior fit with draws is in this comparison")
 
 
 def posterior_figure(comparison: "Comparison") -> "Figure":
     """Posterior of the product term: the main fit's draws as a histogram, and the posterior
     mean and interval at each prior scale of ``extras['prior_sensitivity']`` when present."""
     c = comparison
-    r = _bayes(c)
+    r = _posterior(c)
     L = c.design.interaction_rows()
     if L.shape[0] != 1:
         raise MissingInput("the product term has several columns (categorical moderator); no single posterior to draw")
@@ -394,7 +394,7 @@ def posterior_figure(comparison: "Comparison") -> "Figure":
             ax, bx = fig.subplots(2, 1, sharex=True, height_ratios=[3, 1.3])
         else:
             ax, bx = fig.subplots(1, 1), None
-        ax.hist(d, bins=50, density=True, color=colour("bayes"), alpha=0.45)
+        ax.hist(d, bins=50, density=True, color=colour(r.id), alpha=0.45)
         ax.axvline(0, color="#777777", linewidth=0.8)
         ax.set_ylabel("posterior density")
         ax.set_title(f"Posterior of the product term ({r.label}, main prior)")
@@ -403,7 +403,7 @@ def posterior_figure(comparison: "Comparison") -> "Figure":
             for i, (factor, s_) in enumerate(rows):
                 lo, hi = s_["ci"]
                 bx.errorbar(s_["mean"], yy[i], xerr=[[s_["mean"] - lo], [hi - s_["mean"]]], fmt="o", capsize=3,
-                            color=colour("bayes") if float(factor) == 1 else "#555555")
+                            color=colour(r.id) if float(factor) == 1 else "#555555")
             bx.set_yticks(yy, [f"prior SDs × {f}" for f, _ in rows])
             bx.set_ylim(-0.6, len(rows) - 0.4)
             bx.axvline(0, color="#777777", linewidth=0.8)
@@ -420,7 +420,7 @@ def rank_figure(comparison: "Comparison") -> "Figure":
     """Rank plots (Vehtari et al. 2021) of the product term and the variance-model
     coefficients, per chain, from ``fit.idata``."""
     c = comparison
-    r = _bayes(c)
+    r = _posterior(c)
     idata = getattr(r.fit, "idata", None)
     if idata is None or not hasattr(idata, "posterior"):
         raise MissingInput("the Bayesian fit holds no InferenceData with chains")
@@ -461,6 +461,8 @@ def rank_figure(comparison: "Comparison") -> "Figure":
             ax.set_yticks([])
             ax.set_ylim(bottom=0)
             ax.set_xlabel("rank among all draws")
+        handles, labels = axes.ravel()[0].get_legend_handles_labels()
+        fig.legend(handles, labels, loc="outside lower center", ncol=min(len(labels), 4))
         fig.suptitle("Rank plots per chain (flat = chains agree; dashed: uniform)", x=0.01, ha="left", fontweight="bold")
     return fig
 
@@ -515,7 +517,7 @@ FIGURES: list[tuple[str, str, str, Callable[["Comparison"], "Figure"]]] = [
      "From the OLS fit. A funnel in the first panel or a rising cloud in the scale–location panel is the "
      "non-constant variance this appendix checks against.", residual_figure),
     ("variance", "Fitted variance function",
-     "The residual SD per row as modelled by the wls and bayes back-ends.", variance_figure),
+     "The residual SD per row as modelled by each back-end with a variance function.", variance_figure),
     ("linearity", "Binning check",
      "Slopes estimated within bins of the moderator; if they stray far from the line the product term "
      "(a linear change of slope) may be the wrong shape.", linearity_figure),

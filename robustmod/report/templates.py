@@ -29,6 +29,7 @@ HTML = r"""<!DOCTYPE html>
   th, td { padding: .28rem .6rem; text-align: left; vertical-align: top; }
   thead th { border-bottom: 1.5px solid var(--ink); border-top: 1.5px solid var(--ink); }
   tbody tr:last-child td { border-bottom: 1.5px solid var(--ink); }
+  table[data-table] code { white-space: nowrap; }
   td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
   tr.primary td { background: var(--band); font-weight: bold; }
   tr.unusable td { color: var(--muted); }
@@ -68,7 +69,7 @@ HTML = r"""<!DOCTYPE html>
   <li><a href="#model">Model</a></li><li><a href="#data">Data</a></li>
   <li><a href="#comparison">Comparison of back-ends</a></li><li><a href="#robustness">Robustness summary</a></li>
   <li><a href="#diagnostics">Variance diagnostics</a></li><li><a href="#calibration">Calibration</a></li>
-  <li><a href="#bayes">Bayesian diagnostics</a></li><li><a href="#figures">Figures</a></li>
+  <li><a href="#backends">Checks of each back-end</a></li><li><a href="#figures">Figures</a></li>
   <li><a href="#cautions">Cautions</a></li><li><a href="#provenance">Provenance</a></li>
 </ol></nav>
 
@@ -104,27 +105,8 @@ HTML = r"""<!DOCTYPE html>
 
 <section id="comparison">
 <h2>3. Comparison of back-ends</h2>
-<p>The product term {% for t in model.interaction_terms %}<code>{{ t }}</code>{% if not loop.last %} + {% endif %}{% endfor %} as each back-end estimates it. Intervals at {{ level_pct }}; coefficients on the {{ model.scale }}; region boundaries on the raw scale of the moderator. The primary back-end's row is shaded.</p>
-<table id="comparison-table">
-<thead><tr><th>back-end</th><th>method</th><th>estimate</th><th>SE</th><th>{{ level_pct }} interval</th><th>p (or P(&gt;0))</th><th>supported</th><th>significance-region boundaries ({{ region_moderator }})</th><th>share of observed rows in region</th></tr></thead>
-<tbody>
-{% for r in rows %}<tr class="{% if r.primary %}primary{% endif %}{% if not r.usable %} unusable{% endif %}" data-backend="{{ r.id }}">
-<td><code>{{ r.id }}</code></td><td>{{ r.label }}{% if r.interval %}<br><span class="note">interval: {{ r.interval }}</span>{% endif %}</td>
-<td class="num" data-field="interaction-estimate" data-backend="{{ r.id }}" data-value="{{ r.estimate_json }}">{{ r.estimate }}</td>
-<td class="num" data-field="interaction-se" data-backend="{{ r.id }}" data-value="{{ r.se_json }}">{{ r.se }}</td>
-<td class="num" data-field="interaction-ci" data-backend="{{ r.id }}" data-value="{{ r.ci_json }}">{{ r.ci }}</td>
-<td class="num" data-field="interaction-p" data-backend="{{ r.id }}" data-value="{{ r.p_json }}">{{ r.p }}</td>
-<td data-field="interaction-supported" data-backend="{{ r.id }}">{{ r.supported }}</td>
-<td>{{ r.boundaries }}</td><td class="num">{{ r.share }}</td></tr>
-{% endfor %}</tbody></table>
-
-<h3>Conditional slope of <code>{{ model.focal }}</code> at the probe values</h3>
-<p class="note">Slopes on the raw scale of {{ model.focal }} per unit, at moderator values on their raw scale; intervals at {{ level_pct }}; "outside" marks a probe value beyond the observed range (extrapolation).</p>
-<table id="slopes-table">
-<thead><tr><th>back-end</th><th>at</th><th>slope</th><th>SE</th><th>{{ level_pct }} interval</th><th>p</th><th>interval excludes 0</th><th>within observed range</th></tr></thead>
-<tbody>
-{% for s in slopes %}<tr data-backend="{{ s.id }}"><td><code>{{ s.id }}</code></td><td>{{ s.at }}</td><td class="num">{{ s.estimate }}</td><td class="num">{{ s.se }}</td><td class="num">{{ s.ci }}</td><td class="num">{{ s.p }}</td><td>{{ s.significant }}</td><td>{{ s.within }}</td></tr>
-{% endfor %}</tbody></table>
+<p>The product term {% for t in model.interaction_terms %}<code>{{ t }}</code>{% if not loop.last %} + {% endif %}{% endfor %} as each back-end estimates it, the slope of <code>{{ model.focal }}</code> at chosen moderator values and the region where that slope is significant. Intervals at {{ level_pct }}; coefficients on the {{ model.scale }}; moderator values and region boundaries on the raw scale. The primary back-end's row is shaded.</p>
+{{ sections.comparison }}
 {% if backend_warnings %}<h3>Back-end warnings</h3><ul>{% for bid, w in backend_warnings %}<li><code>{{ bid }}</code>: {{ w }}</li>{% endfor %}</ul>{% endif %}
 </section>
 
@@ -145,27 +127,21 @@ HTML = r"""<!DOCTYPE html>
 
 <section id="diagnostics">
 <h2>5. Variance diagnostics</h2>
-<p class="note">Tests on the OLS residuals. A small p says the residual spread is not constant, which is when the back-ends below can disagree; a large p does not prove the spread constant.</p>
-<table id="diagnostics-table">
-<thead><tr><th>test</th><th>statistic</th><th>df</th><th>p</th><th>form</th></tr></thead>
-<tbody>{% for d in diagnostics %}<tr><td>{{ d.name }}</td><td class="num">{{ d.statistic }}</td><td class="num">{{ d.df }}</td><td class="num">{{ d.p }}</td><td class="note">{{ d.form }}</td></tr>{% endfor %}</tbody></table>
-{% for block in diagnostics_other %}{% if block.title %}<h3>{{ block.title }}</h3>{% endif %}{% if block.table %}<table><thead><tr>{% for h in block.table[0] %}<th>{{ h }}</th>{% endfor %}</tr></thead><tbody>{% for row in block.table[1:] %}<tr>{% for cell in row %}<td>{{ cell }}</td>{% endfor %}</tr>{% endfor %}</tbody></table>{% endif %}{% if block.kv %}<dl class="kv">{% for k, v in block.kv %}<dt>{{ k }}</dt><dd>{{ v }}</dd>{% endfor %}</dl>{% endif %}{% endfor %}
-{% if not has_linearity %}<p class="skipped">The binning (linearity) check is not part of these results.</p>{% endif %}
+<p class="note">Tests on the OLS residuals. A small p says the residual spread is not constant, which is when the back-ends can disagree; a large p does not prove the spread constant.</p>
+{{ sections.diagnostics }}
 </section>
 
 <section id="calibration">
 <h2>6. Calibration</h2>
-{% if calibration %}<p>{{ calibration.n_datasets }} datasets simulated with no moderation (false-positive rate) and with the estimated moderation (power), keeping this design's variance pattern; nominal alpha = {{ calibration.alpha }}. Rates ± Monte Carlo SE.</p>
-<table id="calibration-table"><thead><tr><th>back-end</th><th>false-positive rate</th><th>MC SE</th><th>power</th><th>MC SE</th></tr></thead>
-<tbody>{% for c in calibration.rows %}<tr data-backend="{{ c.id }}"><td><code>{{ c.id }}</code></td><td class="num">{{ c.fpr }}</td><td class="num">{{ c.fpr_se }}</td><td class="num">{{ c.power }}</td><td class="num">{{ c.power_se }}</td></tr>{% endfor %}</tbody></table>
-{% if calibration.kv %}<dl class="kv">{% for k, v in calibration.kv %}<dt>{{ k }}</dt><dd>{{ v }}</dd>{% endfor %}</dl>{% endif %}
+{% if groups.calibration %}{{ sections.calibration }}
 {% else %}<p class="skipped">No calibration was run (add <code>--calibrate N</code>).</p>{% endif %}
 </section>
 
-<section id="bayes">
-<h2>7. Bayesian diagnostics</h2>
-{% if bayes %}<p>From the <code>bayes</code> back-end ({{ bayes.label }}).</p>{% for block in bayes.blocks %}{% if block.title %}<h3>{{ block.title }}</h3>{% endif %}{% if block.table %}<table><thead><tr>{% for h in block.table[0] %}<th>{{ h }}</th>{% endfor %}</tr></thead><tbody>{% for row in block.table[1:] %}<tr>{% for cell in row %}<td>{{ cell }}</td>{% endfor %}</tr>{% endfor %}</tbody></table>{% endif %}{% if block.kv %}<dl class="kv">{% for k, v in block.kv %}<dt>{{ k }}</dt><dd>{{ v }}</dd>{% endfor %}</dl>{% endif %}{% endfor %}
-{% else %}<p class="skipped">{{ bayes_missing }}</p>{% endif %}
+<section id="backends">
+<h2>7. Checks and models of each back-end</h2>
+{% if groups.backends %}<p class="note">Each table comes from the back-end named in its title: its settings, its own checks and, where it models the variance, that model.</p>
+{{ sections.backends }}
+{% else %}<p class="skipped">No back-end contributed tables of its own.</p>{% endif %}
 </section>
 
 <section id="figures">

@@ -24,6 +24,13 @@ from typing import TYPE_CHECKING, Any
 
 from ..compare import CAUTIONS
 from ..errors import InputError
+from ..tables import Table, signed
+from ..tables import render_html as render_table_html
+from .latex import latex_escape, render_latex
+from .markdown import md_escape, render_markdown
+
+__all__ = ["APPENDIX_FILES", "csv_guard", "latex_escape", "md_escape", "render_csv", "render_html", "render_latex",
+           "render_markdown", "write_appendix"]
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..compare import Comparison
@@ -37,124 +44,15 @@ DEPENDENCIES = ("numpy", "scipy", "pandas", "statsmodels", "formulaic", "pymc", 
 
 
 # ---- escaping -----------------------------------------------------------------------
-_LATEX = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_", "{": r"\{",
-          "}": r"\}", "~": r"\textasciitilde{}", "^": r"\textasciicircum{}", "<": r"\textless{}",
-          ">": r"\textgreater{}", "|": r"\textbar{}", "[": "{[}", "]": "{]}", "\n": " ", "\r": " "}
-_LATEX_UNICODE = {"–": "--", "—": "---", "±": r"$\pm$", "·": r"$\cdot$", "²": r"$^2$", "≥": r"$\geq$",
-                  "≤": r"$\leq$", "α": r"$\alpha$", "√": r"$\surd$", "−": "-"}
-
-
-def latex_escape(text: Any) -> str:
-    """Escape a string for LaTeX text mode (every special character, one pass).
-
-    Brackets are braced so that a cell starting with '[' after a row's \\\\ is not read as
-    its optional argument.
-    """
-    return "".join(_LATEX.get(ch, _LATEX_UNICODE.get(ch, ch)) for ch in str(text))
-
-
-def md_escape(text: Any) -> str:
-    """Escape a string for inline Markdown text and table cells: emphasis, code, link and
-    pipe characters get a backslash, HTML special characters become entities. (Line-start
-    markers such as '#' or '-' need no escape: escaped text is never placed at a line start.)"""
-    out = []
-    for ch in str(text):
-        if ch == "<":
-            out.append("&lt;")
-        elif ch == ">":
-            out.append("&gt;")
-        elif ch == "&":
-            out.append("&amp;")
-        elif ch in "\\`*_[]|~":
-            out.append("\\" + ch)
-        elif ch in "\r\n":
-            out.append(" ")
-        else:
-            out.append(ch)
-    return "".join(out)
-
-
 def csv_guard(cell: Any) -> Any:
     """Prefix a quote to text a spreadsheet would run as a formula (= + - @, tab, CR).
 
-    Common practice, no source beyond the OWASP note on CSV injection.
+    Only text cells are guarded; numbers stay numbers. Common practice, no source beyond the
+    OWASP note on CSV injection.
     """
     if isinstance(cell, str) and cell[:1] in ("=", "+", "-", "@", "\t", "\r"):
         return "'" + cell
     return cell
-
-
-# ---- small formatters -------------------------------------------------------------
-def _fmt(x: Any) -> str:
-    from ..compare import fmt  # noqa: PLC0415
-
-    return fmt(x)
-
-
-def _fmt_p(p: Any) -> str:
-    from ..compare import fmt_p  # noqa: PLC0415
-
-    return fmt_p(p)
-
-
-def _ci(ci: Any) -> str:
-    if not ci or ci[0] is None and ci[1] is None:
-        return "—"
-    return f"[{_fmt(ci[0])}, {_fmt(ci[1])}]"
-
-
-def _at(at: Mapping[str, Any]) -> str:
-    return ", ".join(f"{k} = {_fmt(v) if not isinstance(v, str) else v}" for k, v in at.items())
-
-
-def _boundaries(reg: Mapping[str, Any] | None) -> str:
-    if reg is None:
-        return "n/a"
-    parts = []
-    for b in reg.get("boundaries_detail") or [{"value": v, "within_observed": True} for v in reg["boundaries"]]:
-        parts.append(_fmt(b["value"]) + ("" if b.get("within_observed", True) else " (outside observed)"))
-    return ", ".join(parts) or "none (same verdict everywhere)"
-
-
-def _json_value(x: Any) -> str:
-    return json.dumps(x, allow_nan=False)
-
-
-def _cell(v: Any) -> str:
-    if isinstance(v, float):
-        return _fmt(v)
-    if isinstance(v, bool):
-        return "yes" if v else "no"
-    if isinstance(v, list):
-        if len(v) > 12:
-            return f"({len(v)} values)"
-        return "[" + ", ".join(_cell(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "; ".join(f"{k}: {_cell(x)}" for k, x in list(v.items())[:12]) or "none"
-    return "—" if v is None else str(v)
-
-
-def _blocks(obj: Any, title: str) -> list[dict[str, Any]]:
-    """Render an unknown result dict as key–value lists and tables (one level of nesting)."""
-    if not isinstance(obj, Mapping):
-        return [{"title": title, "kv": [("value", _cell(obj))], "table": None}]
-    kv, blocks = [], []
-    for k, v in obj.items():
-        if isinstance(v, Mapping) and v and all(isinstance(x, Mapping) for x in v.values()):
-            cols: list[str] = []
-            for x in v.values():
-                cols += [c for c in x if c not in cols]
-            table = [[str(k)] + cols] + [[str(r)] + [_cell(x.get(c)) for c in cols] for r, x in v.items()]
-            blocks.append({"title": f"{title}: {k}", "kv": None, "table": table})
-        elif isinstance(v, list) and v and all(isinstance(x, Mapping) for x in v) and len(v) <= 50:
-            cols = []
-            for x in v:
-                cols += [c for c in x if c not in cols]
-            table = [cols] + [[_cell(x.get(c)) for c in cols] for x in v]
-            blocks.append({"title": f"{title}: {k}", "kv": None, "table": table})
-        else:
-            kv.append((str(k), _cell(v)))
-    return ([{"title": title, "kv": kv, "table": None}] if kv else []) + blocks
 
 
 # ---- the parts --------------------------------------------------------------------
@@ -206,217 +104,30 @@ def provenance(comparison: "Comparison", *, command_line: str | None, data_path:
     }
 
 
-def _rows(comparison: "Comparison", res: Mapping[str, Any]) -> list[dict[str, Any]]:
-    rows = []
-    usable = set(res["summary"]["supported_by"]) | set(res["summary"]["not_supported_by"])
-    for bid, b in res["backends"].items():
-        it = b.get("interaction") or {}
-        if not b["available"]:
-            rows.append({"id": bid, "label": b["label"], "primary": bid == comparison.primary, "usable": False,
-                         "estimate": "unavailable", "se": "—", "ci": "—", "interval": b.get("reason") or "",
-                         "p": "—", "supported": "—", "boundaries": "—", "share": "—",
-                         "estimate_json": "null", "se_json": "null", "ci_json": "null", "p_json": "null"})
-            continue
-        joint = it.get("estimate") is None
-        if it.get("p") is not None:
-            p = _fmt_p(it["p"])
-        elif it.get("prob_positive") is not None:
-            p = f"P(>0) = {_fmt(it['prob_positive'])}"
-        else:
-            p = "—"
-        reg = b.get("significance_region")
-        rows.append({
-            "id": bid, "label": b["label"], "primary": bid == comparison.primary, "usable": bid in usable,
-            "estimate": "joint test" if joint else _fmt(it.get("estimate")),
-            "se": _fmt(it.get("se")), "ci": (it.get("joint_test") or {}).get("method", "") if joint else _ci(it.get("ci")),
-            "interval": "" if joint else it.get("interval") or "", "p": p,
-            "supported": ("yes" if it.get("supported") else "no") + ("" if b["reliable"] else " (not counted: unreliable)"),
-            "boundaries": _boundaries(reg), "share": _fmt(reg.get("share_of_observed_significant")) if reg else "—",
-            "estimate_json": _json_value(it.get("estimate")), "se_json": _json_value(it.get("se")),
-            "ci_json": _json_value(it.get("ci")), "p_json": _json_value(it.get("p")),
-        })
-    return rows
+#: Which appendix section shows a table, by the table's source; every other source is a
+#: back-end contributing its own tables.
+SECTION_OF_SOURCE = {"compare": "comparison", "diagnostics": "diagnostics", "linearity": "diagnostics",
+                     "calibrate": "calibration"}
 
 
-def _slopes(res: Mapping[str, Any]) -> list[dict[str, Any]]:
-    out = []
-    for bid, b in res["backends"].items():
-        for ce in b.get("conditional_effects") or []:
-            out.append({"id": bid, "at": _at(ce["at"]), "estimate": _fmt(ce["estimate"]), "se": _fmt(ce["se"]),
-                        "ci": _ci(ce["ci"]), "p": _fmt_p(ce["p"]), "significant": "yes" if ce.get("significant") else "no",
-                        "within": "yes" if ce.get("within_observed", True) else "outside"})
-    return out
+def grouped_tables(comparison: "Comparison") -> dict[str, list[Table]]:
+    """The comparison's tables by appendix section: comparison, diagnostics, calibration, backends."""
+    groups: dict[str, list[Table]] = {"comparison": [], "diagnostics": [], "calibration": [], "backends": []}
+    for t in comparison.tables():
+        groups[SECTION_OF_SOURCE.get(t.source or "", "backends")].append(t)
+    return groups
 
 
-_TEST_NAMES = {"breusch_pagan": "Breusch–Pagan", "white": "White", "goldfeld_quandt": "Goldfeld–Quandt"}
-
-
-def _range(r: Any) -> str:
-    return f"{_fmt(r[0])} to {_fmt(r[1])}" if isinstance(r, list) and len(r) == 2 else "—"
-
-
-def _spread_block(d: Mapping[str, Any]) -> dict[str, Any]:
-    rows = [["moderator bin", "rows", "residual SD"]]
-    for b in d.get("bins") or []:
-        where = str(b["level"]) if b.get("level") is not None else _range(b.get("range"))
-        rows.append([where, _cell(b.get("n")), _fmt(b.get("sd"))])
-    kv = [("moderator", str(d.get("moderator"))), ("largest / smallest SD", _fmt(d.get("ratio"))),
-          ("how", str(d.get("form", "")))]
-    return {"title": "Residual spread across the moderator", "kv": kv, "table": rows}
-
-
-def _gap_block(d: Mapping[str, Any]) -> dict[str, Any]:
-    rows = [["product term", "classical SE", "HC3 SE", "HC3 / classical"]]
-    for i, t in enumerate(d.get("terms") or []):
-        pick = lambda k: (d.get(k) or [None] * (i + 1))[i]  # noqa: E731
-        rows.append([str(t), _fmt(pick("classical_se")), _fmt(pick("hc3_se")), _fmt(pick("ratio"))])
-    kv = [("large gap (ratio beyond the threshold)", _cell(d.get("large"))), ("threshold", _fmt(d.get("threshold"))),
-          ("note", str(d.get("note", "")))]
-    return {"title": "Classical against HC3 standard error of the product term", "kv": kv, "table": rows}
-
-
-def _linearity_block(d: Mapping[str, Any]) -> dict[str, Any]:
-    rows = [["moderator bin", "rows", "median", "slope in bin", "interval", "linear model's slope", "its interval", "flags"]]
-    for b in d.get("bins") or []:
-        flags = [name for name in ("thin", "low_focal_variation", "outside") if b.get(name)]
-        rows.append([_range(b.get("range")), _cell(b.get("n")), _fmt(b.get("median")), _fmt(b.get("estimate")),
-                     _ci(b.get("ci")), _fmt(b.get("linear_prediction")), _ci(b.get("linear_ci")),
-                     ", ".join(f.replace("_", " ") for f in flags) or "—"])
-    w = d.get("wald") or {}
-    kv = [("moderator", str(d.get("moderator"))), ("method", str(d.get("method", ""))),
-          ("test that the bins add nothing", f"{w.get('method', '')}; p = {_fmt_p(w.get('p'))}" if w else "—"),
-          ("departure from a linear change of slope", _cell(d.get("nonlinear")))]
-    kv += [("note", str(n)) for n in d.get("notes") or []]
-    return {"title": "Binning check of the linear interaction", "kv": kv, "table": rows}
-
-
-_BLOCKS = {"residual_spread": _spread_block, "se_gap": _gap_block, "linearity": _linearity_block}
-
-
-def _diagnostics(res: Mapping[str, Any]) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
-    tests, other, flags = [], [], []
-    for key, d in (res.get("diagnostics") or {}).items():
-        if key == "alpha":
-            continue
-        if key == "non_constant_variance":
-            flags.append(("a variance test rejects constant spread at this alpha", _cell(d)))
-            continue
-        if key in _BLOCKS and isinstance(d, Mapping):
-            try:
-                other.append(_BLOCKS[key](d))
-            except (KeyError, TypeError, IndexError, AttributeError):  # a shape we do not know: show it plainly
-                other += _blocks(d, key.replace("_", " ").capitalize())
-            continue
-        if key in _TEST_NAMES:
-            if d is None:
-                tests.append({"name": _TEST_NAMES[key], "statistic": "—", "df": "—", "p": "—",
-                              "form": "not computed for this design"})
-                continue
-            tests.append({"name": _TEST_NAMES[key], "statistic": _fmt(d.get("statistic")), "df": _cell(d.get("df")),
-                          "p": _fmt_p(d.get("p")), "form": d.get("form", "")})
-        elif d is not None:
-            other += _blocks(d, key.replace("_", " ").capitalize())
-    if flags:
-        other.insert(0, {"title": "", "kv": flags, "table": None})
-    return tests, other
-
-
-def _calibration(res: Mapping[str, Any]) -> dict[str, Any] | None:
-    cal = res.get("calibration")
-    if not cal:
-        return None
-    fpr, power = cal.get("false_positive_rate") or {}, cal.get("power") or {}
-    rows = []
-    for bid in list(fpr) + [b for b in power if b not in fpr]:
-        f, p = fpr.get(bid) or {}, power.get(bid) or {}
-        rows.append({"id": bid, "fpr": _fmt(f.get("rate")), "fpr_se": _fmt(f.get("mc_se")),
-                     "power": _fmt(p.get("rate")), "power_se": _fmt(p.get("mc_se"))})
-    kv = [(str(k), _cell(v)) for k, v in cal.items() if k not in ("false_positive_rate", "power", "n_datasets", "alpha")]
-    return {"n_datasets": cal.get("n_datasets"), "alpha": cal.get("alpha"), "rows": rows, "kv": kv}
-
-
-def _summary_rows(table: Mapping[str, Any], first: str) -> list[list[str]]:
-    rows = [[first, "posterior mean", "posterior SD", "interval"]]
-    for name, x in table.items():
-        if isinstance(x, Mapping) and "mean" in x:
-            lv = x.get("level")
-            rows.append([str(name), _fmt(x.get("mean")), _fmt(x.get("sd")),
-                         _ci(x.get("ci")) + (f" ({100 * lv:g}%)" if isinstance(lv, (int, float)) else "")])
-    return rows
-
-
-def _bayes_blocks(ex: Mapping[str, Any]) -> list[dict[str, Any]]:
-    """The Bayesian back-end's extras: convergence, LOO, variance model, prior sensitivity."""
-    blocks: list[dict[str, Any]] = []
-    done = {"seconds"}
-    diag = ex.get("diagnostics")
-    if isinstance(diag, Mapping):
-        th = diag.get("thresholds") or {}
-        rh = diag.get("max_rhat")
-        kv = [("largest R-hat", f"{'—' if rh is None else format(rh, '.4f')} (want below {_fmt(th.get('rhat_max'))})"),
-              ("smallest bulk ESS", f"{_fmt(diag.get('min_ess_bulk'))} (want at least {_fmt(th.get('ess_min'))})"),
-              ("smallest tail ESS", f"{_fmt(diag.get('min_ess_tail'))} (want at least {_fmt(th.get('ess_min'))})"),
-              ("divergent transitions", _cell(diag.get("divergences")))]
-        table = None
-        per = diag.get("per_term")
-        if isinstance(per, Mapping) and per:
-            table = [["coefficient", "R-hat", "bulk ESS", "tail ESS"]] + [
-                [str(t), "—" if v.get("rhat") is None else format(v["rhat"], ".4f"), _fmt(v.get("ess_bulk")), _fmt(v.get("ess_tail"))] for t, v in per.items()]
-        blocks.append({"title": "Convergence (rank-normalised R-hat and ESS; Vehtari et al. 2021)", "kv": kv, "table": table})
-        done.add("diagnostics")
-    loo = ex.get("loo")
-    if isinstance(loo, Mapping) and "elpd_difference" in loo:
-        table = [["variance model", "elpd (PSIS-LOO)", "SE", "p_loo", "rows with Pareto k > 0.7"]]
-        for key in ("heteroscedastic", "constant_variance"):
-            v = loo.get(key) or {}
-            table.append([key.replace("_", " "), _fmt(v.get("elpd_loo")), _fmt(v.get("se")), _fmt(v.get("p_loo")),
-                          _cell(v.get("pareto_k_above_0.7"))])
-        kv = [("elpd difference (modelled − constant variance)",
-               f"{_fmt(loo.get('elpd_difference'))} ± {_fmt(loo.get('elpd_difference_se'))} (SE)"),
-              ("preferred", str(loo.get("preferred", "")).replace("_", " "))]
-        blocks.append({"title": "Does modelling the variance improve prediction? (PSIS-LOO)", "kv": kv, "table": table})
-        done.add("loo")
-    vm = ex.get("variance_model")
-    if isinstance(vm, Mapping):
-        blocks.append({"title": "Variance model: coefficients of log σ (user's scale)", "kv": None,
-                       "table": _summary_rows({k: v for k, v in vm.items() if k != "terms"}, "term")})
-        done.add("variance_model")
-    ps = ex.get("prior_sensitivity")
-    if isinstance(ps, Mapping) and isinstance(ps.get("product_term"), Mapping):
-        table = [["prior SDs ×", "product term", "posterior mean", "posterior SD", "interval"]]
-        for factor, terms in sorted(ps["product_term"].items(), key=lambda kv: float(kv[0])):
-            for row in _summary_rows(terms, "term")[1:]:
-                table.append([str(factor)] + row)
-        kv = [("largest shift of the posterior mean (in posterior SDs)", _fmt(ps.get("max_shift_in_posterior_sd"))),
-              ("note", str(ps.get("note", "")))]
-        blocks.append({"title": "Prior sensitivity of the product term", "kv": kv, "table": table})
-        done.add("prior_sensitivity")
-    pc = ex.get("predictive_check")
-    if isinstance(pc, Mapping) and isinstance(pc.get("bins"), list) and isinstance(pc.get("observed_sd"), list):
-        models = [k for k in ("heteroscedastic", "constant_variance") if isinstance(pc.get(k), Mapping)]
-        lv = pc.get("level")
-        head = ["moderator bin", "rows", "observed SD of y"] + [
-            f"{k.replace('_', ' ')} model: {100 * lv:g}% predictive interval" if isinstance(lv, float) else k
-            for k in models]
-        table = [head]
-        for i, b in enumerate(pc["bins"]):
-            row = [_range(b) if isinstance(b, list) else str(b), _cell((pc.get("n_per_bin") or [None] * (i + 1))[i]),
-                   _fmt(pc["observed_sd"][i])]
-            for k in models:
-                lo, hi = pc[k].get("lower") or [], pc[k].get("upper") or []
-                row.append(_ci([lo[i], hi[i]]) if i < len(lo) and i < len(hi) else "—")
-            table.append(row)
-        kv = [(f"bins outside the interval, {k.replace('_', ' ')} model", _cell(pc[k].get("bins_outside"))) for k in models]
-        blocks.append({"title": f"Posterior predictive check of the spread across {pc.get('moderator', 'the moderator')}",
-                       "kv": kv, "table": table})
-        done.add("predictive_check")
-    if isinstance(ex.get("sampler"), Mapping):
-        blocks += _blocks(ex["sampler"], "Sampler settings")
-        done.add("sampler")
-    rest = {k: v for k, v in ex.items() if k not in done}
-    if rest:
-        blocks += _blocks(rest, "Other checks")
-    return blocks
+def _shifts(s: Mapping[str, Any]) -> list[dict[str, str]]:
+    shifts = []
+    for bid in s.get("relative_change_of_estimate") or {}:
+        bs = (s.get("boundary_shift") or {}).get(bid) or {}
+        shifts.append({"id": bid, "est": signed(s["relative_change_of_estimate"].get(bid)),
+                       "width": signed((s.get("relative_change_of_interval_width") or {}).get(bid)),
+                       "shift": signed(bs.get("max_shift")) if bs.get("same_shape", True)
+                       else "different number of boundaries inside the observed range",
+                       "share": signed(bs.get("share_of_observed_range"))})
+    return shifts
 
 
 def _figure_src(rec: "FigureRecord") -> str | None:
@@ -427,45 +138,25 @@ def _figure_src(rec: "FigureRecord") -> str | None:
 
 def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str, Any],
             figures: Sequence["FigureRecord"]) -> dict[str, Any]:
-    """Everything the HTML and Markdown need, as display strings (user text left raw: the
-    templates escape it)."""
+    """Everything the pages need: the model, the summary and the comparison's tables by section
+    (user text left raw: each renderer escapes it)."""
     model = res["model"]
-    level_pct = f"{100 * (1 - model['alpha']):g}%"
     mods = []
     for name, s in model["moderator_summary"].items():
         mods.append({"name": name, "type": "categorical" if s["categorical"] else "continuous",
-                     "mean": _fmt(s["mean"]), "sd": _fmt(s["sd"]), "min": _fmt(s["min"]), "max": _fmt(s["max"]),
-                     "levels": ", ".join(str(v) for v in s["levels"]) or "—"})
-    tests, other = _diagnostics(res)
-    posterior = [k for k, v in res["backends"].items() if v.get("kind") == "posterior"
-                 or (not v["available"] and k == "bayes")]
-    b = res["backends"][posterior[0]] if posterior else None
-    bayes, bayes_missing = None, "No Bayesian fit in this comparison (add the bayes back-end)."
-    if b is not None and b["available"]:
-        bayes = {"label": b["label"], "blocks": _bayes_blocks(b.get("extras") or {})}
-    elif b is not None:
-        bayes_missing = f"The Bayesian back-end gave no answer: {b.get('reason')}"
-    regions = [r.significance_region for r in comparison.results.values() if r.significance_region]
-    shifts = []
-    s = res["summary"]
-    for bid in s.get("relative_change_of_estimate") or {}:
-        bs = (s.get("boundary_shift") or {}).get(bid) or {}
-        shifts.append({"id": bid, "est": _fmt(s["relative_change_of_estimate"].get(bid)),
-                       "width": _fmt((s.get("relative_change_of_interval_width") or {}).get(bid)),
-                       "shift": _fmt(bs.get("max_shift")) if bs.get("same_shape", True) else "different number of boundaries inside the observed range",
-                       "share": _fmt(bs.get("share_of_observed_range"))})
+                     "mean": signed(s["mean"]), "sd": signed(s["sd"]), "min": signed(s["min"]),
+                     "max": signed(s["max"]), "levels": ", ".join(str(v) for v in s["levels"]) or "—"})
     data_file = prov.get("data_file")
+    s = res["summary"]
     return {
         "version": prov["packages"].get("robustmod", ""), "schema": res["schema"], "model": model, "summary": s,
-        "level_pct": level_pct, "probe_points": [_at(pt) for pt in model["probe_points"]],
+        "level_pct": f"{100 * (1 - model['alpha']):g}%",
+        "probe_points": [", ".join(f"{k} = {v if isinstance(v, str) else signed(v)}" for k, v in pt.items())
+                         for pt in model["probe_points"]],
         "data_name": Path(data_file).name if data_file else None, "data_sha": prov.get("data_sha256"),
         "moderator_rows": mods, "warnings": res.get("warnings") or [],
-        "rows": _rows(comparison, res), "slopes": _slopes(res),
-        "region_moderator": regions[0]["moderator"] if regions else "no continuous moderator",
         "backend_warnings": [(bid, w) for bid, bb in res["backends"].items() for w in bb.get("warnings") or []],
-        "shifts": shifts, "diagnostics": tests, "diagnostics_other": other,
-        "has_linearity": (res.get("diagnostics") or {}).get("linearity") is not None,
-        "calibration": _calibration(res), "bayes": bayes, "bayes_missing": bayes_missing,
+        "shifts": _shifts(s), "groups": grouped_tables(comparison),
         "figures": [{"name": f.name, "title": f.title, "caption": f.caption, "skipped": f.skipped,
                      "src": _figure_src(f), "png": f.png, "pdf": f.pdf} for f in figures],
         "cautions": CAUTIONS, "provenance": prov, "data_note": None,
@@ -474,117 +165,19 @@ def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str,
 
 def render_html(ctx: Mapping[str, Any]) -> str:
     import jinja2  # noqa: PLC0415
+    from markupsafe import Markup  # noqa: PLC0415
 
     from .templates import HTML  # noqa: PLC0415
 
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
-    return env.from_string(HTML).render(**ctx)
-
-
-def _md_table(header: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
-    out = ["| " + " | ".join(md_escape(h) for h in header) + " |", "|" + "---|" * len(header)]
-    out += ["| " + " | ".join(md_escape(c) for c in r) + " |" for r in rows]
-    return out + [""]
-
-
-def render_markdown(ctx: Mapping[str, Any]) -> str:
-    """The appendix as Markdown, for pasting into a manuscript's supplement."""
-    m, s, lv = ctx["model"], ctx["summary"], ctx["level_pct"]
-    e = md_escape
-    lines = ["# Sensitivity appendix", ""] + ([e(ctx["data_note"]), ""] if ctx.get("data_note") else []) + [
-             f"Model {e(m['formula'])}: focal predictor {e(m['focal'])}, moderator(s) "
-             f"{e(', '.join(m['moderators']))}; {m['n_obs']} rows used, {m['n_dropped']} dropped; alpha = {m['alpha']:g}; "
-             f"primary back-end {e(s['primary'])}; coefficients on the {e(m['scale'])}.", "",
-             "## Robustness summary", "", e(s["sentence"]), "",
-             "## Comparison of back-ends", "",
-             f"Product term {e(' + '.join(m['interaction_terms']))}; intervals at {lv}; boundaries on the raw moderator scale.", ""]
-    lines += _md_table(["back-end", "method", "estimate", "SE", f"{lv} interval", "interval type", "p (or P(>0))",
-                        "supported", f"region boundaries ({ctx['region_moderator']})"],
-                       [[r["id"], r["label"], r["estimate"], r["se"], r["ci"], r["interval"], r["p"], r["supported"],
-                         r["boundaries"]] for r in ctx["rows"]])
-    lines += [f"## Conditional slope of {e(m['focal'])} at the probe values", ""]
-    lines += _md_table(["back-end", "at (raw scale)", "slope", "SE", f"{lv} interval", "p", "within observed range"],
-                       [[x["id"], x["at"], x["estimate"], x["se"], x["ci"], x["p"], x["within"]] for x in ctx["slopes"]])
-    lines += ["## Variance diagnostics (OLS residuals)", ""]
-    lines += _md_table(["test", "statistic", "df", "p", "form"],
-                       [[d["name"], d["statistic"], d["df"], d["p"], d["form"]] for d in ctx["diagnostics"]])
-    for block in ctx["diagnostics_other"]:
-        lines += [f"### {e(block['title'])}", ""] if block["title"] else []
-        if block["table"]:
-            lines += _md_table(block["table"][0], block["table"][1:])
-        for k, v in block["kv"] or []:
-            lines.append(f"- {e(k)}: {e(v)}")
-        lines.append("")
-    cal = ctx["calibration"]
-    lines += ["## Calibration", ""]
-    if cal:
-        lines += [f"{cal['n_datasets']} simulated datasets; nominal alpha = {cal['alpha']}.", ""]
-        lines += _md_table(["back-end", "false-positive rate", "MC SE", "power", "MC SE"],
-                           [[c["id"], c["fpr"], c["fpr_se"], c["power"], c["power_se"]] for c in cal["rows"]])
-    else:
-        lines += ["No calibration was run.", ""]
-    lines += ["## Bayesian diagnostics", ""]
-    if ctx["bayes"]:
-        for block in ctx["bayes"]["blocks"]:
-            lines += [f"### {e(block['title'])}", ""] if block["title"] else [] if block["title"] else []
-            if block["table"]:
-                lines += _md_table(block["table"][0], block["table"][1:])
-            for k, v in block["kv"] or []:
-                lines.append(f"- {e(k)}: {e(v)}")
-            lines.append("")
-    else:
-        lines += [e(ctx["bayes_missing"]), ""]
-    lines += ["## Figures", ""]
-    for f in ctx["figures"]:
-        if f["png"] is not None:
-            lines += [f"![{e(f['title'])}](figures/{f['name']}.png)", "", f"*{e(f['title'])}.* {e(f['caption'])}", ""]
-        else:
-            lines += [f"*{e(f['title'])}: not drawn ({e(f['skipped'])}).*", ""]
-    lines += ["## Cautions", ""] + [f"- {e(c)}" for c in ctx["cautions"]] + [""]
-    p = ctx["provenance"]
-    lines += ["## Provenance", "", f"- written: {p['created_utc']}", f"- command: {e(p['command_line'] or 'called from Python')}",
-              f"- data SHA-256: {p['data_sha256'] or 'not a file'}", f"- seed: {p['seed']}",
-              "- versions: " + e(", ".join(f"{k} {v}" for k, v in p["packages"].items())), ""]
-    return "\n".join(lines)
-
-
-def _tex_table(caption: str, label: str, header: Sequence[str], rows: Sequence[Sequence[Any]], align: str) -> list[str]:
-    t = latex_escape
-    out = [r"\begin{table}[htbp]", r"\centering", r"\small", rf"\caption{{{t(caption)}}}", rf"\label{{{label}}}",
-           rf"\begin{{tabular}}{{{align}}}", r"\toprule", " & ".join(t(h) for h in header) + r" \\", r"\midrule"]
-    out += [" & ".join(t(c) for c in r) + r" \\" for r in rows]
-    return out + [r"\bottomrule", r"\end{tabular}", r"\end{table}", ""]
-
-
-def render_latex(ctx: Mapping[str, Any]) -> str:
-    """booktabs tables for a manuscript (needs \\usepackage{booktabs}); every string escaped."""
-    m, s, lv = ctx["model"], ctx["summary"], ctx["level_pct"]
-    lines = ["% Sensitivity appendix tables. Needs \\usepackage{booktabs} in the preamble.", ""]
-    cap = (f"Product term {' + '.join(m['interaction_terms'])} under each variance treatment "
-           f"(model {m['formula']}; {m['n_obs']} rows; {lv} intervals; coefficients on the {m['scale']}; "
-           f"primary back-end {s['primary']}). {s['sentence']}")
-    lines += _tex_table(cap, "tab:robustmod-comparison",
-                        ["back-end", "method", "estimate", "SE", f"{lv} interval", "p (or P(>0))", "supported",
-                         f"region boundaries ({ctx['region_moderator']})"],
-                        [[r["id"], r["label"], r["estimate"], r["se"], r["ci"], r["p"], r["supported"], r["boundaries"]]
-                         for r in ctx["rows"]], "llrrrrll")
-    lines += _tex_table(f"Conditional slope of {m['focal']} at the probe values (raw scale; {lv} intervals).",
-                        "tab:robustmod-slopes", ["back-end", "at", "slope", "SE", f"{lv} interval", "p", "within range"],
-                        [[x["id"], x["at"], x["estimate"], x["se"], x["ci"], x["p"], x["within"]] for x in ctx["slopes"]],
-                        "llrrrrl")
-    lines += _tex_table("Variance diagnostics of the OLS residuals.", "tab:robustmod-diagnostics",
-                        ["test", "statistic", "df", "p"],
-                        [[d["name"], d["statistic"], d["df"], d["p"]] for d in ctx["diagnostics"]], "lrrr")
-    cal = ctx["calibration"]
-    if cal:
-        lines += _tex_table(f"Calibration: {cal['n_datasets']} simulated datasets, nominal alpha = {cal['alpha']}.",
-                            "tab:robustmod-calibration", ["back-end", "false-positive rate", "MC SE", "power", "MC SE"],
-                            [[c["id"], c["fpr"], c["fpr_se"], c["power"], c["power_se"]] for c in cal["rows"]], "lrrrr")
-    return "\n".join(lines)
+    sections = {name: Markup("\n".join(render_table_html(t) for t in tables))  # noqa: S704  (escaped by render_table_html)
+                for name, tables in ctx["groups"].items()}
+    return env.from_string(HTML).render(**ctx, sections=sections)
 
 
 def render_csv(comparison: "Comparison") -> str:
-    """The comparison table as CSV, text cells guarded against formula injection."""
+    """The comparison table as CSV: numbers as numbers (interval ends and region boundaries in
+    columns of their own), only text cells guarded against formula injection."""
     table = comparison.table().reset_index()
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
