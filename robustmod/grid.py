@@ -228,8 +228,7 @@ def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Des
     """
     design = base
     if s.outcome != "none":
-        design = replace(base, y=transform_outcome(base.y, s.outcome, plan.base.response))
-        design.__dict__["qr"] = base.qr  # same X, same factor
+        design = replace(base, y=transform_outcome(base.y, s.outcome, plan.base.response))  # same X, same QR
     flagged = outlier_mask(design, s.outliers)
     rows = design.data.frame.index.to_numpy()
     if flagged.any():
