@@ -447,6 +447,9 @@ class WildBootstrapBackend:
     # ---- fit ---------------------------------------------------------------------------------
     def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Unrestricted and null-imposed wild bootstraps with the same weight draws."""
+        if design.clusters is not None:  # clustered rows: one weight per cluster
+            from .wild_cluster import wild_cluster_fit  # noqa: PLC0415
+            return wild_cluster_fit(self, design, seed=seed, progress=progress)
         t0 = time.perf_counter()
         got = self._omega(design)
         if isinstance(got, str):
