@@ -1,6 +1,8 @@
 """Wild cluster bootstrap (the ``wild`` back-end with a cluster column) against refit loops in statsmodels."""
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -97,3 +99,19 @@ def test_compare_passes_the_cluster_to_the_wild_back_end_and_is_reproducible():
     b = robustmod.compare(*args, **kw).to_dict()["backends"]["wild"]
     assert a["interaction"] == b["interaction"]
     assert a["extras"]["n_clusters"] == 40 and "cluster bootstrap" in a["label"]
+
+
+def test_batched_null_p_equals_one_fit_per_dataset():
+    # Common practice, no source: the batched calibration path gives a dataset the p that a fit with the
+    # same weight draws gives (dataset 0 uses the draws of a fit with the same seed).
+    data = _persons(40)
+    design = build_design(data, ModelSpec("lwage ~ union * educ + exper", "union", ("educ",), cluster="nr"))
+    Y = design.y[:, None] + np.random.default_rng(4).normal(0, 0.3, (design.n_obs, 3))
+    backend = WildBootstrapBackend(replications=99)
+    batched = backend.null_p_many(design, Y, seed=9)
+    for d in range(3):
+        fit = backend.fit(dataclasses.replace(design, y=Y[:, d].copy()), seed=9)
+        assert backend.null_p_many(design, Y[:, [d]], seed=9)[0] == pytest.approx(fit.extras["interaction_p"])
+        if d == 0:
+            assert batched[0] == pytest.approx(fit.extras["interaction_p"])
+    assert batched.shape == (3,) and np.all((batched > 0) & (batched <= 1))

@@ -530,6 +530,9 @@ class WildBootstrapBackend:
                              f"got shape {Y.shape}.")
         if not np.all(np.isfinite(Y)):
             raise InputError("The simulated outcomes contain NaN or infinite values; simulate finite outcomes.")
+        if design.clusters is not None:  # clustered rows: one weight per cluster
+            from .wild_cluster import cluster_null_p_many  # noqa: PLC0415
+            return cluster_null_p_many(self, design, Y, seed=seed)
         got = self._omega(design)
         if isinstance(got, str):
             raise InputError(got)

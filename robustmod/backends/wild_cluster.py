@@ -19,7 +19,7 @@ import time
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import linalg
+from scipy import linalg, sparse
 
 from .base import Fit, Unavailable
 from .cluster import cluster_grams, cluster_sums, cr_factor
@@ -28,8 +28,10 @@ from .wild import (
     CHUNK_ELEMENTS,
     WEIGHT_LABELS,
     BootstrapFit,
+    _batched_wald,
     _chunks,
     _enumerate,
+    _full_from_pairs,
     _progress,
     _weight_chunk,
     sign_patterns,
@@ -144,3 +146,49 @@ def wild_cluster_fit(backend: Any, design: Design, *, seed: int, progress: bool 
         "seconds": time.perf_counter() - t0,
     })
     return fit
+
+
+def _scores_many(Q: np.ndarray, E: np.ndarray, codes: np.ndarray, G: int) -> np.ndarray:
+    """Q_gᵀ e_g for every cluster and every column of E (G × k × D), via a sparse cluster indicator."""
+    n = Q.shape[0]
+    ind = sparse.csr_matrix((np.ones(n), (codes, np.arange(n))), shape=(G, n))
+    return np.stack([ind @ (Q[:, [j]] * E) for j in range(Q.shape[1])], axis=1)
+
+
+def cluster_null_p_many(backend: Any, design: Design, Y: np.ndarray, *, seed: int) -> np.ndarray:
+    """Null-imposed wild cluster bootstrap p of the product term(s) for each column of Y (n × D).
+
+    Dataset d uses replicates d·B … (d+1)·B − 1 of the weight stream of ``seed``, so the first
+    dataset gets the draws a fit with the same seed uses; the CR1 Wald statistic (t² for one
+    product term) is compared with its null-imposed draws.
+    """
+    if design.clusters is None:
+        raise ValueError("the wild cluster bootstrap needs a design with cluster codes")
+    Q, R = design.qr
+    n, k = Q.shape
+    codes = design.clusters
+    G = int(codes.max()) + 1
+    cols = tuple(int(c) for c in design.interaction_columns)
+    q = len(cols)
+    rows = r_inverse(R)[list(cols)]
+    factor = cr_factor("cr1", n, k, G)
+    grams = cluster_grams(Q, codes, G)
+    QtY = Q.T @ Y
+    b_obs = (rows @ QtY).T  # D × q
+    U_obs = np.einsum("gjd,pj->dgp", _scores_many(Q, Y - Q @ QtY, codes, G), rows)  # D × G × q
+    W_obs = _batched_wald(b_obs, factor * np.einsum("dgp,dgr->dpr", U_obs, U_obs))
+    keep = [j for j in range(k) if j not in cols]
+    Q0, _ = np.linalg.qr(design.X[:, keep], mode="reduced")
+    S0 = _scores_many(Q, Y - Q0 @ (Q0.T @ Y), codes, G)  # G × k × D
+    enum = _enumerate(backend.weights, G, backend.replications)
+    B = 2**G if enum else backend.replications
+    rng = np.random.default_rng(seed)
+    step = max(1, CHUNK_ELEMENTS // (G * k))
+    p = np.empty(Y.shape[1])
+    for d in range(Y.shape[1]):
+        hits = 0
+        for a, b in _chunks(B, step):
+            D, M = cluster_replicates(_weights(backend.weights, G, a, b, enum, rng), S0[:, :, d], grams, rows, factor)
+            hits += int(np.sum(_batched_wald(D, _full_from_pairs(M, q)) >= W_obs[d] * (1.0 - TIE_TOL)))
+        p[d] = hits / B
+    return p
