@@ -90,6 +90,16 @@ def cr_factor(kind: str, n: int, k: int, n_clusters: int) -> float:
     return 1.0
 
 
+def cluster_ols(design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, np.ndarray, np.ndarray]:
+    """(Q, R, cluster codes, G, β̂, ê) of the OLS fit of a clustered design, from its shared QR."""
+    if design.clusters is None:
+        raise ValueError("a cluster-robust fit needs a design with cluster codes")
+    Q, R = design.qr
+    qty = Q.T @ design.y
+    beta = linalg.solve_triangular(R, qty, check_finite=False)
+    return Q, R, design.clusters, int(design.clusters.max()) + 1, beta, design.y - Q @ qty
+
+
 def satterthwaite_df(D: np.ndarray, P: np.ndarray, N: np.ndarray) -> np.ndarray:
     """Satterthwaite df of c'β̂ for the columns d = R⁻ᵀc of D (k × m) (Bell & McCaffrey 2002).
 
@@ -196,10 +206,7 @@ class ClusterFit(Fit):
         q = L.shape[0]
         r = L @ self.params
         S = L @ self.cov @ L.T
-        try:
-            Q = float(r @ linalg.cho_solve(linalg.cho_factor(S, check_finite=False), r, check_finite=False))
-        except linalg.LinAlgError:
-            Q = float(r @ linalg.lstsq(S, r)[0])
+        Q = float(r @ linalg.lstsq(S, r)[0])  # (Lβ)ᵀ(LVLᵀ)⁻¹(Lβ); a least-squares solve also copes with singular S
         if self.df_parts is None:
             den = float(self.n_clusters - 1)
             stat, method = Q / q, f"cluster-robust Wald F ({q}, {den:g})"
@@ -227,13 +234,8 @@ class ClusterBackend:
         if design.clusters is None:
             return Unavailable(self.id, self.label, "Cluster-robust standard errors need cluster ids; name the column "
                                "that holds them (compare(..., cluster='team')).")
-        Q, R = design.qr
+        Q, R, codes, G, beta, resid = cluster_ols(design)
         n, k = Q.shape
-        codes = design.clusters
-        G = int(codes.max()) + 1
-        qty = Q.T @ design.y
-        beta = linalg.solve_triangular(R, qty, check_finite=False)
-        resid = design.y - Q @ qty
         scores = cluster_sums(Q * resid[:, None], codes, G)  # Q_gᵀ ê_g, G × k
         warnings: list[str] = []
         df_parts: tuple[np.ndarray, np.ndarray] | None = None

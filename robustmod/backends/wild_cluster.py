@@ -19,10 +19,10 @@ import time
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import linalg, sparse
+from scipy import sparse
 
 from .base import Fit, Unavailable
-from .cluster import cluster_grams, cluster_sums, cr_factor
+from .cluster import cluster_grams, cluster_ols, cluster_sums, cr_factor
 from .hc import r_inverse
 from .wild import (
     CHUNK_ELEMENTS,
@@ -98,15 +98,8 @@ def _notes(backend: Any, G: int, B: int, enum: bool) -> list[str]:
 def wild_cluster_fit(backend: Any, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
     """Unrestricted and null-imposed wild cluster bootstraps sharing one set of cluster weights."""
     t0 = time.perf_counter()
-    if design.clusters is None:
-        raise ValueError("the wild cluster bootstrap needs a design with cluster codes")
-    Q, R = design.qr
+    Q, R, codes, G, beta, resid = cluster_ols(design)
     n, k = Q.shape
-    codes = design.clusters
-    G = int(codes.max()) + 1
-    qty = Q.T @ design.y
-    beta = linalg.solve_triangular(R, qty, check_finite=False)
-    resid = design.y - Q @ qty
     Rinv = r_inverse(R)
     factor = cr_factor("cr1", n, k, G)
     grams = cluster_grams(Q, codes, G)
@@ -162,12 +155,8 @@ def cluster_null_p_many(backend: Any, design: Design, Y: np.ndarray, *, seed: in
     dataset gets the draws a fit with the same seed uses; the CR1 Wald statistic (t² for one
     product term) is compared with its null-imposed draws.
     """
-    if design.clusters is None:
-        raise ValueError("the wild cluster bootstrap needs a design with cluster codes")
-    Q, R = design.qr
+    Q, R, codes, G, _, _ = cluster_ols(design)
     n, k = Q.shape
-    codes = design.clusters
-    G = int(codes.max()) + 1
     cols = tuple(int(c) for c in design.interaction_columns)
     q = len(cols)
     rows = r_inverse(R)[list(cols)]
