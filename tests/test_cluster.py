@@ -194,3 +194,13 @@ def test_cluster_back_end_without_clusters_is_unavailable():
     design = build_design(_small(), ModelSpec("y ~ x * w", "x", ("w",)))
     out = ClusterBackend(id="cr2").fit(design, seed=0)
     assert isinstance(out, Unavailable) and "cluster" in out.reason
+
+
+def test_settings_table_names_the_clustering():
+    # Common practice, no source: the table states the cluster column, G and the adjustment used.
+    _, fit = _fit("first40", "cr2")
+    (table,) = fit.report_tables()
+    values = dict(table.rows)
+    assert values["cluster column"] == "nr" and values["clusters G"] == "40"
+    assert values["rows per cluster (min, median, max)"] == "8, 8, 8"
+    assert "Bell & McCaffrey" in values["residual adjustment"] and table.source == "cr2"

@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from scipy import linalg, stats
 
+from ..tables import Column, Table, make_table
 from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -43,6 +44,13 @@ LABELS = {
     "cr1": "OLS + CR1 (cluster-robust)",
     "cr2": "OLS + CR2 (bias-reduced, Satterthwaite df)",
     "cr3": "OLS + CR3 (cluster jackknife)",
+}
+#: How each member adjusts the cluster residuals, for the settings table.
+ADJUSTMENTS = {
+    "cr0": "none",
+    "cr1": "none; factor G/(G − 1)·(n − 1)/(n − k)",
+    "cr2": "(I − H_gg)^(−1/2) (Bell & McCaffrey 2002)",
+    "cr3": "(I − H_gg)^(−1), the cluster jackknife",
 }
 #: Power p of (I − M_g)^(−p) for the adjusted members.
 ADJUSTMENT_POWER = {"cr2": 0.5, "cr3": 1.0}
@@ -171,6 +179,17 @@ class ClusterFit(Fit):
         self.df_parts = df_parts  # (P, N) of CR2's Satterthwaite df; None: G − 1 for every row
         self.df: float | None = None if df_parts is not None else float(n_clusters - 1)
 
+    def report_tables(self) -> tuple[Table, ...]:
+        """The clustering this fit used: column, number and sizes of clusters, adjustment and df rule."""
+        sizes = self.extras.get("cluster_sizes", (None, None, None))
+        rows = [("cluster column", str(self.extras.get("cluster"))), ("clusters G", str(self.n_clusters)),
+                ("rows per cluster (min, median, max)", ", ".join(f"{v:g}" for v in sizes if v is not None)),
+                ("residual adjustment", ADJUSTMENTS[self.backend_id]),
+                ("degrees of freedom", str(self.extras.get("df_rule")))]
+        return (make_table(f"{self.backend_id}.clusters", f"Clustering used by {self.label}",
+                           [Column("setting", "Setting", "text"), Column("value", "Value", "text")], rows,
+                           source=self.backend_id),)
+
     def row_df(self, L: np.ndarray) -> np.ndarray:
         """Degrees of freedom of each row of L."""
         L = _as_rows(L, self.params.size)
@@ -251,7 +270,9 @@ class ClusterBackend:
                 df_parts = (T @ M @ T, M @ T)
         Rinv_meat = linalg.solve_triangular(R, scores.T, check_finite=False)  # R⁻¹ U ᵀ, k × G
         cov = cr_factor(self.id, n, k, G) * (Rinv_meat @ Rinv_meat.T)
-        extras = {"n_clusters": G, "cluster": design.cluster_name, "df_rule":
+        sizes = np.bincount(codes, minlength=G)
+        extras = {"n_clusters": G, "cluster": design.cluster_name,
+                  "cluster_sizes": (int(sizes.min()), float(np.median(sizes)), int(sizes.max())), "df_rule":
                   "Satterthwaite per contrast" if df_parts is not None else f"G − 1 = {G - 1}"}
         reliable = not (self.id == "cr3" and warnings)
         return ClusterFit(self.id, self.label, design.term_names, beta, 0.5 * (cov + cov.T), R, G, df_parts,
