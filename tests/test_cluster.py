@@ -204,3 +204,25 @@ def test_settings_table_names_the_clustering():
     assert values["cluster column"] == "nr" and values["clusters G"] == "40"
     assert values["rows per cluster (min, median, max)"] == "8, 8, 8"
     assert "Bell & McCaffrey" in values["residual adjustment"] and table.source == "cr2"
+
+
+@pytest.mark.parametrize("cr,hc", [("cr0", "HC0"), ("cr1", "HC1"), ("cr2", "HC2"), ("cr3", "HC3")])
+def test_one_row_per_cluster_gives_the_hc_family(cr, hc):
+    # Closed form (Bell & McCaffrey 2002): with every row its own cluster CR0–CR3 reduce to HC0–HC3;
+    # reference library: statsmodels' HC covariances.
+    data = _panel("all").reset_index(drop=True).assign(row=lambda d: np.arange(len(d)))
+    design = build_design(data, ModelSpec(FORMULA, "union", ("educ",), cluster="row"))
+    fit = ClusterBackend(id=cr).fit(design, seed=0)
+    names = list(fit.term_names)
+    ref = smf.ols(FORMULA, data).fit(cov_type=hc)
+    np.testing.assert_allclose(fit.cov, ref.cov_params().loc[names, names].to_numpy(), rtol=1e-8, atol=1e-14)
+
+
+def test_htz_with_one_contrast_is_the_satterthwaite_t_test():
+    # Closed form (Pustejovsky & Tipton 2018): for q = 1 the HTZ F equals t² on (1, ν) df, ν the Satterthwaite df.
+    _, fit = _fit("first40", "cr2")
+    L = np.eye(len(fit.term_names))[[fit.term_names.index("union:educ")]]
+    est, jt = fit.estimate(L, 0.05), fit.joint_test(L, 0.05)
+    assert jt.statistic == pytest.approx(est.extra["statistic"][0] ** 2, rel=1e-10)
+    assert jt.df_den == pytest.approx(est.extra["df"][0], rel=1e-10)
+    assert jt.p == pytest.approx(est.p[0], rel=1e-9)
