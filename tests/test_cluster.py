@@ -226,3 +226,27 @@ def test_htz_with_one_contrast_is_the_satterthwaite_t_test():
     assert jt.statistic == pytest.approx(est.extra["statistic"][0] ** 2, rel=1e-10)
     assert jt.df_den == pytest.approx(est.extra["df"][0], rel=1e-10)
     assert jt.p == pytest.approx(est.p[0], rel=1e-9)
+
+
+@pytest.mark.parametrize("kind", ["cr0", "cr1", "cr2", "cr3"])
+@pytest.mark.parametrize("moderator", ["educ", "region"])
+def test_batched_decisions_equal_one_fit_per_dataset(kind, moderator):
+    # Common practice, no source: the batched calibration path decides as a fit of each dataset does
+    # (one product term: the t test; a categorical moderator: the joint test, HTZ for CR2).
+    import dataclasses
+
+    data = _panel("first40")
+    data = data.assign(region=np.select([data.nrtheast == 1, data.nrthcen == 1], ["ne", "nc"], "other"))
+    design = build_design(data, ModelSpec(f"lwage ~ union * {moderator} + exper", "union", (moderator,), cluster="nr"))
+    rng = np.random.default_rng(2)
+    X0 = np.delete(design.X, list(design.interaction_columns), axis=1)  # outcomes with no product term
+    Y = X0 @ np.linalg.lstsq(X0, design.y, rcond=None)[0][:, None] + rng.normal(0, 0.5, (design.n_obs, 40))
+    backend = ClusterBackend(id=kind)
+    batched = backend.reject_many(design, Y, 0.2)
+    single = []
+    for d in range(Y.shape[1]):
+        fit = backend.fit(dataclasses.replace(design, y=Y[:, d].copy()), seed=0)
+        L = design.interaction_rows()
+        single.append(fit.estimate(L, 0.2).p[0] < 0.2 if L.shape[0] == 1 else fit.joint_test(L, 0.2).supported)
+    np.testing.assert_array_equal(batched, single)
+    assert 0 < batched.sum() < len(batched)

@@ -31,7 +31,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import linalg, sparse, stats
 
 from ..tables import Column, Table, make_table
 from .base import Estimates, Fit, JointTest, Unavailable, _as_rows, quadratic_forms
@@ -65,6 +65,13 @@ def cluster_sums(Z: np.ndarray, codes: np.ndarray, n_clusters: int) -> np.ndarra
     """Σ_{i∈g} Z_i for every cluster g (G × p): one bincount per column, no loop over rows or clusters."""
     Z = Z.reshape(Z.shape[0], -1)
     return np.stack([np.bincount(codes, weights=Z[:, j], minlength=n_clusters) for j in range(Z.shape[1])], axis=1)
+
+
+def scores_many(Q: np.ndarray, E: np.ndarray, codes: np.ndarray, n_clusters: int) -> np.ndarray:
+    """Q_gᵀ e_g for every cluster and every column of E (G × k × D), via a sparse cluster indicator."""
+    n = Q.shape[0]
+    ind = sparse.csr_matrix((np.ones(n), (codes, np.arange(n))), shape=(n_clusters, n))
+    return np.stack([ind @ (Q[:, [j]] * E) for j in range(Q.shape[1])], axis=1)
 
 
 def cluster_grams(Q: np.ndarray, codes: np.ndarray, n_clusters: int) -> np.ndarray:
@@ -247,6 +254,42 @@ class ClusterBackend:
             raise ValueError(id)
         self.id = id
         self.label = LABELS[id]
+
+    def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
+        """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
+
+        All D datasets share X and the clusters, so the adjustments T_g, the df (G − 1, or the
+        Satterthwaite / HTZ df of CR2, which depend on X only) are computed once; the scores
+        Q_gᵀê_g of every dataset come from one sparse product per column of Q. The decisions are
+        those of :meth:`ClusterFit.estimate` / :meth:`ClusterFit.joint_test`. ``seed`` is unused.
+        """
+        Q, R, codes, G, _, _ = cluster_ols(design)
+        Y = np.asarray(Y, dtype=float)
+        if Y.ndim != 2 or Y.shape[0] != Q.shape[0]:
+            raise ValueError(f"Y must be n × D with n = {Q.shape[0]}; got shape {Y.shape}")
+        n, k = Q.shape
+        L = design.interaction_rows()
+        q = L.shape[0]
+        QtY = Q.T @ Y
+        r = (L @ linalg.solve_triangular(R, QtY, check_finite=False)).T  # D × q
+        S = scores_many(Q, Y - Q @ QtY, codes, G)  # G × k × D
+        D = linalg.solve_triangular(R, L.T, trans="T", check_finite=False)  # k × q
+        df_parts = None
+        if self.id in ADJUSTMENT_POWER:
+            M = cluster_grams(Q, codes, G)
+            T, _ = adjustment(M, ADJUSTMENT_POWER[self.id])
+            S = np.einsum("gjl,gld->gjd", T, S)
+            df_parts = (T @ M @ T, M @ T) if self.id == "cr2" else None
+        U = np.einsum("gjd,jp->dgp", S, D)  # D × G × q: cᵀR⁻¹ u_g per dataset
+        V = cr_factor(self.id, n, k, G) * np.einsum("dgp,dgr->dpr", U, U)
+        stat = np.einsum("dp,dp->d", r, np.linalg.solve(V, r[:, :, None])[:, :, 0])  # Wald Q (t² for q = 1)
+        if q == 1:
+            den = float(satterthwaite_df(D, *df_parts)[0]) if df_parts is not None else float(G - 1)
+            return stats.f.sf(stat, 1, den) < alpha
+        if df_parts is None:
+            return stats.f.sf(stat / q, q, float(G - 1)) < alpha
+        eta = htz_df(D, *df_parts)
+        return stats.f.sf((eta - q + 1) / (eta * q) * stat, q, eta - q + 1) < alpha
 
     def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         """β̂ from the shared QR, V from the per-cluster sums (``seed`` unused: nothing is random)."""

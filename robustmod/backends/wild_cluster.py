@@ -19,10 +19,9 @@ import time
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import sparse
 
 from .base import Fit, Unavailable
-from .cluster import cluster_grams, cluster_ols, cluster_sums, cr_factor
+from .cluster import cluster_grams, cluster_ols, cluster_sums, cr_factor, scores_many
 from .hc import r_inverse
 from .wild import (
     CHUNK_ELEMENTS,
@@ -141,13 +140,6 @@ def wild_cluster_fit(backend: Any, design: Design, *, seed: int, progress: bool 
     return fit
 
 
-def _scores_many(Q: np.ndarray, E: np.ndarray, codes: np.ndarray, G: int) -> np.ndarray:
-    """Q_gᵀ e_g for every cluster and every column of E (G × k × D), via a sparse cluster indicator."""
-    n = Q.shape[0]
-    ind = sparse.csr_matrix((np.ones(n), (codes, np.arange(n))), shape=(G, n))
-    return np.stack([ind @ (Q[:, [j]] * E) for j in range(Q.shape[1])], axis=1)
-
-
 def cluster_null_p_many(backend: Any, design: Design, Y: np.ndarray, *, seed: int) -> np.ndarray:
     """Null-imposed wild cluster bootstrap p of the product term(s) for each column of Y (n × D).
 
@@ -164,11 +156,11 @@ def cluster_null_p_many(backend: Any, design: Design, Y: np.ndarray, *, seed: in
     grams = cluster_grams(Q, codes, G)
     QtY = Q.T @ Y
     b_obs = (rows @ QtY).T  # D × q
-    U_obs = np.einsum("gjd,pj->dgp", _scores_many(Q, Y - Q @ QtY, codes, G), rows)  # D × G × q
+    U_obs = np.einsum("gjd,pj->dgp", scores_many(Q, Y - Q @ QtY, codes, G), rows)  # D × G × q
     W_obs = _batched_wald(b_obs, factor * np.einsum("dgp,dgr->dpr", U_obs, U_obs))
     keep = [j for j in range(k) if j not in cols]
     Q0, _ = np.linalg.qr(design.X[:, keep], mode="reduced")
-    S0 = _scores_many(Q, Y - Q0 @ (Q0.T @ Y), codes, G)  # G × k × D
+    S0 = scores_many(Q, Y - Q0 @ (Q0.T @ Y), codes, G)  # G × k × D
     enum = _enumerate(backend.weights, G, backend.replications)
     B = 2**G if enum else backend.replications
     rng = np.random.default_rng(seed)
