@@ -272,3 +272,11 @@ def test_size_with_twelve_clusters_and_a_cluster_level_moderator():
     rate["hc3"] = float(OLSBackend(id="hc3").reject_many(design, Y, 0.05).mean())
     assert 0.02 <= rate["cr2"] <= 0.085, rate
     assert rate["cr1"] > rate["cr2"] + 0.04 and rate["hc3"] > 0.12, rate
+
+
+def test_cluster_ids_of_mixed_kinds_name_clusters():
+    # Common practice, no source: ids such as 3 and "first" in one column still name clusters.
+    d = _small().astype({"team": object})
+    d.loc[d.team == 0.0, "team"] = "first"
+    design = build_design(d, ModelSpec("y ~ x * w", "x", ("w",), cluster="team"))
+    assert design.clusters.max() == 11 and np.bincount(design.clusters).tolist() == [5] * 12
