@@ -62,7 +62,7 @@ def attach_clusters(prepared: PreparedData, spec: ModelSpec) -> tuple[PreparedDa
     notes.append(f"Rows are clustered by {name!r}: {G} clusters of {sizes.min()}–{sizes.max()} rows.")
     if G < FEW_CLUSTERS:
         notes.append(f"Only {G} clusters in {name!r}: CR0/CR1 standard errors are too small with fewer than about "
-                     f"{FEW_CLUSTERS} clusters; trust cr2 (Satterthwaite df) and the wild cluster bootstrap (wild).")
+                     f"{FEW_CLUSTERS} clusters; cr2 (Satterthwaite df) and the wild cluster bootstrap (wild) hold up better.")
     return prepared, ClusterCodes(codes.astype(np.intp), G, name, tuple(notes))
 
 
