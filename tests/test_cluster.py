@@ -280,3 +280,21 @@ def test_cluster_ids_of_mixed_kinds_name_clusters():
     d.loc[d.team == 0.0, "team"] = "first"
     design = build_design(d, ModelSpec("y ~ x * w", "x", ("w",), cluster="team"))
     assert design.clusters.max() == 11 and np.bincount(design.clusters).tolist() == [5] * 12
+
+
+def test_weighted_cr0_matches_r():
+    # Source: R clubSandwich vcovCR(type = "CR0") on lm(..., weights = w), w = 1 / (1 + exper), whole panel
+    # (stored reference): cluster_fit on the QR of W^(1/2)X and W^(1/2)y gives the weighted sandwich.
+    # (The weighted CR2 is not checked: clubSandwich's adjustment for weighted fits differs from the
+    # transformed-model one that cluster_fit applies; see the note in cluster_reference.R.)
+    from robustmod.backends.cluster import cluster_fit
+    from robustmod.design import thin_qr
+
+    design = build_design(_panel("all"), ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
+    root = np.sqrt(1.0 / (1.0 + design.data.frame["exper"].to_numpy(dtype=float)))
+    Q, R = thin_qr(design.X * root[:, None])
+    fit = cluster_fit("cr0", Q, R, design.y * root, design.clusters, design.term_names)
+    names = list(fit.term_names)
+    np.testing.assert_allclose(fit.params, _reference("all_weighted", "estimate").reindex(names), rtol=1e-9)
+    np.testing.assert_allclose(fit.coefficients(0.05).se, _reference("all_weighted", "se_CR0").reindex(names),
+                               rtol=1e-8)

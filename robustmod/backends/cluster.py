@@ -296,27 +296,43 @@ class ClusterBackend:
         if design.clusters is None:
             return Unavailable(self.id, self.label, "Cluster-robust standard errors need cluster ids; name the column "
                                "that holds them (compare(..., cluster='team')).")
-        Q, R, codes, G, beta, resid = cluster_ols(design)
-        n, k = Q.shape
-        scores = cluster_sums(Q * resid[:, None], codes, G)  # Q_gᵀ ê_g, G × k
-        warnings: list[str] = []
-        df_parts: tuple[np.ndarray, np.ndarray] | None = None
-        if self.id in ADJUSTMENT_POWER:
-            M = cluster_grams(Q, codes, G)
-            T, singular = adjustment(M, ADJUSTMENT_POWER[self.id])
-            scores = np.einsum("gjl,gl->gj", T, scores)
-            if singular:
-                warnings.append(f"{singular} cluster(s) alone determine a direction of the coefficients "
-                                "(I − H_gg is singular); a pseudo-inverse was used for them"
-                                + ("; the cluster jackknife is undefined there." if self.id == "cr3" else "."))
-            if self.id == "cr2":
-                df_parts = (T @ M @ T, M @ T)
-        Rinv_meat = linalg.solve_triangular(R, scores.T, check_finite=False)  # R⁻¹ U ᵀ, k × G
-        cov = cr_factor(self.id, n, k, G) * (Rinv_meat @ Rinv_meat.T)
-        sizes = np.bincount(codes, minlength=G)
-        extras = {"n_clusters": G, "cluster": design.cluster_name,
-                  "cluster_sizes": (int(sizes.min()), float(np.median(sizes)), int(sizes.max())), "df_rule":
-                  "Satterthwaite per contrast" if df_parts is not None else f"G − 1 = {G - 1}"}
-        reliable = not (self.id == "cr3" and warnings)
-        return ClusterFit(self.id, self.label, design.term_names, beta, 0.5 * (cov + cov.T), R, G, df_parts,
-                          warnings=tuple(warnings), reliable=reliable, extras=extras, se_label=self.id.upper())
+        Q, R = design.qr
+        return cluster_fit(self.id, Q, R, design.y, design.clusters, design.term_names,
+                           cluster_name=design.cluster_name)
+
+
+def cluster_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, codes: np.ndarray,
+                term_names: tuple[str, ...], *, cluster_name: str | None = None, label: str | None = None,
+                backend_id: str | None = None) -> ClusterFit:
+    """Least squares from a thin QR factor X = QR with a CR covariance of ``kind`` (cr0 … cr3).
+
+    For a weighted fit pass the QR of W^(1/2)X and W^(1/2)y: CR0/CR1 are then the weighted
+    sandwich, and CR2/CR3 adjust the residuals of the transformed model (identity working model
+    there). R's clubSandwich adjusts weighted fits differently; its weighted CR2 is not reproduced.
+    """
+    n, k = Q.shape
+    G = int(codes.max()) + 1
+    qty = Q.T @ y
+    beta = linalg.solve_triangular(R, qty, check_finite=False)
+    scores = cluster_sums(Q * (y - Q @ qty)[:, None], codes, G)  # Q_gᵀ ê_g, G × k
+    warnings: list[str] = []
+    df_parts: tuple[np.ndarray, np.ndarray] | None = None
+    if kind in ADJUSTMENT_POWER:
+        M = cluster_grams(Q, codes, G)
+        T, singular = adjustment(M, ADJUSTMENT_POWER[kind])
+        scores = np.einsum("gjl,gl->gj", T, scores)
+        if singular:
+            warnings.append(f"{singular} cluster(s) alone determine a direction of the coefficients "
+                            "(I − H_gg is singular); a pseudo-inverse was used for them"
+                            + ("; the cluster jackknife is undefined there." if kind == "cr3" else "."))
+        if kind == "cr2":
+            df_parts = (T @ M @ T, M @ T)
+    Rinv_meat = linalg.solve_triangular(R, scores.T, check_finite=False)  # R⁻¹ Uᵀ, k × G
+    cov = cr_factor(kind, n, k, G) * (Rinv_meat @ Rinv_meat.T)
+    sizes = np.bincount(codes, minlength=G)
+    extras = {"n_clusters": G, "cluster": cluster_name,
+              "cluster_sizes": (int(sizes.min()), float(np.median(sizes)), int(sizes.max())), "df_rule":
+              "Satterthwaite per contrast" if df_parts is not None else f"G − 1 = {G - 1}"}
+    reliable = not (kind == "cr3" and warnings)
+    return ClusterFit(backend_id or kind, label or LABELS[kind], term_names, beta, 0.5 * (cov + cov.T), R, G,
+                      df_parts, warnings=tuple(warnings), reliable=reliable, extras=extras, se_label=kind.upper())
