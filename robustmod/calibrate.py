@@ -20,8 +20,8 @@ import math
 import os
 import time
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass
 from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np

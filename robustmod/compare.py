@@ -25,8 +25,8 @@ from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
 from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
 from .data import NaValues, load_data
 from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
-from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .design import Design, build_design
+from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
 from .spec import ModelSpec
@@ -321,6 +321,7 @@ def compare(
     alpha: float = ALPHA,
     seed: int = SEED,
     center: bool = False,
+    cluster: str | None = None,
     options: Mapping[str, Mapping[str, Any]] | None = None,
     calibration: int | None = None,
     calibrate_costly: bool = False,
@@ -354,6 +355,8 @@ def compare(
         Seeds every random step (bootstrap, sampler, calibration).
     center : bool, default=False
         Mean-centre focal and moderators (coefficients then refer to the centred scale).
+    cluster : str, optional
+        Column of cluster ids; the cluster-robust back-ends (cr0 … cr3) and the wild bootstrap use it.
     options : dict of dicts, optional
         Per back-end options, e.g. ``{"wild": {"replications": 999}}``.
     calibration : int, optional
@@ -401,7 +404,7 @@ def compare(
     frame, source = load_data(data, na_values=na_values, sep=sep, decimal=decimal, sheet=sheet)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
-                     alpha=alpha, seed=seed, center=center)
+                     alpha=alpha, seed=seed, center=center, cluster=cluster)
     ids = check_ids(list(backends) if backends is not None else list(BACKENDS))
     (primary,) = check_ids([primary])
     if primary not in ids:

@@ -8,8 +8,18 @@ from __future__ import annotations
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
-from .tables import (FINE_KEYS, MINUS, Column, NotApplicable, Table, format_number, human_label, make_table,
-                     region_words, signed)
+from .tables import (
+    FINE_KEYS,
+    MINUS,
+    Column,
+    NotApplicable,
+    Table,
+    format_number,
+    human_label,
+    make_table,
+    region_words,
+    signed,
+)
 
 if TYPE_CHECKING:  # pragma: no cover
     from .compare import BackendResult, Comparison

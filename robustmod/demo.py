@@ -34,3 +34,41 @@ def demo_data(n: int = 240, seed: int = DEMO_SEED) -> pd.DataFrame:
         "soil_moisture": soil_moisture,
         "field_slope": field_slope,
     })
+
+
+# ---- a second invented scenario: clustered rows -------------------------------------------------
+TEAM_FORMULA = "wellbeing ~ workload * team_support"
+TEAM_FOCAL = "workload"
+TEAM_MODERATOR = "team_support"
+TEAM_CLUSTER = "team"
+#: The seed of the invented sample; chosen so that the sample shows the verdict change the scenario
+#: is about (HC3 supports the product term, CR2 with Satterthwaite df does not).
+TEAM_SEED = 167
+
+
+def team_data(n_teams: int = 36, n: int = 673, seed: int = TEAM_SEED) -> pd.DataFrame:
+    """INVENTED DATA — no real organisation or person. Employees nested in teams.
+
+    Each of ``n_teams`` teams (8 or more members, ``n`` in all) has a team-level support score;
+    each employee a workload score (person level, with a team component). Wellbeing =
+    3 − 0.3·workload + 0.2·support + 0.12·workload·support + u_team + v_team·workload + ε with a
+    team intercept u (SD 0.5), a team-specific workload slope v (SD 0.22) and
+    SD(ε) = 0.8·(1 + 0.2·|workload|). The team slopes make rows of a team dependent, so
+    row-level (HC) standard errors of the product term are too small and cluster-robust ones
+    (CR2) are not.
+    """
+    rng = np.random.default_rng(seed)
+    sizes = 8 + rng.multinomial(n - 8 * n_teams, np.full(n_teams, 1.0 / n_teams))
+    team = np.repeat(np.arange(n_teams), sizes)
+    support = rng.normal(0, 1, n_teams).round(2)[team]
+    workload = (rng.normal(0, 1, n) + rng.normal(0, 0.5, n_teams)[team]).round(2)
+    intercept = rng.normal(0, 0.5, n_teams)[team]
+    slope = rng.normal(0, 0.22, n_teams)[team]
+    noise = rng.normal(0, 0.8, n) * (1 + 0.2 * np.abs(workload))
+    wellbeing = 3 - 0.3 * workload + 0.2 * support + 0.12 * workload * support + intercept + slope * workload + noise
+    return pd.DataFrame({
+        "team": [f"T{t + 1:02d}" for t in team],
+        "wellbeing": wellbeing.round(3),
+        "workload": workload,
+        "team_support": support,
+    })

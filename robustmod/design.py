@@ -22,6 +22,7 @@ from formulaic import model_matrix
 from scipy import linalg
 from scipy.linalg import lapack
 
+from .clusters import attach_clusters, moderator_levels
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
 from .spec import ModelSpec, parse_probe_rule
@@ -69,6 +70,8 @@ class Design:
     qr: tuple[np.ndarray, np.ndarray] = field(repr=False)  # thin QR of X, shared by the back-ends
     _model_spec: Any = field(repr=False)
     _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
+    clusters: np.ndarray | None = field(default=None, repr=False)  # codes 0 … G − 1 per used row, or None
+    cluster_name: str | None = None
 
     # ---- basic facts -------------------------------------------------------------
     @property
@@ -258,7 +261,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     one Householder QR of X is computed and shared. A column j with |R_jj| / ‖X_j‖ < 1e-11 is
     aliased and refused. Probe values default to mean ± 1 SD (Aiken & West 1991).
     """
-    prepared = prepare_data(data, spec)
+    prepared, clustering = attach_clusters(prepare_data(data, spec), spec)
     frame = prepared.frame.copy()
     centering: dict[str, float] = {}
     if spec.center:
@@ -286,6 +289,9 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     interaction_columns = _interaction_columns(model_spec, spec, term_names)
     moderators = _moderator_info(prepared, spec)
     warnings = list(prepared.warnings)
+    if clustering is not None:
+        warnings += [*clustering.notes,
+                     *moderator_levels(prepared.frame, clustering.codes, spec.moderators, clustering.name)]
     probe_points = _probe_points(spec, moderators, warnings)
     reference = _reference(frame, spec, prepared)
     focal_mean = float(prepared.frame[spec.focal].astype(float).mean())
@@ -294,6 +300,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
         data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings), qr=qr,
         _model_spec=model_spec, _frame=frame,
+        clusters=None if clustering is None else clustering.codes, cluster_name=spec.cluster,
     )
     if _focal_enters_linearly(design):
         return design

@@ -39,6 +39,8 @@ def _point(est: Any, i: int) -> dict[str, Any]:
         "ci": [num(est.lower[i]), num(est.upper[i])],
         "p": None if est.p is None else num(est.p[i]),
     }
+    if "df" in est.extra:  # per-row degrees of freedom (e.g. Satterthwaite)
+        out["df"] = num(est.extra["df"][i])
     if "prob_positive" in est.extra:
         out["prob_positive"] = num(est.extra["prob_positive"][i])
     return out

@@ -225,6 +225,9 @@ class ModelSpec:
         Mean-centre the focal predictor and the moderators before fitting. Conditional
         effects and region boundaries are always reported on the user's raw scale;
         coefficients on the centred scale.
+    cluster : str, optional
+        Column of cluster ids (teams, classes, persons measured repeatedly); rows that share
+        an id are not independent. Used by the cluster-robust back-ends and the wild bootstrap.
 
     Notes
     -----
@@ -240,6 +243,7 @@ class ModelSpec:
     alpha: float = 0.05
     seed: int = 20240917
     center: bool = False
+    cluster: str | None = None
 
     def __post_init__(self) -> None:
         if isinstance(self.moderators, str):
@@ -261,6 +265,8 @@ class ModelSpec:
             raise option_error("alpha", "a number in (0, 1)", alpha)
         if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
             raise option_error("seed", "a non-negative whole number", self.seed)
+        if self.cluster is not None and (not isinstance(self.cluster, str) or not self.cluster.strip()):
+            raise option_error("cluster", "the name of the column of cluster ids", self.cluster)
         probe = self.probe
         if probe is None or isinstance(probe, str) or (isinstance(probe, Sequence) and not isinstance(probe, Mapping)):
             probe = {self.moderators[0]: probe} if probe is not None else {}
@@ -276,6 +282,9 @@ class ModelSpec:
         object.__setattr__(self, "_response", response)
         object.__setattr__(self, "_variables", tuple(variables))
         object.__setattr__(self, "_column_calls", column_calls(self.formula))
+        if self.cluster is not None and self.cluster in (response, self.focal):
+            raise InputError(f"The cluster column {self.cluster!r} is also the outcome or the focal predictor; "
+                             "name the column that holds the cluster ids.")
 
     @property
     def response(self) -> str:

@@ -38,6 +38,13 @@ FAST: dict[str, dict[str, Any]] = {
 SEED = 11
 ALPHA = 0.05
 SPEC = ModelSpec(formula="y ~ x * w", focal="x", moderators=("w",))
+#: Back-ends that need cluster ids get the same rows in 20 invented clusters of 4 (column g).
+CLUSTER_SPEC = ModelSpec(formula="y ~ x * w", focal="x", moderators=("w",), cluster="g")
+
+
+def clustered(bid: str) -> bool:
+    """Whether the back-end is meant for clustered rows (its entry says it does not assume independence)."""
+    return not registry.entry(bid).assumes_independent_rows
 
 
 def _cases(ids: list[str]) -> list[Any]:
@@ -51,20 +58,20 @@ def simulated_frame(n: int = 80, seed: int = 3, beta3: float = 0.4) -> pd.DataFr
     x = rng.normal(size=n)
     w = rng.uniform(-2.0, 2.0, size=n)
     y = 1 + 0.5 * x + 0.3 * w + beta3 * x * w + np.exp(0.35 * w) * rng.normal(size=n)
-    return pd.DataFrame({"y": y, "x": x, "w": w})
+    return pd.DataFrame({"y": y, "x": x, "w": w, "g": np.arange(n) % 20})
 
 
 @functools.lru_cache(maxsize=None)
-def design(permuted: bool = False) -> Any:
+def design(permuted: bool = False, clustered: bool = False) -> Any:
     df = simulated_frame()
     if permuted:
         df = df.iloc[np.random.default_rng(5).permutation(len(df))].reset_index(drop=True)
-    return build_design(df, SPEC)
+    return build_design(df, CLUSTER_SPEC if clustered else SPEC)
 
 
 @functools.lru_cache(maxsize=None)
 def fitted(bid: str, permuted: bool = False) -> Fit:
-    fit = make_backend(bid, **FAST.get(bid, {})).fit(design(permuted), seed=SEED)
+    fit = make_backend(bid, **FAST.get(bid, {})).fit(design(permuted, clustered(bid)), seed=SEED)
     assert not isinstance(fit, Unavailable), fit.reason
     return fit
 
@@ -145,7 +152,7 @@ def test_simultaneous_band_is_at_least_as_wide_as_the_pointwise_interval(bid: st
 
 @pytest.mark.parametrize("bid", _cases(IDS))
 def test_same_seed_same_numbers(bid: str) -> None:
-    again = make_backend(bid, **FAST.get(bid, {})).fit(design(), seed=SEED)
+    again = make_backend(bid, **FAST.get(bid, {})).fit(design(clustered=clustered(bid)), seed=SEED)
     first = fitted(bid)
     L = slope_grid_rows()
     a, b = first.estimate(L, ALPHA), again.estimate(L, ALPHA)
@@ -205,10 +212,11 @@ def simulated_outcomes() -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=None)
-def designs_of_outcomes() -> tuple[Any, ...]:
-    frame = design().data.frame[["y", "x", "w"]].reset_index(drop=True)
+def designs_of_outcomes(clustered: bool = False) -> tuple[Any, ...]:
+    frame = simulated_frame()  # every row is complete, so these are the design's rows
     Y = simulated_outcomes()
-    return tuple(build_design(frame.assign(y=Y[:, j]), SPEC) for j in range(Y.shape[1]))
+    spec = CLUSTER_SPEC if clustered else SPEC
+    return tuple(build_design(frame.assign(y=Y[:, j]), spec) for j in range(Y.shape[1]))
 
 
 BATCHED = [b for b in IDS if hasattr(registry.backend_class(b), "reject_many")]
@@ -217,12 +225,12 @@ BATCHED = [b for b in IDS if hasattr(registry.backend_class(b), "reject_many")]
 @pytest.mark.parametrize("bid", _cases(BATCHED))
 def test_batched_decision_equals_the_single_fit_decision(bid: str) -> None:
     backend = make_backend(bid, **FAST.get(bid, {}))
-    d = design()
+    d = design(clustered=clustered(bid))
     Y = simulated_outcomes()
     # The decision the user sees: the fit's own test of the product term (null imposed where the
     # back-end can impose it), asked for by name.
     single = np.array([backend.fit(dj, seed=SEED).test_coefficients(dj.interaction_columns, ALPHA).supported
-                       for dj in designs_of_outcomes()])
+                       for dj in designs_of_outcomes(clustered(bid))])
     if bid == "wild":
         # Dataset j of a batched call draws replicates j·B … (j+1)·B − 1 of the seed's stream, so the
         # decision a fit with the same seed makes is the batched decision of a one-column call.

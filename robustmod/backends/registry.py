@@ -59,6 +59,12 @@ def _ols(bid: str, label: str, colour: str) -> BackendEntry:
                         default=bid in BACKENDS)
 
 
+def _cluster(bid: str, label: str, colour: str) -> BackendEntry:
+    return BackendEntry(bid, "robustmod.backends.cluster", "ClusterBackend", label, assumes_constant_variance=False,
+                        assumes_independent_rows=False, cost="cheap", fixed={"id": bid}, colour=colour,
+                        default=bid in BACKENDS)
+
+
 _ENTRIES: dict[str, BackendEntry] = {e.id: e for e in (
     _ols("ols", "OLS, classical SE", OKABE_ITO["black"]),
     _ols("hc0", "OLS + HC0", OKABE_ITO["sky"]),
@@ -68,6 +74,10 @@ _ENTRIES: dict[str, BackendEntry] = {e.id: e for e in (
     _ols("hc4", "OLS + HC4", OKABE_ITO["vermillion"]),
     _ols("hc4m", "OLS + HC4m", OKABE_ITO["yellow"]),
     _ols("hc5", "OLS + HC5", OKABE_ITO["yellow"]),
+    _cluster("cr0", "OLS + CR0 (cluster-robust)", OKABE_ITO["sky"]),
+    _cluster("cr1", "OLS + CR1 (cluster-robust)", OKABE_ITO["vermillion"]),
+    _cluster("cr2", "OLS + CR2 (bias-reduced, Satterthwaite df)", OKABE_ITO["blue"]),
+    _cluster("cr3", "OLS + CR3 (cluster jackknife)", OKABE_ITO["yellow"]),
     BackendEntry("wild", "robustmod.backends.wild", "WildBootstrapBackend", "Wild bootstrap (HC3-t, Rademacher)",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="moderate",
                  colour=OKABE_ITO["orange"], default="wild" in BACKENDS),

@@ -548,6 +548,9 @@ class WildBootstrapBackend(Backend):
     # ---- fit ---------------------------------------------------------------------------------
     def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Unrestricted and null-imposed wild bootstraps with the same weight draws."""
+        if design.clusters is not None:  # clustered rows: one weight per cluster
+            from .wild_cluster import wild_cluster_fit  # noqa: PLC0415
+            return wild_cluster_fit(self, design, seed=seed, progress=progress)
         t0 = time.perf_counter()
         got = self._omega(design)
         if isinstance(got, str):
@@ -628,6 +631,9 @@ class WildBootstrapBackend(Backend):
                              f"got shape {Y.shape}.")
         if not np.all(np.isfinite(Y)):
             raise InputError("The simulated outcomes contain NaN or infinite values; simulate finite outcomes.")
+        if design.clusters is not None:  # clustered rows: one weight per cluster
+            from .wild_cluster import cluster_null_p_many  # noqa: PLC0415
+            return cluster_null_p_many(self, design, Y, seed=seed)
         got = self._omega(design)
         if isinstance(got, str):
             raise InputError(got)
