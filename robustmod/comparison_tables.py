@@ -6,6 +6,7 @@ Every cell is taken from a back-end's answers as they are; nothing here estimate
 from __future__ import annotations
 
 from collections.abc import Mapping
+from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
 from .tables import (
@@ -156,8 +157,9 @@ def backend_tables(r: BackendResult) -> list[Table]:
     if r.fit is None:
         return []
     own = list(r.fit.report_tables())
-    if own:
-        return own
+    if own:  # every number names its back-end: the label heads each of its tables
+        return [t if t.title.startswith(r.label) else replace(t, title=f"{r.label}: {t.title[:1].lower()}{t.title[1:]}")
+                for t in own]
     return extras_tables(r.id, r.label, {k: v for k, v in r.extras.items() if k != "seconds"})
 
 

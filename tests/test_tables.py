@@ -14,11 +14,12 @@ import numpy as np
 import pytest
 import statsmodels.formula.api as smf
 
+import robustmod
 from robustmod.compare import compare
 from robustmod.demo import DEMO_FOCAL, DEMO_FORMULA, DEMO_MODERATOR, demo_data
 from robustmod.errors import InputError
-from robustmod.report import write_appendix
 from robustmod.report import figures as F
+from robustmod.report import write_appendix
 from robustmod.report.latex import latex_escape, table_latex
 from robustmod.tables import MINUS, NotApplicable, format_cell, region_words
 
@@ -180,8 +181,15 @@ def test_csv_numbers_are_numbers_and_only_text_is_guarded(appendix: Path, demo: 
         b = demo.results[r["backend"]].significance_region["boundaries"]
         assert [float(r[f"boundary_{i + 1}"]) for i in range(len(b))] == b
         assert float(r["ci_low"]) < float(r["ci_high"]) and float(r["se"]) > 0
-    by = {r["backend"]: r for r in rows}
-    assert float(by["ols"]["boundary_1"]) < 0  # a negative number, written as a number
+    # Negative numbers stay numbers: the demo with its outcome negated has a negative product term.
+    from robustmod.demo import demo_data
+    from robustmod.report.writers import render_csv
+
+    neg = demo_data().assign(grain_yield=lambda f: -f["grain_yield"])
+    flipped = robustmod.compare(neg, "grain_yield ~ fertiliser * soil_moisture", "fertiliser", "soil_moisture",
+                                backends=["hc3"])
+    row = next(csv.DictReader(io.StringIO(render_csv(flipped))))
+    assert float(row["estimate"]) < 0 and float(row["ci_low"]) < 0
 
 
 def _overfull(tex_files: list[Path], tmp: Path) -> list[float]:

@@ -8,6 +8,7 @@ true minus signs. Needs ``\\usepackage{booktabs}``; nothing else beyond plain La
 from __future__ import annotations
 
 import re
+import unicodedata
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -19,7 +20,11 @@ _LATEX = {"\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"
 _LATEX_UNICODE = {"–": "--", "—": "---", "±": r"$\pm$", "·": r"$\cdot$", "²": r"$^2$", "≥": r"$\geq$",
                   "≤": r"$\leq$", "α": r"$\alpha$", "√": r"$\surd$", "−": r"$-$", "σ": r"$\sigma$",
                   "χ": r"$\chi$", "β": r"$\beta$", "γ": r"$\gamma$", "μ": r"$\mu$", "×": r"$\times$",
-                  "…": r"\dots{}", "≈": r"$\approx$", "\u0302": ""}
+                  "…": r"\dots{}", "≈": r"$\approx$", "\u0302": "", "ᵢ": r"$_i$", "ⱼ": r"$_j$",
+                  "ᵀ": r"$^{\top}$", "θ": r"$\theta$", "ε": r"$\varepsilon$", "η": r"$\eta$", "λ": r"$\lambda$",
+                  "ν": r"$\nu$", "ρ": r"$\rho$", "τ": r"$\tau$", "φ": r"$\phi$", "ω": r"$\omega$", "Σ": r"$\Sigma$",
+                  "Δ": r"$\Delta$", "∞": r"$\infty$", "≠": r"$\neq$", "→": r"$\to$", "∈": r"$\in$", "ψ": r"$\psi$",
+                  **{chr(0x2080 + d): f"$_{d}$" for d in range(10)}, **{c: f"$^{d}$" for d, c in enumerate("⁰¹²³⁴⁵⁶⁷⁸⁹")}}
 #: Characters after which a long name may break.
 _BREAK_AFTER = set("_:./")
 
@@ -31,6 +36,15 @@ _TEXT_WIDTH = 345.0
 _TABCOLSEP = 2.5
 
 
+def _other(ch: str) -> str:
+    """A character without a mapping: Latin letters as they are (LaTeX reads UTF-8 input), anything
+    else by its compatibility decomposition to ASCII, so pdflatex never meets a glyph it lacks."""
+    if ord(ch) < 0x250:
+        return ch
+    plain = unicodedata.normalize("NFKD", ch).encode("ascii", "ignore").decode()
+    return "".join(_LATEX.get(c, c) for c in plain) if plain else "?"
+
+
 def latex_escape(text: Any, *, breakable: bool = False) -> str:
     """Escape a string for LaTeX text mode (every special character, one pass).
 
@@ -39,7 +53,7 @@ def latex_escape(text: Any, *, breakable: bool = False) -> str:
     """
     out = []
     for ch in str(text):
-        out.append(_LATEX.get(ch, _LATEX_UNICODE.get(ch, ch)))
+        out.append(_LATEX[ch] if ch in _LATEX else _LATEX_UNICODE[ch] if ch in _LATEX_UNICODE else _other(ch))
         if breakable and ch in _BREAK_AFTER:
             out.append(r"\allowbreak{}")
     return "".join(out)
