@@ -391,7 +391,9 @@ def _sample_nutpie(cm: CompiledModel, values: dict[str, Any], draws: int, tune: 
         nutpie = _quiet_import("nutpie")
         cm.compiled["nutpie"] = nutpie.compile_pymc_model(cm.model, backend="numba", freeze_model=False)
     nutpie = _quiet_import("nutpie")
-    model = cm.compiled["nutpie"].with_data(**values)
+    compiled = cm.compiled["nutpie"]
+    # Shared variables the graph does not use (the variance switch of the conjugate model) are not nutpie's.
+    model = compiled.with_data(**{k: v for k, v in values.items() if k in compiled.shared_data})
     return nutpie.sample(model, draws=draws, tune=tune, chains=chains, cores=cores, seed=int(seed),
                          save_warmup=False, progress_bar=progress, target_accept=cm.target_accept)
 
