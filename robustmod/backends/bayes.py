@@ -62,7 +62,7 @@ PPC_DRAWS = 400
 LIKELIHOODS = ("normal", "student")
 #: NUTS implementations the back-end can sample with, and the default (validation/README.md).
 SAMPLERS = ("pymc", "nutpie", "numpyro")
-DEFAULT_SAMPLER = "pymc"
+DEFAULT_SAMPLER = "nutpie"
 SAMPLER_LABELS = {"pymc": "NUTS (PyMC)", "nutpie": "NUTS (nutpie, numba)", "numpyro": "NUTS (NumPyro, JAX)"}
 MODELS = ("location-scale", "constant-conjugate")
 
@@ -602,7 +602,9 @@ class BayesBackend:
         if nu is not None:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
 
-        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_TUNE), **common)
+        # Only PyMC's refits start from the first fit's adaptation; the others tune afresh.
+        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_TUNE) if self.sampler == "pymc"
+                   else self.tune, **common)
         refit_seconds: list[float] = []
         if self.model == "location-scale" and Z.shape[1] > 1:
             t0 = time.perf_counter()
