@@ -82,8 +82,8 @@ def main() -> None:
     b, g = prior_draw(rng, k, p)
     cm = compiled_model(Xs, Xs @ b + np.exp(Zs @ g) * rng.normal(size=a.n), Zs, target_accept=a.target_accept)
     cores = min(a.chains, os.cpu_count() or 1)
-    ranks = {"beta3": [], "gamma1": []}
-    covered = {"beta3": [], "gamma1": []}  # is the truth inside the 95 % equal-tailed interval?
+    ranks: dict[str, list[int]] = {"beta3": [], "gamma1": []}
+    covered: dict[str, list[bool]] = {"beta3": [], "gamma1": []}  # is the truth inside the 95 % equal-tailed interval?
     divergent_replicates = 0
     min_ess: list[float] = []
     t0 = time.perf_counter()

@@ -546,7 +546,7 @@ class BayesBackend:
                     "target_accept": self.target_accept, "likelihood": self.likelihood, "model": self.model,
                     "prior_scale": self.prior_scale, "qr_reparameterisation": cm.qr, "seed": int(seed),
                     "sampler": SAMPLER_LABELS[self.sampler]}
-        common = dict(chains=self.chains, cores=cores, progress=progress, sampler=self.sampler)
+        common: dict[str, Any] = {"chains": self.chains, "cores": cores, "progress": progress, "sampler": self.sampler}
         t0 = time.perf_counter()
         idata = run_sampler(cm, draws=self.draws, tune=self.tune, seed=seed, prior_scale=self.prior_scale, **common)
         t_first = time.perf_counter() - t0
@@ -603,8 +603,8 @@ class BayesBackend:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
 
         # Only PyMC's refits start from the first fit's adaptation; the others tune afresh.
-        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_TUNE) if self.sampler == "pymc"
-                   else self.tune, **common)
+        aux: dict[str, Any] = {"draws": min(self.draws, AUX_DRAWS),
+                               "tune": min(self.tune, AUX_TUNE) if self.sampler == "pymc" else self.tune, **common}
         refit_seconds: list[float] = []
         if self.model == "location-scale" and Z.shape[1] > 1:
             t0 = time.perf_counter()
