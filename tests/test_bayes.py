@@ -334,3 +334,80 @@ def test_student_likelihood_runs_and_reports_nu(wage1):
     ref = stats.t.logpdf(d.y, nu[:3, None], beta @ d.X.T, np.exp(gamma @ Z.T))
     np.testing.assert_allclose(ll, ref, rtol=1e-8)
     assert "loo" in fit.extras and fit.extras["loo"]["heteroscedastic"]["elpd_loo"] < 0
+
+
+# ---- the sampler option -----------------------------------------------------------------------
+def test_unknown_sampler_is_a_one_line_error_naming_the_option():
+    with pytest.raises(InputError) as err:
+        BayesBackend(sampler="stan")
+    msg = str(err.value)
+    assert "'sampler'" in msg and "nutpie" in msg and "\n" not in msg
+
+
+def test_default_sampler_is_a_known_one_and_recorded_in_the_fit_settings():
+    from robustmod.backends.bayes import DEFAULT_SAMPLER, SAMPLER_LABELS, SAMPLERS
+
+    assert BayesBackend().sampler == DEFAULT_SAMPLER and DEFAULT_SAMPLER in SAMPLERS
+    assert set(SAMPLER_LABELS) == set(SAMPLERS)
+
+
+@pytest.mark.parametrize("sampler", [
+    "pymc", pytest.param("nutpie", marks=pytest.mark.slow), pytest.param("numpyro", marks=pytest.mark.slow)])
+def test_every_sampler_matches_the_conjugate_closed_form(wage1, sampler):
+    # Each NUTS implementation must reach the normal–inverse-gamma posterior (closed form, Gelman et al.,
+    # BDA3 §14.8, computed by _nig_closed_form above) on the same compiled model.
+    d = _design(wage1, "wage ~ educ * exper", "educ", "exper")
+    fit = BayesBackend(model="constant-conjugate", draws=400, tune=300, chains=2, prior_sensitivity=False,
+                       sampler=sampler).fit(d, seed=5)
+    mean, cov, _ = _nig_closed_form(d.X, d.y)
+    sd = np.sqrt(np.diag(cov))
+    ess = fit.extras["diagnostics"]["min_ess_bulk"]
+    # Within 4 Monte Carlo SEs of the mean, SE = posterior SD / sqrt(ESS) (common practice, no source).
+    assert np.all(np.abs(fit.params - mean) < 4 * sd / np.sqrt(ess)), (sampler, fit.params, mean)
+    assert fit.extras["sampler"]["sampler"].startswith("NUTS (")
+    np.testing.assert_allclose(fit.draws.std(axis=0, ddof=1), sd, rtol=0.15)
+
+
+def _two_datasets_of_one_shape(wage1: pd.DataFrame):
+    a = wage1.iloc[:200].reset_index(drop=True)
+    b = wage1.iloc[200:400].reset_index(drop=True)
+    return _design(a, "lwage ~ educ * exper", "educ", "exper"), _design(b, "lwage ~ educ * exper", "educ", "exper")
+
+
+def test_cached_model_gives_the_draws_of_a_fresh_build(wage1):
+    # Reusing a model compiled for another dataset of the same shape must change nothing but the cost:
+    # same seed, same draws as after emptying the cache (project rule on seeds; common practice, no source).
+    from robustmod.backends import bayes
+
+    da, db = _two_datasets_of_one_shape(wage1)
+    kw = {"draws": 60, "tune": 60, "chains": 2, "prior_sensitivity": False, "sampler": "pymc"}
+    bayes._MODEL_CACHE.clear()
+    fresh = BayesBackend(**kw).fit(db, seed=3)
+    BayesBackend(**kw).fit(da, seed=3)
+    assert len(bayes._MODEL_CACHE) == 1  # both datasets share one compiled model
+    reused = BayesBackend(**kw).fit(db, seed=3)
+    np.testing.assert_array_equal(reused.draws, fresh.draws)
+    assert not np.array_equal(BayesBackend(**kw).fit(da, seed=3).draws, fresh.draws)
+
+
+@pytest.mark.slow
+def test_nutpie_compiles_once_per_shape_and_keeps_the_seed(wage1):
+    from robustmod.backends import bayes
+
+    da, db = _two_datasets_of_one_shape(wage1)
+    kw = {"draws": 100, "tune": 100, "chains": 2, "prior_sensitivity": False, "sampler": "nutpie"}
+    bayes._MODEL_CACHE.clear()
+    first = BayesBackend(**kw).fit(da, seed=8)
+    compiled = next(iter(bayes._MODEL_CACHE.values())).compiled["nutpie"]
+    other = BayesBackend(**kw).fit(db, seed=8)
+    assert next(iter(bayes._MODEL_CACHE.values())).compiled["nutpie"] is compiled
+    again = BayesBackend(**kw).fit(da, seed=8)
+    # Same seed, same draws; another dataset, other draws (project rule; common practice, no source).
+    np.testing.assert_array_equal(again.draws, first.draws)
+    assert not np.array_equal(other.draws, first.draws)
+    # Reused compiled functions see the new data: the posterior mean of the product term follows each
+    # dataset's least-squares estimate (reference: numpy lstsq), within 4 posterior SDs.
+    for d, fit in ((da, first), (db, other)):
+        ols = np.linalg.lstsq(d.X, d.y, rcond=None)[0]
+        j = d.interaction_columns[0]
+        assert abs(fit.params[j] - ols[j]) < 4 * fit.draws[:, j].std()

@@ -24,7 +24,7 @@ import os
 import time
 import warnings as pywarnings
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -61,8 +61,11 @@ PPC_BINS = 5
 PPC_DRAWS = 400
 
 LIKELIHOODS = ("normal", "student")
-MODELS = ("location-scale", "constant-conjugate")
+#: NUTS implementations the back-end can sample with, and the default (validation/README.md).
 SAMPLERS = ("pymc", "nutpie", "numpyro")
+DEFAULT_SAMPLER = "nutpie"
+SAMPLER_LABELS = {"pymc": "NUTS (PyMC)", "nutpie": "NUTS (nutpie, numba)", "numpyro": "NUTS (NumPyro, JAX)"}
+MODELS = ("location-scale", "constant-conjugate")
 
 
 # ---------------------------------------------------------------------------------------
@@ -132,15 +135,37 @@ def log_scale_to_user(draws: np.ndarray, cols: Scaling, y_scale: float) -> np.nd
 # ---------------------------------------------------------------------------------------
 @dataclass
 class CompiledModel:
-    """A PyMC model on the standardised scale plus the NUTS step compiled for it."""
+    """A PyMC model on the standardised scale plus the NUTS step compiled for it.
+
+    The design columns and the outcome are shared variables; ``data`` holds this dataset's values,
+    set before every sampling run, so one compiled model (PyMC's step, nutpie's compiled
+    functions) serves every dataset of the same shape (see ``compiled_model``).
+    """
 
     model: Any
-    step: Any
     qr: bool
     free_names: tuple[str, ...]
     mean_names: tuple[str, ...]  # posterior variables giving b̃ (intercept, slopes)
     log_sigma_names: tuple[str, ...]
-    cold: tuple[Any, Any] = (None, None)  # the step's fresh potential and step-size adaptation
+    data: dict[str, np.ndarray] = field(default_factory=dict)
+    target_accept: float = 0.9
+    compiled: dict[str, Any] = field(default_factory=dict)  # per sampler: what it compiled, made on first use
+
+    @property
+    def step(self) -> Any:
+        """PyMC's NUTS step (compiled on first use; other samplers never need it)."""
+        if "pymc" not in self.compiled:
+            pm = _quiet_import("pymc")
+            with self.model:
+                step = pm.NUTS(target_accept=self.target_accept)
+            self.compiled["pymc"] = (step, (step.potential, step.step_adapt))
+        return self.compiled["pymc"][0]
+
+    @property
+    def cold(self) -> tuple[Any, Any]:
+        """The step's fresh potential and step-size adaptation."""
+        _ = self.step
+        return self.compiled["pymc"][1]
 
     def warm_start(self, previous: Any) -> None:
         """Start adaptation from ``previous``: its posterior variances (on the sampler's unconstrained
@@ -190,7 +215,8 @@ def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: s
     import pytensor.tensor as pt  # noqa: PLC0415
 
     n, k = Xs.shape
-    X1 = Xs[:, 1:]
+    qr = bool(qr and k > 1)
+    values = design_data(Xs, ys, Zs, qr=qr)
     with pm.Model() as m:
         prior_scale = pm.Data("prior_scale", 1.0)
         variance_on = pm.Data("variance_on", 1.0)
@@ -201,23 +227,18 @@ def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: s
             unit = 1.0
         b0 = pm.Normal("b_intercept", 0.0, PRIOR_SD["intercept"] * prior_scale * unit)
         slope_sd = PRIOR_SD["slope"] * prior_scale * unit
-        if k > 1 and qr:
-            Q, R = np.linalg.qr(X1, mode="reduced")
-            sign = np.sign(np.diag(R))
-            sign[sign == 0] = 1.0
-            Q, R = Q * sign, R * sign[:, None]
-            root = np.sqrt(n - 1.0)
-            Qs, Rs = Q * root, R / root
-            Rs_inv = linalg.solve_triangular(Rs, np.eye(k - 1))
+        if k > 1:
+            x_cols = pm.Data("x_cols", values["x_cols"])
+        if qr:
             theta = pm.Flat("theta", shape=k - 1)
-            b = pm.Deterministic("b_slopes", pt.dot(Rs_inv, theta))
+            b = pm.Deterministic("b_slopes", pt.dot(pm.Data("r_inv", values["r_inv"]), theta))
             # Flat θ with the normal log-density of b = R*⁻¹θ keeps the stated prior on b (linear map,
             # constant Jacobian).
             pm.Potential("b_prior", pm.logp(pm.Normal.dist(0.0, slope_sd), b).sum())
-            mu = b0 + pt.dot(Qs, theta)
+            mu = b0 + pt.dot(x_cols, theta)
         elif k > 1:
             b = pm.Normal("b_slopes", 0.0, slope_sd, shape=k - 1)
-            mu = b0 + pt.dot(X1, b)
+            mu = b0 + pt.dot(x_cols, b)
         else:
             mu = b0 + pt.zeros(n)
         if model == "constant-conjugate":
@@ -227,23 +248,67 @@ def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: s
             g0 = pm.Normal("g_intercept", 0.0, PRIOR_SD["log_sigma_intercept"] * prior_scale)
             if Zs.shape[1] > 1:
                 g = pm.Normal("g_slopes", 0.0, PRIOR_SD["log_sigma_slope"] * prior_scale, shape=Zs.shape[1] - 1)
-                log_sigma = g0 + variance_on * pt.dot(Zs[:, 1:], g)
+                log_sigma = g0 + variance_on * pt.dot(pm.Data("z_cols", values["z_cols"]), g)
                 ls_names = ("g_intercept", "g_slopes")
             else:
+                values.pop("z_cols")
                 log_sigma = g0 + pt.zeros(n)
                 ls_names = ("g_intercept",)
             sigma = pt.exp(log_sigma)
-        y_obs = pm.Data("y_obs", np.asarray(ys, dtype=float))
+        y_obs = pm.Data("y_obs", values["y_obs"])
         if likelihood == "student":
             nu = pm.Gamma("nu", alpha=NU_PRIOR[0], beta=NU_PRIOR[1])
             pm.StudentT("y", nu=nu, mu=mu, sigma=sigma, observed=y_obs)
         else:
             pm.Normal("y", mu=mu, sigma=sigma, observed=y_obs)
-        step = pm.NUTS(target_accept=target_accept)
+    if model == "constant-conjugate":
+        values.pop("z_cols", None)
     free = tuple(v.name for v in m.free_RVs)
     mean_names = ("b_intercept",) + (("b_slopes",) if k > 1 else ())
-    return CompiledModel(m, step, bool(qr and k > 1), free, mean_names, ls_names,
-                         cold=(step.potential, step.step_adapt))
+    return CompiledModel(m, qr, free, mean_names, ls_names, data=values, target_accept=float(target_accept))
+
+
+def design_data(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, qr: bool) -> dict[str, np.ndarray]:
+    """Values of the model's shared variables for one dataset (standardised; column 0 the intercept).
+
+    With ``qr``: X̃₁ = Q R (thin QR, diagonal of R positive), Q* = Q √(n−1), R* = R / √(n−1),
+    ``x_cols`` = Q* and ``r_inv`` = R*⁻¹ (by triangular solve); otherwise ``x_cols`` = X̃₁.
+    """
+    n, k = Xs.shape
+    out = {"y_obs": np.asarray(ys, dtype=float), "z_cols": np.ascontiguousarray(Zs[:, 1:], dtype=float)}
+    if k == 1:
+        return out
+    X1 = np.asarray(Xs[:, 1:], dtype=float)
+    if not qr:
+        return {**out, "x_cols": np.ascontiguousarray(X1)}
+    Q, R = np.linalg.qr(X1, mode="reduced")
+    sign = np.sign(np.diag(R))
+    sign[sign == 0] = 1.0
+    Q, R = Q * sign, R * sign[:, None]
+    root = np.sqrt(n - 1.0)
+    Rs_inv = linalg.solve_triangular(R / root, np.eye(k - 1))
+    return {**out, "x_cols": np.ascontiguousarray(Q * root), "r_inv": Rs_inv}
+
+
+#: Compiled models by (n, k, p, likelihood, model, qr, target_accept); the most recent few are kept.
+_MODEL_CACHE: dict[tuple[Any, ...], CompiledModel] = {}
+MODEL_CACHE_SIZE = 4
+
+
+def compiled_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
+                   model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
+    """``build_model``, reusing a model compiled for an earlier dataset of the same shape and settings:
+    only the shared variables change (PyMC's NUTS step and nutpie's compiled functions are kept)."""
+    key = (Xs.shape, Zs.shape[1], likelihood, model, bool(qr and Xs.shape[1] > 1), float(target_accept))
+    hit = _MODEL_CACHE.pop(key, None)
+    if hit is None:
+        hit = build_model(Xs, ys, Zs, likelihood=likelihood, model=model, qr=qr, target_accept=target_accept)
+    _MODEL_CACHE[key] = hit  # most recently used last
+    while len(_MODEL_CACHE) > MODEL_CACHE_SIZE:
+        _MODEL_CACHE.pop(next(iter(_MODEL_CACHE)))
+    values = design_data(Xs, ys, Zs, qr=hit.qr)
+    # The copy shares the compiled parts but carries this dataset's values.
+    return replace(hit, data={name: values[name] for name in hit.data})
 
 
 def _stack(idata: Any, names: Sequence[str]) -> np.ndarray:
@@ -281,26 +346,35 @@ def _initial_points(cm: CompiledModel, chains: int, rng: np.random.Generator,
 
 def run_sampler(cm: CompiledModel, *, draws: int, tune: int, chains: int, cores: int, seed: int,
                 progress: bool, prior_scale: float = 1.0, variance_on: float = 1.0, previous: Any = None,
-                y: np.ndarray | None = None) -> Any:
-    """NUTS with the model's compiled step; shared-variable values (prior scale, variance switch,
-    optionally a new standardised outcome of the same length) set first, nothing recompiled."""
+                y: np.ndarray | None = None, sampler: str = "pymc") -> Any:
+    """NUTS on the compiled model; shared-variable values (this dataset, prior scale, variance switch,
+    optionally a new standardised outcome of the same length) set first, nothing recompiled.
+
+    ``sampler``: "pymc" (PyMC's NUTS with the model's compiled step; a warm start from ``previous``),
+    "nutpie" (nutpie's NUTS on functions compiled once per model with numba) or "numpyro" (through
+    ``pm.sample(nuts_sampler="numpyro")``, which compiles with JAX at every call).
+    """
     pm = _quiet_import("pymc")
 
-    rng = np.random.default_rng(seed)
-    if previous is None:
-        cm.cold_start()
-    else:
-        cm.warm_start(previous)
-    with cm.model:
-        values: dict[str, Any] = {"prior_scale": float(prior_scale), "variance_on": float(variance_on)}
-        if y is not None:
-            values["y_obs"] = np.asarray(y, dtype=float)
-        pm.set_data(values)
-        # Early tuning steps may overflow exp(log σ); the sampler rejects them. Those numpy warnings
-        # (in this process and in forked chain processes) say nothing the diagnostics do not.
-        with pywarnings.catch_warnings(), np.errstate(all="ignore"):
-            pywarnings.simplefilter("ignore", RuntimeWarning)
-            return _sample(pm, cm, draws, tune, chains, cores, seed, progress, rng, previous)
+    values: dict[str, Any] = {**cm.data, "prior_scale": float(prior_scale), "variance_on": float(variance_on)}
+    if y is not None:
+        values["y_obs"] = np.asarray(y, dtype=float)
+    # Early tuning steps may overflow exp(log σ); the sampler rejects them. Those numpy warnings
+    # (in this process and in forked chain processes) say nothing the diagnostics do not.
+    with pywarnings.catch_warnings(), np.errstate(all="ignore"):
+        pywarnings.simplefilter("ignore", RuntimeWarning)
+        if sampler == "nutpie":
+            return _sample_nutpie(cm, values, draws, tune, chains, cores, seed, progress)
+        rng = np.random.default_rng(seed)
+        with cm.model:
+            pm.set_data(values)
+        if sampler == "numpyro":
+            return _sample_numpyro(pm, cm, draws, tune, chains, seed, progress, rng)
+        if previous is None:
+            cm.cold_start()
+        else:
+            cm.warm_start(previous)
+        return _sample(pm, cm, draws, tune, chains, cores, seed, progress, rng, previous)
 
 
 def _sample(pm: Any, cm: CompiledModel, draws: int, tune: int, chains: int, cores: int, seed: int,
@@ -310,6 +384,32 @@ def _sample(pm: Any, cm: CompiledModel, draws: int, tune: int, chains: int, core
                          initvals=_initial_points(cm, chains, rng, previous), random_seed=int(seed),
                          progressbar=progress, quiet=not progress, compute_convergence_checks=False,
                          return_inferencedata=True)
+
+
+def _sample_nutpie(cm: CompiledModel, values: dict[str, Any], draws: int, tune: int, chains: int, cores: int,
+                   seed: int, progress: bool) -> Any:
+    if "nutpie" not in cm.compiled:  # numba compilation, once per cached model
+        nutpie = _quiet_import("nutpie")
+        cm.compiled["nutpie"] = nutpie.compile_pymc_model(cm.model, backend="numba", freeze_model=False)
+    nutpie = _quiet_import("nutpie")
+    compiled = cm.compiled["nutpie"]
+    # Shared variables the graph does not use (the variance switch of the conjugate model) are not nutpie's.
+    model = compiled.with_data(**{k: v for k, v in values.items() if k in compiled.shared_data})
+    return nutpie.sample(model, draws=draws, tune=tune, chains=chains, cores=cores, seed=int(seed),
+                         save_warmup=False, progress_bar=progress, target_accept=cm.target_accept)
+
+
+def _sample_numpyro(pm: Any, cm: CompiledModel, draws: int, tune: int, chains: int, seed: int, progress: bool,
+                    rng: np.random.Generator) -> Any:
+    # One XLA device on the CPU unless the process set more before importing JAX: chains then run
+    # vectorised in one program rather than one after another.
+    jax = _quiet_import("jax")
+    method = "parallel" if jax.local_device_count() >= chains else "vectorized"
+    with cm.model:
+        return pm.sample(draws=draws, tune=tune, chains=chains, nuts_sampler="numpyro", target_accept=cm.target_accept,
+                         initvals=_initial_points(cm, chains, rng), random_seed=int(seed), progressbar=progress,
+                         quiet=not progress, compute_convergence_checks=False, return_inferencedata=True,
+                         nuts_sampler_kwargs={"chain_method": method})
 
 
 # ---------------------------------------------------------------------------------------
@@ -428,8 +528,8 @@ class BayesBackend(Backend):
     model : {"location-scale", "constant-conjugate"}, default="location-scale"
         The second is a constant-variance normal–inverse-gamma model with a closed-form
         posterior, for checking the sampler.
-    sampler : {"pymc", "nutpie", "numpyro"}, default="pymc"
-        The NUTS implementation.
+    sampler : {"pymc", "nutpie", "numpyro"}, default=DEFAULT_SAMPLER
+        The NUTS implementation (validation/bench_sampler.py, validation/sbc_bayes.py).
     """
 
     id = "bayes"
@@ -454,7 +554,8 @@ class BayesBackend(Backend):
         Option("cores", "integer", None, "Chains run in parallel; default min(chains, CPU count).", low=1),
         Option("model", "text", "location-scale", "The location–scale model, or a constant-variance conjugate "
                "model with a closed-form posterior (for checking the sampler).", choices=MODELS),
-        Option("sampler", "text", "pymc", "The NUTS implementation.", choices=SAMPLERS, case="insensitive"),
+        Option("sampler", "text", DEFAULT_SAMPLER, "The NUTS implementation: pymc, nutpie or numpyro.",
+               choices=SAMPLERS, case="insensitive"),
     )
     calibration_options = {"draws": 500, "tune": 500, "chains": 2, "prior_sensitivity": False}
     calibration_note = ("The Bayesian back-end was calibrated with 2 chains x 500 draws after 500 tuning steps "
@@ -501,13 +602,13 @@ class BayesBackend(Backend):
         Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
         cores = self.cores or min(self.chains, os.cpu_count() or 1)
         t0 = time.perf_counter()
-        cm = build_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept)
+        cm = compiled_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept)
         t_build = time.perf_counter() - t0
         settings = {"draws": self.draws, "tune": self.tune, "chains": self.chains, "cores": cores,
                     "target_accept": self.target_accept, "likelihood": self.likelihood, "model": self.model,
                     "prior_scale": self.prior_scale, "qr_reparameterisation": cm.qr, "seed": int(seed),
-                    "sampler": "NUTS (PyMC)"}
-        common = dict(chains=self.chains, cores=cores, progress=progress)
+                    "sampler": SAMPLER_LABELS[self.sampler]}
+        common: dict[str, Any] = {"chains": self.chains, "cores": cores, "progress": progress, "sampler": self.sampler}
         t0 = time.perf_counter()
         idata = run_sampler(cm, draws=self.draws, tune=self.tune, seed=seed, prior_scale=self.prior_scale, **common)
         t_first = time.perf_counter() - t0
@@ -563,7 +664,9 @@ class BayesBackend(Backend):
         if nu is not None:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
 
-        aux = dict(draws=min(self.draws, AUX_DRAWS), tune=min(self.tune, AUX_TUNE), **common)
+        # Only PyMC's refits start from the first fit's adaptation; the others tune afresh.
+        aux: dict[str, Any] = {"draws": min(self.draws, AUX_DRAWS),
+                               "tune": min(self.tune, AUX_TUNE) if self.sampler == "pymc" else self.tune, **common}
         refit_seconds: list[float] = []
         if self.model == "location-scale" and Z.shape[1] > 1:
             t0 = time.perf_counter()
