@@ -330,7 +330,7 @@ def test_the_messages_of_the_template() -> None:
 
 def test_bayes_declares_the_sampler_and_prior_sensitivity() -> None:
     b = make_backend("bayes")
-    assert b.sampler == "pymc" and b.prior_sensitivity is False
+    assert b.sampler == "nutpie" and b.prior_sensitivity is False  # the default chosen in validation/README.md
     assert make_backend("bayes", sampler="NumPyro").sampler == "numpyro"
     assert "'sampler' option of back-end 'bayes'" in _one_line_input_error("bayes", sampler="stan")
 
