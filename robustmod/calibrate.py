@@ -391,7 +391,7 @@ def calibrate(
         false_positive_rate={b: fp[b] for b in ids if b in fp},
         power={b: pw[b] for b in ids if b in pw} if power else None,
         nominal_mc_se=math.sqrt(alpha * (1 - alpha) / n_datasets), simulated_from=source,
-        product_term_under_power={t: float(v) for t, v in zip(design.interaction_terms, inter)},
+        product_term_under_power={t: float(v) for t, v in zip(design.interaction_terms, inter, strict=False)},
         methods=methods, unavailable=unavailable, workers=used_workers, seconds=time.perf_counter() - t_start,
         notes=tuple(notes),
     )

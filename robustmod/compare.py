@@ -259,7 +259,7 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
             pb = [v for v in preg["boundaries"] if obs[0] <= v <= obs[1]]
             ob = [v for v in r.significance_region["boundaries"] if obs[0] <= v <= obs[1]]
             if len(pb) == len(ob):
-                shift = max((abs(x - y) for x, y in zip(pb, ob)), default=0.0)
+                shift = max((abs(x - y) for x, y in zip(pb, ob, strict=False)), default=0.0)
                 boundary_shift[b] = {"max_shift": num(shift), "share_of_observed_range": num(shift / span),
                                      "same_shape": True}
             else:

@@ -441,7 +441,7 @@ def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warning
                 )
         per.append([float(v) for v in values])
     names = list(moderators)
-    return tuple(dict(zip(names, combo)) for combo in itertools.product(*per))
+    return tuple(dict(zip(names, combo, strict=False)) for combo in itertools.product(*per))
 
 
 def _reference(frame: pd.DataFrame, spec: ModelSpec, prepared: PreparedData) -> dict[str, Any]:

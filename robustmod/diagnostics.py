@@ -311,7 +311,7 @@ def variance_tests_table(diag: Mapping[str, Any]) -> Table:
             Column("form", "form", "text", hidden=True))
     verdict = ("at least one test rejects constant spread" if diag.get("non_constant_variance")
                else "no test rejects constant spread (which does not prove it constant)")
-    forms = [f"{name}: {row[-1]}." for (_, name), row in zip(_TESTS, rows)]
+    forms = [f"{name}: {row[-1]}." for (_, name), row in zip(_TESTS, rows, strict=False)]
     return make_table("variance_tests", "Variance diagnostics of the OLS residuals", cols, rows, source="diagnostics",
                       notes=(f"At alpha = {diag.get('alpha', 0.05):g}, {verdict}.", *forms), meta={"field": "diagnostics"})
 

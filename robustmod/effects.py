@@ -281,7 +281,7 @@ def slope_grid(fit: Fit, design: Design, alpha: float, points: int = GRID_2D) ->
     g1 = np.linspace(i1.minimum, i1.maximum, points)
     g2 = np.linspace(i2.minimum, i2.maximum, points)
     W1, W2 = np.meshgrid(g1, g2, indexing="ij")
-    pts = [{m1: float(a), m2: float(b)} for a, b in zip(W1.ravel(), W2.ravel())]
+    pts = [{m1: float(a), m2: float(b)} for a, b in zip(W1.ravel(), W2.ravel(), strict=False)]
     est = fit.estimate(design.slope_rows(pts), alpha)
     shape = (points, points)
     return {

@@ -83,7 +83,7 @@ class GridPlan:
         return (2 ** len(self.optional)) * len(self.outcomes) * len(self.outliers)
 
     def specifications(self) -> list[Specification]:
-        subsets = [tuple(c for c, keep in zip(self.optional, mask) if keep)
+        subsets = [tuple(c for c, keep in zip(self.optional, mask, strict=False) if keep)
                    for mask in itertools.product((True, False), repeat=len(self.optional))]
         combos = itertools.product(subsets, self.outcomes, self.outliers)
         return [Specification(i, cov, out, rule) for i, (cov, out, rule) in enumerate(combos)]
@@ -298,7 +298,7 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
     seeds = np.random.SeedSequence(seed).generate_state(len(plan.backends))
     out["rows_used"] = design.n_obs
     out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha)
-                       for b, sd in zip(plan.backends, seeds)}
+                       for b, sd in zip(plan.backends, seeds, strict=False)}
     if len(design.interaction_columns) == 1 and v is not None:
         est, rej = _null_draws(design, rows, v, plan.base.alpha)
         out["null"] = {"estimate": est, "rejected": rej}
@@ -318,7 +318,7 @@ def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple
     if state["resamples"]:  # the same null signs for every specification: one draw per source row
         rng = np.random.default_rng(state["null_seed"])
         v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
-    return [_run_one(state, state["specs"][i], base, sd, v) for i, sd in zip(members, seeds)]
+    return [_run_one(state, state["specs"][i], base, sd, v) for i, sd in zip(members, seeds, strict=False)]
 
 
 # ---- summaries ---------------------------------------------------------------------------

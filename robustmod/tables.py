@@ -99,18 +99,18 @@ class Table:
 
     def records(self) -> list[dict[str, Cell]]:
         """Rows as dicts keyed by column key (NotApplicable kept as is)."""
-        return [dict(zip(self.keys, row)) for row in self.rows]
+        return [dict(zip(self.keys, row, strict=False)) for row in self.rows]
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON: columns with their labels, kinds, level and scale; rows keyed by column;
         a cell that does not apply is null and its reason is listed under ``not_applicable``."""
         reasons = [{"row": i, "column": k, "reason": c.reason}
-                   for i, row in enumerate(self.rows) for k, c in zip(self.keys, row) if isinstance(c, NotApplicable)]
+                   for i, row in enumerate(self.rows) for k, c in zip(self.keys, row, strict=False) if isinstance(c, NotApplicable)]
         return {
             "key": self.key, "title": self.title, "source": self.source, "level": self.level, "scale": self.scale,
             "columns": [{"key": c.key, "label": c.label, "kind": c.kind, "level": c.level, "scale": c.scale,
                          "pair": c.pair, "hidden": c.hidden} for c in self.columns],
-            "rows": [{k: (None if isinstance(c, NotApplicable) else c) for k, c in zip(self.keys, row)}
+            "rows": [{k: (None if isinstance(c, NotApplicable) else c) for k, c in zip(self.keys, row, strict=False)}
                      for row in self.rows],
             "not_applicable": reasons, "notes": list(self.notes),
         }
@@ -255,12 +255,12 @@ def render_text(table: Table) -> str:
     """The table as aligned plain text for a terminal: title, header, rule, rows, notes."""
     cols, rows = display_rows(table)
     header = [c.label for c in cols]
-    widths = [max(len(x) for x in col) for col in zip(header, *rows)]
+    widths = [max(len(x) for x in col) for col in zip(header, *rows, strict=False)]
     fmt = [(str.rjust if c.numeric else str.ljust) for c in cols]
     lines = [table.title]
-    lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths)))
+    lines.append("  " + "  ".join(h.ljust(w) for h, w in zip(header, widths, strict=False)))
     lines.append("  " + "  ".join("-" * w for w in widths))
-    lines += ["  " + "  ".join(f(x, w) for f, x, w in zip(fmt, r, widths)).rstrip() for r in rows]
+    lines += ["  " + "  ".join(f(x, w) for f, x, w in zip(fmt, r, widths, strict=False)).rstrip() for r in rows]
     lines += [f"  Note: {n}" for n in table.notes]
     return "\n".join(lines)
 
@@ -286,10 +286,10 @@ def render_html(table: Table, *, heading: str = "h3") -> str:
     has_backend = "backend" in table.keys
     head = "".join(f"<th>{esc(c.label)}</th>" for c in cols)
     body = []
-    for raw, shown in zip(table.rows, rows):
+    for raw, shown in zip(table.rows, rows, strict=False):
         who = f' data-backend="{esc(str(raw[table.keys.index("backend")]))}"' if has_backend else ""
         cells = []
-        for col, text in zip(cols, shown):
+        for col, text in zip(cols, shown, strict=False):
             if col.numeric:
                 vals = [raw[table.keys.index(k)] for k in col.keys]
                 value = _json_cell(vals[0]) if len(vals) == 1 else "[" + ", ".join(_json_cell(v) for v in vals) + "]"

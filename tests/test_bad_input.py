@@ -279,7 +279,7 @@ def test_weights_column_with_zero_negative_or_missing_values(capsys, tmp_path, b
 
 
 def test_variance_model_that_does_not_converge_falls_back_with_a_warning(capsys, tmp_path, monkeypatch):
-    import robustmod.backends.wls as wls
+    from robustmod.backends import wls
 
     def no_convergence(vm, X, y, beta0, gamma0, *args, **kwargs):
         return beta0, gamma0, None, False, 500, "iteration limit reached"

@@ -61,7 +61,7 @@ def simulated_frame(n: int = 80, seed: int = 3, beta3: float = 0.4) -> pd.DataFr
     return pd.DataFrame({"y": y, "x": x, "w": w, "g": np.arange(n) % 20})
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def design(permuted: bool = False, clustered: bool = False) -> Any:
     df = simulated_frame()
     if permuted:
@@ -69,7 +69,7 @@ def design(permuted: bool = False, clustered: bool = False) -> Any:
     return build_design(df, CLUSTER_SPEC if clustered else SPEC)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def fitted(bid: str, permuted: bool = False) -> Fit:
     fit = make_backend(bid, **FAST.get(bid, {})).fit(design(permuted, clustered(bid)), seed=SEED)
     assert not isinstance(fit, Unavailable), fit.reason
@@ -200,7 +200,7 @@ def test_p_value_of_a_contrast_does_not_depend_on_its_scale(bid: str) -> None:
 N_DATASETS = 200
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def simulated_outcomes() -> np.ndarray:
     """n × 200 outcomes on the design's X: half with no product term, half with a product term of 0.3."""
     d = design()
@@ -211,7 +211,7 @@ def simulated_outcomes() -> np.ndarray:
     return mu + np.exp(0.35 * w)[:, None] * rng.normal(size=(d.n_obs, N_DATASETS))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def designs_of_outcomes(clustered: bool = False) -> tuple[Any, ...]:
     frame = simulated_frame()  # every row is complete, so these are the design's rows
     Y = simulated_outcomes()

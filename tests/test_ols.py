@@ -226,7 +226,7 @@ def test_centering_changes_coefficients_not_conditional_effects():
     d = _jn_data()
     raw = robustmod.compare(d, "y ~ x * w", "x", "w", backends=["hc3"])
     cen = robustmod.compare(d, "y ~ x * w", "x", "w", backends=["hc3"], center=True)
-    for a, b in zip(raw.results["hc3"].conditional_effects, cen.results["hc3"].conditional_effects):
+    for a, b in zip(raw.results["hc3"].conditional_effects, cen.results["hc3"].conditional_effects, strict=False):
         assert a["at"]["w"] == pytest.approx(b["at"]["w"])
         assert a["estimate"] == pytest.approx(b["estimate"], rel=1e-9)
         assert a["se"] == pytest.approx(b["se"], rel=1e-9)

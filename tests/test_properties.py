@@ -86,7 +86,7 @@ def test_row_permutation_changes_nothing(seed, n):
     except InputError:
         return
     b = _numbers(_fit(perm))
-    for u, v in zip(a, b):
+    for u, v in zip(a, b, strict=False):
         np.testing.assert_allclose(u, v, rtol=1e-8, atol=1e-12)
 
 
@@ -119,7 +119,7 @@ def test_shifting_moderator_shifts_boundaries(seed, n, shift):
         b = np.array(moved.results[bid].significance_region["boundaries"])
         assert a.shape == b.shape
         np.testing.assert_allclose(b, a + shift, rtol=1e-6, atol=1e-6 * (1 + abs(shift)))
-        for ca, cb in zip(base.results[bid].conditional_effects, moved.results[bid].conditional_effects):
+        for ca, cb in zip(base.results[bid].conditional_effects, moved.results[bid].conditional_effects, strict=False):
             assert cb["at"]["w"] == pytest.approx(ca["at"]["w"] + shift)
             assert cb["estimate"] == pytest.approx(ca["estimate"], rel=1e-6, abs=1e-9)
 
@@ -140,7 +140,7 @@ def test_near_collinear_uncentred_design_matches_centred():
         a, b = raw.results[bid].interaction, cen.results[bid].interaction
         assert a["estimate"] == pytest.approx(b["estimate"], rel=1e-6)
         assert a["se"] == pytest.approx(b["se"], rel=1e-6)
-        for ca, cb in zip(raw.results[bid].conditional_effects, cen.results[bid].conditional_effects):
+        for ca, cb in zip(raw.results[bid].conditional_effects, cen.results[bid].conditional_effects, strict=False):
             assert ca["estimate"] == pytest.approx(cb["estimate"], rel=1e-6, abs=1e-6)
             assert ca["se"] == pytest.approx(cb["se"], rel=1e-6)
 
@@ -184,6 +184,6 @@ def test_custom_index_of_the_users_frame_changes_nothing():
     df = random_frame(3, 50, 0.1, 1.0)
     labelled = df.set_axis([f"plot-{i}" for i in range(len(df))], axis=0)
     a, b = _fit(df.assign(z=df.z.fillna(0))), _fit(labelled.assign(z=labelled.z.fillna(0)))
-    for u, v in zip(_numbers(a), _numbers(b)):
+    for u, v in zip(_numbers(a), _numbers(b), strict=False):
         np.testing.assert_allclose(u, v, rtol=1e-12)
     assert a.design.data.dropped_rows == b.design.data.dropped_rows

@@ -46,7 +46,7 @@ def _quadratic_roots(res, focal: str, product: str, alpha: float) -> np.ndarray:
 def _assert_same_intervals(got: list, want: list) -> None:
     """The same significant stretches, open (None) at the same ends, where they reach the window's edge."""
     assert len(got) == len(want)
-    for g, c in zip(got, want):
+    for g, c in zip(got, want, strict=False):
         assert [v is None for v in g] == [v is None for v in c]
         np.testing.assert_allclose([v for v in g if v is not None], [v for v in c if v is not None], atol=1e-7)
 

@@ -1,12 +1,11 @@
 """The sensitivity appendix: files, results contract, escaping, atomic output, figures."""
 from __future__ import annotations
 
-import os
-
 import csv
 import hashlib
 import io
 import json
+import os
 import re
 from pathlib import Path
 

@@ -40,8 +40,8 @@ def test_wooldridge_example_8_7_two_step_fgls():
     y, X, names = _smoke()
     vm = VarianceModel("loglinear", Z=X, names=names)
     fit = fit_wls(y, X, vm, names, estimation="twostep", se="model")
-    est = dict(zip(names, fit.params))
-    se = dict(zip(names, np.sqrt(np.diag(fit.cov))))
+    est = dict(zip(names, fit.params, strict=False))
+    se = dict(zip(names, np.sqrt(np.diag(fit.cov)), strict=False))
     # Published values recalled from memory; every one agrees with our fit to the printed digits:
     # lincome 1.30 (0.44), educ −0.463 (0.120), age 0.482 (0.097), agesq −0.0056 (0.0009),
     # restaurn −3.46 (0.80).

@@ -46,7 +46,7 @@ class JackknifeBackend(Backend):
     centre: str
     scale: float
 
-    def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         """Deterministic: ``seed`` is not used."""
         Q, R = design.qr
         y = design.y

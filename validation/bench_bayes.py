@@ -47,7 +47,15 @@ def raw_model_fit(X: np.ndarray, y: np.ndarray, *, draws: int, tune: int, chains
 
 
 def ours(X: np.ndarray, y: np.ndarray, *, qr: bool, draws: int, tune: int, chains: int, cores: int, seed: int):
-    from robustmod.backends.bayes import AUX_DRAWS, AUX_TUNE, build_model, coefficients_to_user, column_scaling, run_sampler, _stack
+    from robustmod.backends.bayes import (
+        AUX_DRAWS,
+        AUX_TUNE,
+        _stack,
+        build_model,
+        coefficients_to_user,
+        column_scaling,
+        run_sampler,
+    )
 
     t0 = time.perf_counter()
     xs, zs = column_scaling(X), column_scaling(X[:, :3])

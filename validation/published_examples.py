@@ -56,8 +56,8 @@ def rows() -> list[tuple[str, str, float, str]]:
     names = ("Intercept", *terms)
     fit = fit_wls(s["cigs"].to_numpy(float), X, VarianceModel("loglinear", Z=X, names=names), names,
                   estimation="twostep", se="model")
-    est = dict(zip(names, fit.params))
-    se = dict(zip(names, np.sqrt(np.diag(fit.cov))))
+    est = dict(zip(names, fit.params, strict=False))
+    se = dict(zip(names, np.sqrt(np.diag(fit.cov)), strict=False))
     for term, b, sd in (("lincome", "1.30", "0.44"), ("educ", "-0.463", "0.120"), ("age", "0.482", "0.097"),
                         ("agesq", "-0.0056", "0.0009"), ("restaurn", "-3.46", "0.80")):
         out.append((SRC_87, f"{term} estimate", est[term], b))

@@ -109,8 +109,8 @@ def to_markdown(df: pd.DataFrame, title: str, n_datasets: int) -> str:
             b = b.sort_values("n")
             se_size = np.sqrt(0.05 * 0.95 / b.datasets)
             se_cov = np.sqrt(0.95 * 0.05 / b.datasets)
-            sizes = [f"{s:.3f}{'*' if abs(s - 0.05) > 2 * e else ''}" for s, e in zip(b["size"], se_size)]
-            covs = [f"{c:.3f}{'*' if abs(c - 0.95) > 2 * e else ''}" for c, e in zip(b["coverage"], se_cov)]
+            sizes = [f"{s:.3f}{'*' if abs(s - 0.05) > 2 * e else ''}" for s, e in zip(b["size"], se_size, strict=False)]
+            covs = [f"{c:.3f}{'*' if abs(c - 0.95) > 2 * e else ''}" for c, e in zip(b["coverage"], se_cov, strict=False)]
             lines.append(f"| {label} | " + " | ".join(sizes) + " | " + " | ".join(covs) + " |")
         lines.append("")
     return "\n".join(lines) + "\n"

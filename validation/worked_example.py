@@ -8,9 +8,9 @@ from __future__ import annotations
 from pathlib import Path
 
 from robustmod import compare
+from robustmod.cli.demo import DEMO_BACKENDS, DEMO_CALIBRATION, DEMO_OPTIONS
 from robustmod.compare import fmt, fmt_p
 from robustmod.demo import DEMO_FOCAL, DEMO_FORMULA, DEMO_MODERATOR, DEMO_SEED, demo_data
-from robustmod.cli.demo import DEMO_BACKENDS, DEMO_CALIBRATION, DEMO_OPTIONS
 
 OUT = Path(__file__).resolve().parents[1] / "docs" / "worked-example.md"
 

@@ -156,7 +156,7 @@ class Fit(ABC):
         """
         return Line(self, L0, L1)
 
-    def report_tables(self) -> tuple["Table", ...]:
+    def report_tables(self) -> tuple[Table, ...]:
         """Tables this back-end contributes to every display (its own settings, checks, models).
 
         The default contributes none; a back-end overrides this, and the displays render the
@@ -510,7 +510,7 @@ class Backend(ABC):
         return {o.name: getattr(self, o.name) for o in type(self).options}
 
     @abstractmethod
-    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Fit the moderation model on ``design``; an Unavailable says why no answer is possible."""
 
     def __repr__(self) -> str:
@@ -519,7 +519,7 @@ class Backend(ABC):
 
 
 def one_row_table(key: str, title: str, source: str, cells: Sequence[tuple[str, str, str, Any]],
-                  notes: Sequence[str] = ()) -> "Table":
+                  notes: Sequence[str] = ()) -> Table:
     """A report table of one row from (machine key, human label, column kind, value) cells;
     a value of None becomes a NotApplicable saying it was not computed."""
     from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415

@@ -436,7 +436,7 @@ class BayesFit(PosteriorFit):
         self.sigma_hat.setflags(write=False)
 
 
-    def report_tables(self) -> tuple["Table", ...]:
+    def report_tables(self) -> tuple[Table, ...]:
         """Sampler settings, convergence and the reliability verdict, PSIS-LOO against constant variance,
         and the prior sensitivity when it was run — all from the fit's extras."""
         ex = self.extras
@@ -472,7 +472,7 @@ class BayesFit(PosteriorFit):
         return tuple(tables)
 
 
-def _loo_table(loo: Mapping[str, Any], src: str) -> "Table":
+def _loo_table(loo: Mapping[str, Any], src: str) -> Table:
     """PSIS-LOO of the modelled-variance and the constant-variance model, from ``extras['loo']``."""
     from ..tables import Column, make_table  # noqa: PLC0415
 
@@ -488,7 +488,7 @@ def _loo_table(loo: Mapping[str, Any], src: str) -> "Table":
                       source=src)
 
 
-def _sensitivity_table(ps: Mapping[str, Any], src: str) -> "Table":
+def _sensitivity_table(ps: Mapping[str, Any], src: str) -> Table:
     """The product-term posterior at each prior-SD multiplier, from ``extras['prior_sensitivity']``."""
     from ..tables import Column, make_table  # noqa: PLC0415
 
@@ -580,7 +580,7 @@ class BayesBackend(Backend):
 
     # ---- variance model ------------------------------------------------------------
     # ---- fit ---------------------------------------------------------------------------
-    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
         t_start = time.perf_counter()
         az = _quiet_import("arviz")
@@ -707,7 +707,7 @@ class BayesBackend(Backend):
                         gamma_names=gamma_names, sigma_hat=sigma_hat, warnings=tuple(warnings), reliable=reliable,
                         extras=extras, se_label="posterior SD")
 
-    def _sensitivity(self, cm: CompiledModel, design: "Design", beta: np.ndarray, inv: np.ndarray, xs: Scaling,
+    def _sensitivity(self, cm: CompiledModel, design: Design, beta: np.ndarray, inv: np.ndarray, xs: Scaling,
                      y_center: float, y_scale: float, seed: int, idata: Any, aux: dict[str, Any]) -> dict[str, Any]:
         """Product-term posterior at prior scales × 0.5, × 1, × 2, and its shift in posterior SDs."""
         cols = list(design.interaction_columns)
@@ -771,7 +771,7 @@ def loo_compare(az: Any, idata_h: Any, idata_c: Any) -> dict[str, Any]:
     return out
 
 
-def spread_check(design: "Design", y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
+def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
                  nu: np.ndarray | None, Zc: np.ndarray | None, beta_c: np.ndarray | None,
                  gamma_c: np.ndarray | None, nu_c: np.ndarray | None, seed: int) -> dict[str, Any] | None:
     """Posterior predictive check of SD(y) within moderator bins: observed vs the 95% predictive interval."""
@@ -805,7 +805,7 @@ def spread_check(design: "Design", y: np.ndarray, X: np.ndarray, Z: np.ndarray, 
         return bin_sd(mu + sd * eps)
 
     observed = bin_sd(y[None, :])[0]
-    out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep) if k],
+    out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep, strict=False) if k],
                            "n_per_bin": counts[keep].astype(int).tolist(),
                            "observed_sd": observed[keep].tolist(), "level": 0.95}
     models = [("heteroscedastic", Z, beta, gamma, nu)]
@@ -850,5 +850,5 @@ def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> 
                       "ci": [float(lo[i]), float(hi[i])], "level": level} for i, nm in enumerate(names)}
 
 
-def _term_summary(b: np.ndarray, design: "Design", cols: list[int]) -> dict[str, Any]:
+def _term_summary(b: np.ndarray, design: Design, cols: list[int]) -> dict[str, Any]:
     return _summaries(b, [design.term_names[j] for j in cols])

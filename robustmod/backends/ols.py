@@ -53,11 +53,11 @@ class OLSBackend(Backend):
         self.label = LABELS[self.id]
         self.assumes_constant_variance = self.id == "ols"
 
-    def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         Q, R = design.qr
         return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design))
 
-    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
+    def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
 
         All D datasets share X = QR: B = R⁻¹QᵀY and E = Y − QQᵀY in one product each. With

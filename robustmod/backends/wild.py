@@ -200,7 +200,7 @@ class _Kernel:
         self.Pt: dict[int, np.ndarray] = {}
         self.offsets: dict[int, tuple[int, int]] = {}
         row = 0
-        for i, (s, Pi) in enumerate(zip(sources, P)):
+        for i, (s, Pi) in enumerate(zip(sources, P, strict=False)):
             if not self.expanded[i]:
                 self.Pt[i] = np.ascontiguousarray(Pi.T)
                 continue
@@ -410,7 +410,7 @@ class BootstrapFit(Fit):
         method = f"wild bootstrap HC Wald, null imposed ({q} df, B = {self.replications})"
         return JointTest(W / q, q, None, p, method, bool(p < alpha))
 
-    def report_tables(self) -> tuple["Table", ...]:
+    def report_tables(self) -> tuple[Table, ...]:
         """The settings of this bootstrap (from its extras): replications, weights, SE type, enumeration, null."""
         ex = self.extras
         weights = ex.get("weights")
@@ -521,7 +521,7 @@ class WildBootstrapBackend(Backend):
         self.label = f"Wild bootstrap ({self.se.upper()}-t, {WEIGHT_LABELS[self.weights]})"
 
     # ---- shared pieces -------------------------------------------------------------------
-    def _omega(self, design: "Design") -> tuple[np.ndarray, np.ndarray, np.ndarray] | str:
+    def _omega(self, design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray] | str:
         """(A, ω, h) of the full model, or the reason the HC weights are undefined."""
         Q, R = design.qr
         n, k = Q.shape
@@ -532,7 +532,7 @@ class WildBootstrapBackend(Backend):
         A = r_inverse(R) @ Q.T
         return A, hc_weights(self.se, h, n, k), h
 
-    def _null_sets(self, design: "Design") -> list[tuple[int, ...]]:
+    def _null_sets(self, design: Design) -> list[tuple[int, ...]]:
         cols = tuple(int(c) for c in design.interaction_columns)
         sets = [(c,) for c in cols]
         return sets + [cols] if len(cols) > 1 else sets
@@ -546,7 +546,7 @@ class WildBootstrapBackend(Backend):
         return resid * (f if resid.ndim == 1 else f[:, None])
 
     # ---- fit ---------------------------------------------------------------------------------
-    def fit(self, design: "Design", *, seed: int, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Unrestricted and null-imposed wild bootstraps with the same weight draws."""
         if design.clusters is not None:  # clustered rows: one weight per cluster
             from .wild_cluster import wild_cluster_fit  # noqa: PLC0415
@@ -578,7 +578,7 @@ class WildBootstrapBackend(Backend):
         delta = np.empty((B, k))
         meat = np.empty((B, k * (k + 1) // 2))
         null = {cols: (np.empty((B, len(cols))), np.empty((B, len(s.pairs))))
-                for cols, s in zip(null_sets, sources[1:])}
+                for cols, s in zip(null_sets, sources[1:], strict=False)}
         rng = np.random.default_rng(seed)
         step = max(1, CHUNK_ELEMENTS // width)
         with _progress(progress and n * B * len(sources) >= PROGRESS_MIN_WORK, B, self.label) as advance:
@@ -586,7 +586,7 @@ class WildBootstrapBackend(Backend):
                 V = sign_patterns(n, a, b) if enum else _weight_chunk(self.weights, n, b - a, rng)
                 results = kernel.run(V)
                 delta[a:b], meat[a:b] = results[0]
-                for cols, (D, M) in zip(null_sets, results[1:]):
+                for cols, (D, M) in zip(null_sets, results[1:], strict=False):
                     null[cols][0][a:b] = D[:, list(cols)]
                     null[cols][1][a:b] = M
                 advance(b - a)
@@ -610,14 +610,14 @@ class WildBootstrapBackend(Backend):
         return fit
 
     # ---- calibration -------------------------------------------------------------------------
-    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int) -> np.ndarray:
+    def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int) -> np.ndarray:
         """Whether the null-imposed wild bootstrap test of the product term(s) rejects at ``alpha``
         for each column of Y (n × D outcomes on design.X): p < alpha with p from :meth:`null_p_many`."""
         if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
             raise option_error("alpha", "a number in (0, 1)", alpha)
         return self.null_p_many(design, Y, seed=seed) < alpha
 
-    def null_p_many(self, design: "Design", Y: np.ndarray, *, seed: int) -> np.ndarray:
+    def null_p_many(self, design: Design, Y: np.ndarray, *, seed: int) -> np.ndarray:
         """Null-imposed wild bootstrap p of the product term(s) for each column of Y (n × D).
 
         Dataset d uses replicates d·B … (d+1)·B − 1 of the weight stream of ``seed`` (so the

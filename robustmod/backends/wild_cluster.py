@@ -119,7 +119,7 @@ def wild_cluster_fit(backend: Any, design: Design, *, seed: int, progress: bool 
         for a, b in _chunks(B, step):
             V = _weights(backend.weights, G, a, b, enum, rng)
             delta[a:b], meat[a:b] = cluster_replicates(V, scores, grams, Rinv, factor)
-            for cols, s in zip(null_sets, null_scores):
+            for cols, s in zip(null_sets, null_scores, strict=False):
                 null[cols][0][a:b], null[cols][1][a:b] = cluster_replicates(V, s, grams, Rinv[list(cols)], factor)
             advance(b - a)
     warnings = _notes(backend, G, B, enum)

@@ -292,7 +292,7 @@ class WLSFit(WaldFit):
         self.weights.setflags(write=False)
 
 
-    def report_tables(self) -> tuple["Table", ...]:
+    def report_tables(self) -> tuple[Table, ...]:
         """The variance model (coefficients on the user's terms) and its fit: LR test against constant
         variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
         from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
@@ -466,7 +466,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
                    (["log_sigma2", "theta"] if vm.function == "power" else []),
         "source_column": vm.source,
         "gamma": {name: {"estimate": float(g), "se": None if gamma_se is None else float(s)}
-                  for name, g, s in zip(_gamma_names(vm), gamma, gamma_se if gamma_se is not None else gamma)},
+                  for name, g, s in zip(_gamma_names(vm), gamma, gamma_se if gamma_se is not None else gamma, strict=False)},
         "loglik": ll, "loglik_constant": lr["loglik_constant"],
         "lr_test": lr["lr_test"], "aic": lr["aic"], "aic_constant": lr["aic_constant"],
         "weight_ratio": ratio, "scale_s2": s2,
@@ -514,16 +514,16 @@ def _loglik_known(y: np.ndarray, X: np.ndarray, beta: np.ndarray, W: np.ndarray)
 # --------------------------------------------------------------------------------------
 # Building the variance model from a design
 # --------------------------------------------------------------------------------------
-def _design_column(design: "Design", name: str) -> pd.Series:
+def _design_column(design: Design, name: str) -> pd.Series:
     frame = design.data.frame
     return frame[name] if name in frame.columns else design.data.column(name)
 
 
-def _first_bad_row(design: "Design", bad: np.ndarray) -> int:
+def _first_bad_row(design: Design, bad: np.ndarray) -> int:
     return int(design.data.frame.index[int(np.flatnonzero(bad)[0])]) + 1
 
 
-def variance_model_for(design: "Design", variance: str, variance_terms: tuple[str, ...] | None,
+def variance_model_for(design: Design, variance: str, variance_terms: tuple[str, ...] | None,
                        group: str | None, weights: str | None) -> VarianceModel:
     """Build the variance model a back-end's options ask for on this design."""
     n = design.n_obs
@@ -625,10 +625,10 @@ class WLSBackend(Backend):
         est = "" if self.variance == "known" else (" (ML)" if self.estimation == "ml" else " (two-step FGLS)")
         self.label = f"WLS, {_FUNCTION_LABELS[self.variance]}{est} + {'HC3' if self.se == 'robust' else 'model SE'}"
 
-    def variance_model(self, design: "Design") -> VarianceModel:
+    def variance_model(self, design: Design) -> VarianceModel:
         return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
 
-    def fit(self, design: "Design", *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
+    def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
         """Fit on the design (deterministic: ``seed`` is not used)."""
         vm = self.variance_model(design)
         rows = design_row_numbers(design)
@@ -637,7 +637,7 @@ class WLSBackend(Backend):
             return fit_wls(design.y, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
                            row_numbers=rows, backend_id=self.id)
 
-    def reject_many(self, design: "Design", Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
+    def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D outcomes on design.X)?
 
         t test for one product term, Wald F for several; the same variance model, estimation and

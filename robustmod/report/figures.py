@@ -99,16 +99,16 @@ def _new(nrows: int = 1, ncols: int = 1, size: tuple[float, float] = (7.0, 4.2))
     return fig, axes
 
 
-def _available(c: "Comparison") -> list[tuple[str, Any]]:
+def _available(c: Comparison) -> list[tuple[str, Any]]:
     return [(b, r) for b, r in c.results.items() if r.available]
 
 
-def _level(c: "Comparison") -> str:
+def _level(c: Comparison) -> str:
     return f"{100 * (1 - c.spec.alpha):g}%"
 
 
 # ---- conditional slope -------------------------------------------------------------
-def slope_figure(comparison: "Comparison", backends: list[str] | None = None) -> "Figure":
+def slope_figure(comparison: Comparison, backends: list[str] | None = None) -> Figure:
     """Conditional slope of the focal predictor along the first continuous moderator.
 
     One band per back-end (its pointwise interval from ``BackendResult.slope_curve``),
@@ -162,7 +162,7 @@ def slope_figure(comparison: "Comparison", backends: list[str] | None = None) ->
 
 
 # ---- data with fitted lines -----------------------------------------------------------
-def data_figure(comparison: "Comparison") -> "Figure":
+def data_figure(comparison: Comparison) -> Figure:
     """Outcome against the focal predictor, points coloured by the first moderator, with the
     primary back-end's fitted mean lines at the probe values (covariates at reference)."""
     c = comparison
@@ -195,7 +195,7 @@ def data_figure(comparison: "Comparison") -> "Figure":
             line_col = lambda v: cmap(norm(v))  # noqa: E731
         points = list(d.probe_points)
         means = _fitted_means(c, points, xs)
-        for pt, mu in zip(points, means):
+        for pt, mu in zip(points, means, strict=False):
             label = ", ".join(f"{k} = {v:.3g}" if isinstance(v, float) else f"{k} = {v}" for k, v in pt.items())
             ax.plot(xs, mu, color="white", linewidth=3.4)
             ax.plot(xs, mu, color=line_col(pt[m]), linewidth=1.8, label=f"fitted at {label}")
@@ -206,7 +206,7 @@ def data_figure(comparison: "Comparison") -> "Figure":
     return fig
 
 
-def _fitted_means(c: "Comparison", points: list[dict[str, Any]], xs: np.ndarray) -> list[np.ndarray]:
+def _fitted_means(c: Comparison, points: list[dict[str, Any]], xs: np.ndarray) -> list[np.ndarray]:
     """Fitted mean L·β̂ of the primary fit along the focal predictor at each probe point."""
     d = c.design
     fit = c.results[c.primary].fit
@@ -217,7 +217,7 @@ def _fitted_means(c: "Comparison", points: list[dict[str, Any]], xs: np.ndarray)
 
 
 # ---- residual diagnostics --------------------------------------------------------------
-def residual_figure(comparison: "Comparison") -> "Figure":
+def residual_figure(comparison: Comparison) -> Figure:
     """OLS residual checks: residuals vs fitted, normal QQ, scale–location, leverage."""
     from scipy import stats  # noqa: PLC0415
 
@@ -256,7 +256,7 @@ def residual_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- variance function -----------------------------------------------------------------
-def variance_figure(comparison: "Comparison") -> "Figure":
+def variance_figure(comparison: Comparison) -> Figure:
     """Fitted residual SD per row (``fit.sigma_hat``) of every fit that models the variance,
     against the focal predictor and the first moderator."""
     c = comparison
@@ -297,7 +297,7 @@ def variance_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- binning check -----------------------------------------------------------------------
-def linearity_figure(comparison: "Comparison") -> "Figure":
+def linearity_figure(comparison: Comparison) -> Figure:
     """The binning check: the focal slope estimated within bins of the moderator, against the
     linear-interaction line (drawn from ``diagnostics['linearity']``)."""
     lin = (comparison.diagnostics or {}).get("linearity")
@@ -331,7 +331,7 @@ def linearity_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- calibration -------------------------------------------------------------------------
-def calibration_figure(comparison: "Comparison") -> "Figure":
+def calibration_figure(comparison: Comparison) -> Figure:
     """Simulated false-positive rate per back-end, ±2 Monte Carlo SE, and the nominal alpha."""
     cal = comparison.calibration
     if not cal or not cal.get("false_positive_rate"):
@@ -360,14 +360,14 @@ def calibration_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- Bayesian ------------------------------------------------------------------------------
-def _posterior(comparison: "Comparison") -> Any:
+def _posterior(comparison: Comparison) -> Any:
     for r in comparison.results.values():
         if r.available and r.fit is not None and r.kind == "posterior" and getattr(r.fit, "idata", None) is not None:
             return r
     raise MissingInput("no posterior fit with draws is in this comparison")
 
 
-def posterior_figure(comparison: "Comparison") -> "Figure":
+def posterior_figure(comparison: Comparison) -> Figure:
     """Posterior of the product term: the main fit's draws as a histogram, and the posterior
     mean and interval at each prior scale of ``extras['prior_sensitivity']`` when present."""
     c = comparison
@@ -416,7 +416,7 @@ def posterior_figure(comparison: "Comparison") -> "Figure":
     return fig
 
 
-def rank_figure(comparison: "Comparison") -> "Figure":
+def rank_figure(comparison: Comparison) -> Figure:
     """Rank plots (Vehtari et al. 2021) of the product term and the variance-model
     coefficients, per chain, from ``fit.idata``."""
     c = comparison
@@ -468,7 +468,7 @@ def rank_figure(comparison: "Comparison") -> "Figure":
 
 
 # ---- two moderators ------------------------------------------------------------------------
-def heatmap_figure(comparison: "Comparison") -> "Figure":
+def heatmap_figure(comparison: Comparison) -> Figure:
     """Conditional slope over two continuous moderators (primary back-end's
     ``slope_grid``), cells whose interval excludes zero outlined."""
     c = comparison
@@ -505,7 +505,7 @@ def heatmap_figure(comparison: "Comparison") -> "Figure":
 
 
 #: (file stem, title, caption, function) in appendix order.
-FIGURES: list[tuple[str, str, str, Callable[["Comparison"], "Figure"]]] = [
+FIGURES: list[tuple[str, str, str, Callable[[Comparison], Figure]]] = [
     ("slope", "Conditional slope across the moderator",
      "Each back-end's estimate with its pointwise interval band; dashed vertical lines mark where its interval "
      "starts or stops excluding zero (Johnson–Neyman boundaries); ticks at the bottom are the observed moderator "
@@ -536,7 +536,7 @@ FIGURES: list[tuple[str, str, str, Callable[["Comparison"], "Figure"]]] = [
 ]
 
 
-def render_figures(comparison: "Comparison", folder: Path) -> list[FigureRecord]:
+def render_figures(comparison: Comparison, folder: Path) -> list[FigureRecord]:
     """Write every figure as PNG and PDF into ``folder``; record skipped ones with the reason."""
     folder.mkdir(parents=True, exist_ok=True)
     records = []

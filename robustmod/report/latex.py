@@ -74,17 +74,17 @@ def _natural(header: str, texts: Sequence[str], numeric: bool) -> tuple[float, f
 
 def _shrink(want: list[float], least: list[float], pick: list[bool], room: float) -> list[float]:
     """Shrink the picked columns towards their smallest widths, in proportion, to fit ``room``."""
-    spare = sum(w - lo for w, lo, p in zip(want, least, pick) if p)
+    spare = sum(w - lo for w, lo, p in zip(want, least, pick, strict=False) if p)
     over = sum(want) - room
     ratio = 0.0 if spare <= 0 else max(0.0, 1 - over / spare)
-    return [lo + ratio * (w - lo) if p else w for w, lo, p in zip(want, least, pick)]
+    return [lo + ratio * (w - lo) if p else w for w, lo, p in zip(want, least, pick, strict=False)]
 
 
 def column_widths(header: Sequence[str], rows: Sequence[Sequence[str]], numeric: Sequence[bool]) -> tuple[str, list[float]]:
     """The font size and each column's share of the line (the shares add up to at most 1).
 
     Text columns give way first; numbers keep their full width while they can."""
-    wants = [_natural(h, [r[j] for r in rows], num) for j, (h, num) in enumerate(zip(header, numeric))]
+    wants = [_natural(h, [r[j] for r in rows], num) for j, (h, num) in enumerate(zip(header, numeric, strict=False))]
     text = [not n for n in numeric]
     for size, cw in _SIZES:
         want = [(w + 1) * cw + 2 * _TABCOLSEP for w, _ in wants]  # one character spare: letters vary in width
@@ -116,8 +116,8 @@ def table_latex(t: Table) -> list[str]:
     out = [r"\begin{table}[htbp]", r"\centering", size, rf"\setlength{{\tabcolsep}}{{{_TABCOLSEP:g}pt}}",
            rf"\caption{{{latex_escape(t.title, breakable=True)}}}", rf"\label{{{label}}}",
            rf"\begin{{tabular}}{{@{{}}{spec}@{{}}}}", r"\toprule",
-           " & ".join(_cell(h, n) for h, n in zip(header, numeric)) + r" \tabularnewline", r"\midrule"]
-    out += [" & ".join(_cell(x, n) for x, n in zip(r, numeric)) + r" \tabularnewline" for r in rows]
+           " & ".join(_cell(h, n) for h, n in zip(header, numeric, strict=False)) + r" \tabularnewline", r"\midrule"]
+    out += [" & ".join(_cell(x, n) for x, n in zip(r, numeric, strict=False)) + r" \tabularnewline" for r in rows]
     out += [r"\bottomrule", r"\end{tabular}"]
     if t.notes:
         notes = " ".join(latex_escape(n, breakable=True) for n in t.notes if n)

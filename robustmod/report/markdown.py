@@ -53,7 +53,7 @@ def table_markdown(t: Table, level: str = "###") -> list[str]:
     out = [f"{level} {md_escape(t.title)}", ""]
     out.append("| " + " | ".join(_cell(c.label, "text") for c in cols) + " |")
     out.append("|" + "".join("---:|" if c.numeric else "---|" for c in cols))
-    out += ["| " + " | ".join(_cell(x, c.kind) for x, c in zip(r, cols)) + " |" for r in rows]
+    out += ["| " + " | ".join(_cell(x, c.kind) for x, c in zip(r, cols, strict=False)) + " |" for r in rows]
     out.append("")
     out += [md_escape(n) for n in t.notes if n] + ([""] if t.notes else [])
     return out

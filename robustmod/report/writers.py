@@ -17,7 +17,7 @@ import shutil
 import sys
 import tempfile
 from collections.abc import Mapping, Sequence
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -56,7 +56,7 @@ def csv_guard(cell: Any) -> Any:
 
 
 # ---- the parts --------------------------------------------------------------------
-def results_dict(comparison: "Comparison") -> tuple[dict[str, Any], dict[str, float]]:
+def results_dict(comparison: Comparison) -> tuple[dict[str, Any], dict[str, float]]:
     """The results contract, minus the wall-clock timings (those go to provenance so that
     results.json is byte-identical on a rerun with the same seed)."""
     res = comparison.to_dict()
@@ -73,7 +73,7 @@ def results_dict(comparison: "Comparison") -> tuple[dict[str, Any], dict[str, fl
     return res, timings
 
 
-def provenance(comparison: "Comparison", *, command_line: str | None, data_path: str | Path | None,
+def provenance(comparison: Comparison, *, command_line: str | None, data_path: str | Path | None,
                timings: Mapping[str, float]) -> dict[str, Any]:
     from ..data import file_sha256  # noqa: PLC0415
 
@@ -88,7 +88,7 @@ def provenance(comparison: "Comparison", *, command_line: str | None, data_path:
         except metadata.PackageNotFoundError:
             packages[name] = "not installed"
     return {
-        "created_utc": datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "created_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "command_line": command_line,
         "data_file": None if path is None else str(path),
         "data_sha256": sha,
@@ -110,7 +110,7 @@ SECTION_OF_SOURCE = {"compare": "comparison", "diagnostics": "diagnostics", "lin
                      "calibrate": "calibration"}
 
 
-def grouped_tables(comparison: "Comparison") -> dict[str, list[Table]]:
+def grouped_tables(comparison: Comparison) -> dict[str, list[Table]]:
     """The comparison's tables by appendix section: comparison, diagnostics, calibration, backends."""
     groups: dict[str, list[Table]] = {"comparison": [], "diagnostics": [], "calibration": [], "backends": []}
     for t in comparison.tables():
@@ -130,14 +130,14 @@ def _shifts(s: Mapping[str, Any]) -> list[dict[str, str]]:
     return shifts
 
 
-def _figure_src(rec: "FigureRecord") -> str | None:
+def _figure_src(rec: FigureRecord) -> str | None:
     if rec.png is None:
         return None
     return "data:image/png;base64," + base64.b64encode(rec.png.read_bytes()).decode("ascii")
 
 
-def context(comparison: "Comparison", res: Mapping[str, Any], prov: Mapping[str, Any],
-            figures: Sequence["FigureRecord"]) -> dict[str, Any]:
+def context(comparison: Comparison, res: Mapping[str, Any], prov: Mapping[str, Any],
+            figures: Sequence[FigureRecord]) -> dict[str, Any]:
     """Everything the pages need: the model, the summary and the comparison's tables by section
     (user text left raw: each renderer escapes it)."""
     model = res["model"]
@@ -175,7 +175,7 @@ def render_html(ctx: Mapping[str, Any]) -> str:
     return env.from_string(HTML).render(**ctx, sections=sections)
 
 
-def render_csv(comparison: "Comparison") -> str:
+def render_csv(comparison: Comparison) -> str:
     """The comparison table as CSV: numbers as numbers (interval ends and region boundaries in
     columns of their own), only text cells guarded against formula injection."""
     table = comparison.table().reset_index()
@@ -200,7 +200,7 @@ def _check_target(out: Path, force: bool) -> None:
                          "pass --force to replace it or choose another --out.")
 
 
-def write_appendix(comparison: "Comparison", out_dir: str | Path, *, force: bool = False,
+def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool = False,
                    command_line: str | None = None, data_path: str | Path | None = None,
                    progress: bool = False, data_note: str | None = None) -> Path:
     """Write the appendix folder for ``comparison`` and return its path.
