@@ -52,8 +52,7 @@ class TSQR:
         if block.shape[0] == 0:
             return
         stacked = np.vstack([self.R, block]) if self.R.shape[0] else block
-        r = np.linalg.qr(stacked, mode="r")
-        self.R = r
+        self.R = np.asarray(np.linalg.qr(stacked, mode="r"))
 
     def factor(self) -> np.ndarray:
         """The p × p factor (rows of zeros appended while fewer than p rows were seen)."""

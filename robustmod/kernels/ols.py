@@ -22,10 +22,16 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.base import Unavailable, WaldFit
-from ..backends.hc import HC_WEIGHTS, LEVERAGE_ONE_TOL, NEEDS_LEVERAGE_BELOW_ONE, hc_weights, r_inverse
+from ..backends.hc import (
+    HC_WEIGHTS,
+    LEVERAGE_ONE_TOL,
+    NEEDS_LEVERAGE_BELOW_ONE,
+    hc_weights,
+    r_inverse,
+)
 from ..errors import InputError
 from .accumulate import TSQR, RunningMoments
-from .chunks import ChunkSource, Chunk
+from .chunks import Chunk, ChunkSource
 
 #: Largest condition number of the scaled Gram matrix accepted for the Cholesky path.
 MAX_CONDITION = 1e6
@@ -57,7 +63,7 @@ def _check_rank(R: np.ndarray, norms: np.ndarray, names: Sequence[str] | None) -
     rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
     bad = np.flatnonzero((rel < ALIAS_TOL) | (norms == 0))
     if bad.size:
-        label = ", ".join(repr(names[j]) if names else f"column {j + 1}" for j in bad)
+        label = ", ".join(repr(names[int(j)]) if names else f"column {j + 1}" for j in bad)
         raise InputError(f"The design is rank-deficient: {label} is a linear combination of other terms; "
                          "drop or recode the aliased term(s).")
 
@@ -152,8 +158,8 @@ class StreamedOLS:
         if kind != "ols":
             extras["max_leverage"] = self.max_leverage
             if self.leverage_one_count:
-                warnings = (f"{self.leverage_one_count} row(s) have leverage 1; their residuals are zero and "
-                            "carry no variance information.",)
+                warnings = ((f"{self.leverage_one_count} row(s) have leverage 1; their residuals are zero "
+                             "and carry no variance information."),)
         return WaldFit(backend_id, label, term_names, self.beta, cov, df, warnings=warnings, extras=extras,
                        se_label="classical (homoscedastic)" if kind == "ols" else kind.upper())
 
