@@ -69,7 +69,7 @@ class AuxiliaryRegression:
         d = np.abs(np.diag(Rp))
         rank = int((d > DEPENDENT_TOL * d[0]).sum()) if d.size else 0
         idx = keep[np.sort(piv[:rank])]
-        Rsub = np.linalg.qr(Raug[:, [*idx, p]], mode="r")
+        Rsub = np.asarray(np.linalg.qr(Raug[:, [*idx, p]], mode="r"))
         qtu = Rsub[:rank, rank]
         n = self.u.n
         ss_tot = float(self.u.m2[0])
