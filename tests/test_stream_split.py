@@ -23,7 +23,7 @@ def _frame(n: int = 900, seed: int = 5, decimals: int | None = None) -> pd.DataF
     return pd.DataFrame({"y": 1 + x + w + 0.2 * x * w + rng.normal(size=n) * (0.5 + 0.3 * w), "x": x, "w": w})
 
 
-def _values(v: np.ndarray, m: int):  # noqa: ANN202
+def _values(v: np.ndarray, m: int):
     return lambda: (v[a:a + m] for a in range(0, v.size, m))
 
 

@@ -39,7 +39,7 @@ def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = 
     n = summary[0]
     first = next(iter(chunks()))
     k = first.X.shape[1]
-    drop = int(round(drop_share * n))
+    drop = round(drop_share * n)
     n1 = (n - drop) // 2
     if n1 <= k + 1:
         return None
