@@ -75,8 +75,8 @@ def _narrow(open_targets: list[_Target], values: ValueSource, bins: int, collect
         for i, t in enumerate(split):
             s = v[(v >= t.lo) & (v <= t.hi)]
             if s.size:
-                j = np.minimum(np.searchsorted(edges[i], s, side="right") - 1, bins - 1)
-                counts[i] += np.bincount(j, minlength=bins)
+                pos = np.minimum(np.searchsorted(edges[i], s, side="right") - 1, bins - 1)
+                counts[i] += np.bincount(pos, minlength=bins)
                 low[i], high[i] = min(low[i], float(s.min())), max(high[i], float(s.max()))
     for t, parts in zip(gather, got):
         t.value = float(np.sort(np.concatenate(parts))[t.rank - t.below])
