@@ -9,6 +9,7 @@
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import lapack
 
 
 class RunningMoments:
@@ -49,10 +50,16 @@ class TSQR:
         self.R = np.zeros((0, p))
 
     def add(self, block: np.ndarray) -> None:
+        """Merge the rows of ``block``: its own factor first (LAPACK geqrf in place on one
+        Fortran-ordered copy), then the factor of the 2p × p stack of the two factors."""
         if block.shape[0] == 0:
             return
-        stacked = np.vstack([self.R, block]) if self.R.shape[0] else block
-        self.R = np.asarray(np.linalg.qr(stacked, mode="r"))
+        qr, _, _, info = lapack.dgeqrf(np.array(block, dtype=float, order="F"), overwrite_a=1)
+        if info != 0:  # pragma: no cover - LAPACK argument errors only
+            raise RuntimeError(f"geqrf failed with info {info}")
+        r = np.triu(qr[: min(qr.shape), :])
+        stacked = np.vstack([self.R, r]) if self.R.shape[0] else r
+        self.R = np.asarray(np.linalg.qr(stacked, mode="r")) if self.R.shape[0] else r
 
     def factor(self) -> np.ndarray:
         """The p × p factor (rows of zeros appended while fewer than p rows were seen)."""
