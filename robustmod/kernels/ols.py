@@ -59,9 +59,9 @@ class ResidualConsumer(Protocol):
     def add(self, chunk: Chunk, resid: np.ndarray) -> None: ...
 
 
-def _check_rank(R: np.ndarray, norms: np.ndarray, names: Sequence[str] | None) -> None:
+def _check_rank(R: np.ndarray, norms: np.ndarray, names: Sequence[str] | None, tol: float = ALIAS_TOL) -> None:
     rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
-    bad = np.flatnonzero((rel < ALIAS_TOL) | (norms == 0))
+    bad = np.flatnonzero((rel < tol) | (norms == 0))
     if bad.size:
         label = ", ".join(repr(names[int(j)]) if names else f"column {j + 1}" for j in bad)
         raise InputError(f"The design is rank-deficient: {label} is a linear combination of other terms; "
@@ -78,8 +78,10 @@ def _tsqr_factor(chunks: ChunkSource, k: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 def factor_pass(chunks: ChunkSource, *, names: Sequence[str] | None = None,
-                max_condition: float = MAX_CONDITION) -> Factor:
-    """Pass 1: β̂ = (XᵀX)⁻¹Xᵀy by Cholesky of the scaled Gram matrix, or TSQR when ill-conditioned."""
+                max_condition: float = MAX_CONDITION, alias_tol: float = ALIAS_TOL) -> Factor:
+    """Pass 1: β̂ = (XᵀX)⁻¹Xᵀy by Cholesky of the scaled Gram matrix, or TSQR when ill-conditioned.
+
+    A column with |R_jj| / ‖X_j‖ < ``alias_tol`` is refused as aliased (InputError naming it)."""
     G: np.ndarray | None = None
     b = np.zeros(0)
     n = 0
@@ -104,12 +106,12 @@ def factor_pass(chunks: ChunkSource, *, names: Sequence[str] | None = None,
             Rs = linalg.cholesky(Gs, lower=False, check_finite=False)
             beta = linalg.cho_solve((Rs, False), b * d, check_finite=False) * d
             R = Rs * norms[None, :]
-            _check_rank(R, norms, names)
+            _check_rank(R, norms, names, alias_tol)
             return Factor(beta, R, n, k, "cholesky", condition)
         except linalg.LinAlgError:
             pass
     R, qty = _tsqr_factor(chunks, k)
-    _check_rank(R, norms, names)
+    _check_rank(R, norms, names, alias_tol)
     beta = linalg.solve_triangular(R, qty, check_finite=False)
     return Factor(beta, R, n, k, "tsqr", condition)
 
@@ -218,7 +220,8 @@ def residual_pass(chunks: ChunkSource, factor: Factor, kinds: Iterable[str] = ("
 
 
 def streamed_ols(chunks: ChunkSource, kinds: Iterable[str] = ("hc3",), *, names: Sequence[str] | None = None,
-                 consumers: Sequence[ResidualConsumer] = (), max_condition: float = MAX_CONDITION) -> StreamedOLS:
+                 consumers: Sequence[ResidualConsumer] = (), max_condition: float = MAX_CONDITION,
+                 alias_tol: float = ALIAS_TOL) -> StreamedOLS:
     """OLS and its covariances over a chunk source: :func:`factor_pass` then :func:`residual_pass`."""
-    return residual_pass(chunks, factor_pass(chunks, names=names, max_condition=max_condition), kinds,
-                         consumers=consumers)
+    factor = factor_pass(chunks, names=names, max_condition=max_condition, alias_tol=alias_tol)
+    return residual_pass(chunks, factor, kinds, consumers=consumers)
