@@ -119,3 +119,15 @@ def test_input_file_is_not_modified(tmp_path: Path) -> None:
     before = path.read_bytes()
     streamed_ols(ModelChunks(Source(path, batch_rows=100), SPEC), ["hc3"])
     assert path.read_bytes() == before
+
+
+def test_variance_regressors_match_the_design(tmp_path: Path) -> None:
+    df = _frame(n=1200)
+    path = tmp_path / "d.parquet"
+    df.to_parquet(path, row_group_size=250)
+    chunks = ModelChunks(Source(path, batch_rows=111), SPEC, variance_terms=("x", "w", "region"))
+    Z = np.vstack([c.columns["Z"] for c in chunks()])
+    want, _ = build_design(df, SPEC).variance_matrix(("x", "w", "region"))
+    assert np.array_equal(Z, want)
+    w = np.concatenate([c.columns["w"] for c in chunks()])
+    assert np.array_equal(w, df["w"].to_numpy())
