@@ -147,17 +147,18 @@ def stream_file(path: Path, *, white: bool = False, wls: bool = True) -> None:
     t1 = time.perf_counter()
     fit = streamed_ols(chunks, ["hc3"], consumers=consumers)
     t_ols = time.perf_counter() - t1
+    j = chunks.term_names.index("x:w")
     print(f"file {path.name}: {chunks.profile.n_complete:,} rows, k = {fit.k}")
     print(f"first pass (levels, missing, summaries): {t_profile:7.1f} s")
     print(f"OLS + HC3 + BP{' + White' if white else ''} (2 passes):          {t_ols:7.1f} s   interaction "
-          f"{fit.beta[3]:.5f} (HC3 SE {np.sqrt(fit.cov['hc3'][3, 3]):.2e}); "
+          f"{fit.beta[j]:.5f} (HC3 SE {np.sqrt(fit.cov['hc3'][j, j]):.2e}); "
           f"BP {consumers[0].result()['statistic']:.1f}", flush=True)
     if wls:
         t2 = time.perf_counter()
         fit_w = streamed_wls(chunks)
         t_wls = time.perf_counter() - t2
         print(f"WLS-ML log-linear ({fit_w.iterations} scoring steps):     {t_wls:7.1f} s   "
-              f"gamma {np.round(fit_w.gamma, 4)}   interaction {fit_w.beta[3]:.5f}")
+              f"gamma {np.round(fit_w.gamma, 4)}   interaction {fit_w.beta[j]:.5f}")
     rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     print(f"peak RSS of the process: {rss / 2**30:.2f} GiB (goal <= 2)")
 
