@@ -100,7 +100,10 @@ class Source:
         fragments = sorted(self._dataset.get_fragments(), key=lambda f: f.path)
         try:
             for fragment in fragments:
-                for batch in fragment.to_batches(columns=list(columns), batch_size=self.batch_rows):
+                # One reading thread: on a shared machine pyarrow's thread pool costs more than it saves,
+                # and the kernels parallelise through BLAS anyway.
+                for batch in fragment.to_batches(columns=list(columns), batch_size=self.batch_rows,
+                                                 use_threads=False):
                     if batch.num_rows:
                         yield start, batch.to_pandas()
                         start += batch.num_rows
