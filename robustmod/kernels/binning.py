@@ -24,8 +24,8 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.base import Estimates, JointTest, WaldFit
-from ..errors import InputError, option_error
-from ..linearity import SPAN_TOL
+from ..errors import InputError
+from ..linearity import SPAN_TOL, _bin_index
 from .accumulate import TSQR, RunningMoments
 from .chunks import Chunk, ChunkSource, mapped
 from .ols import StreamedOLS, streamed_ols
@@ -53,22 +53,12 @@ class BinSummary:
 
 def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str,
           summary: tuple[int, float, float]) -> np.ndarray:
-    if isinstance(bins, (bool, np.bool_)):
-        raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
-    if isinstance(bins, (int, np.integer)):
-        if bins < 2:
-            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
-        return quantiles(values, list(np.arange(1, bins) / bins), summary=summary)
-    try:
-        cuts = np.asarray(list(bins), dtype=float)
-    except (TypeError, ValueError):
-        raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins) from None
-    if cuts.ndim != 1 or cuts.size == 0 or not np.all(np.isfinite(cuts)) or np.any(np.diff(cuts) <= 0):
-        raise option_error("bins", "cut points as a strictly increasing list of finite numbers", list(bins))
+    """Interior cut points: the option is checked by the in-memory rule on the observed range
+    (same messages); quantile cuts then come from the streamed column."""
     _, lo, hi = summary
-    if cuts[0] <= lo or cuts[-1] >= hi:
-        raise InputError(f"The bin cut points {list(cuts)} must lie inside the observed range of {moderator!r} "
-                         f"({lo:g} to {hi:g}); move them inside it.")
+    cuts = _bin_index(np.array([lo, hi]), bins, moderator)[1]
+    if isinstance(bins, (int, np.integer)):
+        return quantiles(values, list(np.arange(1, bins) / bins), summary=summary)
     return cuts
 
 
