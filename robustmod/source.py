@@ -28,6 +28,7 @@ import pyarrow.dataset as pads
 from .data import OVERFLOW_LIMIT
 from .errors import InputError, close_matches
 from .kernels.accumulate import RunningMoments
+from .kernels.chunks import rows_per_chunk
 
 #: Rows per batch read from the file (the chunk size of the kernels that read the source).
 BATCH_ROWS = 1 << 17
@@ -93,16 +94,18 @@ class Source:
             if name not in self.column_names:
                 raise InputError(f"Column {name!r} is not in the data.{close_matches(name, self.column_names)}")
 
-    def batches(self, columns: Sequence[str]) -> Iterator[tuple[int, pd.DataFrame]]:
-        """(0-based position of the first row, frame of ``columns``) for each batch, in file order."""
+    def batches(self, columns: Sequence[str], batch_rows: int | None = None) -> Iterator[tuple[int, pd.DataFrame]]:
+        """(0-based position of the first row, frame of ``columns``) for each batch, in file order;
+        ``batch_rows`` rows per batch (at most; default the source's)."""
         self.check_columns(columns)
+        size = int(batch_rows or self.batch_rows)
         start = 0
         fragments = sorted(self._dataset.get_fragments(), key=lambda f: f.path)
         try:
             for fragment in fragments:
                 # One reading thread: on a shared machine pyarrow's thread pool costs more than it saves,
                 # and the kernels parallelise through BLAS anyway.
-                for batch in fragment.to_batches(columns=list(columns), batch_size=self.batch_rows,
+                for batch in fragment.to_batches(columns=list(columns), batch_size=size,
                                                  use_threads=False):
                     if batch.num_rows:
                         yield start, batch.to_pandas()
@@ -192,10 +195,14 @@ class ModelChunks:
     moderator, plus ``"Z"``: the log-linear variance regressors (a constant, then each of
     ``variance_terms`` on its raw scale; categorical ones as dummies of every level but the first,
     as :meth:`robustmod.design.Design.variance_matrix` builds them).
+
+    ``memory_budget`` (bytes), when given, sets the rows per chunk with
+    :func:`robustmod.kernels.chunks.rows_per_chunk` for the widest per-row array a kernel builds,
+    White's 1 + k + k(k+1)/2 columns; otherwise chunks are the source's batches.
     """
 
     def __init__(self, source: Source, spec: Any, *, variance_terms: Sequence[str] | None = None,
-                 categorical: Sequence[str] = ()) -> None:
+                 categorical: Sequence[str] = (), memory_budget: int | None = None) -> None:
         from formulaic import model_matrix  # heavy: only when a model is built
 
         from .design import FORMULA_CONTEXT
@@ -212,6 +219,7 @@ class ModelChunks:
         self.centering = {name: float(self.profile.columns[name].mean or 0.0)
                           for name in (spec.focal, *spec.moderators)
                           if spec.center and name not in self.categorical}
+        self.chunk_rows = source.batch_rows  # until the model's width is known
         first = next(self._frames(), None)
         if first is None:
             raise InputError("No complete rows in the data; check the columns or fill the gaps.")
@@ -222,10 +230,13 @@ class ModelChunks:
             raise InputError(f"The formula {spec.formula!r} could not be built on these data: {msg}") from None
         self._lhs, self._rhs = mm.lhs.model_spec, mm.rhs.model_spec
         self.term_names = tuple(str(c) for c in mm.rhs.columns)
+        k = len(self.term_names)
+        self.chunk_rows = source.batch_rows if memory_budget is None else \
+            rows_per_chunk(memory_budget, 1 + k + k * (k + 1) // 2)
 
     def _frames(self) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         """(0-based file positions, model-scale frame) of the complete rows of each batch."""
-        for start, frame in self.source.batches(self.needed):
+        for start, frame in self.source.batches(self.needed, self.chunk_rows):
             keep = ~frame.isna().any(axis=1).to_numpy()
             rows = start + np.flatnonzero(keep)
             frame = frame.loc[keep].reset_index(drop=True)

@@ -12,6 +12,7 @@ import pytest
 from robustmod import ModelSpec, build_design
 from robustmod.backends.ols import ols_fit
 from robustmod.errors import InputError
+from robustmod.kernels.chunks import rows_per_chunk
 from robustmod.kernels.ols import streamed_ols
 from robustmod.source import ModelChunks, Source
 
@@ -131,3 +132,14 @@ def test_variance_regressors_match_the_design(tmp_path: Path) -> None:
     assert np.array_equal(Z, want)
     w = np.concatenate([c.columns["w"] for c in chunks()])
     assert np.array_equal(w, df["w"].to_numpy())
+
+
+def test_chunk_size_follows_the_memory_budget(tmp_path: Path) -> None:
+    df = _frame(n=5000)
+    path = tmp_path / "d.parquet"
+    df.to_parquet(path)
+    chunks = ModelChunks(Source(path), SPEC, memory_budget=2**20)
+    k = len(chunks.term_names)
+    want = rows_per_chunk(2**20, 1 + k + k * (k + 1) // 2)
+    sizes = [c.size for c in chunks()]
+    assert chunks.chunk_rows == want and max(sizes) == want and sum(sizes) == 5000
