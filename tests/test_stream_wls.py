@@ -61,6 +61,7 @@ def test_weighted_fit_matches_statsmodels() -> None:
     chunks = array_chunks(X, y, chunk_rows=64, columns={"Z": Z})
     s = streamed_wls(chunks)
     W = np.exp(-(Z @ s.gamma))
+    assert s.weight_ratio == pytest.approx(W.max() / W.min(), rel=1e-12)
     ref = sm.WLS(y, X, weights=W).fit(cov_type="HC3")
     assert _rel(s.beta, ref.params) < 1e-9
     assert _rel(np.sqrt(np.diag(s.cov)), ref.bse) < 1e-9

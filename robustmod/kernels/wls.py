@@ -137,6 +137,19 @@ def scoring(chunks: ChunkSource, gamma0: np.ndarray, Rz: np.ndarray, *, tol: flo
     return gamma, False, max_iter
 
 
+class _EtaSummary:
+    """Sum, min and max of the log-variances ηᵢ, gathered during the weighted residual pass."""
+
+    def __init__(self) -> None:
+        self.total, self.low, self.high = 0.0, np.inf, -np.inf
+
+    def add(self, chunk: Chunk, resid: np.ndarray) -> None:
+        eta = chunk.columns["eta"]
+        if eta.size:
+            self.total += float(eta.sum())
+            self.low, self.high = min(self.low, float(eta.min())), max(self.high, float(eta.max()))
+
+
 def streamed_wls(chunks: ChunkSource, *, se: str = "robust", tol: float = TOL, max_iter: int = MAX_ITER
                  ) -> StreamedWLS:
     """ML of the log-linear variance model and the weighted fit (see the module docstring)."""
@@ -145,23 +158,20 @@ def streamed_wls(chunks: ChunkSource, *, se: str = "robust", tol: float = TOL, m
     gamma, converged, iterations = scoring(chunks, gamma2, Rz, tol=tol, max_iter=max_iter)
     if not converged:
         gamma = gamma2
-    lo, hi = np.inf, -np.inf
-    for c in chunks():
-        eta = _eta(c, gamma)
-        lo, hi = min(lo, float(eta.min())), max(hi, float(eta.max()))
 
     def weigh(c: Chunk) -> Chunk:
-        sw = np.exp(-0.5 * _eta(c, gamma))
-        return replace(c, X=c.X * sw[:, None], y=c.y * sw)
+        eta = _eta(c, gamma)
+        sw = np.exp(-0.5 * eta)
+        return replace(c, X=c.X * sw[:, None], y=c.y * sw, columns={**c.columns, "eta": eta})
 
     kind = "hc3" if se == "robust" else "ols"
-    weighted = streamed_ols(mapped(chunks, weigh), [kind])
+    etas = _EtaSummary()
+    weighted = streamed_ols(mapped(chunks, weigh), [kind], consumers=[etas])
     cov = weighted.cov[kind]
     if cov is None:
         cov = np.full((weighted.k, weighted.k), np.nan)
     n = weighted.n
-    sum_eta = sum(float(_eta(c, gamma).sum()) for c in chunks())
-    loglik = -0.5 * (n * math.log(2 * math.pi) + sum_eta + weighted.rss)
+    loglik = -0.5 * (n * math.log(2 * math.pi) + etas.total + weighted.rss)
     gamma_se = math.sqrt(2.0) * np.linalg.norm(r_inverse(Rz), axis=1)
     return StreamedWLS(weighted.beta, cov, gamma, gamma_se, gamma2, loglik, converged, iterations,
-                       math.exp(hi - lo), weighted.rss / (n - weighted.k), weighted)
+                       math.exp(etas.high - etas.low), weighted.rss / (n - weighted.k), weighted)
