@@ -24,6 +24,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.dataset as pads
+import pyarrow.parquet as pq
 
 from .data import OVERFLOW_LIMIT
 from .errors import InputError, close_matches
@@ -32,6 +33,8 @@ from .kernels.chunks import rows_per_chunk
 
 #: Rows per batch read from the file (the chunk size of the kernels that read the source).
 BATCH_ROWS = 1 << 17
+#: A Parquet row group of at most this many batches is read whole (memory stays at one row group).
+ROW_GROUP_WHOLE = 16
 _CSV_ROW = re.compile(r"column #(\d+): Row #(\d+): CSV conversion error to \w+: invalid value '([^']*)'")
 
 
@@ -77,17 +80,19 @@ class Source:
                              "use .parquet, a folder of .parquet files, or .csv.")
         try:
             if self.kind == "parquet":
-                self._dataset = pads.dataset(str(p), format="parquet")
+                self._files = sorted(str(f) for f in pads.dataset(str(p), format="parquet").files)
+                if not self._files:
+                    raise InputError(f"The folder '{p}' holds no Parquet files; give a .parquet file or a folder of them.")
+                schema = pq.read_schema(self._files[0])
+                self._types = dict(zip(schema.names, schema.types))
             else:
                 head = pacsv.open_csv(str(p)).read_next_batch()
-                types = {f.name: pa.float64() for f in head.schema if pa.types.is_integer(f.type)
-                         or pa.types.is_floating(f.type)}
-                fmt = pads.CsvFileFormat(convert_options=pacsv.ConvertOptions(column_types=types))
-                self._dataset = pads.dataset(str(p), format=fmt)
+                self._types = {f.name: pa.float64() if pa.types.is_integer(f.type) or pa.types.is_floating(f.type)
+                               else f.type for f in head.schema}
         except (pa.ArrowInvalid, OSError, StopIteration) as exc:
             raise InputError(f"The data '{p.name}' could not be read as {self.kind}: "
                              f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}.") from None
-        self.column_names = tuple(self._dataset.schema.names)
+        self.column_names = tuple(self._types)
 
     def check_columns(self, names: Sequence[str]) -> None:
         for name in names:
@@ -100,18 +105,31 @@ class Source:
         self.check_columns(columns)
         size = int(batch_rows or self.batch_rows)
         start = 0
-        fragments = sorted(self._dataset.get_fragments(), key=lambda f: f.path)
         try:
-            for fragment in fragments:
-                # One reading thread: on a shared machine pyarrow's thread pool costs more than it saves,
-                # and the kernels parallelise through BLAS anyway.
-                for batch in fragment.to_batches(columns=list(columns), batch_size=size,
-                                                 use_threads=False):
-                    if batch.num_rows:
-                        yield start, batch.to_pandas()
-                        start += batch.num_rows
+            for batch in self._record_batches(list(columns), size):
+                if batch.num_rows:
+                    yield start, batch.to_pandas()
+                    start += batch.num_rows
         except pa.ArrowInvalid as exc:
             raise self._read_error(exc) from None
+
+    def _record_batches(self, columns: list[str], size: int) -> Iterator[pa.RecordBatch]:
+        """Synchronous readers, one row group (Parquet) or block (CSV) at a time: a scanner that
+        reads ahead on its own threads can run far ahead of the kernels and hold much of the file."""
+        if self.kind == "parquet":
+            for name in self._files:
+                pf = pq.ParquetFile(name)
+                for g in range(pf.num_row_groups):
+                    if pf.metadata.row_group(g).num_rows <= ROW_GROUP_WHOLE * size:
+                        yield from pf.read_row_group(g, columns=columns, use_threads=False).to_batches(size)
+                    else:
+                        yield from pf.iter_batches(batch_size=size, row_groups=[g], columns=columns,
+                                                   use_threads=False)
+            return
+        numeric = {c: t for c, t in self._types.items() if c in columns and pa.types.is_floating(t)}
+        yield from pacsv.open_csv(
+            str(self.path), read_options=pacsv.ReadOptions(block_size=max(1 << 20, 64 * size), use_threads=False),
+            convert_options=pacsv.ConvertOptions(column_types=numeric, include_columns=columns))
 
     def _read_error(self, exc: pa.ArrowInvalid) -> InputError:
         m = _CSV_ROW.search(str(exc))
@@ -128,7 +146,7 @@ class Source:
         counts: dict[str, pd.Series] = {}
         moments = {c: RunningMoments(1) for c in columns}
         numeric = {c: pa.types.is_integer(t) or pa.types.is_floating(t)
-                   for c, t in zip(self.column_names, self._dataset.schema.types) if c in columns}
+                   for c, t in self._types.items() if c in columns}
         numeric.update(dict.fromkeys(categorical, False))
         n_input = n_complete = 0
         infinite: dict[str, list[int]] = {}  # column → [first data row, count]
