@@ -71,8 +71,9 @@ def test_non_numeric_value_late_in_a_csv_names_the_row(tmp_path: Path) -> None:
     w[273_000] = "seven"  # data row 273001
     pd.DataFrame({"y": np.arange(n) * 0.5, "x": x, "w": w}).to_csv(path, index=False)
     spec = ModelSpec(formula="y ~ x * w", focal="x", moderators=("w",))
+    # Small batches: the file is read in several blocks and the bad cell sits in a late one.
     with pytest.raises(InputError, match=r"^Column 'w' has the non-numeric value 'seven' in data row 273001; "):
-        ModelChunks(Source(path), spec)
+        ModelChunks(Source(path, batch_rows=2048), spec)
 
 
 def test_infinite_value_in_a_big_parquet_file_gives_the_in_memory_message(tmp_path: Path) -> None:
