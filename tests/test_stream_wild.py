@@ -80,3 +80,14 @@ def test_point_estimate_and_cov_are_the_hc3_fit() -> None:
     mem = ols_fit("hc3", Q, R, y, NAMES)
     assert isinstance(mem, WaldFit) and isinstance(fit, BootstrapFit)
     assert np.allclose(fit.params, mem.params, rtol=1e-9) and np.allclose(fit.cov, mem.cov, rtol=1e-9)
+
+
+def test_bad_options_are_one_line_errors() -> None:
+    from robustmod.errors import InputError
+
+    X, y = _data(n=200)
+    chunks = array_chunks(X, y, chunk_rows=50)
+    with pytest.raises(InputError, match="'se' option must be one of"):
+        streamed_wild(chunks, NAMES, [3], replications=99, se="hc9", seed=1)
+    with pytest.raises(InputError, match="'replications' option"):
+        streamed_wild(chunks, NAMES, [3], replications=10, seed=1)

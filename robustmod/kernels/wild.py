@@ -16,18 +16,20 @@ size, so every chunking gives the same numbers (though not the in-memory back-en
 """
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import linalg
 
 from ..backends.base import Unavailable
-from ..backends.hc import hc_weights
+from ..backends.hc import HC_WEIGHTS, hc_weights
 from ..backends.wild import (
     MAMMEN_P_LOW,
     MAMMEN_VALUES,
+    TRANSFORMS,
     WEBB_VALUES,
+    WEIGHT_KINDS,
     BootstrapFit,
     _pairs_within,
     residual_factor,
@@ -105,6 +107,13 @@ def streamed_wild(chunks: ChunkSource, term_names: tuple[str, ...], product_colu
                   replications: int = 9999, weights: str = "rademacher", se: str = "hc3",
                   transform: str = "hc2", seed: int, batch: int = BATCH) -> BootstrapFit | Unavailable:
     """Unrestricted and null-imposed wild bootstraps over chunks (see the module docstring)."""
+    if isinstance(replications, bool) or not isinstance(replications, (int, np.integer)) \
+            or not 99 <= replications <= 1_000_000:
+        raise option_error("replications", "a whole number from 99 to 1000000", replications)
+    for name, value, allowed in (("weights", weights, WEIGHT_KINDS), ("se", se, tuple(HC_WEIGHTS)),
+                                 ("transform", transform, TRANSFORMS)):
+        if value not in allowed:
+            raise option_error(name, f"one of {', '.join(allowed)}", value)
     full = factor_pass(chunks, names=term_names)
     fit = residual_pass(chunks, full, [se])
     label = f"Wild bootstrap ({se.upper()}-t, {weights})"
@@ -158,13 +167,13 @@ def streamed_wild(chunks: ChunkSource, term_names: tuple[str, ...], product_colu
 
 
 def _select(chunks: ChunkSource, keep: list[int]) -> ChunkSource:
-    def passes():  # type: ignore[no-untyped-def]
+    def passes() -> Iterator[Chunk]:
         for c in chunks():
             yield Chunk(c.X[:, keep], c.y, c.rows, c.columns)
     return passes
 
 
-def _positions(chunks: ChunkSource):  # type: ignore[no-untyped-def]
+def _positions(chunks: ChunkSource) -> Iterator[tuple[Chunk, int]]:
     """(chunk, position of its first row among the rows used)."""
     pos = 0
     for c in chunks():
