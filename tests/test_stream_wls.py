@@ -67,3 +67,11 @@ def test_weighted_fit_matches_statsmodels() -> None:
     assert _rel(np.sqrt(np.diag(s.cov)), ref.bse) < 1e-9
     model = streamed_wls(chunks, se="model")
     assert _rel(np.sqrt(np.diag(model.cov)), sm.WLS(y, X, weights=W).fit().bse) < 1e-9
+
+
+def test_bad_se_option_is_a_one_line_error() -> None:
+    from robustmod.errors import InputError
+
+    X, y, Z = _data(n=100)
+    with pytest.raises(InputError, match="'se' option must be one of robust, model"):
+        streamed_wls(array_chunks(X, y, chunk_rows=30, columns={"Z": Z}), se="sandwich")

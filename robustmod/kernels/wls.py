@@ -29,8 +29,10 @@ from ..backends.wls import (
     ETA_LIMIT,
     LOG_CHI2_CORRECTION,
     ML_DECREMENT_TOL,
+    SE_TYPES,
     ZERO_RESIDUAL_FLOOR,
 )
+from ..errors import option_error
 from .accumulate import TSQR
 from .chunks import Chunk, ChunkSource, mapped
 from .ols import StreamedOLS, factor_pass, streamed_ols
@@ -153,6 +155,8 @@ class _EtaSummary:
 def streamed_wls(chunks: ChunkSource, *, se: str = "robust", tol: float = TOL, max_iter: int = MAX_ITER
                  ) -> StreamedWLS:
     """ML of the log-linear variance model and the weighted fit (see the module docstring)."""
+    if se not in SE_TYPES:
+        raise option_error("se", f"one of {', '.join(SE_TYPES)}", se)
     factor = factor_pass(chunks)
     gamma2, Rz = twostep_start(chunks, factor.beta)
     gamma, converged, iterations = scoring(chunks, gamma2, Rz, tol=tol, max_iter=max_iter)
