@@ -43,11 +43,11 @@ class ResidualSpread:
 
     def result(self) -> dict[str, Any]:
         """{moderator, bins: [{level, range, n, sd}], ratio} as the in-memory table gives them."""
-        rows = []
+        rows: list[dict[str, Any]] = []
         for j, m in enumerate(self.moments):
             if m.n:
                 sd = num(np.sqrt(m.m2[0] / (m.n - 1))) if m.n > 1 else None
                 rows.append({"level": None, "range": [float(self.low[j]), float(self.high[j])], "n": int(m.n), "sd": sd})
-        sds = [r["sd"] for r in rows if r["sd"] is not None]
+        sds: list[float] = [r["sd"] for r in rows if r["sd"] is not None]
         ratio = num(max(sds) / min(sds)) if len(sds) >= 2 and min(sds) > 0 else None
         return {"moderator": self.moderator, "bins": rows, "ratio": ratio}
