@@ -1,0 +1,68 @@
+"""Summaries that merge chunk by chunk: running means and sums of squares, and TSQR factors.
+
+* :class:`RunningMoments` merges count, mean and centred sum of squares of each column with
+  Chan, Golub & LeVeque's (1979) pairwise update, so no Σx² − n·x̄² cancellation occurs.
+* :class:`TSQR` keeps the triangular factor R of the rows seen so far: for blocks A₁, A₂ the
+  factor of [A₁; A₂] is the factor of [R₁; A₂] (Demmel et al. 2012, tall-skinny QR), so
+  RᵀR = AᵀA without ever forming AᵀA.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy.linalg import lapack
+
+
+class RunningMoments:
+    """Count, mean and centred sum of squares of p columns, merged chunk by chunk."""
+
+    def __init__(self, p: int) -> None:
+        self.n = 0
+        self.mean = np.zeros(p)
+        self.m2 = np.zeros(p)
+        self.minimum = np.full(p, np.inf)
+        self.maximum = np.full(p, -np.inf)
+
+    def add(self, values: np.ndarray) -> None:
+        """Merge the rows of ``values`` (m × p, or m for p = 1)."""
+        v = values.reshape(values.shape[0], -1)
+        m = v.shape[0]
+        if m == 0:
+            return
+        mean_b = v.mean(axis=0)
+        m2_b = np.square(v - mean_b).sum(axis=0)
+        total = self.n + m
+        delta = mean_b - self.mean
+        self.mean = self.mean + delta * (m / total)
+        self.m2 = self.m2 + m2_b + np.square(delta) * (self.n * m / total)
+        self.n = total
+        np.minimum(self.minimum, v.min(axis=0), out=self.minimum)
+        np.maximum(self.maximum, v.max(axis=0), out=self.maximum)
+
+    def variance(self, ddof: int = 1) -> np.ndarray:
+        return self.m2 / max(self.n - ddof, 1)
+
+
+class TSQR:
+    """Upper-triangular R with RᵀR = AᵀA over all blocks added (Householder QR of [R; block])."""
+
+    def __init__(self, p: int) -> None:
+        self.p = p
+        self.R = np.zeros((0, p))
+
+    def add(self, block: np.ndarray) -> None:
+        """Merge the rows of ``block``: its own factor first (LAPACK geqrf in place on one
+        Fortran-ordered copy), then the factor of the 2p × p stack of the two factors."""
+        if block.shape[0] == 0:
+            return
+        qr, _, _, info = lapack.dgeqrf(np.array(block, dtype=float, order="F"), overwrite_a=1)
+        if info != 0:  # pragma: no cover - LAPACK argument errors only
+            raise RuntimeError(f"geqrf failed with info {info}")
+        r = np.triu(qr[: min(qr.shape), :])
+        stacked = np.vstack([self.R, r]) if self.R.shape[0] else r
+        self.R = np.asarray(np.linalg.qr(stacked, mode="r")) if self.R.shape[0] else r
+
+    def factor(self) -> np.ndarray:
+        """The p × p factor (rows of zeros appended while fewer than p rows were seen)."""
+        R = np.zeros((self.p, self.p))
+        R[: self.R.shape[0]] = self.R[: self.p]
+        return R

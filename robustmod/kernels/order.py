@@ -1,0 +1,107 @@
+"""Exact order statistics, quantiles and bin medians of one column streamed in chunks.
+
+Each pass narrows, for every wanted rank r (0-based, ascending order), a value interval
+[lo, hi] known to hold the r-th smallest value together with the count of values below lo:
+a histogram of :data:`BINS` equal-width bins over the interval finds the bin that holds rank
+r, and once an interval holds at most :data:`COLLECT_LIMIT` values they are gathered and
+sorted. An interval whose values are all equal (ties) is settled at once. Spread-out data
+need two passes after the first (n ≤ BINS · COLLECT_LIMIT ≈ 4·10⁹); memory stays at one chunk
+plus the gathered values.
+
+Quantiles follow numpy's default ('linear') rule, x₍ᵢ₎ + g·(x₍ᵢ₊₁₎ − x₍ᵢ₎) at the virtual index
+q·(n − 1), so they equal ``np.quantile`` on the whole column.
+"""
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import InputError
+
+BINS = 4096
+COLLECT_LIMIT = 2**20
+
+ValueSource = Callable[[], Iterator[np.ndarray]]
+
+
+@dataclass
+class _Target:
+    rank: int
+    lo: float
+    hi: float
+    below: int
+    count: int
+    value: float | None = None
+
+
+def column_summary(values: ValueSource) -> tuple[int, float, float]:
+    """(n, min, max) in one pass."""
+    n, lo, hi = 0, np.inf, -np.inf
+    for v in values():
+        if v.size:
+            n += v.size
+            lo, hi = min(lo, float(v.min())), max(hi, float(v.max()))
+    return n, lo, hi
+
+
+def order_statistics(values: ValueSource, ranks: Sequence[int], *, summary: tuple[int, float, float] | None = None,
+                     bins: int = BINS, collect_limit: int = COLLECT_LIMIT) -> np.ndarray:
+    """The ``ranks``-th smallest values (0-based) of the streamed column, exactly."""
+    n, vmin, vmax = summary if summary is not None else column_summary(values)
+    if any(not 0 <= r < n for r in ranks):
+        raise InputError(f"An order statistic was asked for outside the {n} rows of the column.")
+    targets = {int(r): _Target(int(r), vmin, vmax, 0, n) for r in ranks}
+    if vmin == vmax:
+        return np.full(len(ranks), vmin)
+    while any(t.value is None for t in targets.values()):
+        _narrow([t for t in targets.values() if t.value is None], values, bins, collect_limit)
+    return np.array([targets[int(r)].value for r in ranks], dtype=float)
+
+
+def _narrow(open_targets: list[_Target], values: ValueSource, bins: int, collect_limit: int) -> None:
+    """One pass: gather small intervals, histogram the others."""
+    gather = [t for t in open_targets if t.count <= collect_limit]
+    split = [t for t in open_targets if t.count > collect_limit]
+    edges = [np.linspace(t.lo, t.hi, bins + 1) for t in split]
+    got: list[list[np.ndarray]] = [[] for _ in gather]
+    counts = [np.zeros(bins, dtype=np.int64) for _ in split]
+    low = [np.inf] * len(split)
+    high = [-np.inf] * len(split)
+    for v in values():
+        for i, t in enumerate(gather):
+            got[i].append(v[(v >= t.lo) & (v <= t.hi)])
+        for i, t in enumerate(split):
+            s = v[(v >= t.lo) & (v <= t.hi)]
+            if s.size:
+                pos = np.minimum(np.searchsorted(edges[i], s, side="right") - 1, bins - 1)
+                counts[i] += np.bincount(pos, minlength=bins)
+                low[i], high[i] = min(low[i], float(s.min())), max(high[i], float(s.max()))
+    for t, parts in zip(gather, got):
+        t.value = float(np.sort(np.concatenate(parts))[t.rank - t.below])
+    for t, e, c, lo, hi in zip(split, edges, counts, low, high):
+        if lo == hi:  # every value in the interval is the same (ties)
+            t.value = lo
+            continue
+        cum = t.below + np.cumsum(c)
+        j = int(np.searchsorted(cum, t.rank, side="right"))
+        t.below = int(cum[j - 1]) if j else t.below
+        t.count = int(c[j])
+        t.lo = float(e[j])
+        t.hi = float(e[j + 1]) if j == bins - 1 else float(np.nextafter(e[j + 1], -np.inf))
+
+
+def quantiles(values: ValueSource, probs: Sequence[float], *, summary: tuple[int, float, float] | None = None
+              ) -> np.ndarray:
+    """``np.quantile(column, probs)`` (linear rule) from streamed order statistics."""
+    summary = summary if summary is not None else column_summary(values)
+    n = summary[0]
+    virtual = np.asarray(probs, dtype=float) * (n - 1)
+    i = np.floor(virtual).astype(int)
+    g = virtual - i
+    ranks = sorted(set(i.tolist()) | set(np.minimum(i + 1, n - 1).tolist()))
+    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary)))
+    a = np.array([stats[int(r)] for r in i])
+    b = np.array([stats[int(min(r + 1, n - 1))] for r in i])
+    return np.where(g >= 0.5, b - (b - a) * (1 - g), a + (b - a) * g)

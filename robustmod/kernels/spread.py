@@ -1,0 +1,53 @@
+"""Spread of the OLS residuals within moderator bins, gathered during the OLS residual pass.
+
+The streamed counterpart of :func:`robustmod.diagnostics.residual_spread` for a continuous
+moderator: quantile cut points from :func:`robustmod.kernels.order.quantiles` (before the pass),
+right-closed bins as ``pandas.cut``, and per bin the row count, the range of the moderator and
+the SD (ddof 1) of the residuals from merged running moments.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from ..jsonvalues import num
+from .accumulate import RunningMoments
+from .chunks import Chunk, ChunkSource
+from .order import quantiles
+
+
+class ResidualSpread:
+    """A residual consumer: SD of the residuals in each bin of ``moderator`` cut at ``cuts``."""
+
+    def __init__(self, moderator: str, cuts: np.ndarray) -> None:
+        self.moderator, self.cuts = moderator, np.asarray(cuts, dtype=float)
+        nb = self.cuts.size + 1
+        self.moments = [RunningMoments(1) for _ in range(nb)]
+        self.low, self.high = np.full(nb, np.inf), np.full(nb, -np.inf)
+
+    @classmethod
+    def quantile_bins(cls, chunks: ChunkSource, moderator: str, bins: int = 3) -> ResidualSpread:
+        """Bins at the 1/bins … (bins − 1)/bins quantiles of the streamed moderator."""
+        cuts = quantiles(lambda: (np.asarray(c.columns[moderator], dtype=float) for c in chunks()),
+                         list(np.arange(1, bins) / bins))
+        return cls(moderator, cuts)
+
+    def add(self, chunk: Chunk, resid: np.ndarray) -> None:
+        w = np.asarray(chunk.columns[self.moderator], dtype=float)
+        idx = np.searchsorted(self.cuts, w, side="left")
+        np.minimum.at(self.low, idx, w)
+        np.maximum.at(self.high, idx, w)
+        for j in np.unique(idx):  # bins, not rows
+            self.moments[j].add(resid[idx == j])
+
+    def result(self) -> dict[str, Any]:
+        """{moderator, bins: [{level, range, n, sd}], ratio} as the in-memory table gives them."""
+        rows: list[dict[str, Any]] = []
+        for j, m in enumerate(self.moments):
+            if m.n:
+                sd = num(np.sqrt(m.m2[0] / (m.n - 1))) if m.n > 1 else None
+                rows.append({"level": None, "range": [float(self.low[j]), float(self.high[j])], "n": int(m.n), "sd": sd})
+        sds: list[float] = [r["sd"] for r in rows if r["sd"] is not None]
+        ratio = num(max(sds) / min(sds)) if len(sds) >= 2 and min(sds) > 0 else None
+        return {"moderator": self.moderator, "bins": rows, "ratio": ratio}
