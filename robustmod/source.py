@@ -84,7 +84,7 @@ class Source:
                 if not self._files:
                     raise InputError(f"The folder '{p}' holds no Parquet files; give a .parquet file or a folder of them.")
                 schema = pq.read_schema(self._files[0])
-                self._types = dict(zip(schema.names, schema.types))
+                self._types = dict(zip(schema.names, schema.types, strict=False))
             else:
                 head = pacsv.open_csv(str(p)).read_next_batch()
                 self._types = {f.name: pa.float64() if pa.types.is_integer(f.type) or pa.types.is_floating(f.type)

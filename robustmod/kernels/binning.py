@@ -91,8 +91,8 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
     start = np.concatenate([[0], np.cumsum(counts)])[present]
     c = counts[present]
     ranks = sorted({int(r) for r in np.concatenate([start + (c - 1) // 2, start + c // 2])})
-    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary)))
-    medians = np.array([0.5 * (stats[int(s + (m - 1) // 2)] + stats[int(s + m // 2)]) for s, m in zip(start, c)])
+    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary), strict=False))
+    medians = np.array([0.5 * (stats[int(s + (m - 1) // 2)] + stats[int(s + m // 2)]) for s, m in zip(start, c, strict=False)])
     focal_sd = np.array([np.sqrt(per_bin[j].m2[0] / max(per_bin[j].n - 1, 1)) for j in present])
     n = int(summary[0])
     sd_all = float(np.sqrt(all_d.m2[0] / (n - 1))) if n > 1 else 0.0

@@ -78,9 +78,9 @@ def _narrow(open_targets: list[_Target], values: ValueSource, bins: int, collect
                 pos = np.minimum(np.searchsorted(edges[i], s, side="right") - 1, bins - 1)
                 counts[i] += np.bincount(pos, minlength=bins)
                 low[i], high[i] = min(low[i], float(s.min())), max(high[i], float(s.max()))
-    for t, parts in zip(gather, got):
+    for t, parts in zip(gather, got, strict=False):
         t.value = float(np.sort(np.concatenate(parts))[t.rank - t.below])
-    for t, e, c, lo, hi in zip(split, edges, counts, low, high):
+    for t, e, c, lo, hi in zip(split, edges, counts, low, high, strict=False):
         if lo == hi:  # every value in the interval is the same (ties)
             t.value = lo
             continue
@@ -101,7 +101,7 @@ def quantiles(values: ValueSource, probs: Sequence[float], *, summary: tuple[int
     i = np.floor(virtual).astype(int)
     g = virtual - i
     ranks = sorted(set(i.tolist()) | set(np.minimum(i + 1, n - 1).tolist()))
-    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary)))
+    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary), strict=False))
     a = np.array([stats[int(r)] for r in i])
     b = np.array([stats[int(min(r + 1, n - 1))] for r in i])
     return np.where(g >= 0.5, b - (b - a) * (1 - g), a + (b - a) * g)

@@ -132,7 +132,7 @@ def streamed_wild(chunks: ChunkSource, term_names: tuple[str, ...], product_colu
     delta = np.empty((replications, k))
     meat = np.empty((replications, k * (k + 1) // 2))
     null = {s: (np.empty((replications, len(s))), np.empty((replications, len(p))))
-            for s, p in zip(null_sets, pair_sets[1:])}
+            for s, p in zip(null_sets, pair_sets[1:], strict=False)}
     for r, a in enumerate(range(0, replications, batch)):
         reps = min(batch, replications - a)
         XtU = [np.zeros((k, reps)) for _ in models]
@@ -154,7 +154,7 @@ def streamed_wild(chunks: ChunkSource, term_names: tuple[str, ...], product_colu
                 P = (A[jj[pair_sets[i]]] * A[ll[pair_sets[i]]] * omega).T  # m × pairs
                 M[i] += (E * E) @ P
         delta[a:a + reps], meat[a:a + reps] = D[0].T, M[0]
-        for s, Di, Mi in zip(null_sets, D[1:], M[1:]):
+        for s, Di, Mi in zip(null_sets, D[1:], M[1:], strict=False):
             null[s][0][a:a + reps], null[s][1][a:a + reps] = Di[list(s)].T, Mi
     cov = fit.cov[se]
     assert cov is not None
