@@ -518,6 +518,20 @@ class Backend(ABC):
         return f"{type(self).__name__}({shown})"
 
 
+class FamilyBackend(Backend):
+    """One class that serves several registry ids (hc0 … hc5, cr0 … cr3): the registry fixes the
+    ``id`` option, and the label follows it from ``labels``."""
+
+    labels: Mapping[str, str] = {}
+
+    def message_id(self, options: Mapping[str, Any]) -> str:
+        given = options.get("id")
+        return given.lower() if isinstance(given, str) and given.lower() in self.labels else type(self).id
+
+    def finish_options(self) -> None:
+        self.label = self.labels[self.id]
+
+
 def one_row_table(key: str, title: str, source: str, cells: Sequence[tuple[str, str, str, Any]],
                   notes: Sequence[str] = ()) -> Table:
     """A report table of one row from (machine key, human label, column kind, value) cells;

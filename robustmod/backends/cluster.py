@@ -34,7 +34,7 @@ import numpy as np
 from scipy import linalg, sparse, stats
 
 from ..tables import Column, Table, make_table
-from .base import Backend, Estimates, Fit, JointTest, Option, Unavailable, _as_rows, quadratic_forms
+from .base import Estimates, FamilyBackend, Fit, JointTest, Option, Unavailable, _as_rows, quadratic_forms
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -246,11 +246,12 @@ class ClusterFit(Fit):
 
 
 # ---- the back-end ----------------------------------------------------------------------------
-class ClusterBackend(Backend):
+class ClusterBackend(FamilyBackend):
     """OLS with a cluster-robust covariance; ``id`` is one of cr0, cr1, cr2, cr3 (set by the registry)."""
 
     id = "cr2"
     label = LABELS["cr2"]
+    labels = LABELS
     assumes_constant_variance = False
     assumes_independent_rows = False
     cost = "cheap"
@@ -259,13 +260,6 @@ class ClusterBackend(Backend):
 
     def __init__(self, id: str = "cr2", **options: Any) -> None:
         super().__init__(id=id, **options)
-
-    def message_id(self, options: Any) -> str:
-        given = options.get("id")
-        return given.lower() if isinstance(given, str) and given.lower() in LABELS else type(self).id
-
-    def finish_options(self) -> None:
-        self.label = LABELS[self.id]
 
     def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?

@@ -6,14 +6,13 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
-from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg
 
 from ..errors import InputError
-from .base import Backend, Fit, Option, Unavailable, WaldFit
+from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
 from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
 from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
@@ -27,7 +26,7 @@ LABELS = {
 }
 
 
-class OLSBackend(Backend):
+class OLSBackend(FamilyBackend):
     """Ordinary least squares; ``id`` is 'ols' (classical SE) or one of hc0 … hc5.
 
     One class serves several registry ids: the registry fixes ``id``, and the label and the
@@ -36,6 +35,7 @@ class OLSBackend(Backend):
 
     id = "hc3"
     label = LABELS["hc3"]
+    labels = LABELS
     assumes_constant_variance = False
     assumes_independent_rows = True
     cost = "cheap"
@@ -45,12 +45,8 @@ class OLSBackend(Backend):
     def __init__(self, id: str = "hc3", **options: Any) -> None:
         super().__init__(id=id, **options)
 
-    def message_id(self, options: Mapping[str, Any]) -> str:
-        given = options.get("id")
-        return given.lower() if isinstance(given, str) and given.lower() in LABELS else type(self).id
-
     def finish_options(self) -> None:
-        self.label = LABELS[self.id]
+        super().finish_options()
         self.assumes_constant_variance = self.id == "ols"
 
     def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
