@@ -1,7 +1,7 @@
 """Run several back-ends on one design and put them side by side.
 
 ``compare()`` is the package's main entry point. The result's ``to_dict()`` follows the
-results contract of DESIGN.md (schema ``robustmod/results-v1``); its ``table()``,
+results contract of docs/results.md (schema ``robustmod/results-v1``); its ``table()``,
 ``str()`` and ``_repr_html_()`` all come from one summary, so the terminal, Jupyter and
 the appendix never disagree.
 """
@@ -385,7 +385,7 @@ def compare(
 
     Notes
     -----
-    Every back-end answers for rows L of the coefficients (DESIGN.md): the product term is a unit
+    Every back-end answers for rows L of the coefficients (docs/methods.md): the product term is a unit
     row, a conditional slope is L = X(x + 1, w) − X(x, w), the Johnson–Neyman region is where the
     (1 − alpha) interval of L(w)β excludes zero (Johnson & Neyman 1936; Bauer & Curran 2005). A
     back-end that is unavailable or fails its own diagnostics is listed as unreliable and not counted.

@@ -1,6 +1,6 @@
 """The Design: validated y and X, term names, the rows used, and a builder of L rows.
 
-A conditional effect of the focal predictor is built from the design itself (DESIGN.md):
+A conditional effect of the focal predictor is built from the design itself (docs/methods.md):
 L = row of the model matrix at (focal + 1, moderators, covariates at reference) minus the
 row at (focal, moderators, covariates at reference). When the focal predictor enters
 non-linearly (log(x), I(x**2)) the difference depends on where it is taken, and L is the

@@ -1,6 +1,6 @@
 """Plain JSON values for the results contract: finite floats or None, lists, str keys.
 
-NaN and infinity never reach a results file (DESIGN.md); a quantity that does not exist is None.
+NaN and infinity never reach a results file (docs/results.md); a quantity that does not exist is None.
 """
 from __future__ import annotations
 

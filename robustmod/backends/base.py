@@ -1,7 +1,7 @@
 """The common interface of every back-end: a Backend fits a Design and returns a Fit.
 
 Every Fit answers one question — the distribution of L·β for rows L of the mean-model
-coefficients — in one of three ways (see DESIGN.md):
+coefficients — in one of three ways (see docs/methods.md):
 
 * :class:`WaldFit`      L·β̂, sqrt(L V Lᵀ), t with the fit's df (OLS, HC0–HC5, WLS);
 * bootstrap fits        subclass :class:`Fit` and answer with bootstrap-t quantiles;
