@@ -597,6 +597,7 @@ class BayesBackend(Backend):
         if not y_scale > 0:
             return Unavailable(self.id, self.label, f"The outcome {design.spec.response!r} is constant; nothing to model.")
         ys = (y - y_center) / y_scale
+        assert xs.intercept is not None and zs.intercept is not None  # X was checked above; Z always starts with ones
         order = [xs.intercept] + [j for j in range(k) if j != xs.intercept]
         zorder = [zs.intercept] + [j for j in range(Z.shape[1]) if j != zs.intercept]
         Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
@@ -808,8 +809,9 @@ def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, be
     out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep, strict=False) if k],
                            "n_per_bin": counts[keep].astype(int).tolist(),
                            "observed_sd": observed[keep].tolist(), "level": 0.95}
-    models = [("heteroscedastic", Z, beta, gamma, nu)]
+    models: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]] = [("heteroscedastic", Z, beta, gamma, nu)]
     if Zc is not None:
+        assert beta_c is not None and gamma_c is not None  # the constant-variance fit comes with its Z
         models.append(("constant_variance", Zc, beta_c, gamma_c, nu_c))
     for key, Zm, b, g, v in models:
         rep = replicate(Zm, b, g, v)[:, keep]
@@ -844,7 +846,7 @@ def convergence(idata: Any, names: Sequence[str]) -> dict[str, Any]:
             "divergences": div, "per_term": per_term}
 
 
-def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> dict[str, dict[str, float]]:
+def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> dict[str, dict[str, Any]]:
     lo, hi = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2], axis=0)
     return {str(nm): {"mean": float(draws[:, i].mean()), "sd": float(draws[:, i].std(ddof=1)),
                       "ci": [float(lo[i]), float(hi[i])], "level": level} for i, nm in enumerate(names)}
