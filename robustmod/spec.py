@@ -322,7 +322,7 @@ def parse_probe_rule(rule: Any, moderator: str) -> tuple[str, tuple[float, ...]]
             values = tuple(float(v) for v in rule)
         except (TypeError, ValueError):
             # Level labels of a categorical moderator are kept as text.
-            return "levels", tuple(rule)  # type: ignore[arg-type]
+            return "levels", tuple(rule)
         if not values or not all(math.isfinite(v) for v in values):
             raise option_error(f"probe for {moderator}", "a non-empty list of finite numbers", list(rule))
         return "values", values

@@ -197,7 +197,7 @@ def format_cell(cell: Cell, kind: ColumnKind, *, unicode_minus: bool = False) ->
     elif kind == "fine":
         out = "—" if not isinstance(cell, (int, float)) or not math.isfinite(cell) else f"{float(cell):.4f}"
     elif kind == "integer":
-        out = "—" if cell is None or isinstance(cell, NotApplicable) else str(int(cell))  # type: ignore[arg-type]
+        out = "—" if cell is None or isinstance(cell, NotApplicable) else str(int(cell))
     else:
         out = format_number(cell)
     if unicode_minus:

@@ -223,6 +223,7 @@ class _Kernel:
         for i, s in enumerate(self.sources):
             if self.expanded[i]:
                 a, b = self.offsets[i]
+                assert G is not None  # an expanded source added its block to F_t
                 sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
                 out.append(_expanded_meat(G[:, a:b], self.T[i], sq))
                 continue
@@ -534,7 +535,7 @@ class WildBootstrapBackend(Backend):
 
     def _null_sets(self, design: Design) -> list[tuple[int, ...]]:
         cols = tuple(int(c) for c in design.interaction_columns)
-        sets = [(c,) for c in cols]
+        sets: list[tuple[int, ...]] = [(c,) for c in cols]
         return sets + [cols] if len(cols) > 1 else sets
 
     def _restricted(self, X: np.ndarray, cols: tuple[int, ...], Y: np.ndarray) -> np.ndarray:
