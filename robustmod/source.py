@@ -254,10 +254,10 @@ class ModelChunks:
 
     def _frames(self) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         """(0-based file positions, model-scale frame) of the complete rows of each batch."""
-        for start, frame in self.source.batches(self.needed, self.chunk_rows):
-            keep = ~frame.isna().any(axis=1).to_numpy()
+        for start, batch in self.source.batches(self.needed, self.chunk_rows):
+            keep = ~batch.isna().any(axis=1).to_numpy()
             rows = start + np.flatnonzero(keep)
-            frame = frame.loc[keep].reset_index(drop=True)
+            frame = batch.loc[keep].reset_index(drop=True)
             for name in self.categorical:
                 levels = self.profile.columns[name].levels
                 frame[name] = pd.Categorical(frame[name], categories=list(levels))

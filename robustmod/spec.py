@@ -192,7 +192,8 @@ def check_formula(formula: str) -> tuple[str, list[str]]:
         raise InputError(f"The formula {formula!r} has no outcome before '~'.")
     if not rhs:
         raise InputError(f"The formula {formula!r} has no predictors after '~'.")
-    response_names = [t.text[1:-1] if t.kind == "quoted" else t.text for t in lhs if t.kind in ("name", "quoted") and t.text not in ALLOWED_FUNCTIONS]
+    response_names = [t.text[1:-1] if t.kind == "quoted" else t.text for t in lhs
+                      if t.kind in ("name", "quoted") and t.text not in ALLOWED_FUNCTIONS]
     if len(response_names) != 1:
         raise InputError(
             f"The outcome side of {formula!r} must name exactly one column (a transform such as log(y) is fine)."

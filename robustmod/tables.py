@@ -400,8 +400,8 @@ def human_label(key: str) -> str:
 def join_notes(notes: Iterable[str]) -> str:
     """Notes as one paragraph of sentences (never a Python list)."""
     out = []
-    for n in notes:
-        n = str(n).strip()
+    for note in notes:
+        n = str(note).strip()
         if n:
             out.append(n if n.endswith((".", "!", "?", ")")) else n + ".")
     return " ".join(out)

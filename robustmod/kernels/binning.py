@@ -185,7 +185,7 @@ def binning_fits(chunks: ChunkSource, *, focal: str, moderator: str, covariate_c
             else:
                 notes.append(f"Per-bin HC3 slopes unavailable: {bin_fit.reason}")
     wald = None
-    added = added_columns(chunks, lambda c: xbin(c), k)
+    added = added_columns(chunks, xbin, k)
     if added.size:
         if s.n > k + added.size + 1:
             fa = _hc3(chunks, lambda c: np.column_stack([c.X, xbin(c)[:, added]]))
