@@ -136,7 +136,7 @@ def make_table(key: str, title: str, columns: Sequence[Column], rows: Iterable[S
 MINUS = "\u2212"
 
 
-def format_number(x: Any, digits: int = 3) -> str:
+def format_number(x: Any, digits: int = 3) -> str:  # noqa: PLR0911 - one return per display rule, read top to bottom
     """Three significant digits; scientific notation outside [1e-3, 1e5); '—' for missing."""
     if x is None or isinstance(x, NotApplicable):
         return "—"
