@@ -139,7 +139,7 @@ class Source:
                               "fix it, or leave the cell empty to drop the row.")
         return InputError(f"The data '{self.path.name}' could not be read: {str(exc).splitlines()[0]}")
 
-    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = ()) -> Profile:
+    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = ()) -> Profile:  # noqa: PLR0912 - one pass, one branch per column kind; a split is open work
         """First pass: rows, complete rows, missing values, levels and numeric summaries of ``columns``."""
         columns = list(dict.fromkeys(columns))
         missing = dict.fromkeys(columns, 0)
