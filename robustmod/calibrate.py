@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from .backends.base import Unavailable
+from .backends.base import Fit, Unavailable
 from .backends.kernels import twostep_fgls
 from .backends.registry import (
     SIMULATION_BACKEND,
@@ -59,12 +59,14 @@ def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | 
     log êᵢ² (Harvey 1976) with an FGLS mean takes its place, and the notes say so.
     """
     reason = ""
+    fit: Fit | Unavailable | None
     try:
         fit = make_backend(SIMULATION_BACKEND, **dict(options or {})).fit(design, seed=seed)
     except InputError as exc:
         fit, reason = None, str(exc)
     if isinstance(fit, Unavailable):
-        fit, reason = None, fit.reason
+        reason = fit.reason
+        fit = None
     if fit is not None:
         sigma = getattr(fit, "sigma_hat", None)
         if sigma is None:

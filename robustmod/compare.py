@@ -227,26 +227,27 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
     alpha = c.spec.alpha
     res = c.results
     usable = {b: r for b, r in res.items() if r.available and r.reliable and r.interaction is not None}
+    inter = {b: r.interaction for b, r in usable.items() if r.interaction is not None}  # every usable result has one
     unreliable = [b for b, r in res.items() if b not in usable]
-    supported = [b for b, r in usable.items() if r.interaction["supported"]]
+    supported = [b for b in usable if inter[b]["supported"]]
     not_supported = [b for b in usable if b not in supported]
-    ests = {b: r.interaction["estimate"] for b, r in usable.items() if r.interaction.get("estimate") is not None}
+    ests = {b: inter[b]["estimate"] for b in usable if inter[b].get("estimate") is not None}
     signs = {np.sign(v) for v in ests.values() if v}
     sign_consistent = len(signs) <= 1
     prim = usable.get(c.primary)
     rel_change: dict[str, float | None] = {}
     width_change: dict[str, float | None] = {}
     boundary_shift: dict[str, Any] = {}
-    if prim is not None and prim.interaction.get("estimate") is not None:
-        pe = prim.interaction["estimate"]
-        pci = prim.interaction["ci"]
+    if prim is not None and inter[c.primary].get("estimate") is not None:
+        pe = inter[c.primary]["estimate"]
+        pci = inter[c.primary]["ci"]
         pw = pci[1] - pci[0]
-        for b, r in usable.items():
-            e = r.interaction.get("estimate")
+        for b in usable:
+            e = inter[b].get("estimate")
             if e is None or b == c.primary:
                 continue
             rel_change[b] = num(abs(e - pe) / abs(pe)) if pe else None
-            ci = r.interaction["ci"]
+            ci = inter[b]["ci"]
             width_change[b] = num((ci[1] - ci[0]) / pw - 1) if pw else None
         preg = prim.significance_region
         for b, r in usable.items():
@@ -264,10 +265,10 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
                                      "same_shape": True}
             else:
                 boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}
-    primary_supported = bool(prim is not None and prim.interaction["supported"])
+    primary_supported = bool(prim is not None and inter[c.primary]["supported"])
     robust_usable = [b for b in usable if b not in CONSTANT_VARIANCE]
     survives = bool(primary_supported and sign_consistent and robust_usable
-                    and all(usable[b].interaction["supported"] for b in robust_usable))
+                    and all(inter[b]["supported"] for b in robust_usable))
     sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
     return {
         "primary": c.primary, "supported_by": supported, "not_supported_by": not_supported, "unreliable": unreliable,

@@ -128,6 +128,19 @@ def _check_read_options(kind: str, name: str, sep: str | None, decimal: str | No
 
 
 # ---- reading --------------------------------------------------------------------------------------
+def _data_file(path: str | Path) -> tuple[Path, str]:
+    """The path as a ``Path`` and the reader its ending selects; a missing file, a folder or an unread ending is an InputError."""
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"The data file '{p}' does not exist; check the path.")
+    if p.is_dir():
+        raise InputError(f"'{p}' is a folder, not a data file; give the path of a {ENDINGS} file.")
+    kind = READERS.get(p.suffix.lower())
+    if kind is None:
+        raise InputError(f"The data file '{p.name}' has the ending '{p.suffix}', which is not read; use {ENDINGS}.")
+    return p, kind
+
+
 def read_table(path: str | Path, *, na_values: NaValues = None, sep: str | None = None, decimal: str | None = None,
                sheet: str | int | None = None) -> pd.DataFrame:
     """Read a CSV, TSV, Parquet, Excel, Stata or SPSS file; every failure is one clear line.
@@ -142,14 +155,7 @@ def read_table(path: str | Path, *, na_values: NaValues = None, sep: str | None 
     sheet : str or int, optional
         Sheet of an Excel workbook by name or 0-based position; default the first.
     """
-    p = Path(path)
-    if not p.exists():
-        raise InputError(f"The data file '{p}' does not exist; check the path.")
-    if p.is_dir():
-        raise InputError(f"'{p}' is a folder, not a data file; give the path of a {ENDINGS} file.")
-    kind = READERS.get(p.suffix.lower())
-    if kind is None:
-        raise InputError(f"The data file '{p.name}' has the ending '{p.suffix}', which is not read; use {ENDINGS}.")
+    p, kind = _data_file(path)
     tokens = normalise_na_values(na_values)
     sep = _check_read_options(kind, p.name, sep, decimal, sheet)
     if p.stat().st_size == 0:

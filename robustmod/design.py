@@ -49,6 +49,12 @@ class ModeratorInfo:
     maximum: float | None = None
     values: np.ndarray | None = field(default=None, repr=False)  # observed raw values (continuous)
 
+    def observed_range(self) -> tuple[float, float]:
+        """(minimum, maximum) of a continuous moderator's observed raw values."""
+        if self.minimum is None or self.maximum is None:
+            raise TypeError(f"The moderator {self.name!r} is categorical; it has no observed range.")
+        return self.minimum, self.maximum
+
 
 @dataclass(frozen=True, eq=False)
 class Design:
@@ -144,6 +150,7 @@ class Design:
         info = self.moderators[moderator]
         if info.categorical:
             return None
+        assert info.minimum is not None and info.maximum is not None  # a continuous moderator has its range
         span = (info.maximum - info.minimum) or 1.0
         w = np.array([info.minimum, info.minimum + 0.37 * span, info.maximum + 0.5 * span])
         Ls = self.slope_rows_along(moderator, w, fixed)
@@ -425,6 +432,8 @@ def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warning
             else:
                 per.append(list(info.levels))
             continue
+        assert info.mean is not None and info.sd is not None and info.minimum is not None and info.maximum is not None
+        assert info.values is not None  # set with the range for every continuous moderator
         if kind == "levels":
             raise InputError(f"The probe values for the continuous moderator {name!r} must be numbers; got {list(vals)}.")
         if kind == "sd":

@@ -109,6 +109,7 @@ def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, A
             return None
         moderator = conts[0]
     w = design.moderators[moderator].values
+    assert w is not None  # a continuous moderator keeps its observed values
     order = np.argsort(w, kind="stable")
     n, k = design.X.shape
     drop = int(round(GQ_DROP * n))
@@ -173,8 +174,8 @@ def _spread(e: np.ndarray) -> dict[str, Any]:
 def se_gap(design: Design) -> dict[str, Any] | None:
     """Classical vs HC3 SE of each product-term coefficient, and their ratio (King & Roberts 2015)."""
     Q, R = design.qr
-    fits = [ols_fit(kind, Q, R, design.y, design.term_names) for kind in ("ols", "hc3")]
-    if not all(isinstance(f, WaldFit) for f in fits):
+    fits = [f for kind in ("ols", "hc3") if isinstance(f := ols_fit(kind, Q, R, design.y, design.term_names), WaldFit)]
+    if len(fits) < 2:
         return None
     L = design.interaction_rows()
     se_c, se_h = (f.estimate(L, 0.05).se for f in fits)

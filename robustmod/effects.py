@@ -212,6 +212,7 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
     info = design.moderators[moderator]
     if info.categorical:
         return None
+    assert info.minimum is not None and info.maximum is not None  # a continuous moderator has its range
     fixed = dict(fixed or {})
     window = search_window(info)
     lin = design.slope_is_linear_in(moderator, fixed)
@@ -278,8 +279,8 @@ def slope_grid(fit: Fit, design: Design, alpha: float, points: int = GRID_2D) ->
         return None
     m1, m2 = conts[:2]
     i1, i2 = design.moderators[m1], design.moderators[m2]
-    g1 = np.linspace(i1.minimum, i1.maximum, points)
-    g2 = np.linspace(i2.minimum, i2.maximum, points)
+    g1 = np.linspace(*i1.observed_range(), points)
+    g2 = np.linspace(*i2.observed_range(), points)
     W1, W2 = np.meshgrid(g1, g2, indexing="ij")
     pts = [{m1: float(a), m2: float(b)} for a, b in zip(W1.ravel(), W2.ravel(), strict=False)]
     est = fit.estimate(design.slope_rows(pts), alpha)
@@ -301,7 +302,7 @@ def slope_curve(fit: Fit, design: Design, alpha: float, points: int = CURVE_POIN
         return None
     m = conts[0]
     info = design.moderators[m]
-    grid = np.linspace(info.minimum, info.maximum, points)
+    grid = np.linspace(*info.observed_range(), points)
     lin = design.slope_is_linear_in(m)
     est = fit.along(*lin).estimate(grid, alpha) if lin is not None else fit.estimate(design.slope_rows_along(m, grid), alpha)
     return {"moderator": m, "values": [num(v) for v in grid], "estimate": [num(v) for v in est.estimate],

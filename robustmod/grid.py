@@ -329,21 +329,29 @@ def _share(values: list[bool]) -> float | None:
 def _by_choice(plan: GridPlan, specs: list[dict[str, Any]], bid: str) -> list[dict[str, Any]]:
     """Share supported with each choice on against off (covariate in vs out; rule vs the others)."""
     rows = []
-    keyed: list[tuple[str, str, Callable[[dict[str, Any]], bool]]] = [
-        ("covariate", c, lambda sp, c=c: c in sp["choices"]["covariates"]) for c in plan.optional]
-    keyed += [("outcome", r, lambda sp, r=r: sp["choices"]["outcome"] == r) for r in plan.outcomes if len(plan.outcomes) > 1]
-    keyed += [("outliers", r, lambda sp, r=r: sp["choices"]["outliers"] == r) for r in plan.outliers if len(plan.outliers) > 1]
-    for kind, value, on in keyed:
-        sup_on = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and on(sp)]
-        sup_off = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and not on(sp)]
+    keyed = [("covariate", c) for c in plan.optional]
+    keyed += [("outcome", r) for r in plan.outcomes if len(plan.outcomes) > 1]
+    keyed += [("outliers", r) for r in plan.outliers if len(plan.outliers) > 1]
+    for kind, value in keyed:
+        sup_on = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and _choice_on(sp, kind, value)]
+        sup_off = [bool(sp["backends"][bid]["supported"]) for sp in specs if _usable(sp, bid) and not _choice_on(sp, kind, value)]
         rows.append({"choice": kind, "value": value, "share_supported_on": _share(sup_on),
                      "share_supported_off": _share(sup_off), "n_on": len(sup_on), "n_off": len(sup_off)})
     return rows
 
 
+def _choice_on(sp: dict[str, Any], kind: str, value: str) -> bool:
+    """Whether specification ``sp`` made this choice: the covariate is in, or the outcome/outlier rule is this one."""
+    if kind == "covariate":
+        return value in sp["choices"]["covariates"]
+    return bool(sp["choices"][kind] == value)
+
+
 def _usable(sp: dict[str, Any], bid: str) -> bool:
     r = (sp.get("backends") or {}).get(bid)
-    return bool(r) and r.get("supported") is not None
+    if not r:
+        return False
+    return r.get("supported") is not None
 
 
 def _backend_summary(plan: GridPlan, specs: list[dict[str, Any]], bid: str) -> dict[str, Any]:

@@ -19,7 +19,7 @@ def num(x: Any) -> float | None:
     return x if math.isfinite(x) else None
 
 
-def jsonable(obj: Any) -> Any:
+def jsonable(obj: Any) -> Any:  # noqa: PLR0911 - one return per kind of value, read top to bottom
     """Plain JSON values all the way down: floats finite or None, arrays to lists, keys to str."""
     if isinstance(obj, Mapping):
         return {str(k): jsonable(v) for k, v in obj.items()}

@@ -139,7 +139,7 @@ class Source:
                               "fix it, or leave the cell empty to drop the row.")
         return InputError(f"The data '{self.path.name}' could not be read: {str(exc).splitlines()[0]}")
 
-    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = ()) -> Profile:
+    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = ()) -> Profile:  # noqa: PLR0912 - one pass, one branch per column kind; a split is open work
         """First pass: rows, complete rows, missing values, levels and numeric summaries of ``columns``."""
         columns = list(dict.fromkeys(columns))
         missing = dict.fromkeys(columns, 0)
@@ -254,10 +254,10 @@ class ModelChunks:
 
     def _frames(self) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         """(0-based file positions, model-scale frame) of the complete rows of each batch."""
-        for start, frame in self.source.batches(self.needed, self.chunk_rows):
-            keep = ~frame.isna().any(axis=1).to_numpy()
+        for start, batch in self.source.batches(self.needed, self.chunk_rows):
+            keep = ~batch.isna().any(axis=1).to_numpy()
             rows = start + np.flatnonzero(keep)
-            frame = frame.loc[keep].reset_index(drop=True)
+            frame = batch.loc[keep].reset_index(drop=True)
             for name in self.categorical:
                 levels = self.profile.columns[name].levels
                 frame[name] = pd.Categorical(frame[name], categories=list(levels))

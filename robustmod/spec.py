@@ -140,64 +140,83 @@ def check_formula(formula: str) -> tuple[str, list[str]]:
     for i, tok in enumerate(tokens):
         nxt = tokens[i + 1] if i + 1 < len(tokens) else None
         if tok.kind == "name":
-            if tok.text.startswith("__"):
-                raise InputError(f"The formula contains {tok.text!r}; dunder names are not allowed.")
-            if nxt is not None and nxt.text == "(":
-                if tok.text not in ALLOWED_FUNCTIONS:
-                    raise InputError(
-                        f"The formula calls {tok.text}(), which is not an allowed transform; "
-                        f"allowed: {', '.join(sorted(ALLOWED_FUNCTIONS))}."
-                    )
-            elif nxt is not None and nxt.text == "=":
-                raise InputError(
-                    f"The formula uses a keyword argument {tok.text}=; write C(w, Treatment('level')) "
-                    "to choose a reference level."
-                )
-            elif tok.text not in variables:
-                # A bare name is a column, even one spelled like a transform (a column called 'C').
-                variables.append(tok.text)
+            _check_name(tok, nxt, variables)
         elif tok.kind == "quoted":
             name = tok.text[1:-1]
             if name not in variables:
                 variables.append(name)
-        elif tok.kind == "string":
-            inside = [s for s in stack if s != "("]
-            if not inside or inside[-1] != "Treatment":
-                raise InputError(
-                    f"The formula contains the text {tok.text}; quoted text is only allowed as the "
-                    "reference level in C(w, Treatment('level'))."
-                )
-        elif tok.text == "(":
-            stack.append(prev.text if prev is not None and prev.kind == "name" else "(")
-        elif tok.text == ")":
-            if not stack:
-                raise InputError(f"The formula has an unmatched ')' at character {tok.pos + 1}.")
-            stack.pop()
-        elif tok.text == ",":
-            if not stack or stack[-1] not in ("C", "Treatment"):
-                raise InputError(
-                    f"The formula has a ',' at character {tok.pos + 1}; commas are only allowed "
-                    "inside C(w, Treatment('level'))."
-                )
-        elif tok.text == "=":
-            raise InputError(f"The formula has an '=' at character {tok.pos + 1}; it is not allowed.")
-        elif tok.text == "~" and stack:
-            raise InputError("The '~' of the formula must not stand inside parentheses.")
+        else:
+            _check_symbol(tok, prev, stack)
         prev = tok
     if stack:
         raise InputError(f"The formula {formula!r} has an unclosed '('.")
-    lhs = [t for t in tokens[: tokens.index(tildes[0])]]
-    rhs = tokens[tokens.index(tildes[0]) + 1 :]
+    return _response(formula, tokens, tildes[0]), variables
+
+
+def _check_name(tok: Token, nxt: Token | None, variables: list[str]) -> None:
+    """A name token of a formula: an allowed transform when called, never a keyword argument,
+    else a column, added to ``variables`` once."""
+    if tok.text.startswith("__"):
+        raise InputError(f"The formula contains {tok.text!r}; dunder names are not allowed.")
+    if nxt is not None and nxt.text == "(":
+        if tok.text not in ALLOWED_FUNCTIONS:
+            raise InputError(
+                f"The formula calls {tok.text}(), which is not an allowed transform; "
+                f"allowed: {', '.join(sorted(ALLOWED_FUNCTIONS))}."
+            )
+    elif nxt is not None and nxt.text == "=":
+        raise InputError(
+            f"The formula uses a keyword argument {tok.text}=; write C(w, Treatment('level')) "
+            "to choose a reference level."
+        )
+    elif tok.text not in variables:
+        # A bare name is a column, even one spelled like a transform (a column called 'C').
+        variables.append(tok.text)
+
+
+def _check_symbol(tok: Token, prev: Token | None, stack: list[str]) -> None:
+    """A quoted text or punctuation token of a formula, against the calls it stands inside
+    (``stack``, updated here for parentheses)."""
+    if tok.kind == "string":
+        inside = [s for s in stack if s != "("]
+        if not inside or inside[-1] != "Treatment":
+            raise InputError(
+                f"The formula contains the text {tok.text}; quoted text is only allowed as the "
+                "reference level in C(w, Treatment('level'))."
+            )
+    elif tok.text == "(":
+        stack.append(prev.text if prev is not None and prev.kind == "name" else "(")
+    elif tok.text == ")":
+        if not stack:
+            raise InputError(f"The formula has an unmatched ')' at character {tok.pos + 1}.")
+        stack.pop()
+    elif tok.text == ",":
+        if not stack or stack[-1] not in ("C", "Treatment"):
+            raise InputError(
+                f"The formula has a ',' at character {tok.pos + 1}; commas are only allowed "
+                "inside C(w, Treatment('level'))."
+            )
+    elif tok.text == "=":
+        raise InputError(f"The formula has an '=' at character {tok.pos + 1}; it is not allowed.")
+    elif tok.text == "~" and stack:
+        raise InputError("The '~' of the formula must not stand inside parentheses.")
+
+
+def _response(formula: str, tokens: list[Token], tilde: Token) -> str:
+    """The one column the outcome side of the formula names."""
+    lhs = [t for t in tokens[: tokens.index(tilde)]]
+    rhs = tokens[tokens.index(tilde) + 1 :]
     if not lhs:
         raise InputError(f"The formula {formula!r} has no outcome before '~'.")
     if not rhs:
         raise InputError(f"The formula {formula!r} has no predictors after '~'.")
-    response_names = [t.text[1:-1] if t.kind == "quoted" else t.text for t in lhs if t.kind in ("name", "quoted") and t.text not in ALLOWED_FUNCTIONS]
+    response_names = [t.text[1:-1] if t.kind == "quoted" else t.text for t in lhs
+                      if t.kind in ("name", "quoted") and t.text not in ALLOWED_FUNCTIONS]
     if len(response_names) != 1:
         raise InputError(
             f"The outcome side of {formula!r} must name exactly one column (a transform such as log(y) is fine)."
         )
-    return response_names[0], variables
+    return response_names[0]
 
 
 ProbeValues = Sequence[float] | str | None
@@ -322,7 +341,7 @@ def parse_probe_rule(rule: Any, moderator: str) -> tuple[str, tuple[float, ...]]
             values = tuple(float(v) for v in rule)
         except (TypeError, ValueError):
             # Level labels of a categorical moderator are kept as text.
-            return "levels", tuple(rule)  # type: ignore[arg-type]
+            return "levels", tuple(rule)
         if not values or not all(math.isfinite(v) for v in values):
             raise option_error(f"probe for {moderator}", "a non-empty list of finite numbers", list(rule))
         return "values", values

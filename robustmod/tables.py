@@ -136,7 +136,7 @@ def make_table(key: str, title: str, columns: Sequence[Column], rows: Iterable[S
 MINUS = "\u2212"
 
 
-def format_number(x: Any, digits: int = 3) -> str:
+def format_number(x: Any, digits: int = 3) -> str:  # noqa: PLR0911 - one return per display rule, read top to bottom
     """Three significant digits; scientific notation outside [1e-3, 1e5); '—' for missing."""
     if x is None or isinstance(x, NotApplicable):
         return "—"
@@ -197,7 +197,7 @@ def format_cell(cell: Cell, kind: ColumnKind, *, unicode_minus: bool = False) ->
     elif kind == "fine":
         out = "—" if not isinstance(cell, (int, float)) or not math.isfinite(cell) else f"{float(cell):.4f}"
     elif kind == "integer":
-        out = "—" if cell is None or isinstance(cell, NotApplicable) else str(int(cell))  # type: ignore[arg-type]
+        out = "—" if cell is None or isinstance(cell, NotApplicable) else str(int(cell))
     else:
         out = format_number(cell)
     if unicode_minus:
@@ -400,8 +400,8 @@ def human_label(key: str) -> str:
 def join_notes(notes: Iterable[str]) -> str:
     """Notes as one paragraph of sentences (never a Python list)."""
     out = []
-    for n in notes:
-        n = str(n).strip()
+    for note in notes:
+        n = str(note).strip()
         if n:
             out.append(n if n.endswith((".", "!", "?", ")")) else n + ".")
     return " ".join(out)

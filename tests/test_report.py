@@ -248,11 +248,11 @@ def test_hostile_names_escaped_in_latex(hostile: Path) -> None:
     assert r"$<$script$>$alert(1)$<$/script$>$" in tex
     assert r"50\%\_\allowbreak{}\&\_\allowbreak{}\#\$" in tex
     body = []
-    for line in tex.splitlines():
-        if line.startswith("%"):
+    for raw in tex.splitlines():
+        if raw.startswith("%"):
             continue
         # Structural LaTeX of our own: environments, rules, captions' braces, column separators, row ends.
-        line = re.sub(r"^\\(begin|end)\{(table|tabular)\}(\[htbp\]|\{.*\})?$", "", line)
+        line = re.sub(r"^\\(begin|end)\{(table|tabular)\}(\[htbp\]|\{.*\})?$", "", raw)
         line = re.sub(r"^\\(centering|footnotesize|scriptsize|tiny|toprule|midrule|bottomrule|par\\smallskip)$", "", line)
         line = re.sub(r"^\\setlength\{\\tabcolsep\}\{[0-9.]+pt\}$", "", line)
         line = re.sub(r"^\\label\{tab:robustmod-[a-z0-9-]+\}$", "", line)

@@ -32,7 +32,7 @@ def test_optimum_matches_in_memory_scoring(chunk_rows: int) -> None:
     s = streamed_wls(array_chunks(X, y, chunk_rows=chunk_rows, columns={"Z": Z}))
     assert s.converged
     vm = VarianceModel("loglinear", Z=Z, names=("c", "x", "w"))
-    G, done = batched_ml_gamma(vm, X, y[None, :], s.gamma_twostep[None, :], maxiter=200, tol=1e-20)
+    G, done, _ = batched_ml_gamma(vm, X, y[None, :], s.gamma_twostep[None, :], maxiter=200, tol=1e-20)
     assert done[0]
     assert _rel(s.gamma, G[0]) < 1e-9
 

@@ -106,7 +106,8 @@ def main() -> None:
     for name, ess, sec, _ in rows[1:]:
         print(f"ESS/s ratio {name} vs raw: {ess / sec / base:.2f}  (goal >= 2)")
     for qr, (first, refit) in refits.items():
-        print(f"warm refit ({min(a.draws, AUX_DRAWS)} draws after {min(a.tune, AUX_TUNE)} tuning steps, warm start) / first fit ({'QR' if qr else 'no QR'}): {refit:.2f} s / {first:.2f} s = "
+        print(f"warm refit ({min(a.draws, AUX_DRAWS)} draws after {min(a.tune, AUX_TUNE)} tuning steps, warm start) "
+              f"/ first fit ({'QR' if qr else 'no QR'}): {refit:.2f} s / {first:.2f} s = "
               f"{refit / first:.2f}  (goal <= 0.5)")
 
 

@@ -115,7 +115,8 @@ def in_memory(n: int) -> dict[str, float]:
     print(f"in-memory BP + White (diagnostics module): {t_mem:7.2f} s   peak above input {m_mem / 2**20:7.1f} MiB   "
           f"streamed OLS+HC3+BP+White / in-memory BP+White = {t_all / t_mem:.2f}")
     print(f"peak above input / size of X:   OLS+tests {m_all / size_x:.3f}, WLS {m_wls / size_x:.3f}")
-    return {"hc3_tests_over_lstsq": t_all / t_lstsq, "streamed_over_in_memory_tests": t_all / t_mem, "memory_over_x": max(m_all, m_wls) / size_x}
+    return {"hc3_tests_over_lstsq": t_all / t_lstsq, "streamed_over_in_memory_tests": t_all / t_mem,
+            "memory_over_x": max(m_all, m_wls) / size_x}
 
 
 def write_parquet(path: Path, rows: int, group: int = 2_000_000) -> None:

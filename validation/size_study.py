@@ -105,8 +105,8 @@ def to_markdown(df: pd.DataFrame, title: str, n_datasets: int) -> str:
                   "| back-end | " + " | ".join(f"n={n} size" for n in sorted(block.n.unique())) + " | "
                   + " | ".join(f"n={n} coverage" for n in sorted(block.n.unique())) + " |",
                   "|---|" + "---|" * (2 * block.n.nunique())]
-        for label, b in block.groupby("backend", sort=False):
-            b = b.sort_values("n")
+        for label, group in block.groupby("backend", sort=False):
+            b = group.sort_values("n")
             se_size = np.sqrt(0.05 * 0.95 / b.datasets)
             se_cov = np.sqrt(0.95 * 0.05 / b.datasets)
             sizes = [f"{s:.3f}{'*' if abs(s - 0.05) > 2 * e else ''}" for s, e in zip(b["size"], se_size, strict=False)]

@@ -502,7 +502,7 @@ class Backend(ABC):
         """The id that option messages name (the class's ``id``)."""
         return type(self).id
 
-    def finish_options(self) -> None:
+    def finish_options(self) -> None:  # noqa: B027 - an optional hook: a back-end without cross-option rules keeps this no-op
         """Checks across options and derived settings; the default has none."""
 
     def get_options(self) -> dict[str, Any]:

@@ -202,8 +202,9 @@ class CompiledModel:
         self.step.integrator = CpuLeapfrogIntegrator(potential, self.step._logp_dlogp_func)
 
 
-def build_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
-                model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
+def build_model(  # noqa: PLR0912, PLR0915 - one PyMC model block per likelihood and model; a split is open work
+        Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
+        model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
     """PyMC model on standardised data; column 0 of Xs and Zs is the intercept (all ones).
 
     Priors (standardised scale, × prior_scale): b̃₀ ~ N(0, 1), b̃ⱼ ~ N(0, 2.5), g̃₀ ~ N(0, 1),
@@ -580,7 +581,7 @@ class BayesBackend(Backend):
 
     # ---- variance model ------------------------------------------------------------
     # ---- fit ---------------------------------------------------------------------------
-    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
+    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:  # noqa: PLR0912, PLR0915 - split is open work
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
         t_start = time.perf_counter()
         az = _quiet_import("arviz")
@@ -597,6 +598,7 @@ class BayesBackend(Backend):
         if not y_scale > 0:
             return Unavailable(self.id, self.label, f"The outcome {design.spec.response!r} is constant; nothing to model.")
         ys = (y - y_center) / y_scale
+        assert xs.intercept is not None and zs.intercept is not None  # X was checked above; Z always starts with ones
         order = [xs.intercept] + [j for j in range(k) if j != xs.intercept]
         zorder = [zs.intercept] + [j for j in range(Z.shape[1]) if j != zs.intercept]
         Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
@@ -808,8 +810,9 @@ def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, be
     out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep, strict=False) if k],
                            "n_per_bin": counts[keep].astype(int).tolist(),
                            "observed_sd": observed[keep].tolist(), "level": 0.95}
-    models = [("heteroscedastic", Z, beta, gamma, nu)]
+    models: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]] = [("heteroscedastic", Z, beta, gamma, nu)]
     if Zc is not None:
+        assert beta_c is not None and gamma_c is not None  # the constant-variance fit comes with its Z
         models.append(("constant_variance", Zc, beta_c, gamma_c, nu_c))
     for key, Zm, b, g, v in models:
         rep = replicate(Zm, b, g, v)[:, keep]
@@ -844,7 +847,7 @@ def convergence(idata: Any, names: Sequence[str]) -> dict[str, Any]:
             "divergences": div, "per_term": per_term}
 
 
-def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> dict[str, dict[str, float]]:
+def _summaries(draws: np.ndarray, names: Sequence[str], level: float = 0.95) -> dict[str, dict[str, Any]]:
     lo, hi = np.quantile(draws, [(1 - level) / 2, (1 + level) / 2], axis=0)
     return {str(nm): {"mean": float(draws[:, i].mean()), "sd": float(draws[:, i].std(ddof=1)),
                       "ci": [float(lo[i]), float(hi[i])], "level": level} for i, nm in enumerate(names)}

@@ -79,10 +79,10 @@ def cluster_grams(Q: np.ndarray, codes: np.ndarray, n_clusters: int) -> np.ndarr
     k = Q.shape[1]
     jj, ll = np.triu_indices(k)
     out = np.empty((n_clusters, k, k))
-    for j, l in zip(jj, ll, strict=False):
-        v = np.bincount(codes, weights=Q[:, j] * Q[:, l], minlength=n_clusters)
-        out[:, j, l] = v
-        out[:, l, j] = v
+    for j, m in zip(jj, ll, strict=False):
+        v = np.bincount(codes, weights=Q[:, j] * Q[:, m], minlength=n_clusters)
+        out[:, j, m] = v
+        out[:, m, j] = v
     return out
 
 

@@ -89,7 +89,7 @@ class OLSBackend(FamilyBackend):
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
             *, row_numbers: Any = None, label: str | None = None,
-            backend_id: str | None = None) -> Fit | Unavailable:
+            backend_id: str | None = None) -> WaldFit | Unavailable:
     """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
 
     ``row_numbers``: 1-based data row numbers of the design rows (for messages; default 1 … n).

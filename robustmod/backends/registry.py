@@ -168,7 +168,7 @@ def backend_class(backend_id: str) -> type:
     """The class registered under ``backend_id`` (imported on first use)."""
     e = entry(backend_id)
     try:
-        return getattr(importlib.import_module(e.module), e.class_name)  # type: ignore[no-any-return]
+        return getattr(importlib.import_module(e.module), e.class_name)
     except (ImportError, AttributeError) as exc:
         raise InputError(f"Back-end {e.id!r} cannot be loaded ({exc}); reinstall robustmod with its "
                          "dependencies.") from None

@@ -223,6 +223,7 @@ class _Kernel:
         for i, s in enumerate(self.sources):
             if self.expanded[i]:
                 a, b = self.offsets[i]
+                assert G is not None  # an expanded source added its block to F_t
                 sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
                 out.append(_expanded_meat(G[:, a:b], self.T[i], sq))
                 continue
@@ -534,7 +535,7 @@ class WildBootstrapBackend(Backend):
 
     def _null_sets(self, design: Design) -> list[tuple[int, ...]]:
         cols = tuple(int(c) for c in design.interaction_columns)
-        sets = [(c,) for c in cols]
+        sets: list[tuple[int, ...]] = [(c,) for c in cols]
         return sets + [cols] if len(cols) > 1 else sets
 
     def _restricted(self, X: np.ndarray, cols: tuple[int, ...], Y: np.ndarray) -> np.ndarray:
@@ -624,13 +625,8 @@ class WildBootstrapBackend(Backend):
         first dataset gets the draws a fit with the same seed uses); the HC Wald statistic
         (t² for one product term) is compared with its bootstrap draws, in chunks of datasets.
         """
-        Y = np.asarray(Y, dtype=float)
+        Y = _simulated_outcomes(Y, design.n_obs)
         n, k = design.X.shape
-        if Y.ndim != 2 or Y.shape[0] != n:
-            raise InputError(f"The simulated outcomes must be an array of shape ({n}, D), one column per dataset; "
-                             f"got shape {Y.shape}.")
-        if not np.all(np.isfinite(Y)):
-            raise InputError("The simulated outcomes contain NaN or infinite values; simulate finite outcomes.")
         if design.clusters is not None:  # clustered rows: one weight per cluster
             from .wild_cluster import cluster_null_p_many  # noqa: PLC0415
             return cluster_null_p_many(self, design, Y, seed=seed)
@@ -682,6 +678,17 @@ class WildBootstrapBackend(Backend):
                 hits[a:b] += (W_star >= W_obs[a:b, None]).sum(axis=1)
         p_values = hits / B
         return p_values
+
+
+def _simulated_outcomes(Y: np.ndarray, n: int) -> np.ndarray:
+    """Y as a float array of shape (n, D) with finite values; anything else is an InputError."""
+    Y = np.asarray(Y, dtype=float)
+    if Y.ndim != 2 or Y.shape[0] != n:
+        raise InputError(f"The simulated outcomes must be an array of shape ({n}, D), one column per dataset; "
+                         f"got shape {Y.shape}.")
+    if not np.all(np.isfinite(Y)):
+        raise InputError("The simulated outcomes contain NaN or infinite values; simulate finite outcomes.")
+    return Y
 
 
 class _progress:

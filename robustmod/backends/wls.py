@@ -31,7 +31,7 @@ from __future__ import annotations
 import math
 import warnings as _warnings
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import pandas as pd
@@ -117,6 +117,7 @@ class VarianceModel:
             d_beta = np.where(inside, 2.0 * gamma[1] / np.where(inside, mu, 1.0), 0.0)[:, None] * X
             d_gamma = np.column_stack([np.ones_like(mu), 2.0 * np.log(np.maximum(m, floor))])
             return d_beta, d_gamma
+        assert self.Z is not None  # every variance function but power and known has its regressors
         return None, self.Z
 
 
@@ -159,6 +160,7 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
     E = Y - fitted
     e2, raised = floored_squares(E)
     if vm.function == "groups":
+        assert vm.Z is not None
         G = vm.Z  # one-hot, n × p
         counts = G.sum(axis=0)
         mean = (e2 @ G) / counts
@@ -171,6 +173,7 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
         Z = np.stack([np.ones_like(logm), logm], axis=2)
         coef, se = log_square_regression(np.log(e2), Z)
         return coef * [1.0, 0.5], se * [1.0, 0.5], raised
+    assert vm.Z is not None  # loglinear: the chosen variance regressors
     coef, se = log_square_regression(np.log(e2), vm.Z)
     return coef, se, raised
 
@@ -218,7 +221,7 @@ def ml_fit(vm: VarianceModel, X: np.ndarray, y: np.ndarray, beta0: np.ndarray, g
                                       if int(iters[0]) >= ML_MAXITER else "no step improved the likelihood")
     Rinfo = None
     if ok:
-        Rinfo = np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r")
+        Rinfo = cast(np.ndarray, np.linalg.qr(_information_factor(vm, X, b, g, floor), mode="r"))  # mode "r" gives R alone
         ok = bool(np.all(np.isfinite(Rinfo)) and np.all(np.abs(np.diag(Rinfo)) > 0))
         message = message if ok else "the information at the optimum is singular"
     return b, g, Rinfo, ok, int(iters[0]), message
@@ -247,6 +250,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
     iterations) per dataset.
     """
     Z = vm.Z
+    assert Z is not None  # η = Zγ: loglinear or groups
     Qz, Rz = np.linalg.qr(Z, mode="reduced")
     G = gamma0.copy()
     f, r = _profile_nll(X, Y, G @ Z.T)
@@ -265,7 +269,8 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
         done[act[now]] = True
         iters[act[~now]] += 1
 
-        def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
+        def trial(t: np.ndarray, Ga: np.ndarray = Ga, step: np.ndarray = step, act: np.ndarray = act
+                  ) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             cand = Ga + t[:, None] * step
             fc, rc = _profile_nll(X, Y[act], cand @ Z.T)
             return fc, (cand, rc)
@@ -379,6 +384,7 @@ def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimati
     raised = 0
     floor = vm.mean_floor(y)
     if vm.function == "known":
+        assert vm.weights is not None
         W = vm.weights / vm.weights.mean()
         used = "known"
     else:
@@ -401,6 +407,7 @@ def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimati
             if ok and ll_ml >= ll_two - 1e-8 * abs(ll_two):
                 converged = True
                 gamma, beta_ml = g_ml, b_ml
+                assert Rinfo is not None  # ml_fit returns the information factor whenever it converged
                 cov_all = _cov_from_r(Rinfo)
                 gamma_se = np.sqrt(np.maximum(np.diag(cov_all)[k:], 0.0))
                 W = np.exp(-np.clip(vm.eta(X, b_ml, g_ml, floor), -ETA_LIMIT, ETA_LIMIT))
@@ -455,6 +462,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     if vm.function == "known":
         ll = _loglik_known(y, X, beta, W)
     elif converged:
+        assert ve.beta_ml is not None  # set whenever the ML fit converged
         ll = loglik(vm, X, y, ve.beta_ml, gamma, floor)
     else:
         ll = _loglik_profiled_scale(vm, X, y, beta, gamma, floor)
@@ -528,6 +536,7 @@ def variance_model_for(design: Design, variance: str, variance_terms: tuple[str,
     """Build the variance model a back-end's options ask for on this design."""
     n = design.n_obs
     if variance == "known":
+        assert weights is not None  # WLSBackend.finish_options requires the weights column with variance='known'
         col = _design_column(design, weights)
         if not pd.api.types.is_numeric_dtype(col) or pd.api.types.is_bool_dtype(col):
             raise InputError(f"The weights column {weights!r} must hold numbers (inverse variances); "
@@ -655,6 +664,7 @@ class WLSBackend(Backend):
         vm = self.variance_model(design)
         floor = vm.mean_floor(design.y)
         if vm.function == "known":
+            assert vm.weights is not None
             W = np.broadcast_to(vm.weights / vm.weights.mean(), (D, n))
         else:
             gamma, _, _ = twostep_gamma(vm, X, Yd)
@@ -664,6 +674,7 @@ class WLSBackend(Backend):
                 if self.estimation == "ml":
                     g_ml, ok, _ = batched_ml_gamma(vm, X, Yd, gamma)
                     gamma = np.where(ok[:, None], g_ml, gamma)
+                assert vm.Z is not None
                 W = np.exp(-np.clip(gamma @ vm.Z.T, -ETA_LIMIT, ETA_LIMIT))
         return _reject_product(X, Yd, W, design.interaction_rows(), alpha, self.se)
 
@@ -739,7 +750,8 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
         done[act[now]] = True
         iters[act[~now]] += 1
 
-        def trial(t: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
+        def trial(t: np.ndarray, Ba: np.ndarray = Ba, Ga: np.ndarray = Ga, Ya: np.ndarray = Ya, step: np.ndarray = step
+                  ) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
             Bc, Gc = Ba + t[:, None] * step[:, :k], Ga + t[:, None] * step[:, k:]
             return _power_nll(X, Ya, Bc, Gc, floor), (Bc, Gc)
 

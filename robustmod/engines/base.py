@@ -38,7 +38,7 @@ class Engine(ABC):
             on_done: Callable[[int], None] | None = None) -> list[Any]:
         """Results of ``fn(state, *tasks[i])`` in task order; ``on_done(i)`` as each task finishes."""
 
-    def close(self) -> None:
+    def close(self) -> None:  # noqa: B027 - an optional hook: an engine that starts nothing keeps this no-op
         """Release what the engine started (worker processes, a LocalCluster)."""
 
     def describe(self) -> dict[str, Any]:

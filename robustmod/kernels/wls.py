@@ -25,9 +25,9 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.hc import r_inverse
+from ..backends.kernels import LOG_CHI2_CORRECTION
 from ..backends.wls import (
     ETA_LIMIT,
-    LOG_CHI2_CORRECTION,
     ML_DECREMENT_TOL,
     SE_TYPES,
     ZERO_RESIDUAL_FLOOR,

@@ -8,7 +8,7 @@ the figure. matplotlib is imported only here, inside the functions, on the Agg b
 """
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
@@ -20,6 +20,7 @@ from ..errors import InputError
 
 if TYPE_CHECKING:  # pragma: no cover
     from matplotlib.figure import Figure
+    from matplotlib.typing import RcKeyType
 
     from ..compare import Comparison
 
@@ -37,7 +38,7 @@ BACKEND_COLOURS = {
     "hc4m": OKABE_ITO["yellow"], "hc5": OKABE_ITO["yellow"],
 }
 #: The plain house style: white ground, two spines, faint horizontal grid.
-STYLE = {
+STYLE: dict[RcKeyType, Any] = {
     "figure.facecolor": "white", "axes.facecolor": "white", "axes.edgecolor": "#444444",
     "axes.spines.top": False, "axes.spines.right": False, "axes.grid": True, "axes.grid.axis": "y",
     "grid.color": "#e4e4e4", "grid.linewidth": 0.6, "font.size": 9, "axes.titlesize": 10,
@@ -121,7 +122,7 @@ def slope_figure(comparison: Comparison, backends: list[str] | None = None) -> F
         raise MissingInput("no back-end has a slope curve (the model needs a continuous moderator)")
     m = curves[0][1].slope_curve["moderator"]
     info = c.design.moderators[m]
-    lo_obs, hi_obs = float(info.minimum), float(info.maximum)
+    lo_obs, hi_obs = info.observed_range()
     pad = 0.06 * ((hi_obs - lo_obs) or 1.0)
     with _style():
         fig, axes = _new()
@@ -188,7 +189,7 @@ def data_figure(comparison: Comparison) -> Figure:
             line_col = lambda v: cols.get(v, "#333333")  # noqa: E731
         else:
             w = np.asarray(info.values, dtype=float)
-            norm = plt.Normalize(float(info.minimum), float(info.maximum))
+            norm = plt.Normalize(*info.observed_range())
             cmap = plt.get_cmap("cividis")
             sc = ax.scatter(x, y, c=w, cmap=cmap, norm=norm, s=10, alpha=0.7, linewidths=0)
             fig.colorbar(sc, ax=ax, label=f"{m} (raw scale)")
@@ -210,6 +211,7 @@ def _fitted_means(c: Comparison, points: list[dict[str, Any]], xs: np.ndarray) -
     """Fitted mean L·β̂ of the primary fit along the focal predictor at each probe point."""
     d = c.design
     fit = c.results[c.primary].fit
+    assert fit is not None  # data_figure draws only when the primary back-end gave a fit
     out = []
     for pt in points:
         out.append(fit.estimate(d.model_rows(pt, xs), c.spec.alpha).estimate)
@@ -279,7 +281,8 @@ def variance_figure(comparison: Comparison) -> Figure:
         fig, axes = _new(1, 2, size=(7.0, 3.8))
         for i, (bid, sig) in enumerate(found):
             marker = "o" if i == 0 else "x"
-            for a, xv, name in ((axes[0, 0], x, d.focal), (axes[0, 1], None, m)):
+            for a, along, name in ((axes[0, 0], x, d.focal), (axes[0, 1], None, m)):
+                xv = along
                 if xv is None:
                     if info.categorical:
                         xv = d.data.frame[m].astype("category").cat.codes.to_numpy(dtype=float)
@@ -300,7 +303,8 @@ def variance_figure(comparison: Comparison) -> Figure:
 def linearity_figure(comparison: Comparison) -> Figure:
     """The binning check: the focal slope estimated within bins of the moderator, against the
     linear-interaction line (drawn from ``diagnostics['linearity']``)."""
-    lin = (comparison.diagnostics or {}).get("linearity")
+    diagnostics: Mapping[str, Any] = comparison.diagnostics or {}
+    lin = diagnostics.get("linearity")
     if lin is None:
         raise MissingInput("the diagnostics hold no binning (linearity) check")
     if not lin.get("bins"):

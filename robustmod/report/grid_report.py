@@ -75,8 +75,8 @@ def specification_rows(result: GridResult) -> Table:
     rows = []
     for sp in result.specifications:
         c = sp["choices"]
-        for bid, r in (sp.get("backends") or {}).items():
-            r = r or {}
+        for bid, res in (sp.get("backends") or {}).items():
+            r = res or {}
             ci = r.get("ci") or [None, None]
             rows.append([sp["index"], ";".join(c["covariates"]), c["outcome"], c["outliers"], sp.get("rows_used"), bid,
                          r.get("estimate"), r.get("se"), ci[0], ci[1], r.get("p"), r.get("supported"),

@@ -11,6 +11,7 @@ import base64
 import csv
 import io
 import json
+import math
 import os
 import platform
 import shutil
@@ -183,7 +184,7 @@ def render_csv(comparison: Comparison) -> str:
     w = csv.writer(buf, lineterminator="\n")
     w.writerow([csv_guard(str(c)) for c in table.columns])
     for row in table.itertuples(index=False):
-        w.writerow(["" if v is None or (isinstance(v, float) and v != v) else csv_guard(v) for v in row])
+        w.writerow(["" if v is None or (isinstance(v, float) and math.isnan(v)) else csv_guard(v) for v in row])
     return buf.getvalue()
 
 
