@@ -157,7 +157,9 @@ def test_answer_for_a_rescaled_row_is_the_rescaled_answer(c: float) -> None:
     # The null-imposed test is the one asked for by name, whatever row spells it.
     test = fit.test_coefficients(design.interaction_columns, 0.05)
     assert test.p == fit.extras["interaction_p"] and "null imposed" in test.method
-    assert robustmod.effects.interaction(fit, design, 0.05)["p"] == pytest.approx(test.p, abs=0)
+    from robustmod import effects
+
+    assert effects.interaction(fit, design, 0.05)["p"] == pytest.approx(test.p, abs=0)
 
 
 def test_standard_errors_equal_statsmodels_hc3_on_open_dataset() -> None:

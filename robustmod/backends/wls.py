@@ -63,8 +63,11 @@ WEIGHT_RATIO_WARNING = 1e6
 #: |μᵢ| below this share of mean |y| is raised to it in the power-of-the-mean model.
 MEAN_FLOOR = 1e-6
 ML_MAXITER = 200
-#: An ML fit stopped with ½ gᵀH⁻¹g below this (log-likelihood units) counts as converged.
-ML_DECREMENT_TOL = 1e-8
+#: Scoring stops when ½ gᵀH⁻¹g (log-likelihood units) falls below this ...
+ML_DECREMENT_TOL = 1e-20
+#: ... or when no step improves the likelihood any more while the decrement is below this: the
+#: optimum to rounding (the streamed fit follows the same rule, so both stop at the same iterate).
+ML_ROUNDING_TOL = 1e-10
 
 _FUNCTION_LABELS = {"loglinear": "log-linear variance", "power": "power-of-the-mean variance",
                     "groups": "one variance per group", "known": "known weights"}
@@ -276,7 +279,9 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
             return fc, (cand, rc)
 
         ok, fc, (cand, rc) = _backtrack(trial, np.where(now, 0.0, 1.0), fa)
-        failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
+        flat = ~ok & (decrement < ML_ROUNDING_TOL)  # no step improves, at the optimum to rounding
+        done[act[flat]] = True
+        failed[act[~ok & ~flat]] = True  # no step improves far from it: leave it to the two-step fallback
         G[act] = np.where(ok[:, None], cand, Ga)
         f[act] = np.where(ok, fc, fa)
         r[act] = np.where(ok[:, None], rc, ra)
@@ -756,7 +761,9 @@ def batched_ml_power(X: np.ndarray, Y: np.ndarray, B0: np.ndarray, G0: np.ndarra
             return _power_nll(X, Ya, Bc, Gc, floor), (Bc, Gc)
 
         ok, fc, (Bc, Gc) = _backtrack(trial, np.where(now, 0.0, 1.0), fa)
-        failed[act[~ok]] = True  # no step improves: leave it to the two-step fallback
+        flat = ~ok & np.isfinite(decrement) & (decrement < ML_ROUNDING_TOL)  # at the optimum to rounding
+        done[act[flat]] = True
+        failed[act[~ok & ~flat]] = True  # no step improves far from it: leave it to the two-step fallback
         B[act] = np.where(ok[:, None], Bc, Ba)
         G[act] = np.where(ok[:, None], Gc, Ga)
         f[act] = np.where(ok, fc, fa)

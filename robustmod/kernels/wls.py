@@ -29,6 +29,8 @@ from ..backends.kernels import LOG_CHI2_CORRECTION
 from ..backends.wls import (
     ETA_LIMIT,
     ML_DECREMENT_TOL,
+    ML_MAXITER,
+    ML_ROUNDING_TOL,
     SE_TYPES,
     ZERO_RESIDUAL_FLOOR,
 )
@@ -37,9 +39,9 @@ from .accumulate import TSQR
 from .chunks import Chunk, ChunkSource, mapped
 from .ols import StreamedOLS, factor_pass, streamed_ols
 
-#: Decrement (log-likelihood units) at which the scoring stops: far below the in-memory optimiser's.
-TOL = 1e-20
-MAX_ITER = 200
+#: The in-memory fit's stopping rule, so both paths stop at the same iterate.
+TOL = ML_DECREMENT_TOL
+MAX_ITER = ML_MAXITER
 HALVINGS = 40
 
 
@@ -132,7 +134,7 @@ def scoring(chunks: ChunkSource, gamma0: np.ndarray, Rz: np.ndarray, *, tol: flo
                 break
             t /= 2
         else:
-            return gamma, decrement < ML_DECREMENT_TOL, it  # no step improves: at the optimum to rounding
+            return gamma, decrement < ML_ROUNDING_TOL, it  # no step improves: at the optimum to rounding
         if fc >= f and np.all(t * np.abs(step) <= 1e-15 * np.maximum(np.abs(gamma), 1.0)):
             return gamma, decrement < ML_DECREMENT_TOL, it
         gamma, f, beta = gamma + t * step, fc, bc
