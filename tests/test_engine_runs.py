@@ -148,3 +148,21 @@ def test_costly_back_end_gets_one_task_per_dataset_seeded_by_its_place() -> None
     fewer = _tasks([], ["bayes"], bounds, [], again, 2)
     assert [t[3].entropy for t in fewer] == [t[3].entropy for t in tasks[2:4]]
     assert [t[3].spawn_key for t in fewer] == [t[3].spawn_key for t in tasks[2:4]]
+
+
+def test_engine_table_of_the_config_file(tmp_path: Path) -> None:
+    from robustmod.config import compare_arguments, load_config
+    from robustmod.errors import InputError
+
+    cfg = tmp_path / "analysis.toml"
+    cfg.write_text('formula = "y ~ x * w"\n[engine]\nscheduler = "tcp://127.0.0.1:8786"\nworkers = 3\n')
+    kw = compare_arguments(load_config(cfg))
+    assert kw["engine"] == "dask" and kw["scheduler"] == "tcp://127.0.0.1:8786" and kw["workers"] == 3
+    cfg.write_text('[engine]\nname = "Local"\n')
+    assert compare_arguments(load_config(cfg))["engine"] == "local"
+    for body, needle in (('[engine]\nworkers = 0\n', "'engine.workers'"), ('[engine]\nname = "spark"\n', "'engine.name'"),
+                         ('[engine]\nhost = "x"\n', "'host'"), ('engine = "dask"\n', "'engine'")):
+        cfg.write_text(body)
+        with pytest.raises(InputError, match=needle) as err:
+            load_config(cfg)
+        assert "\n" not in str(err.value)
