@@ -142,7 +142,8 @@ class Calibration(Mapping[str, Any]):
     Reads as a mapping with the keys of the results contract (``to_dict()`` gives the dict);
     rates are shares of ``n_datasets`` simulated datasets at level ``alpha`` with their Monte
     Carlo SEs; a back-end that could not be calibrated has null rates and its reason under
-    ``unavailable``; ``notes`` are sentences.
+    ``unavailable``; ``notes`` are sentences. ``engine``, ``workers`` and ``seconds`` say how the
+    run went (the appendix moves them to provenance.json); the rates do not depend on them.
     """
 
     n_datasets: int
