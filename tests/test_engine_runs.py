@@ -166,3 +166,19 @@ def test_engine_table_of_the_config_file(tmp_path: Path) -> None:
         with pytest.raises(InputError, match=needle) as err:
             load_config(cfg)
         assert "\n" not in str(err.value)
+
+
+@pytest.mark.slow
+def test_sampler_calibrated_across_local_workers_gives_the_same_rates() -> None:
+    import robustmod.calibrate as cal
+    from robustmod.design import build_design
+    from robustmod.spec import ModelSpec
+
+    design = build_design(demo_data(120), ModelSpec(formula=DEMO_FORMULA, focal=DEMO_FOCAL,
+                                                    moderators=(DEMO_MODERATOR,)))
+    runs = [cal.calibrate(design, ["hc3", "bayes"], n_datasets=10, seed=4, costly_datasets=6, workers=w)
+            for w in (1, 2)]
+    assert runs[0]["workers"] == 1 and runs[1]["workers"] == 2  # a costly back-end always uses the workers
+    assert runs[0]["false_positive_rate"] == runs[1]["false_positive_rate"]
+    assert runs[0]["power"] == runs[1]["power"]
+    assert runs[0]["false_positive_rate"]["bayes"]["n"] == 6
