@@ -182,3 +182,18 @@ def test_sampler_calibrated_across_local_workers_gives_the_same_rates() -> None:
     assert runs[0]["false_positive_rate"] == runs[1]["false_positive_rate"]
     assert runs[0]["power"] == runs[1]["power"]
     assert runs[0]["false_positive_rate"]["bayes"]["n"] == 6
+
+
+def test_progress_advances_once_per_finished_task_on_a_given_engine(monkeypatch: pytest.MonkeyPatch) -> None:
+    import robustmod.calibrate as cal
+    from robustmod.design import build_design
+    from robustmod.engines import make_engine
+    from robustmod.spec import ModelSpec
+
+    seen: list[tuple[int, int]] = []
+    monkeypatch.setattr(cal, "_advance", lambda bar, bound: seen.append(tuple(bound)))
+    design = build_design(demo_data(), ModelSpec(formula=DEMO_FORMULA, focal=DEMO_FOCAL, moderators=(DEMO_MODERATOR,)))
+    with make_engine("local", workers=2) as eng:
+        out = cal.calibrate(design, ["ols", "hc3"], n_datasets=120, seed=2, engine=eng, progress=True)
+    assert sorted(seen) == [(0, CHUNK), (CHUNK, 2 * CHUNK), (2 * CHUNK, 120)]  # every dataset counted once
+    assert out["workers"] == 2 and out["engine"] == "local"
