@@ -403,9 +403,10 @@ def calibrate(
 def _progress_bar(progress: bool, total: int) -> Any:
     if not progress:
         return None
+    from rich.console import Console
     from rich.progress import Progress
 
-    bar = Progress(transient=True)
+    bar = Progress(transient=True, console=Console(stderr=True))  # stdout may carry the JSON results
     bar.start()
     bar.add_task("calibration datasets", total=total)
     return bar

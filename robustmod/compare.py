@@ -433,6 +433,9 @@ def compare(
         check_engine_choice(engine, scheduler)
     with ExitStack() as stack:  # a cluster is reached (or started) before the fitting, and closed at the end
         eng = _open_engine(engine, scheduler, workers, announce, stack) if calibration is not None else None
+        if eng is not None and not isinstance(engine, Engine):
+            report_step(on_step, f"{eng.name} engine", started)
+            started = time.perf_counter()
         return _run(frame, source, spec, ids, primary, options, calibration=calibration, engine=eng,
                     workers=workers, calibrate_costly=calibrate_costly, progress=progress, on_step=on_step,
                     started=started)
