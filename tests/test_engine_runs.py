@@ -197,3 +197,16 @@ def test_progress_advances_once_per_finished_task_on_a_given_engine(monkeypatch:
         out = cal.calibrate(design, ["ols", "hc3"], n_datasets=120, seed=2, engine=eng, progress=True)
     assert sorted(seen) == [(0, CHUNK), (CHUNK, 2 * CHUNK), (2 * CHUNK, 120)]  # every dataset counted once
     assert out["workers"] == 2 and out["engine"] == "local"
+
+
+def test_calibration_progress_bar_keeps_json_on_stdout_clean(demo_csv: Path, monkeypatch: pytest.MonkeyPatch,
+                                                             capsys: pytest.CaptureFixture[str]) -> None:
+    import json
+
+    monkeypatch.setattr("robustmod.cli.options.stderr_is_terminal", lambda: True)  # as on a terminal
+    monkeypatch.setenv("FORCE_COLOR", "1")  # rich then draws its bar as on a terminal
+    argv = ["check", str(demo_csv), "--formula", DEMO_FORMULA, "--focal", DEMO_FOCAL, "--moderator", DEMO_MODERATOR,
+            "--backends", "ols,hc3", "--calibrate", "60", "--json"]
+    assert main(argv) == 0
+    out = capsys.readouterr().out
+    assert json.loads(out)["calibration"]["n_datasets"] == 60
