@@ -375,7 +375,7 @@ def compare(
         (``scheduler``, or else a LocalCluster on 127.0.0.1 of ``workers`` workers, started only for
         a calibration and closed after it). An Engine object is used as it is and left open.
     scheduler : str, optional
-        Address of a running Dask scheduler, e.g. ``"tcp://10.0.0.5:8786"`` (dask engine only).
+        Address of a running Dask scheduler, e.g. ``"tcp://scheduler-host:8786"`` (dask engine only).
     announce : callable, optional
         Receives one line when a cluster is started (its dashboard address).
     progress : bool, default=False

@@ -28,7 +28,7 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
 
     [engine]
     name = "dask"                     # "local" (default) or "dask"
-    scheduler = "tcp://10.0.0.5:8786" # a running Dask scheduler; left out: a local cluster on 127.0.0.1
+    scheduler = "tcp://scheduler-host:8786" # a running Dask scheduler; left out: a local cluster on 127.0.0.1
     workers = 4                       # local processes, or the size of that local cluster
 """
 from __future__ import annotations
@@ -63,7 +63,7 @@ TOP_KEYS: dict[str, str] = {
 OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
                                "force": "true or false (default: false)"}
 ENGINE_KEYS: dict[str, str] = {"name": f"one of {', '.join(defaults.ENGINES)} (default: {defaults.ENGINE})",
-                               "scheduler": "a Dask scheduler address such as \"tcp://10.0.0.5:8786\" (text)",
+                               "scheduler": "a Dask scheduler address such as \"tcp://scheduler-host:8786\" (text)",
                                "workers": "a whole number ≥ 1 (default: the available cores)"}
 
 
