@@ -131,7 +131,7 @@ def add_engine_options(p: argparse.ArgumentParser) -> None:
                         "--scheduler, else a local cluster on 127.0.0.1 whose dashboard address is printed) "
                         f"(default: {defaults.ENGINE})")
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
-                   help="address of a running Dask scheduler, e.g. tcp://scheduler-host:8786 (needs --engine dask; "
+                   help="address of a running Dask scheduler, e.g. tcp://scheduler-host:8786 (implies --engine dask; "
                         "default: none)")
     p.add_argument("--workers", type=int, default=None, metavar="N",
                    help="workers of the calibration (local processes, or the size of a local Dask cluster; "
