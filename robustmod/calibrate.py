@@ -11,16 +11,16 @@ Back-ends answer in batches when they offer ``reject_many(design, Y, alpha, *, s
 (Y is n × D; the OLS/HC family shares one QR across all D datasets); otherwise each
 dataset is refitted. Datasets are cut into chunks of fixed size, each dataset's noise
 comes from its own child of ``np.random.SeedSequence(seed)`` and each chunk's back-end
-seed from another, so the numbers do not depend on how many worker processes run.
+seed from another; a costly back-end gets one task per dataset with its own seed. Every
+task goes to an engine (local processes or a Dask cluster), so the numbers depend neither
+on the engine nor on how many workers run.
 """
 from __future__ import annotations
 
 import dataclasses
 import math
-import os
 import time
-from collections.abc import Iterator, Mapping, Sequence
-from concurrent.futures import ProcessPoolExecutor
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -35,6 +35,8 @@ from .backends.registry import (
     make_backend,
 )
 from .design import Design
+from .engines import Engine, make_engine
+from .engines.base import available_cores
 from .errors import InputError, option_error
 from .tables import Column, NotApplicable, Table, format_number, join_notes, make_table
 
@@ -83,21 +85,7 @@ def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | 
              "model was used instead."])
 
 
-# ---- one chunk of datasets (runs in the parent or in a worker) ----------------------
-_WORKER: dict[str, Any] = {}
-
-
-def _init_worker(state: dict[str, Any]) -> None:
-    try:  # one BLAS thread per worker process: the workers already fill the cores
-        from threadpoolctl import threadpool_limits
-
-        threadpool_limits(1)
-    except ImportError:  # pragma: no cover
-        pass
-    _WORKER.clear()
-    _WORKER.update(state)
-
-
+# ---- one chunk of datasets (an engine task: runs in this process or on a worker) ----
 def _noise(seqs: Sequence[np.random.SeedSequence], n: int) -> np.ndarray:
     """n × m standard normals, column j from its own dataset seed."""
     return np.column_stack([np.random.default_rng(s).standard_normal(n) for s in seqs])
@@ -122,24 +110,22 @@ def _rejections(backend: Any, design: Design, Y: np.ndarray, alpha: float, seed:
     return out, failed
 
 
-def _run_chunk(state: dict[str, Any], start: int, stop: int, chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
+def _run_chunk(state: dict[str, Any], ids: tuple[str, ...], start: int, stop: int,
+               chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
+    """Rejections of back-ends ``ids`` on datasets ``start``…``stop - 1``: one engine task."""
     design: Design = state["design"]
     Z = _noise(state["noise_seqs"][start:stop], design.n_obs)
     sig = state["sigma"][:, None]
     Ys = {"null": state["mu0"][:, None] + sig * Z}
     if state["power"]:
         Ys["power"] = state["mu1"][:, None] + sig * Z
-    bseeds = chunk_seed.generate_state(2 * len(state["ids"]))
+    bseeds = chunk_seed.generate_state(2 * len(ids))
     out: dict[str, Any] = {}
-    for b, bid in enumerate(state["ids"]):
+    for b, bid in enumerate(ids):
         backend = make_backend(bid, **state["options"].get(bid, {}))
         out[bid] = {k: _rejections(backend, design, Y, state["alpha"], int(bseeds[2 * b + i]))
                     for i, (k, Y) in enumerate(Ys.items())}
     return out
-
-
-def _worker_chunk(start: int, stop: int, chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
-    return _run_chunk(_WORKER, start, stop, chunk_seed)
 
 
 # ---- the public entry point ---------------------------------------------------------
@@ -151,13 +137,6 @@ def _rate(rej: np.ndarray, failed: int) -> dict[str, Any]:
     return {"rate": p, "mc_se": math.sqrt(p * (1 - p) / n), "n": n, "failed": int(failed)}
 
 
-def _cpu_count() -> int:
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # pragma: no cover
-        return max(1, os.cpu_count() or 1)
-
-
 @dataclass(frozen=True)
 class Calibration(Mapping[str, Any]):
     """Simulated false-positive rate and power of each back-end on one design.
@@ -165,7 +144,8 @@ class Calibration(Mapping[str, Any]):
     Reads as a mapping with the keys of the results contract (``to_dict()`` gives the dict);
     rates are shares of ``n_datasets`` simulated datasets at level ``alpha`` with their Monte
     Carlo SEs; a back-end that could not be calibrated has null rates and its reason under
-    ``unavailable``; ``notes`` are sentences.
+    ``unavailable``; ``notes`` are sentences. ``engine``, ``workers`` and ``seconds`` say how the
+    run went (the appendix moves them to provenance.json); the rates do not depend on them.
     """
 
     n_datasets: int
@@ -181,6 +161,7 @@ class Calibration(Mapping[str, Any]):
     workers: int
     seconds: float
     notes: tuple[str, ...]
+    engine: str = "local"
     source: str = "calibrate"
 
     def to_dict(self) -> dict[str, Any]:
@@ -257,53 +238,66 @@ def _prepare_backends(design: Design, ids: list[str], options: Mapping[str, Mapp
     return ids, run_opts, costly, unavailable, methods
 
 
-def _run_study(state: dict[str, Any], freq: list[str], costly: list[str], unavailable: dict[str, str],
-               bounds: list[tuple[int, int]], chunk_seqs: list[np.random.SeedSequence], chunk_root: np.random.SeedSequence,
-               n_workers: int, notes: list[str], *, progress: bool, n_datasets: int, costly_datasets: int
-               ) -> tuple[dict[str, Any], dict[str, Any], int]:
-    """Run every chunk of datasets (in worker processes when that pays), then the costly back-ends
-    on their few datasets: rejection rates per back-end under the null and under power, and the
-    number of worker processes used."""
-    results: list[dict[str, Any] | None] = [None] * len(bounds)
-    alpha, power = state["alpha"], state["power"]
-    bar = _progress_bar(progress, n_datasets)
+def _tasks(freq: list[str], costly: list[str], bounds: list[tuple[int, int]], chunk_seqs: list[np.random.SeedSequence],
+           chunk_root: np.random.SeedSequence, m: int) -> list[tuple[Any, ...]]:
+    """Engine tasks (ids, start, stop, seed): every chunk of datasets for the batched back-ends, then
+    one task per dataset for each costly back-end, each with a seed fixed by its place alone."""
+    tasks: list[tuple[Any, ...]] = [(tuple(freq), s, e, q) for (s, e), q in zip(bounds, chunk_seqs, strict=True)] \
+        if freq else []
+    for bid, root in zip(costly, chunk_root.spawn(len(costly)), strict=True):
+        tasks += [((bid,), j, j + 1, q) for j, q in enumerate(root.spawn(m))]
+    return tasks
+
+
+def _run_tasks(state: dict[str, Any], tasks: list[tuple[Any, ...]], engine: Engine | None, n_workers: int,
+               bar: Any) -> tuple[list[dict[str, Any]], int]:
+    """Results of every task in task order and the number of workers used.
+
+    A given engine runs every task. Without one, the first task runs here and is timed; the rest go
+    to local worker processes when they would take longer than PARALLEL_MIN_SECONDS (or include a
+    costly back-end), else they run here too.
+    """
+    def done(offset: int) -> Callable[[int], None]:
+        return lambda i: _advance(bar, tasks[offset + i][1:3])
+
+    if engine is not None:
+        return engine.map(_run_chunk, tasks, state, on_done=done(0)), engine.workers
+    t0 = time.perf_counter()
+    first = _run_chunk(state, *tasks[0])
+    _advance(bar, tasks[0][1:3])
+    rest = tasks[1:]
+    expected = (time.perf_counter() - t0) * len(rest)
+    if rest and n_workers > 1 and (expected > PARALLEL_MIN_SECONDS or any(len(t[0]) == 1 and t[0][0] in state["costly"]
+                                                                           for t in rest)):
+        with make_engine("local", workers=min(n_workers, len(rest))) as local:
+            return [first, *local.map(_run_chunk, rest, state, on_done=done(1))], local.workers
+    results = [first]
+    for t in rest:
+        results.append(_run_chunk(state, *t))
+        _advance(bar, t[1:3])
+    return results, 1
+
+
+def _run_study(state: dict[str, Any], tasks: list[tuple[Any, ...]], engine: Engine | None, n_workers: int, *,
+               progress: bool) -> tuple[dict[str, Any], dict[str, Any], int]:
+    """Run every task; rejection rates per back-end under the null and under power, and the
+    number of workers used."""
+    bar = _progress_bar(progress, sum(t[2] - t[1] for t in tasks))
     try:
-        used_workers = 1
-        if freq:
-            t0 = time.perf_counter()
-            results[0] = _run_chunk(state, *bounds[0], chunk_seqs[0])
-            _advance(bar, bounds[0])
-            rest = list(range(1, len(bounds)))
-            expected = (time.perf_counter() - t0) * len(rest)
-            if rest and n_workers > 1 and expected > PARALLEL_MIN_SECONDS:
-                used_workers = n_workers
-                with ProcessPoolExecutor(max_workers=n_workers, initializer=_init_worker, initargs=(state,)) as pool:
-                    futs = {i: pool.submit(_worker_chunk, *bounds[i], chunk_seqs[i]) for i in rest}
-                    for i, fut in futs.items():
-                        results[i] = fut.result()
-                        _advance(bar, bounds[i])
-            else:
-                for i in rest:
-                    results[i] = _run_chunk(state, *bounds[i], chunk_seqs[i])
-                    _advance(bar, bounds[i])
-        fp: dict[str, Any] = {}
-        pw: dict[str, Any] = {}
-        for bid in freq:
-            parts = [r[bid] for r in results if r is not None]
-            for key, target in (("null", fp), ("power", pw)):
-                if key in parts[0]:
-                    target[bid] = _rate(np.concatenate([p[key][0] for p in parts]), sum(p[key][1] for p in parts))
-        for bid in (b for b in costly if b not in unavailable):
-            m = min(costly_datasets, n_datasets)
-            res = _run_chunk({**state, "ids": [bid]}, 0, m, chunk_root.spawn(1)[0])
-            fp[bid] = _rate(*res[bid]["null"])
-            if power:
-                pw[bid] = _rate(*res[bid]["power"])
-            notes.append(f"{bid} was run on the first {m} datasets only (each is a full fit); its rate is the share "
-                         f"whose {100 * (1 - alpha):g}% interval of the product term excludes zero.")
+        results, used_workers = _run_tasks(state, tasks, engine, n_workers, bar) if tasks else ([], 1)
     finally:
         if bar is not None:
             bar.stop()
+    parts: dict[str, list[dict[str, Any]]] = {}
+    for res in results:  # task order, so datasets stay in order
+        for bid, part in res.items():
+            parts.setdefault(bid, []).append(part)
+    fp: dict[str, Any] = {}
+    pw: dict[str, Any] = {}
+    for bid, ps in parts.items():
+        for key, target in (("null", fp), ("power", pw)):
+            if key in ps[0]:
+                target[bid] = _rate(np.concatenate([p[key][0] for p in ps]), sum(p[key][1] for p in ps))
     return fp, pw, used_workers
 
 
@@ -320,6 +314,7 @@ def calibrate(
     alpha: float | None = None,
     costly_datasets: int = COSTLY_DATASETS,
     include_costly: bool = True,
+    engine: Engine | None = None,
 ) -> Calibration:
     """Simulated false-positive rate and power of the product-term test of each back-end.
 
@@ -342,7 +337,11 @@ def calibrate(
     power : bool, default=True
         Also simulate with the product term at its WLS estimate.
     workers : int, optional
-        Worker processes (default: the available cores, used only when that pays).
+        Local worker processes when no ``engine`` is given (default: the available cores, used
+        only when that pays).
+    engine : robustmod.engines.Engine, optional
+        Runs every chunk of datasets and every costly fit as a task (e.g. a Dask cluster); the
+        caller keeps and closes it. Default: this machine's cores.
     alpha : float, optional
         Test level (default: the design's).
 
@@ -373,15 +372,19 @@ def calibrate(
     ids, run_opts, costly, unavailable, methods = _prepare_backends(design, ids, options, notes, include_costly,
                                                                     int(seed))
     freq = [b for b in ids if b not in unavailable and b not in costly]
-    state = {"design": design, "ids": freq, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
-             "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power)}
+    costly_run = [b for b in costly if b not in unavailable]
+    state = {"design": design, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
+             "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power),
+             "costly": tuple(costly_run)}
     bounds = [(s, min(s + CHUNK, n_datasets)) for s in range(0, n_datasets, CHUNK)]
     chunk_seqs = chunk_root.spawn(len(bounds))
-    n_workers = min(_cpu_count() if workers is None else int(workers), len(bounds))
-
-    fp, pw, used_workers = _run_study(state, freq, costly, unavailable, bounds, chunk_seqs, chunk_root, n_workers, notes,
-                                      progress=progress, n_datasets=n_datasets,
-                                      costly_datasets=int(costly_datasets))
+    m = min(int(costly_datasets), n_datasets)
+    tasks = _tasks(freq, costly_run, bounds, chunk_seqs, chunk_root, m)
+    n_workers = min(available_cores() if workers is None else int(workers), max(1, len(tasks)))
+    fp, pw, used_workers = _run_study(state, tasks, engine, n_workers, progress=progress)
+    for bid in costly_run:
+        notes.append(f"{bid} was run on the first {m} datasets only (each is a full fit); its rate is the share "
+                     f"whose {100 * (1 - alpha):g}% interval of the product term excludes zero.")
     for bid, reason in unavailable.items():
         fp[bid] = {"rate": None, "mc_se": None, "n": 0, "failed": n_datasets}
         if power:
@@ -395,16 +398,17 @@ def calibrate(
         nominal_mc_se=math.sqrt(alpha * (1 - alpha) / n_datasets), simulated_from=source,
         product_term_under_power={t: float(v) for t, v in zip(design.interaction_terms, inter, strict=False)},
         methods=methods, unavailable=unavailable, workers=used_workers, seconds=time.perf_counter() - t_start,
-        notes=tuple(notes),
+        notes=tuple(notes), engine="local" if engine is None else engine.name,
     )
 
 
 def _progress_bar(progress: bool, total: int) -> Any:
     if not progress:
         return None
+    from rich.console import Console
     from rich.progress import Progress
 
-    bar = Progress(transient=True)
+    bar = Progress(transient=True, console=Console(stderr=True))  # stdout may carry the JSON results
     bar.start()
     bar.add_task("calibration datasets", total=total)
     return bar

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import html
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
+from contextlib import ExitStack
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -27,6 +28,7 @@ from .data import NaValues, load_data
 from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
 from .design import Design, build_design
 from .diagnostics import VarianceDiagnostics, variance_diagnostics
+from .engines import Engine, check_engine_choice, make_engine
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
 from .spec import ModelSpec
@@ -327,6 +329,9 @@ def compare(
     calibration: int | None = None,
     calibrate_costly: bool = False,
     workers: int | None = None,
+    engine: str | Engine = "local",
+    scheduler: str | None = None,
+    announce: Callable[[str], None] | None = None,
     progress: bool = False,
     on_step: StepCallback | None = None,
     na_values: NaValues = None,
@@ -365,8 +370,15 @@ def compare(
     calibrate_costly : bool, default=False
         Also calibrate back-ends that need a full fit per dataset (the sampler), on a few datasets.
     workers : int, optional
-        Worker processes for the calibration (default: the available cores); the numbers do not
-        depend on it.
+        Workers for the calibration (default: the available cores); the numbers do not depend on it.
+    engine : "local", "dask" or robustmod.engines.Engine, default="local"
+        Where the calibration's tasks run: this machine's processes, or a dask.distributed cluster
+        (``scheduler``, or else a LocalCluster on 127.0.0.1 of ``workers`` workers, started only for
+        a calibration and closed after it). An Engine object is used as it is and left open.
+    scheduler : str, optional
+        Address of a running Dask scheduler, e.g. ``"tcp://scheduler-host:8786"`` (dask engine only).
+    announce : callable, optional
+        Receives one line when a cluster is started (its dashboard address).
     progress : bool, default=False
         Show progress bars for long steps.
     on_step : callable, optional
@@ -418,6 +430,22 @@ def compare(
                                     or not MIN_DATASETS <= calibration <= MAX_DATASETS):
         raise option_error("calibration", f"a whole number of simulated datasets from {MIN_DATASETS} to "
                            f"{MAX_DATASETS:,}", calibration)
+    if not isinstance(engine, Engine):
+        check_engine_choice(engine, scheduler)
+    with ExitStack() as stack:  # a cluster is reached (or started) before the fitting, and closed at the end
+        eng = _open_engine(engine, scheduler, workers, announce, stack) if calibration is not None else None
+        if eng is not None and not isinstance(engine, Engine):
+            report_step(on_step, f"{eng.name} engine", started)
+            started = time.perf_counter()
+        return _run(frame, source, spec, ids, primary, options, calibration=calibration, engine=eng,
+                    workers=workers, calibrate_costly=calibrate_costly, progress=progress, on_step=on_step,
+                    started=started)
+
+
+def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str], primary: str,
+         options: dict[str, Any], *, calibration: int | None, engine: Engine | None, workers: int | None,
+         calibrate_costly: bool, progress: bool, on_step: StepCallback | None, started: float) -> Comparison:
+    """Design, every back-end, the diagnostics and the calibration: the work of :func:`compare`."""
     design = build_design(frame, spec)
     report_step(on_step, "design", started)
     results: dict[str, BackendResult] = {}
@@ -438,8 +466,19 @@ def compare(
     calib = None
     if calibration is not None:
         started = time.perf_counter()
-        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
-                          options=options, progress=progress)
+        calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly,
+                          workers=workers, engine=engine, options=options, progress=progress)
         report_step(on_step, f"calibration ({calibration} datasets)", started)
     warnings = tuple(design.warnings)
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)
+
+
+def _open_engine(engine: str | Engine, scheduler: str | None, workers: int | None,
+                 announce: Callable[[str], None] | None, stack: ExitStack) -> Engine | None:
+    """The calibration's engine: None for "local" (this machine's processes, used only when that pays);
+    a Dask engine opened here, closed by ``stack``; an Engine object as given (the caller closes it)."""
+    if isinstance(engine, Engine):
+        return engine
+    if check_engine_choice(engine, scheduler) == "local":
+        return None
+    return stack.enter_context(make_engine(engine, scheduler=scheduler, workers=workers, announce=announce))

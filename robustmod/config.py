@@ -25,6 +25,11 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
     [output]
     folder = "appendix"
     force = false
+
+    [engine]
+    name = "dask"                     # "local" (default) or "dask"
+    scheduler = "tcp://scheduler-host:8786" # a running Dask scheduler; left out: a local cluster on 127.0.0.1
+    workers = 4                       # local processes, or the size of that local cluster
 """
 from __future__ import annotations
 
@@ -52,14 +57,19 @@ TOP_KEYS: dict[str, str] = {
     "calibrate_costly": "true or false: also calibrate back-ends that need a full fit per dataset (default: false)",
     "options": "a table of tables, e.g. [options.wild] replications = 999",
     "output": "a table with 'folder' and 'force'",
+    "engine": "a table with 'name', 'scheduler' and 'workers'",
     "na_values": "a missing-value code or a list of them, e.g. \".\" or [\".\", \"-99\"]",
 }
 OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
                                "force": "true or false (default: false)"}
+ENGINE_KEYS: dict[str, str] = {"name": f"one of {', '.join(defaults.ENGINES)} (default: {defaults.ENGINE})",
+                               "scheduler": "a Dask scheduler address such as \"tcp://scheduler-host:8786\" (text)",
+                               "workers": "a whole number ≥ 1 (default: the available cores)"}
 
 
 def _bad(key: str, got: Any, where: Path) -> InputError:
-    need = TOP_KEYS.get(key) or OUTPUT_KEYS.get(key.rsplit(".", maxsplit=1)[-1], "valid")
+    last = key.rsplit(".", maxsplit=1)[-1]
+    need = TOP_KEYS.get(key) or (ENGINE_KEYS if key.startswith("engine.") else OUTPUT_KEYS).get(last, "valid")
     return InputError(f"In the config file '{where.name}', '{key}' must be {need}; got {got!r}.")
 
 
@@ -164,13 +174,37 @@ def _tables(raw: dict[str, Any], p: Path, base: Path, out: dict[str, Any]) -> No
             out["force"] = o["force"]
 
 
+def _engine(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """The [engine] table: name, scheduler, workers (as the keyword arguments of compare())."""
+    if "engine" not in raw:
+        return
+    e = raw["engine"]
+    if not isinstance(e, dict):
+        raise _bad("engine", e, p)
+    _unknown(list(e), ENGINE_KEYS, p, "engine")
+    if "name" in e:
+        if not isinstance(e["name"], str) or e["name"].strip().lower() not in defaults.ENGINES:
+            raise _bad("engine.name", e["name"], p)
+        out["engine"] = e["name"].strip().lower()
+    if "scheduler" in e:
+        if not isinstance(e["scheduler"], str) or not e["scheduler"].strip():
+            raise _bad("engine.scheduler", e["scheduler"], p)
+        out["scheduler"] = e["scheduler"].strip()
+        out.setdefault("engine", "dask")  # an address can only mean a Dask scheduler
+    if "workers" in e:
+        if isinstance(e["workers"], bool) or not isinstance(e["workers"], int) or e["workers"] < 1:
+            raise _bad("engine.workers", e["workers"], p)
+        out["workers"] = e["workers"]
+
+
 def load_config(path: str | Path) -> dict[str, Any]:
     """Read and check a TOML analysis file.
 
     Returns a dict with the keys of :data:`TOP_KEYS` that the file sets, normalised:
     ``data`` and ``out`` as absolute paths (relative ones resolved against the config
     file's folder), ``moderator`` as a list, ``options`` as {backend: {option: value}},
-    ``out`` and ``force`` lifted out of the ``[output]`` table. Unknown keys are an error.
+    ``out`` and ``force`` lifted out of the ``[output]`` table, ``engine``, ``scheduler`` and
+    ``workers`` out of the ``[engine]`` table. Unknown keys are an error.
     """
     p = Path(path).expanduser()
     raw = _read(p)
@@ -182,11 +216,12 @@ def load_config(path: str | Path) -> dict[str, Any]:
         out["data"] = str((base / Path(out["data"]).expanduser()).resolve())
     _lists(raw, p, out)
     _tables(raw, p, base, out)
+    _engine(raw, p, out)
     return out
 
 
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
-            "calibration", "calibrate_costly", "options", "na_values")
+            "calibration", "calibrate_costly", "options", "na_values", "engine", "scheduler", "workers")
     return {k: config[k] for k in keys if k in config}

@@ -20,6 +20,10 @@ BACKENDS: tuple[str, ...] = ("ols", "hc3", "wild", "wls", "bayes")
 #: Default appendix folder of ``robustmod appendix``.
 APPENDIX_FOLDER = "robustmod-appendix"
 
+#: Engines that run calibration tasks, and the one used when the user names none.
+ENGINES: tuple[str, ...] = ("local", "dask")
+ENGINE = "local"
+
 #: Default number of simulated datasets of ``--calibrate`` when no number is given.
 CALIBRATION_DATASETS = 1000
 

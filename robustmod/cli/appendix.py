@@ -14,6 +14,7 @@ from typing import Any
 from .. import defaults
 from ..errors import InputError
 from .options import (
+    Announce,
     add_model_options,
     add_prior_sensitivity,
     check_calibrate_costly,
@@ -94,6 +95,8 @@ def run(args: argparse.Namespace) -> int:
     if args.moderator is None and "moderator" not in kw:
         raise InputError("No moderator given; pass --moderator W or set 'moderators' in the --config file.")
     kw.update(given_on_command_line(args, kw))
+    if kw.get("engine") or kw.get("scheduler"):
+        kw["announce"] = Announce(not args.quiet)
     check_calibrate_costly(kw)
     set_prior_sensitivity(kw, args.prior_sensitivity, default=True, cli_settings=parse_settings(args.set))
     target = Path(out or defaults.APPENDIX_FOLDER)
@@ -123,7 +126,7 @@ def given_on_command_line(args: argparse.Namespace, base: dict[str, Any]) -> dic
             merged.setdefault(b, {}).update(o)
         out["options"] = merged
     for k in ("backends", "primary", "alpha", "seed", "calibration", "center", "calibrate_costly", "na_values",
-              "sep", "decimal", "sheet"):
+              "sep", "decimal", "sheet", "engine", "scheduler", "workers"):
         if k in kw:
             out[k] = kw[k]
     return out

@@ -121,6 +121,46 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
     p.add_argument("--quiet", action="store_true",
                    help="no progress bars or step timings on stderr (default: shown on a terminal)")
     add_reading_options(p)
+    add_engine_options(p)
+
+
+def add_engine_options(p: argparse.ArgumentParser) -> None:
+    """Where the calibration's tasks run: this machine, or a dask.distributed cluster."""
+    p.add_argument("--engine", choices=defaults.ENGINES, default=None,
+                   help="where calibration tasks run: 'local' (this machine's cores) or 'dask' (a Dask cluster: "
+                        "--scheduler, else a local cluster on 127.0.0.1 whose dashboard address is printed) "
+                        f"(default: {defaults.ENGINE})")
+    p.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                   help="address of a running Dask scheduler, e.g. tcp://scheduler-host:8786 (implies --engine dask; "
+                        "default: none)")
+    p.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="workers of the calibration (local processes, or the size of a local Dask cluster; "
+                        "default: the available cores)")
+
+
+def engine_kwargs(args: argparse.Namespace) -> dict[str, Any]:
+    """The engine options given on the command line, as keyword arguments of compare()."""
+    kw: dict[str, Any] = {}
+    for name in ("engine", "scheduler", "workers"):
+        if getattr(args, name, None) is not None:
+            kw[name] = getattr(args, name)
+    if kw.get("scheduler") and "engine" not in kw:
+        kw["engine"] = "dask"  # an address can only mean a Dask scheduler
+    if "engine" in kw or "scheduler" in kw:
+        kw["announce"] = Announce(not getattr(args, "quiet", False))
+    return kw
+
+
+class Announce:
+    """One line on stderr, e.g. the dashboard address of a cluster that was started."""
+
+    def __init__(self, show: bool) -> None:
+        self.show = show
+
+    def __call__(self, line: str) -> None:
+        if self.show:
+            sys.stderr.write(f"{PROG}: {line}\n")
+            sys.stderr.flush()
 
 
 def add_reading_options(p: argparse.ArgumentParser) -> None:
@@ -173,6 +213,7 @@ def compare_kwargs(args: argparse.Namespace) -> dict[str, Any]:
         kw["calibrate_costly"] = True
     kw["progress"] = not args.quiet and stderr_is_terminal()
     kw.update(reading_kwargs(args))
+    kw.update(engine_kwargs(args))
     return kw
 
 

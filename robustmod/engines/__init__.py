@@ -8,6 +8,6 @@ workers.
 """
 from __future__ import annotations
 
-from .base import ENGINES, Engine, make_engine
+from .base import ENGINES, Engine, check_engine_choice, make_engine
 
-__all__ = ["ENGINES", "Engine", "make_engine"]
+__all__ = ["ENGINES", "Engine", "check_engine_choice", "make_engine"]

@@ -6,10 +6,8 @@ from abc import ABC, abstractmethod
 from collections.abc import Callable, Sequence
 from typing import Any
 
+from ..defaults import ENGINES
 from ..errors import InputError, close_matches, option_error
-
-#: Engine names the user may choose.
-ENGINES = ("local", "dask")
 
 #: fn(state, *task) -> result; must be a module-level function (it is pickled).
 TaskFn = Callable[..., Any]
@@ -52,6 +50,17 @@ class Engine(ABC):
         self.close()
 
 
+def check_engine_choice(name: str, scheduler: str | None = None) -> str:
+    """The engine name, lower-cased; one-line errors for an unknown name or a scheduler without dask."""
+    key = str(name).strip().lower()
+    if key not in ENGINES:
+        raise InputError(f"The 'engine' option must be one of {', '.join(ENGINES)}; got {name!r}."
+                         + close_matches(str(name), ENGINES))
+    if key == "local" and scheduler:
+        raise InputError("The 'scheduler' option needs the dask engine; add --engine dask (API engine='dask').")
+    return key
+
+
 def make_engine(name: str = "local", *, scheduler: str | None = None, workers: int | None = None,
                 announce: Callable[[str], None] | None = None, connect_timeout: float = 10.0) -> Engine:
     """The engine ``name`` ("local" or "dask").
@@ -61,15 +70,10 @@ def make_engine(name: str = "local", *, scheduler: str | None = None, workers: i
     count (default: the available cores). ``announce`` receives one line such as the dashboard address;
     ``connect_timeout`` is how many seconds to wait for ``scheduler``.
     """
-    key = str(name).strip().lower()
-    if key not in ENGINES:
-        raise InputError(f"The 'engine' option must be one of {', '.join(ENGINES)}; got {name!r}."
-                         + close_matches(str(name), ENGINES))
+    key = check_engine_choice(name, scheduler)
     if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise option_error("workers", "a whole number ≥ 1 (or left out for the available cores)", workers)
     if key == "local":
-        if scheduler:
-            raise InputError("The 'scheduler' option needs the dask engine; add --engine dask (API engine='dask').")
         from .local import LocalEngine  # noqa: PLC0415
 
         return LocalEngine(workers)

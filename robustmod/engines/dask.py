@@ -43,8 +43,8 @@ class DaskEngine(Engine):
         try:
             from distributed import Client, LocalCluster  # noqa: PLC0415
         except ImportError:
-            raise InputError("The dask engine needs dask.distributed; install it with "
-                             "pip install 'robustmod[dask]' (or choose --engine local).") from None
+            raise InputError("The dask engine needs dask.distributed, a dependency of robustmod; reinstall robustmod "
+                             "(pip install robustmod) or install distributed, or choose --engine local.") from None
         self._cluster: Any = None
         self.scheduler = scheduler
         if scheduler:

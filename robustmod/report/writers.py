@@ -68,7 +68,7 @@ def results_dict(comparison: Comparison) -> tuple[dict[str, Any], dict[str, floa
         if isinstance(b.get("extras"), dict) and "seconds" in b["extras"]:
             timings[f"{bid} (steps)"] = b["extras"].pop("seconds")
     if isinstance(res.get("calibration"), dict):
-        for key in ("seconds", "workers"):  # how the run went, not what it found
+        for key in ("seconds", "workers", "engine"):  # how the run went, not what it found
             if key in res["calibration"]:
                 timings[f"calibration {key}"] = res["calibration"].pop(key)
     return res, timings
