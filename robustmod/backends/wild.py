@@ -701,9 +701,10 @@ class _progress:
     def __enter__(self) -> Any:
         if not self.show:
             return lambda _n: None
-        from rich.progress import Progress  # noqa: PLC0415  (only for long runs)
+        from rich.console import Console  # noqa: PLC0415  (only for long runs)
+        from rich.progress import Progress  # noqa: PLC0415
 
-        self._bar = Progress(transient=True)
+        self._bar = Progress(transient=True, console=Console(stderr=True))  # stdout may carry the JSON results
         self._bar.start()
         task = self._bar.add_task(self.label, total=self.total)
         return lambda n: self._bar.advance(task, n)
