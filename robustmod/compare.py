@@ -359,7 +359,10 @@ def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[s
     if not sign_consistent:
         s += " The back-ends disagree on the sign of the estimate."
     prim = usable.get(c.primary)
-    if prim is None:
+    if prim is None and c.primary in row_independent(c):
+        s += (f" The primary back-end ({c.primary}) assumes independent rows, which clustered rows are not, so no "
+              "verdict is drawn; a cluster-aware primary (e.g. cr2) would be needed.")
+    elif prim is None:
         s += f" The primary back-end ({c.primary}) gave no usable answer, so no verdict is drawn."
     elif survives:
         s += (f" The primary back-end ({c.primary}) and every back-end that allows non-constant variance agree: "

@@ -111,3 +111,11 @@ def test_unknown_cluster_column_is_one_line(team_csv, capsys):
     assert main(_check(team_csv, "--cluster", "teem", "--backends", "cr2")) == 2
     err = capsys.readouterr().err
     assert "teem" in err and "Traceback" not in err and len(err.strip().splitlines()) == 1
+
+
+def test_a_row_level_primary_on_clustered_rows_draws_no_verdict():
+    # Invented data (team demo): hc3 chosen as primary on clustered rows is reported but decides nothing.
+    res = robustmod.compare(team_data(), TEAM_FORMULA, TEAM_FOCAL, TEAM_MODERATOR, cluster=TEAM_CLUSTER,
+                            backends=["hc3", "cr2"], primary="hc3")
+    assert not res.summary["survives"] and res.summary["assumes_independent_rows"] == ["hc3"]
+    assert "(hc3) assumes independent rows" in res.summary["sentence"]
