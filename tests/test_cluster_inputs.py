@@ -105,6 +105,9 @@ def test_cluster_on_appendix_command_line(team_csv, tmp_path, capsys):
     results = json.loads((out / "results.json").read_text())
     assert results["model"]["cluster"]["n_clusters"] == 36
     assert results["summary"]["primary"] == "cr2"
+    for name in ("appendix.html", "appendix.md", "tables.tex"):  # every display carries the clusters table
+        assert "Clustered rows" in (out / name).read_text(encoding="utf-8"), name
+    assert "assumes independent rows" in (out / "appendix.md").read_text(encoding="utf-8")
 
 
 def test_unknown_cluster_column_is_one_line(team_csv, capsys):
