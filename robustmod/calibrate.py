@@ -14,6 +14,11 @@ comes from its own child of ``np.random.SeedSequence(seed)`` and each chunk's ba
 seed from another; a costly back-end gets one task per dataset with its own seed. Every
 task goes to an engine (local processes or a Dask cluster), so the numbers depend neither
 on the engine nor on how many workers run.
+
+With clustered rows (a design with cluster codes) the datasets keep the observed clusters:
+y* = X β̃ + τ̂ u_g + σ̃ᵢ zᵢ, u_g ~ N(0, 1) per cluster, where τ̂² is a moment estimate of the
+cluster-intercept variance from the residuals of β̃ and σ̃ᵢ² = σ̂ᵢ² − τ̂² keeps each row's total
+variance at the fitted variance function (see :func:`cluster_intercept_model`).
 """
 from __future__ import annotations
 
@@ -85,6 +90,26 @@ def simulation_model(design: Design, *, seed: int, options: Mapping[str, Any] | 
              "model was used instead."])
 
 
+def cluster_intercept_model(design: Design, beta: np.ndarray, sigma: np.ndarray) -> tuple[np.ndarray, float]:
+    """(σ̃, τ̂): within-cluster SD per row and the SD of the cluster intercepts, by the method of moments.
+
+    With ē_g the mean residual of cluster g (n_g rows) and s_g the mean of σ̂ᵢ² over its rows,
+    E[ē_g²] ≈ τ² + (s_g − τ²)/n_g when σ̂ᵢ² = τ² + σ̃ᵢ² is the total variance of a row, so
+    τ̂² = Σ_g (ē_g² − s_g/n_g) / Σ_g (1 − 1/n_g), kept in [0, ½·min σ̂ᵢ²] so that every
+    σ̃ᵢ² = σ̂ᵢ² − τ̂² stays positive (common practice, no source).
+    """
+    codes = design.clusters
+    if codes is None:
+        return sigma, 0.0
+    sizes = np.bincount(codes).astype(float)
+    resid = design.y - design.X @ beta
+    mean_e = np.bincount(codes, weights=resid) / sizes
+    s_g = np.bincount(codes, weights=sigma**2) / sizes
+    tau2 = float(np.sum(mean_e**2 - s_g / sizes) / np.sum(1.0 - 1.0 / sizes)) if np.any(sizes > 1) else 0.0
+    tau2 = min(max(tau2, 0.0), 0.5 * float(np.min(sigma**2)))
+    return np.sqrt(sigma**2 - tau2), math.sqrt(tau2)
+
+
 # ---- one chunk of datasets (an engine task: runs in this process or on a worker) ----
 def _noise(seqs: Sequence[np.random.SeedSequence], n: int) -> np.ndarray:
     """n × m standard normals, column j from its own dataset seed."""
@@ -114,11 +139,16 @@ def _run_chunk(state: dict[str, Any], ids: tuple[str, ...], start: int, stop: in
                chunk_seed: np.random.SeedSequence) -> dict[str, Any]:
     """Rejections of back-ends ``ids`` on datasets ``start``…``stop - 1``: one engine task."""
     design: Design = state["design"]
-    Z = _noise(state["noise_seqs"][start:stop], design.n_obs)
-    sig = state["sigma"][:, None]
-    Ys = {"null": state["mu0"][:, None] + sig * Z}
+    n = design.n_obs
+    codes = design.clusters
+    G = 0 if codes is None else int(codes.max()) + 1
+    Z = _noise(state["noise_seqs"][start:stop], n + G)  # per dataset: n row draws, then G cluster draws
+    E = state["sigma"][:, None] * Z[:n]
+    if codes is not None:
+        E += state["tau"] * Z[n:][codes]
+    Ys = {"null": state["mu0"][:, None] + E}
     if state["power"]:
-        Ys["power"] = state["mu1"][:, None] + sig * Z
+        Ys["power"] = state["mu1"][:, None] + E
     bseeds = chunk_seed.generate_state(2 * len(ids))
     out: dict[str, Any] = {}
     for b, bid in enumerate(ids):
@@ -364,6 +394,10 @@ def calibrate(
     n_datasets = int(n_datasets)
 
     beta, sigma, source, notes = simulation_model(design, seed=int(seed), options=options.get(SIMULATION_BACKEND))
+    sigma, tau = cluster_intercept_model(design, beta, sigma)
+    if design.clusters is not None:
+        source += (f"; cluster intercepts of SD {tau:.4g} (method of moments) on the observed clusters of "
+                   f"{design.cluster_name!r}, their sizes kept")
     beta0 = beta.copy()
     beta0[list(design.interaction_columns)] = 0.0
     noise_root, chunk_root = np.random.SeedSequence(int(seed)).spawn(2)
@@ -374,7 +408,7 @@ def calibrate(
     freq = [b for b in ids if b not in unavailable and b not in costly]
     costly_run = [b for b in costly if b not in unavailable]
     state = {"design": design, "options": run_opts, "mu0": design.X @ beta0, "mu1": design.X @ beta,
-             "sigma": sigma, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power),
+             "sigma": sigma, "tau": tau, "noise_seqs": noise_seqs, "alpha": float(alpha), "power": bool(power),
              "costly": tuple(costly_run)}
     bounds = [(s, min(s + CHUNK, n_datasets)) for s in range(0, n_datasets, CHUNK)]
     chunk_seqs = chunk_root.spawn(len(bounds))

@@ -77,3 +77,26 @@ def moderator_levels(frame: pd.DataFrame, codes: np.ndarray, names: tuple[str, .
         else:
             notes.append(f"The moderator {name!r} varies within clusters of {cluster!r} (a row-level moderator).")
     return tuple(notes)
+
+
+def cluster_sizes(codes: np.ndarray) -> tuple[int, float, int]:
+    """(smallest, median, largest) number of rows per cluster."""
+    sizes = np.bincount(codes)
+    return int(sizes.min()), float(np.median(sizes)), int(sizes.max())
+
+
+def residual_icc(resid: np.ndarray, codes: np.ndarray) -> float:
+    """One-way ANOVA intra-class correlation of residuals, ICC(1) (Shrout & Fleiss 1979; Donner 1986).
+
+    ICC = (MSB − MSW) / (MSB + (n₀ − 1)·MSW), MSB and MSW the between- and within-cluster mean
+    squares, n₀ = (n − Σ n_g²/n)/(G − 1) the effective cluster size; may be negative.
+    """
+    resid = np.asarray(resid, dtype=float)
+    sizes = np.bincount(codes).astype(float)
+    G, n = sizes.size, resid.size
+    means = np.bincount(codes, weights=resid) / sizes
+    msb = float(sizes @ (means - resid.mean()) ** 2) / (G - 1)
+    msw = float(((resid - means[codes]) ** 2).sum()) / (n - G) if n > G else float("nan")
+    n0 = (n - float(sizes @ sizes) / n) / (G - 1)
+    den = msb + (n0 - 1) * msw
+    return (msb - msw) / den if den > 0 else float("nan")

@@ -21,11 +21,12 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend
+from .backends.registry import CONSTANT_VARIANCE, check_ids, independent_rows_ids, make_backend
 from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
-from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
+from .clusters import FEW_CLUSTERS, cluster_sizes, residual_icc
+from .comparison_tables import backend_tables, cluster_table, product_term_table, regions_table, slopes_table
 from .data import NaValues, load_data
-from .defaults import ALPHA, BACKENDS, PRIMARY, SEED
+from .defaults import ALPHA, BACKENDS, CLUSTER_BACKENDS, CLUSTER_PRIMARY, PRIMARY, SEED
 from .design import Design, build_design
 from .diagnostics import VarianceDiagnostics, variance_diagnostics
 from .engines import Engine, check_engine_choice, make_engine
@@ -138,6 +139,12 @@ class Comparison:
     def summary(self) -> dict[str, Any]:
         return robustness_summary(self)
 
+    @cached_property
+    def clustering(self) -> dict[str, Any] | None:
+        """The clustering of the rows (None without a cluster column): the model's cluster entry plus the
+        residual ICC, the smallest Satterthwaite df among the reported contrasts and the few-cluster caution."""
+        return clustering_summary(self)
+
     def to_dict(self) -> dict[str, Any]:
         d = self.design
         out: dict[str, Any] = {
@@ -164,6 +171,9 @@ class Comparison:
             "warnings": list(self.warnings),
             "cautions": list(CAUTIONS),
         }
+        if self.clustering is not None:
+            out["model"]["cluster"] = {k: self.clustering[k] for k in CLUSTER_MODEL_KEYS}
+            out["clustering"] = jsonable(self.clustering)
         if self.calibration is not None:
             out["calibration"] = jsonable(self.calibration)
         out["tables"] = [jsonable(t.to_dict()) for t in self._tables]
@@ -180,6 +190,8 @@ class Comparison:
         out = [product_term_table(self), slopes_table(self)]
         if any(r.significance_region for r in self.results.values()):
             out.append(regions_table(self))
+        if self.clustering is not None:
+            out.append(cluster_table(self))
         out += self.diagnostics.tables()
         if self.calibration:
             out += self.calibration.tables()
@@ -228,9 +240,11 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
     """Which back-ends support the product term, sign agreement, shifts against the primary."""
     alpha = c.spec.alpha
     res = c.results
-    usable = {b: r for b, r in res.items() if r.available and r.reliable and r.interaction is not None}
+    rowwise = row_independent(c)
+    usable = {b: r for b, r in res.items() if r.available and r.reliable and r.interaction is not None
+              and b not in rowwise}
     inter = {b: r.interaction for b, r in usable.items() if r.interaction is not None}  # every usable result has one
-    unreliable = [b for b, r in res.items() if b not in usable]
+    unreliable = [b for b, r in res.items() if b not in usable and b not in rowwise]
     supported = [b for b in usable if inter[b]["supported"]]
     not_supported = [b for b in usable if b not in supported]
     ests = {b: inter[b]["estimate"] for b in usable if inter[b].get("estimate") is not None}
@@ -272,12 +286,62 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
     survives = bool(primary_supported and sign_consistent and robust_usable
                     and all(inter[b]["supported"] for b in robust_usable))
     sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
+    if rowwise:
+        said = [f"{b} ({'supports' if (res[b].interaction or {}).get('supported') else 'does not support'} it)"
+                for b in rowwise]
+        sentence = sentence.replace(" Agreement speaks", f" Not counted because they assume independent rows, which "
+                                    f"the clusters of {c.design.cluster_name!r} are not: {', '.join(said)}."
+                                    " Agreement speaks")
     return {
         "primary": c.primary, "supported_by": supported, "not_supported_by": not_supported, "unreliable": unreliable,
+        "assumes_independent_rows": rowwise,
         "sign_consistent": sign_consistent, "survives": survives, "primary_supported": primary_supported,
         "relative_change_of_estimate": rel_change, "relative_change_of_interval_width": width_change,
         "boundary_shift": boundary_shift, "alpha": alpha, "sentence": sentence,
     }
+
+
+#: Keys of the results contract's ``model.cluster`` entry.
+CLUSTER_MODEL_KEYS = ("column", "n_clusters", "size_min", "size_median", "size_max")
+
+
+def row_independent(c: Comparison) -> list[str]:
+    """Back-ends run on clustered rows that treat the rows as independent: registered as assuming
+    independent rows and their fit did not use the clusters (no ``n_clusters`` in its extras)."""
+    if c.design.clusters is None:
+        return []
+    ids = independent_rows_ids()
+    return [b for b, r in c.results.items() if b in ids and "n_clusters" not in r.extras]
+
+
+def _smallest_df(c: Comparison) -> dict[str, Any] | None:
+    """The smallest per-contrast (Satterthwaite) df among the product term and the reported slopes."""
+    best: dict[str, Any] | None = None
+    for b, r in c.results.items():
+        if not str(r.extras.get("df_rule", "")).startswith("Satterthwaite"):
+            continue
+        for point in [r.interaction or {}, *r.conditional_effects]:
+            df = point.get("df")
+            if df is not None and (best is None or df < best["df"]):
+                best = {"backend": b, "df": df}
+    return best
+
+
+def clustering_summary(c: Comparison) -> dict[str, Any] | None:
+    """Column, number and sizes of clusters, the ICC of the OLS residuals, the smallest df, the caution."""
+    d = c.design
+    if d.clusters is None:
+        return None
+    smallest, median, largest = cluster_sizes(d.clusters)
+    G = int(d.clusters.max()) + 1
+    Q, _ = d.qr
+    resid = d.y - Q @ (Q.T @ d.y)
+    caution = (f"Only {G} clusters: cluster-robust inference is unreliable with fewer than about {FEW_CLUSTERS} "
+               "clusters; prefer cr2 with its Satterthwaite df and the wild cluster bootstrap, and treat small "
+               "df (below about 4) as a warning sign (Pustejovsky & Tipton 2018)." if G < FEW_CLUSTERS else None)
+    return {"column": d.cluster_name, "n_clusters": G, "size_min": smallest, "size_median": median,
+            "size_max": largest, "residual_icc": num(residual_icc(resid, d.clusters)),
+            "smallest_df": _smallest_df(c), "few_clusters_caution": caution}
 
 
 def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[str], not_supported: list[str],
@@ -298,7 +362,10 @@ def _sentence(c: Comparison, usable: dict[str, BackendResult], supported: list[s
     if not sign_consistent:
         s += " The back-ends disagree on the sign of the estimate."
     prim = usable.get(c.primary)
-    if prim is None:
+    if prim is None and c.primary in row_independent(c):
+        s += (f" The primary back-end ({c.primary}) assumes independent rows, which clustered rows are not, so no "
+              "verdict is drawn; a cluster-aware primary (e.g. cr2) would be needed.")
+    elif prim is None:
         s += f" The primary back-end ({c.primary}) gave no usable answer, so no verdict is drawn."
     elif survives:
         s += (f" The primary back-end ({c.primary}) and every back-end that allows non-constant variance agree: "
@@ -319,7 +386,7 @@ def compare(
     moderator: str | Sequence[str],
     *,
     backends: Sequence[str] | None = None,
-    primary: str = PRIMARY,
+    primary: str | None = None,
     probe: Any = None,
     alpha: float = ALPHA,
     seed: int = SEED,
@@ -351,9 +418,11 @@ def compare(
         The focal predictor and one or two moderators.
     backends : list of str, optional
         Back-end ids (see ``robustmod.backends.available_ids()``); default
-        ``robustmod.defaults.BACKENDS``. The primary is always included.
-    primary : str, default=robustmod.defaults.PRIMARY
-        The back-end chosen *before* looking at the results.
+        ``robustmod.defaults.BACKENDS``, or ``robustmod.defaults.CLUSTER_BACKENDS`` with a cluster
+        column. The primary is always included.
+    primary : str, optional
+        The back-end chosen *before* looking at the results; default ``robustmod.defaults.PRIMARY``,
+        or ``robustmod.defaults.CLUSTER_PRIMARY`` with a cluster column.
     probe : "sd", "percentiles", list or dict, optional
         Probe values of the moderator(s); see :class:`ModelSpec`.
     alpha : float, default=robustmod.defaults.ALPHA
@@ -362,7 +431,9 @@ def compare(
     center : bool, default=False
         Mean-centre focal and moderators (coefficients then refer to the centred scale).
     cluster : str, optional
-        Column of cluster ids; the cluster-robust back-ends (cr0 … cr3) and the wild bootstrap use it.
+        Column of cluster ids; the cluster-robust back-ends (cr0 … cr3), the wild (cluster) bootstrap and
+        WLS (CR2) use it. Back-ends that assume independent rows (ols, hc0 … hc5) still run when asked
+        but never count as support in the summary.
     options : dict of dicts, optional
         Per back-end options, e.g. ``{"wild": {"replications": 999}}``.
     calibration : int, optional
@@ -418,8 +489,9 @@ def compare(
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
                      alpha=alpha, seed=seed, center=center, cluster=cluster)
-    ids = check_ids(list(backends) if backends is not None else list(BACKENDS))
-    (primary,) = check_ids([primary])
+    clustered = cluster is not None
+    ids = check_ids(list(backends) if backends is not None else list(CLUSTER_BACKENDS if clustered else BACKENDS))
+    (primary,) = check_ids([primary or (CLUSTER_PRIMARY if clustered else PRIMARY)])
     if primary not in ids:
         ids.insert(0, primary)
     options = dict(options or {})

@@ -45,10 +45,32 @@ def _uncertainty(r: BackendResult, point: Mapping[str, Any]) -> tuple[Any, Any, 
     return point.get("se"), NotApplicable("not a posterior"), point.get("p"), NotApplicable("not a posterior")
 
 
-def _supported(r: BackendResult) -> str:
+#: How a back-end that treats clustered rows as independent is labelled in every display.
+ROWWISE = "assumes independent rows"
+
+
+def _rowwise(c: Comparison) -> list[str]:
+    return list(c.summary.get("assumes_independent_rows") or [])
+
+
+def _label(c: Comparison, r: BackendResult) -> str:
+    return f"{r.label} [{ROWWISE}]" if r.id in _rowwise(c) else r.label
+
+
+def _rowwise_notes(c: Comparison) -> list[str]:
+    ids = _rowwise(c)
+    if not ids:
+        return []
+    return [f"{', '.join(ids)}: {ROWWISE}, which the clusters of {c.design.cluster_name!r} are not; shown, "
+            "never counted as support."]
+
+
+def _supported(c: Comparison, r: BackendResult) -> str:
     if not r.available:
         return "unavailable"
     text = "yes" if (r.interaction or {}).get("supported") else "no"
+    if r.id in _rowwise(c):
+        return text + f" (not counted: {ROWWISE})"
     return text if r.reliable else text + " (not counted: unreliable)"
 
 
@@ -62,21 +84,21 @@ def product_term_table(c: Comparison) -> Table:
         it = r.interaction or {}
         if not r.available:
             na = NotApplicable(r.reason or "unavailable")
-            cells: list[Any] = [bid, r.label, na, na, na, na, na, na, na]
+            cells: list[Any] = [bid, _label(c, r), na, na, na, na, na, na, na]
             cells += [na] * 4 if joint else []
-            rows.append(cells + [_supported(r)])
+            rows.append(cells + [_supported(c, r)])
             continue
         se, psd, p, pp = _uncertainty(r, it)
         if joint:
             jt = it.get("joint_test") or {}
             na = NotApplicable("a joint test of several product terms has no single estimate")
-            cells = [bid, r.label, na, na, na, na, na, p, pp, jt.get("method", ""), jt.get("statistic"),
+            cells = [bid, _label(c, r), na, na, na, na, na, p, pp, jt.get("method", ""), jt.get("statistic"),
                      jt.get("df_num"), jt.get("df_den") if jt.get("df_den") is not None else NotApplicable("χ² test")]
         else:
             ci = it.get("ci") or [None, None]
-            cells = [bid, r.label, it.get("estimate"), se, psd, ci[0], ci[1], p, pp]
+            cells = [bid, _label(c, r), it.get("estimate"), se, psd, ci[0], ci[1], p, pp]
             kinds.append(f"{bid}: {it.get('interval')}")
-        rows.append(cells + [_supported(r)])
+        rows.append(cells + [_supported(c, r)])
     cols = [Column("backend", "back-end", "code"), Column("label", "method", "text"),
             Column("estimate", "estimate", scale=_scale(c)), Column("se", "SE"), Column("posterior_sd", "posterior SD"),
             Column("ci_low", f"{lv} interval", pair="ci_high", level=level), Column("ci_high", "to", level=level),
@@ -91,6 +113,7 @@ def product_term_table(c: Comparison) -> Table:
               f"primary back-end {c.primary} (chosen before looking).")]
     if kinds:
         notes.append("Interval types: " + "; ".join(kinds) + ".")
+    notes += _rowwise_notes(c)
     unusable = {b for b in c.results if b in c.summary["unreliable"]}
     classes = {b: " ".join(x for x in ("primary" if b == c.primary else "", "unusable" if b in unusable else "") if x)
                for b in c.results}
@@ -120,7 +143,7 @@ def slopes_table(c: Comparison) -> Table:
             Column("within_observed", "within observed range", "flag")]
     title = f"Slope of {c.spec.focal} at chosen values of {' and '.join(mods)} ({lv} intervals)"
     notes = [(f"Slopes per unit of {c.spec.focal} on its raw scale, at moderator values on their raw scale; a "
-              "value outside the observed range is extrapolation.")]
+              "value outside the observed range is extrapolation."), *_rowwise_notes(c)]
     return make_table("slopes", title, cols, rows, notes=notes, source="compare", level=level,
                       scale="raw scale of the focal predictor and the moderators", meta={"field": "slope"})
 
@@ -143,9 +166,29 @@ def regions_table(c: Comparison) -> Table:
             *[Column(f"boundary_{i + 1}", f"boundary {i + 1}", scale=f"raw scale of {moderator}") for i in range(width)],
             Column("share_of_observed_significant", "share of observed rows in the region")]
     notes = [(f"Pointwise Johnson–Neyman region at {lv} along {moderator} (raw scale); boundaries outside the "
-              "observed range are extrapolation.")]
+              "observed range are extrapolation."), *_rowwise_notes(c)]
     return make_table("regions", f"Significance region of the slope of {c.spec.focal} along {moderator}", cols, rows,
                       notes=notes, source="compare", level=level, scale=f"raw scale of {moderator}")
+
+
+def cluster_table(c: Comparison) -> Table:
+    """The clustering of the rows: clusters, their sizes, the residual ICC, the smallest Satterthwaite df."""
+    info = c.clustering or {}
+    low = info.get("smallest_df")
+    cells = [info.get("column"), info.get("n_clusters"), info.get("size_min"), info.get("size_median"),
+             info.get("size_max"), info.get("residual_icc"),
+             NotApplicable("no back-end with Satterthwaite df was run") if low is None else low["df"],
+             NotApplicable("no back-end with Satterthwaite df was run") if low is None else low["backend"]]
+    cols = [Column("column", "cluster column", "code"), Column("n_clusters", "clusters", "integer"),
+            Column("size_min", "rows per cluster, min", "integer"), Column("size_median", "median"),
+            Column("size_max", "max", "integer"), Column("residual_icc", "residual ICC"),
+            Column("smallest_df", "smallest Satterthwaite df", "df"), Column("smallest_df_backend", "of", "code")]
+    notes = ["Residual ICC: one-way ANOVA intra-class correlation of the OLS residuals, ICC(1) (Shrout & Fleiss "
+             "1979). Smallest df: over the product term and the reported slopes."]
+    if info.get("few_clusters_caution"):
+        notes.append(info["few_clusters_caution"])
+    return make_table("clusters", f"Clustered rows ({info.get('column')})", cols, [cells], notes=notes,
+                      source="compare")
 
 
 # ---- tables a back-end contributes --------------------------------------------------------------

@@ -30,6 +30,8 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
     name = "dask"                     # "local" (default) or "dask"
     scheduler = "tcp://scheduler-host:8786" # a running Dask scheduler; left out: a local cluster on 127.0.0.1
     workers = 4                       # local processes, or the size of that local cluster
+
+Clustered rows take ``cluster = "COLUMN"`` (the column of cluster ids), as ``--cluster`` does.
 """
 from __future__ import annotations
 
@@ -48,8 +50,10 @@ TOP_KEYS: dict[str, str] = {
     "moderators": "a list of one or two column names",
     "moderator": "a column name or a list of one or two (same as 'moderators')",
     "probe": "a table {moderator = [values] or \"sd\"} or one rule such as \"sd\"",
-    "backends": f"a list of back-end ids (default: {', '.join(defaults.BACKENDS)})",
-    "primary": f"a back-end id (text; default: {defaults.PRIMARY})",
+    "backends": f"a list of back-end ids (default: {', '.join(defaults.BACKENDS)}; with a cluster "
+                f"{', '.join(defaults.CLUSTER_BACKENDS)})",
+    "primary": f"a back-end id (text; default: {defaults.PRIMARY}, or {defaults.CLUSTER_PRIMARY} with a cluster)",
+    "cluster": "a column name of cluster ids (text; default: none, rows are independent)",
     "alpha": f"a number in (0, 1) (default: {defaults.ALPHA})",
     "seed": f"a whole number (default: {defaults.SEED})",
     "center": "true or false (default: false)",
@@ -94,7 +98,7 @@ def _read(p: Path) -> dict[str, Any]:
 
 def _scalars(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
     """Text, numbers and switches: data, formula, focal, primary, alpha, seed, calibration, center, ..."""
-    for key in ("data", "formula", "focal", "primary"):
+    for key in ("data", "formula", "focal", "primary", "cluster"):
         if key in raw:
             if not isinstance(raw[key], str) or not raw[key].strip():
                 raise _bad(key, raw[key], p)
@@ -222,6 +226,6 @@ def load_config(path: str | Path) -> dict[str, Any]:
 
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
-    keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "alpha", "seed", "center",
+    keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "cluster", "alpha", "seed", "center",
             "calibration", "calibrate_costly", "options", "na_values", "engine", "scheduler", "workers")
     return {k: config[k] for k in keys if k in config}

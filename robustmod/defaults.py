@@ -39,3 +39,11 @@ LINEARITY_BINS = 3
 
 #: Points of the moderator grid on which regions and curves are evaluated.
 CURVE_POINTS = 101
+
+#: Back-ends run when the user names none and the rows are clustered (a cluster column is given):
+#: the cluster-robust CR2, the wild cluster bootstrap, WLS with CR2 and the Bayesian model with
+#: cluster intercepts; classical OLS stays as the naive reference.
+CLUSTER_BACKENDS: tuple[str, ...] = ("ols", "cr2", "wild", "wls", "bayes")
+
+#: The primary back-end when the rows are clustered and the user names none.
+CLUSTER_PRIMARY = "cr2"

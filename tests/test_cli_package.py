@@ -92,7 +92,7 @@ def test_the_api_takes_the_same_defaults() -> None:
     params = inspect.signature(compare_module().compare).parameters
     assert params["seed"].default == defaults.SEED
     assert params["alpha"].default == defaults.ALPHA
-    assert params["primary"].default == defaults.PRIMARY
+    assert params["primary"].default is None  # defaults.PRIMARY, or defaults.CLUSTER_PRIMARY with a cluster column
     assert params["calibrate_costly"].default is False
 
 

@@ -285,8 +285,7 @@ def test_cluster_ids_of_mixed_kinds_name_clusters():
 def test_weighted_cr0_matches_r():
     # Source: R clubSandwich vcovCR(type = "CR0") on lm(..., weights = w), w = 1 / (1 + exper), whole panel
     # (stored reference): cluster_fit on the QR of W^(1/2)X and W^(1/2)y gives the weighted sandwich.
-    # (The weighted CR2 is not checked: clubSandwich's adjustment for weighted fits differs from the
-    # transformed-model one that cluster_fit applies; see the note in cluster_reference.R.)
+    # (The weighted CR2 is weighted_cr2_fit's, checked in the next test.)
     from robustmod.backends.cluster import cluster_fit
     from robustmod.design import thin_qr
 
@@ -298,3 +297,56 @@ def test_weighted_cr0_matches_r():
     np.testing.assert_allclose(fit.params, _reference("all_weighted", "estimate").reindex(names), rtol=1e-9)
     np.testing.assert_allclose(fit.coefficients(0.05).se, _reference("all_weighted", "se_CR0").reindex(names),
                                rtol=1e-8)
+
+
+def test_weighted_cr2_matches_r():
+    # Source: R clubSandwich vcovCR(type = "CR2", target = 1 / w, inverse_var = TRUE) and coef_test(...,
+    # test = "Satterthwaite") on lm(..., weights = w), w = 1 / (1 + exper), whole panel (stored reference).
+    # The SE agree to round-off; our Satterthwaite df (working covariance W⁻¹) are within 3 % of R's.
+    from robustmod.backends.cluster import weighted_cr2_fit
+    from robustmod.design import thin_qr
+
+    design = build_design(_panel("all"), ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
+    w = 1.0 / (1.0 + design.data.frame["exper"].to_numpy(dtype=float))
+    Q, R = thin_qr(design.X * np.sqrt(w)[:, None])
+    fit = weighted_cr2_fit(Q, R, design.y * np.sqrt(w), w, design.clusters, design.term_names,
+                           cluster_name="nr", label="weighted CR2", backend_id="wls")
+    names = list(fit.term_names)
+    est = fit.coefficients(0.05)
+    np.testing.assert_allclose(fit.params, _reference("all_weighted", "estimate").reindex(names), rtol=1e-9)
+    np.testing.assert_allclose(est.se, _reference("all_weighted", "se_CR2").reindex(names), rtol=1e-8)
+    np.testing.assert_allclose(fit.row_df(np.eye(len(names))), _reference("all_weighted", "CR2_satt_df").reindex(names),
+                               rtol=0.03)
+
+
+def test_weighted_cr2_with_equal_weights_is_cr2():
+    # Closed form: with constant weights the weighted adjustment reduces to (I − H_gg)^(−1/2) (Bell & McCaffrey 2002).
+    from robustmod.backends.cluster import weighted_cr2_fit
+
+    design, plain = _fit("first40", "cr2")
+    Q, R = design.qr
+    w = np.full(design.n_obs, 2.5)
+    fit = weighted_cr2_fit(Q, R * np.sqrt(2.5), design.y * np.sqrt(2.5), w, design.clusters,
+                           design.term_names, cluster_name="nr", label="weighted CR2", backend_id="wls")
+    L = np.eye(len(design.term_names))
+    np.testing.assert_allclose(fit.estimate(L, 0.05).se, plain.estimate(L, 0.05).se, rtol=1e-8)
+    np.testing.assert_allclose(fit.row_df(L), plain.row_df(L), rtol=1e-8)
+
+
+def test_wls_with_clusters_uses_weighted_cr2_and_its_batched_decisions_agree():
+    # Invented data (team demo): the wls back-end on clustered rows reports CR2 on its weighted fit, and
+    # reject_many gives the single-fit decision (common practice, no source: batched = single fits).
+    from robustmod.backends.wls import WLSBackend
+    from robustmod.demo import TEAM_CLUSTER, TEAM_FOCAL, TEAM_FORMULA, TEAM_MODERATOR, team_data
+
+    data = team_data()
+    design = build_design(data, ModelSpec(TEAM_FORMULA, TEAM_FOCAL, (TEAM_MODERATOR,), cluster=TEAM_CLUSTER))
+    fit = WLSBackend().fit(design, seed=0)
+    assert fit.label.endswith("+ CR2") and fit.extras["n_clusters"] == 36
+    assert {t.key for t in fit.report_tables()} >= {"wls.clusters", "wls.variance_model"}
+    L = design.interaction_rows()
+    single = bool(fit.estimate(L, 0.05).p[0] < 0.05)
+    rng = np.random.default_rng(5)
+    Y = np.column_stack([design.y, design.y + rng.normal(0, 1, design.n_obs)])
+    batched = WLSBackend().reject_many(design, Y, 0.05)
+    assert batched[0] == single and batched.shape == (2,)

@@ -42,7 +42,7 @@ if TYPE_CHECKING:  # pragma: no cover
 RHAT_MAX = 1.01
 ESS_MIN = 400
 #: Prior SDs on the standardised scale, multiplied by ``prior_scale`` (see docs/method-bayes.md).
-PRIOR_SD = {"intercept": 1.0, "slope": 2.5, "log_sigma_intercept": 1.0, "log_sigma_slope": 1.0}
+PRIOR_SD = {"intercept": 1.0, "slope": 2.5, "log_sigma_intercept": 1.0, "log_sigma_slope": 1.0, "cluster_sd": 1.0}
 #: ν ~ Gamma(2, 0.1) for the Student-t likelihood (Juárez & Steel 2010).
 NU_PRIOR = (2.0, 0.1)
 #: σ² ~ Inverse-Gamma(a, b) in the conjugate constant-variance check model (standardised scale).
@@ -204,8 +204,12 @@ class CompiledModel:
 
 def build_model(  # noqa: PLR0912, PLR0915 - one PyMC model block per likelihood and model; a split is open work
         Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
-        model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
+        model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9,
+        codes: np.ndarray | None = None) -> CompiledModel:
     """PyMC model on standardised data; column 0 of Xs and Zs is the intercept (all ones).
+
+    With cluster ``codes`` (0 … G − 1 per row) the location gets cluster intercepts, non-centred:
+    μᵢ += τ·u_g, u_g ~ N(0, 1), τ ~ half-normal(1) on the standardised scale (× prior_scale).
 
     Priors (standardised scale, × prior_scale): b̃₀ ~ N(0, 1), b̃ⱼ ~ N(0, 2.5), g̃₀ ~ N(0, 1),
     g̃ⱼ ~ N(0, 1), ν ~ Gamma(2, 0.1). ``model="constant-conjugate"`` instead uses σ constant,
@@ -217,7 +221,7 @@ def build_model(  # noqa: PLR0912, PLR0915 - one PyMC model block per likelihood
 
     n, k = Xs.shape
     qr = bool(qr and k > 1)
-    values = design_data(Xs, ys, Zs, qr=qr)
+    values = design_data(Xs, ys, Zs, qr=qr, codes=codes)
     with pm.Model() as m:
         prior_scale = pm.Data("prior_scale", 1.0)
         variance_on = pm.Data("variance_on", 1.0)
@@ -242,6 +246,10 @@ def build_model(  # noqa: PLR0912, PLR0915 - one PyMC model block per likelihood
             mu = b0 + pt.dot(x_cols, b)
         else:
             mu = b0 + pt.zeros(n)
+        if codes is not None:
+            tau = pm.HalfNormal("cluster_sd", PRIOR_SD["cluster_sd"] * prior_scale)
+            u = pm.Normal("cluster_z", 0.0, 1.0, shape=int(codes.max()) + 1)
+            mu = mu + tau * u[pm.Data("cluster_codes", values["cluster_codes"])]
         if model == "constant-conjugate":
             sigma = unit
             ls_names: tuple[str, ...] = ("sigma2",)
@@ -269,7 +277,8 @@ def build_model(  # noqa: PLR0912, PLR0915 - one PyMC model block per likelihood
     return CompiledModel(m, qr, free, mean_names, ls_names, data=values, target_accept=float(target_accept))
 
 
-def design_data(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, qr: bool) -> dict[str, np.ndarray]:
+def design_data(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, qr: bool,
+                codes: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Values of the model's shared variables for one dataset (standardised; column 0 the intercept).
 
     With ``qr``: X̃₁ = Q R (thin QR, diagonal of R positive), Q* = Q √(n−1), R* = R / √(n−1),
@@ -277,6 +286,8 @@ def design_data(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, qr: bool) -> 
     """
     n, k = Xs.shape
     out = {"y_obs": np.asarray(ys, dtype=float), "z_cols": np.ascontiguousarray(Zs[:, 1:], dtype=float)}
+    if codes is not None:
+        out["cluster_codes"] = np.asarray(codes, dtype=np.int64)
     if k == 1:
         return out
     X1 = np.asarray(Xs[:, 1:], dtype=float)
@@ -297,17 +308,20 @@ MODEL_CACHE_SIZE = 4
 
 
 def compiled_model(Xs: np.ndarray, ys: np.ndarray, Zs: np.ndarray, *, likelihood: str = "normal",
-                   model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9) -> CompiledModel:
+                   model: str = "location-scale", qr: bool = USE_QR, target_accept: float = 0.9,
+                   codes: np.ndarray | None = None) -> CompiledModel:
     """``build_model``, reusing a model compiled for an earlier dataset of the same shape and settings:
     only the shared variables change (PyMC's NUTS step and nutpie's compiled functions are kept)."""
-    key = (Xs.shape, Zs.shape[1], likelihood, model, bool(qr and Xs.shape[1] > 1), float(target_accept))
+    n_clusters = 0 if codes is None else int(codes.max()) + 1
+    key = (Xs.shape, Zs.shape[1], likelihood, model, bool(qr and Xs.shape[1] > 1), float(target_accept), n_clusters)
     hit = _MODEL_CACHE.pop(key, None)
     if hit is None:
-        hit = build_model(Xs, ys, Zs, likelihood=likelihood, model=model, qr=qr, target_accept=target_accept)
+        hit = build_model(Xs, ys, Zs, likelihood=likelihood, model=model, qr=qr, target_accept=target_accept,
+                          codes=codes)
     _MODEL_CACHE[key] = hit  # most recently used last
     while len(_MODEL_CACHE) > MODEL_CACHE_SIZE:
         _MODEL_CACHE.pop(next(iter(_MODEL_CACHE)))
-    values = design_data(Xs, ys, Zs, qr=hit.qr)
+    values = design_data(Xs, ys, Zs, qr=hit.qr, codes=codes)
     # The copy shares the compiled parts but carries this dataset's values.
     return replace(hit, data={name: values[name] for name in hit.data})
 
@@ -466,11 +480,31 @@ class BayesFit(PosteriorFit):
         notes = [(f"Reliable means R-hat at most {th.get('rhat_max', RHAT_MAX)}, bulk and tail ESS at least "
                   f"{th.get('ess_min', ESS_MIN)} and no divergent transitions (Vehtari et al. 2021).")]
         tables.append(one_row_table(f"{src}.convergence", "Convergence of the sampler", src, conv, notes))
+        if isinstance(ex.get("cluster_intercepts"), Mapping):
+            tables.append(_cluster_table(ex, src))
         if isinstance(ex.get("loo"), Mapping):
             tables.append(_loo_table(ex["loo"], src))
         if isinstance(ex.get("prior_sensitivity"), Mapping):
             tables.append(_sensitivity_table(ex["prior_sensitivity"], src))
         return tuple(tables)
+
+
+def _cluster_table(ex: Mapping[str, Any], src: str) -> Table:
+    """Posterior of the cluster-intercept SD and of the residual-scale ICC, from ``extras['cluster_intercepts']``."""
+    from ..tables import Column, make_table  # noqa: PLC0415
+
+    ci = ex["cluster_intercepts"]
+    rows = [(label, ci[key]["mean"], ci[key]["sd"], ci[key]["ci"][0], ci[key]["ci"][1])
+            for key, label in (("intercept_sd", "SD of the cluster intercepts"),
+                               ("icc", "intra-class correlation (residual scale)"))]
+    level = ci["icc"]["level"]
+    cols = [Column("quantity", "Quantity", "text"), Column("mean", "Posterior mean"), Column("sd", "Posterior SD"),
+            Column("ci_low", f"{100 * level:g}% interval", pair="ci_high", level=level),
+            Column("ci_high", "to", level=level)]
+    notes = [f"{ex.get('n_clusters')} clusters of {ex.get('cluster')!r}; ICC = τ² / (τ² + mean σᵢ²) per draw, "
+             "τ the intercept SD and σᵢ each row's residual SD; the intercepts are non-centred with a "
+             "half-normal prior on τ."]
+    return make_table(f"{src}.clusters", "Cluster intercepts", cols, rows, notes=notes, source=src, level=level)
 
 
 def _loo_table(loo: Mapping[str, Any], src: str) -> Table:
@@ -604,7 +638,9 @@ class BayesBackend(Backend):
         Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
         cores = self.cores or min(self.chains, os.cpu_count() or 1)
         t0 = time.perf_counter()
-        cm = compiled_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept)
+        codes = design.clusters if self.model == "location-scale" else None
+        cm = compiled_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept,
+                            codes=codes)
         t_build = time.perf_counter() - t0
         settings = {"draws": self.draws, "tune": self.tune, "chains": self.chains, "cores": cores,
                     "target_accept": self.target_accept, "likelihood": self.likelihood, "model": self.model,
@@ -634,11 +670,13 @@ class BayesBackend(Backend):
         idata.posterior["beta"] = (("chain", "draw", "term"), beta.reshape(*shape, k))
         idata.posterior["gamma"] = (("chain", "draw", "variance_term"), gamma.reshape(*shape, -1))
         idata.posterior = idata.posterior.assign_coords(term=list(design.term_names), variance_term=list(gamma_names))
-        ll = pointwise_loglik(y, X, Zu, beta, gamma, nu)
+        offset = cluster_offsets(idata, codes, y_scale)
+        ll = pointwise_loglik(y, X, Zu, beta, gamma, nu, offset)
         _add_loglik(idata, ll.reshape(*shape, n))
 
         warnings: list[str] = []
-        diag = convergence(idata, ["beta", "gamma"] + (["nu"] if nu is not None else []))
+        diag = convergence(idata, ["beta", "gamma"] + (["nu"] if nu is not None else [])
+                           + (["cluster_sd"] if codes is not None else []))
         reliable = True
         if diag["max_rhat"] is None or diag["max_rhat"] > RHAT_MAX:
             shown = "undefined" if diag["max_rhat"] is None else f"up to {diag['max_rhat']:.3f}"
@@ -665,6 +703,8 @@ class BayesBackend(Backend):
         }
         if nu is not None:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
+        if codes is not None:
+            extras.update(cluster_extras(idata, y_scale, sig, design.cluster_name, int(codes.max()) + 1))
 
         # Only PyMC's refits start from the first fit's adaptation; the others tune afresh.
         aux: dict[str, Any] = {"draws": min(self.draws, AUX_DRAWS),
@@ -680,13 +720,15 @@ class BayesBackend(Backend):
             gamma_c = np.log(y_scale) + g0_c
             nu_c = _stack(idata_c, ("nu",))[:, 0] if nu is not None else None
             shape_c = (idata_c.posterior.sizes["chain"], idata_c.posterior.sizes["draw"])
-            ll_c = pointwise_loglik(y, X, np.ones((n, 1)), beta_c, gamma_c, nu_c)
+            offset_c = cluster_offsets(idata_c, codes, y_scale)
+            ll_c = pointwise_loglik(y, X, np.ones((n, 1)), beta_c, gamma_c, nu_c, offset_c)
             _add_loglik(idata_c, ll_c.reshape(*shape_c, n))
             extras["loo"] = loo_compare(az, idata, idata_c)
             extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, np.ones((n, 1)), beta_c,
-                                                      gamma_c, nu_c, seed)
+                                                      gamma_c, nu_c, seed, offsets=(offset, offset_c))
         else:
-            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, None, None, None, None, seed)
+            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, None, None, None, None, seed,
+                                                      offsets=(offset, None))
         for w in extras.get("loo", {}).get("warnings", []):
             warnings.append(w)
         if self.prior_sensitivity:
@@ -705,7 +747,8 @@ class BayesBackend(Backend):
                              "refits": [round(s, 3) for s in refit_seconds],
                              "total": round(time.perf_counter() - t_start, 3)}
         extras["n_draws"] = S
-        return BayesFit(self.id, self.label, design.term_names, beta, idata=idata, gamma_draws=gamma,
+        label = self.label + (" + cluster intercepts" if codes is not None else "")
+        return BayesFit(self.id, label, design.term_names, beta, idata=idata, gamma_draws=gamma,
                         gamma_names=gamma_names, sigma_hat=sigma_hat, warnings=tuple(warnings), reliable=reliable,
                         extras=extras, se_label="posterior SD")
 
@@ -731,10 +774,12 @@ class BayesBackend(Backend):
 # Model checks (numpy, from the draws)
 # ---------------------------------------------------------------------------------------
 def pointwise_loglik(y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
-                     nu: np.ndarray | None) -> np.ndarray:
-    """log p(yᵢ | θ_s) as an S × n matrix, normal or Student-t with scale σᵢ = exp(zᵢᵀγ)."""
+                     nu: np.ndarray | None, offset: np.ndarray | None = None) -> np.ndarray:
+    """log p(yᵢ | θ_s) as an S × n matrix, normal or Student-t with scale σᵢ = exp(zᵢᵀγ); ``offset``
+    (S × n, the cluster intercepts of each draw) is added to the location."""
     log_sigma = gamma @ Z.T  # S × n
-    r = (y[None, :] - beta @ X.T) * np.exp(-log_sigma)
+    mu = beta @ X.T if offset is None else beta @ X.T + offset
+    r = (y[None, :] - mu) * np.exp(-log_sigma)
     if nu is None:
         return -0.5 * np.log(2 * np.pi) - log_sigma - 0.5 * r * r
     v = nu[:, None]
@@ -775,8 +820,10 @@ def loo_compare(az: Any, idata_h: Any, idata_c: Any) -> dict[str, Any]:
 
 def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarray, gamma: np.ndarray,
                  nu: np.ndarray | None, Zc: np.ndarray | None, beta_c: np.ndarray | None,
-                 gamma_c: np.ndarray | None, nu_c: np.ndarray | None, seed: int) -> dict[str, Any] | None:
-    """Posterior predictive check of SD(y) within moderator bins: observed vs the 95% predictive interval."""
+                 gamma_c: np.ndarray | None, nu_c: np.ndarray | None, seed: int,
+                 offsets: tuple[np.ndarray | None, np.ndarray | None] = (None, None)) -> dict[str, Any] | None:
+    """Posterior predictive check of SD(y) within moderator bins: observed vs the 95% predictive interval
+    (replicates given each draw's cluster intercepts when ``offsets`` holds them)."""
     mod = next(iter(design.moderators))
     info = design.moderators[mod]
     raw = design.data.frame[mod].to_numpy()
@@ -799,9 +846,10 @@ def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, be
         v = ((Y * Y) @ onehot - counts * m * m) / np.maximum(counts - 1, 1)
         return np.sqrt(np.maximum(v, 0.0))
 
-    def replicate(Zm: np.ndarray, b: np.ndarray, g: np.ndarray, v: np.ndarray | None) -> np.ndarray:
+    def replicate(Zm: np.ndarray, b: np.ndarray, g: np.ndarray, v: np.ndarray | None,
+                  off: np.ndarray | None) -> np.ndarray:
         idx = rng.choice(b.shape[0], size=min(PPC_DRAWS, b.shape[0]), replace=False)
-        mu = b[idx] @ X.T
+        mu = b[idx] @ X.T if off is None else b[idx] @ X.T + off[idx]
         sd = np.exp(g[idx] @ Zm.T)
         eps = rng.standard_normal(mu.shape) if v is None else rng.standard_t(v[idx][:, None], size=mu.shape)
         return bin_sd(mu + sd * eps)
@@ -810,17 +858,36 @@ def spread_check(design: Design, y: np.ndarray, X: np.ndarray, Z: np.ndarray, be
     out: dict[str, Any] = {"moderator": mod, "bins": [lab for lab, k in zip(labels, keep, strict=False) if k],
                            "n_per_bin": counts[keep].astype(int).tolist(),
                            "observed_sd": observed[keep].tolist(), "level": 0.95}
-    models: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]] = [("heteroscedastic", Z, beta, gamma, nu)]
+    models: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray | None, np.ndarray | None]] = [
+        ("heteroscedastic", Z, beta, gamma, nu, offsets[0])]
     if Zc is not None:
         assert beta_c is not None and gamma_c is not None  # the constant-variance fit comes with its Z
-        models.append(("constant_variance", Zc, beta_c, gamma_c, nu_c))
-    for key, Zm, b, g, v in models:
-        rep = replicate(Zm, b, g, v)[:, keep]
+        models.append(("constant_variance", Zc, beta_c, gamma_c, nu_c, offsets[1]))
+    for key, Zm, b, g, v, off in models:
+        rep = replicate(Zm, b, g, v, off)[:, keep]
         lo, hi = np.quantile(rep, [0.025, 0.975], axis=0)
         outside = (observed[keep] < lo) | (observed[keep] > hi)
         out[key] = {"lower": lo.tolist(), "upper": hi.tolist(), "bins_outside": int(outside.sum()),
                     "tail_share": ((rep >= observed[keep]).mean(axis=0)).tolist()}
     return out
+
+
+def cluster_offsets(idata: Any, codes: np.ndarray | None, y_scale: float) -> np.ndarray | None:
+    """Each draw's cluster intercept of each row on the user's scale, τ·u_g·SD(y) (S × n), or None."""
+    if codes is None:
+        return None
+    tau = _stack(idata, ("cluster_sd",))[:, 0]
+    return (_stack(idata, ("cluster_z",)) * (tau * y_scale)[:, None])[:, codes]
+
+
+def cluster_extras(idata: Any, y_scale: float, sig: np.ndarray, column: str | None, n_clusters: int) -> dict[str, Any]:
+    """The cluster-intercept SD τ on the user's scale and the intra-class correlation on the residual
+    scale, ICC = τ² / (τ² + mean σᵢ²) per draw (σᵢ the draw's residual SD of row i), as summaries."""
+    tau = _stack(idata, ("cluster_sd",))[:, 0] * y_scale
+    icc = tau**2 / (tau**2 + (sig**2).mean(axis=0))
+    return {"n_clusters": n_clusters, "cluster": column,
+            "cluster_intercepts": {"intercept_sd": _summaries(tau[:, None], ("sd",))["sd"],
+                                   "icc": _summaries(icc[:, None], ("icc",))["icc"]}}
 
 
 def convergence(idata: Any, names: Sequence[str]) -> dict[str, Any]:

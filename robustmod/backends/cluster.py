@@ -191,7 +191,7 @@ class ClusterFit(Fit):
         sizes = self.extras.get("cluster_sizes", (None, None, None))
         rows = [("cluster column", str(self.extras.get("cluster"))), ("clusters G", str(self.n_clusters)),
                 ("rows per cluster (min, median, max)", ", ".join(f"{v:g}" for v in sizes if v is not None)),
-                ("residual adjustment", ADJUSTMENTS[self.backend_id]),
+                ("residual adjustment", str(self.extras.get("adjustment", ADJUSTMENTS.get(self.backend_id)))),
                 ("degrees of freedom", str(self.extras.get("df_rule")))]
         return (make_table(f"{self.backend_id}.clusters", f"Clustering used by {self.label}",
                            [Column("setting", "Setting", "text"), Column("value", "Value", "text")], rows,
@@ -314,7 +314,7 @@ def cluster_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, codes: n
 
     For a weighted fit pass the QR of W^(1/2)X and W^(1/2)y: CR0/CR1 are then the weighted
     sandwich, and CR2/CR3 adjust the residuals of the transformed model (identity working model
-    there). R's clubSandwich adjusts weighted fits differently; its weighted CR2 is not reproduced.
+    there). For CR2 with the working covariance W⁻¹ (as R's clubSandwich) use :func:`weighted_cr2_fit`.
     """
     n, k = Q.shape
     G = int(codes.max()) + 1
@@ -342,3 +342,79 @@ def cluster_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, codes: n
     reliable = not (kind == "cr3" and warnings)
     return ClusterFit(backend_id or kind, label or LABELS[kind], term_names, beta, 0.5 * (cov + cov.T), R, G,
                       df_parts, warnings=tuple(warnings), reliable=reliable, extras=extras, se_label=kind.upper())
+
+
+#: Doubles of the padded n_g × n_g blocks held at once by :func:`weighted_cr2_fit`.
+BLOCK_ELEMENTS = 4_000_000
+
+
+def weighted_cr2_parts(Q: np.ndarray, ew: np.ndarray, w: np.ndarray, codes: np.ndarray,
+                       n_clusters: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Scores s_g and the df parts (P_g, N_g) of CR2 on a weighted fit (Pustejovsky & Tipton 2018).
+
+    Q from the thin QR of W^(1/2)X, ê_w = W^(1/2)(y − Xβ̂), working covariance Φ = W⁻¹. With
+    D_g = Φ_g^(1/2) the adjustment is A_g = D_gᵀ B_g^(−1/2) D_g, B_g = D_g (I − H)_g Φ (I − H)_gᵀ D_gᵀ
+    = W_g⁻¹ (I − Q_gQ_gᵀ) W_g⁻¹, so with C_g = W_g⁻¹ B_g^(−1/2) Q_g (n_g × k):
+    s_g = C_gᵀ ê_w,g, P_g = C_gᵀC_g and N_g = Q_gᵀC_g (the df formula of :func:`satterthwaite_df`
+    under Φ). B_g is an n_g × n_g block: clusters are padded to the largest size in batches.
+    """
+    k = Q.shape[1]
+    order = np.argsort(codes, kind="stable")
+    sizes = np.bincount(codes, minlength=n_clusters)
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    pos = np.empty(codes.size, np.intp)
+    pos[order] = np.arange(codes.size) - np.repeat(starts, sizes)  # position of each row in its cluster
+    S, P, N = np.zeros((n_clusters, k)), np.zeros((n_clusters, k, k)), np.zeros((n_clusters, k, k))
+    by_size = np.argsort(sizes, kind="stable")
+    a = 0
+    while a < n_clusters:
+        b = a + 1
+        while b < n_clusters and (b - a + 1) * int(sizes[by_size[b]]) ** 2 <= BLOCK_ELEMENTS:
+            b += 1
+        groups = by_size[a:b]
+        m = int(sizes[groups].max())
+        slot = np.full(n_clusters, -1)
+        slot[groups] = np.arange(groups.size)
+        rows = np.flatnonzero(np.isin(codes, groups))
+        gi, pi = slot[codes[rows]], pos[rows]
+        Qp = np.zeros((groups.size, m, k))
+        Qp[gi, pi] = Q[rows]
+        winv = np.ones((groups.size, m))
+        winv[gi, pi] = 1.0 / w[rows]
+        e = np.zeros((groups.size, m))
+        e[gi, pi] = ew[rows]
+        pad = np.ones((groups.size, m), bool)
+        pad[gi, pi] = False
+        WQ = winv[:, :, None] * Qp
+        B = -np.einsum("gik,gjk->gij", WQ, WQ)
+        B += np.einsum("gi,ij->gij", np.where(pad, 1.0, winv**2), np.eye(m))
+        lam, U = np.linalg.eigh(B)
+        ok = lam > SINGULAR_TOL * lam.max(axis=1, keepdims=True)  # B_g^(+1/2): pseudo-inverse root
+        f = np.where(ok, np.where(ok, lam, 1.0) ** -0.5, 0.0)
+        root = (U * f[:, None, :]) @ np.swapaxes(U, 1, 2)
+        C = winv[:, :, None] * (root @ Qp)
+        S[groups] = np.einsum("gik,gi->gk", C, e)
+        P[groups] = np.einsum("gik,gil->gkl", C, C)
+        N[groups] = np.einsum("gik,gil->gkl", Qp, C)
+        a = b
+    return S, P, N
+
+
+def weighted_cr2_fit(Q: np.ndarray, R: np.ndarray, yw: np.ndarray, w: np.ndarray, codes: np.ndarray,
+                     term_names: tuple[str, ...], *, cluster_name: str | None, label: str,
+                     backend_id: str, fit_class: type[ClusterFit] = ClusterFit,
+                     fit_kwargs: dict[str, Any] | None = None, **kwargs: Any) -> ClusterFit:
+    """Weighted least squares (QR of W^(1/2)X, yw = W^(1/2)y) with the CR2 covariance of
+    :func:`weighted_cr2_parts` and Satterthwaite df per contrast; HTZ for several contrasts."""
+    G = int(codes.max()) + 1
+    qty = Q.T @ yw
+    beta = linalg.solve_triangular(R, qty, check_finite=False)
+    S, P, N = weighted_cr2_parts(Q, yw - Q @ qty, w, codes, G)
+    Rinv_meat = linalg.solve_triangular(R, S.T, check_finite=False)
+    cov = Rinv_meat @ Rinv_meat.T
+    sizes = np.bincount(codes, minlength=G)
+    extras = dict(kwargs.pop("extras", {}))
+    extras.update({"n_clusters": G, "cluster": cluster_name, "df_rule": "Satterthwaite per contrast",
+                   "cluster_sizes": (int(sizes.min()), float(np.median(sizes)), int(sizes.max()))})
+    return fit_class(backend_id, label, term_names, beta, 0.5 * (cov + cov.T), R, G, (P, N), extras=extras,
+                     se_label="CR2 on the weighted fit", **kwargs, **(fit_kwargs or {}))

@@ -25,6 +25,9 @@ Standard errors of β (the weighted regression of √w·y on √w·X, thin QR, n
     *robust* (default): HC3 on the weighted regression, valid when the variance function is
     wrong (Romano & Wolf 2017); *model*: s²(XᵀWX)⁻¹ with s² = Σ wᵢêᵢ² / (n − k).
 Every t test uses n − k degrees of freedom.
+With clustered rows (a design with cluster codes) the robust SE is CR2 on the weighted fit with
+the working covariance W⁻¹ in the adjustment (Pustejovsky & Tipton 2018, as R's clubSandwich
+does for a weighted fit with inverse-variance weights) and Satterthwaite df per contrast.
 """
 from __future__ import annotations
 
@@ -40,6 +43,7 @@ from scipy import linalg, stats
 from ..defaults import LEVERAGE_ONE_TOL
 from ..errors import InputError, option_error
 from .base import Backend, Option, Unavailable, WaldFit, one_row_table
+from .cluster import ClusterFit, weighted_cr2_fit
 from .hc import hc_weights, leverages, r_inverse, sandwich
 from .kernels import (
     ETA_LIMIT,
@@ -68,6 +72,9 @@ ML_DECREMENT_TOL = 1e-20
 #: ... or when no step improves the likelihood any more while the decrement is below this: the
 #: optimum to rounding (the streamed fit follows the same rule, so both stop at the same iterate).
 ML_ROUNDING_TOL = 1e-10
+
+#: The residual adjustment of the clustered WLS fit, for its clustering table.
+CR2_WEIGHTED = "B_g^(−1/2), B_g = W_g⁻¹(I − H_gg)W_g⁻¹: CR2 with working covariance W⁻¹ (Pustejovsky & Tipton 2018)"
 
 _FUNCTION_LABELS = {"loglinear": "log-linear variance", "power": "power-of-the-mean variance",
                     "groups": "one variance per group", "known": "known weights"}
@@ -291,50 +298,66 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
 # --------------------------------------------------------------------------------------
 # The fit
 # --------------------------------------------------------------------------------------
+def _readonly(a: np.ndarray) -> np.ndarray:
+    out = np.array(a, dtype=float)
+    out.setflags(write=False)
+    return out
+
+
 class WLSFit(WaldFit):
     """A WLS Wald fit that also carries ``sigma_hat``, the fitted error SD of each design row."""
 
     def __init__(self, *args: Any, sigma_hat: np.ndarray, weights: np.ndarray, **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
-        self.sigma_hat = np.asarray(sigma_hat, dtype=float)
-        self.sigma_hat.setflags(write=False)
-        self.weights = np.asarray(weights, dtype=float)
-        self.weights.setflags(write=False)
-
+        self.sigma_hat, self.weights = _readonly(sigma_hat), _readonly(weights)
 
     def report_tables(self) -> tuple[Table, ...]:
-        """The variance model (coefficients on the user's terms) and its fit: LR test against constant
-        variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
-        from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+        return variance_model_tables(self.extras, self.backend_id)
 
-        vm = self.extras["variance_model"]
-        src = self.backend_id
-        tables = []
-        gamma = vm.get("gamma") or {}
-        if gamma:
-            rows = [(_GAMMA_LABELS.get(name, name), g["estimate"],
-                     NotApplicable("no standard error for this estimate") if g["se"] is None else g["se"])
-                    for name, g in gamma.items()]
-            what = {"loglinear": "log σᵢ² = zᵢᵀγ", "power": "log σᵢ² = log σ² + 2θ·log|μᵢ|",
-                    "groups": "log σᵢ² = one value per group"}.get(vm["function"], "")
-            tables.append(make_table(f"{src}.variance_model", f"Variance model ({what})",
-                                     [Column("term", "Term", "text"), Column("estimate", "Estimate"),
-                                      Column("se", "SE")], rows, source=src,
-                                     notes=[f"Estimated by {_ESTIMATION_WORDS.get(vm['estimation'], vm['estimation'])}."]))
-        lr = vm.get("lr_test")
-        no_lr = NotApplicable("the variance model has no parameter beyond the scale to test")
-        cells = [
-            ("lr_statistic", "LR statistic against constant variance", "number", lr["statistic"] if lr else no_lr),
-            ("lr_df", "LR df", "df", lr["df"] if lr else no_lr), ("lr_p", "LR p", "p", lr["p"] if lr else no_lr),
-            ("aic", "AIC, modelled variance", "number", vm.get("aic")),
-            ("aic_constant", "AIC, constant variance", "number", vm.get("aic_constant")),
-            ("converged", "ML converged", "flag", vm.get("converged")),
-            ("iterations", "Iterations", "integer", vm.get("iterations") if vm.get("converged") is not None else None),
-            ("weight_ratio", "Largest / smallest weight", "number", vm.get("weight_ratio")),
-        ]
-        notes = [vm["loglik_note"].capitalize() + "."] if vm.get("loglik_note") else []
-        tables.append(one_row_table(f"{src}.variance_fit", "Fit of the variance model", src, cells, notes))
-        return tuple(tables)
+
+class ClusteredWLSFit(ClusterFit):
+    """The WLS fit of clustered rows: CR2 on the weighted fit, Satterthwaite df per contrast."""
+
+    def __init__(self, *args: Any, sigma_hat: np.ndarray, weights: np.ndarray, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.sigma_hat, self.weights = _readonly(sigma_hat), _readonly(weights)
+
+    def report_tables(self) -> tuple[Table, ...]:
+        return super().report_tables() + variance_model_tables(self.extras, self.backend_id)
+
+
+def variance_model_tables(extras: dict[str, Any], src: str) -> tuple[Table, ...]:
+    """The variance model (coefficients on the user's terms) and its fit: LR test against constant
+    variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
+    from ..tables import Column, NotApplicable, make_table  # noqa: PLC0415
+
+    vm = extras["variance_model"]
+    tables = []
+    gamma = vm.get("gamma") or {}
+    if gamma:
+        rows = [(_GAMMA_LABELS.get(name, name), g["estimate"],
+                 NotApplicable("no standard error for this estimate") if g["se"] is None else g["se"])
+                for name, g in gamma.items()]
+        what = {"loglinear": "log σᵢ² = zᵢᵀγ", "power": "log σᵢ² = log σ² + 2θ·log|μᵢ|",
+                "groups": "log σᵢ² = one value per group"}.get(vm["function"], "")
+        tables.append(make_table(f"{src}.variance_model", f"Variance model ({what})",
+                                 [Column("term", "Term", "text"), Column("estimate", "Estimate"),
+                                  Column("se", "SE")], rows, source=src,
+                                 notes=[f"Estimated by {_ESTIMATION_WORDS.get(vm['estimation'], vm['estimation'])}."]))
+    lr = vm.get("lr_test")
+    no_lr = NotApplicable("the variance model has no parameter beyond the scale to test")
+    cells = [
+        ("lr_statistic", "LR statistic against constant variance", "number", lr["statistic"] if lr else no_lr),
+        ("lr_df", "LR df", "df", lr["df"] if lr else no_lr), ("lr_p", "LR p", "p", lr["p"] if lr else no_lr),
+        ("aic", "AIC, modelled variance", "number", vm.get("aic")),
+        ("aic_constant", "AIC, constant variance", "number", vm.get("aic_constant")),
+        ("converged", "ML converged", "flag", vm.get("converged")),
+        ("iterations", "Iterations", "integer", vm.get("iterations") if vm.get("converged") is not None else None),
+        ("weight_ratio", "Largest / smallest weight", "number", vm.get("weight_ratio")),
+    ]
+    notes = [vm["loglik_note"].capitalize() + "."] if vm.get("loglik_note") else []
+    tables.append(one_row_table(f"{src}.variance_fit", "Fit of the variance model", src, cells, notes))
+    return tuple(tables)
 
 
 #: Human labels of the γ of the power-of-the-mean model (other models use the user's term names).
@@ -427,8 +450,10 @@ def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimati
 
 def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[str, ...], *,
             estimation: str = "ml", se: str = "robust", row_numbers: np.ndarray | None = None,
-            backend_id: str = "wls") -> WLSFit | Unavailable:
-    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring)."""
+            backend_id: str = "wls", clusters: np.ndarray | None = None,
+            cluster_name: str | None = None) -> WLSFit | ClusterFit | Unavailable:
+    """Fit the mean and variance models and return the weighted Wald fit (see the module docstring);
+    with ``clusters`` (codes 0 … G − 1) and ``se="robust"`` the SE are CR2 on the weighted fit."""
     y = np.asarray(y, dtype=float)
     X = np.asarray(X, dtype=float)
     n, k = X.shape
@@ -452,7 +477,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     h = leverages(Q)
     label_fn = _FUNCTION_LABELS[vm.function]
     est_label = {"ml": "ML", "twostep": "two-step FGLS", "known": "known"}.get(used, "two-step FGLS")
-    if se == "robust":
+    if se == "robust" and clusters is None:
         reason = leverage_one_reason(h, "HC3 on the weighted fit", row_numbers,
                                      "use --set wls.se=model or drop those rows")
         if reason:
@@ -492,6 +517,12 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
         design_info["loglik_note"] = "evaluated at the two-step estimates with the scale profiled out"
     extras = {"variance_model": design_info, "df_resid": df, "sigma": float(math.sqrt(s2))}
     est_part = "" if vm.function == "known" else f" ({est_label})"
+    if clusters is not None and se == "robust":
+        return weighted_cr2_fit(Q, R, sw * y, W, clusters, tuple(term_names), cluster_name=cluster_name,
+                                label=f"WLS, {label_fn}{est_part} + CR2", backend_id=backend_id,
+                                warnings=tuple(notes), extras={**extras, "adjustment": CR2_WEIGHTED},
+                                fit_class=ClusteredWLSFit,
+                                fit_kwargs={"sigma_hat": sigma_hat, "weights": W})
     label = f"WLS, {label_fn}{est_part} + {'HC3' if se == 'robust' else 'model SE'}"
     return WLSFit(backend_id, label, tuple(term_names), beta, cov, df, warnings=tuple(notes),
                   extras=extras, se_label=se_label, sigma_hat=sigma_hat, weights=W)
@@ -642,14 +673,15 @@ class WLSBackend(Backend):
     def variance_model(self, design: Design) -> VarianceModel:
         return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
 
-    def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> WLSFit | Unavailable:
+    def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> WLSFit | ClusterFit | Unavailable:
         """Fit on the design (deterministic: ``seed`` is not used)."""
         vm = self.variance_model(design)
         rows = design_row_numbers(design)
         with _warnings.catch_warnings():
             _warnings.simplefilter("ignore", WLSWarning)  # the notes travel in fit.warnings
             return fit_wls(design.y, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
-                           row_numbers=rows, backend_id=self.id)
+                           row_numbers=rows, backend_id=self.id, clusters=design.clusters,
+                           cluster_name=design.cluster_name)
 
     def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D outcomes on design.X)?
@@ -667,6 +699,8 @@ class WLSBackend(Backend):
         Yd = Y.T  # D × n
         D = Yd.shape[0]
         vm = self.variance_model(design)
+        if design.clusters is not None and self.se == "robust":
+            return self._reject_clustered(design, vm, Yd, alpha)
         floor = vm.mean_floor(design.y)
         if vm.function == "known":
             assert vm.weights is not None
@@ -682,6 +716,20 @@ class WLSBackend(Backend):
                 assert vm.Z is not None
                 W = np.exp(-np.clip(gamma @ vm.Z.T, -ETA_LIMIT, ETA_LIMIT))
         return _reject_product(X, Yd, W, design.interaction_rows(), alpha, self.se)
+
+    def _reject_clustered(self, design: Design, vm: VarianceModel, Yd: np.ndarray, alpha: float) -> np.ndarray:
+        """The decision of :meth:`fit` per dataset: CR2's adjustments depend on the fitted weights of each one."""
+        L = design.interaction_rows()
+        out = np.zeros(Yd.shape[0], dtype=bool)
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore", WLSWarning)
+            for d, yd in enumerate(Yd):  # one weighted fit per simulated dataset
+                fit = fit_wls(yd, design.X, vm, design.term_names, estimation=self.estimation, se=self.se,
+                              clusters=design.clusters)
+                if isinstance(fit, ClusterFit):
+                    out[d] = (fit.joint_test(L, alpha).supported if L.shape[0] > 1
+                              else bool(np.asarray(fit.estimate(L, alpha).p)[0] < alpha))
+        return out
 
     def _power_weights(self, vm: VarianceModel, X: np.ndarray, Yd: np.ndarray, gamma: np.ndarray,
                        floor: float) -> np.ndarray:

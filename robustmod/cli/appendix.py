@@ -125,7 +125,7 @@ def given_on_command_line(args: argparse.Namespace, base: dict[str, Any]) -> dic
         for b, o in kw["options"].items():
             merged.setdefault(b, {}).update(o)
         out["options"] = merged
-    for k in ("backends", "primary", "alpha", "seed", "calibration", "center", "calibrate_costly", "na_values",
+    for k in ("backends", "primary", "cluster", "alpha", "seed", "calibration", "center", "calibrate_costly", "na_values",
               "sep", "decimal", "sheet", "engine", "scheduler", "workers"):
         if k in kw:
             out[k] = kw[k]

@@ -97,11 +97,15 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
     p.add_argument("--focal", required=required, help=f"the focal predictor whose slope is probed {need}")
     p.add_argument("--moderator", action="append", required=required, metavar="W",
                    help=f"moderator column; repeat (or comma-separate) for two moderators {need}")
+    p.add_argument("--cluster", default=None, metavar="COL",
+                   help="column of cluster ids (teams, classes, persons measured repeatedly); switches the "
+                        "defaults to the cluster-aware back-ends (default: rows are independent)")
     p.add_argument("--backends", action="append", metavar="IDS",
-                   help=f"comma-separated back-end ids (default: {','.join(defaults.BACKENDS)}; "
-                        "all ids: 'robustmod backends')")
+                   help=f"comma-separated back-end ids (default: {','.join(defaults.BACKENDS)}; with --cluster "
+                        f"{','.join(defaults.CLUSTER_BACKENDS)}; all ids: 'robustmod backends')")
     p.add_argument("--primary", default=None,
-                   help=f"primary back-end, chosen before looking (default: {defaults.PRIMARY})")
+                   help=f"primary back-end, chosen before looking (default: {defaults.PRIMARY}; with --cluster "
+                        f"{defaults.CLUSTER_PRIMARY})")
     p.add_argument("--at", action="append", metavar="[W=]VALUES",
                    help="probe values: '1,2,3', 'w=1,2,3', 'sd' or 'percentiles[:10,50,90]' "
                         "(default: sd = mean ± 1 SD)")
@@ -203,7 +207,7 @@ def compare_kwargs(args: argparse.Namespace) -> dict[str, Any]:
                           "probe": parse_probe(args.at, mods), "options": parse_settings(args.set)}
     if args.backends:
         kw["backends"] = split_list(args.backends)
-    for name in ("primary", "alpha", "seed", "calibration"):
+    for name in ("primary", "alpha", "seed", "calibration", "cluster"):
         value = getattr(args, "calibrate" if name == "calibration" else name)
         if value is not None:
             kw[name] = value
@@ -228,8 +232,9 @@ def run_ids(kw: dict[str, Any]) -> list[str]:
     """The back-end ids a compare() call with these arguments runs (the primary included)."""
     from ..backends.registry import check_ids  # noqa: PLC0415  (the registry only when running)
 
-    ids = check_ids(list(kw.get("backends") or defaults.BACKENDS))
-    (primary,) = check_ids([kw.get("primary") or defaults.PRIMARY])
+    clustered = kw.get("cluster") is not None
+    ids = check_ids(list(kw.get("backends") or (defaults.CLUSTER_BACKENDS if clustered else defaults.BACKENDS)))
+    (primary,) = check_ids([kw.get("primary") or (defaults.CLUSTER_PRIMARY if clustered else defaults.PRIMARY)])
     return ids if primary in ids else [primary, *ids]
 
 
