@@ -77,13 +77,15 @@ class CrossProducts:
         self.mean = np.zeros(p)
         self.C = np.zeros((p, p))
 
-    def add(self, block: np.ndarray) -> None:
-        """Merge the rows of ``block`` (m × p)."""
+    def add(self, block: np.ndarray, *, overwrite: bool = False) -> None:
+        """Merge the rows of ``block`` (m × p). With ``overwrite`` the block is centred in place;
+        a Fortran-ordered block makes the product BᵀB several times faster than a C-ordered one."""
         m = block.shape[0]
         if m == 0:
             return
         mean_b = block.mean(axis=0)
-        centred = block - mean_b
+        centred = block if overwrite else block.copy(order="F")
+        centred -= mean_b
         C_b = centred.T @ centred
         total = self.n + m
         delta = mean_b - self.mean
