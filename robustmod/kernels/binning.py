@@ -24,15 +24,40 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.base import Estimates, JointTest, WaldFit
-from ..errors import InputError
-from ..linearity import SPAN_TOL, _bin_index
+from ..errors import InputError, option_error
 from .accumulate import TSQR, RunningMoments
 from .chunks import Chunk, ChunkSource, mapped
 from .ols import StreamedOLS, streamed_ols
 from .order import column_summary, order_statistics, quantiles
 
-#: |R_jj| / ‖column‖ at or below which the binning model counts as rank-deficient (as in memory).
+#: |R_jj| / ‖column‖ at or below which the binning model counts as rank-deficient.
 RANK_TOL = 1e-10
+#: Relative size below which a residualised column counts as spanned by the model.
+SPAN_TOL = 1e-8
+
+
+def bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
+    """Bin number of each row and the interior cut points."""
+    if isinstance(bins, (bool, np.bool_)):
+        raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
+    if isinstance(bins, (int, np.integer)):
+        if bins < 2:
+            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
+        cuts = np.quantile(w, np.arange(1, bins) / bins)
+    else:
+        try:
+            cuts = np.asarray(list(bins), dtype=float)
+        except (TypeError, ValueError):
+            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins) from None
+        if cuts.ndim != 1 or cuts.size == 0 or not np.all(np.isfinite(cuts)) or np.any(np.diff(cuts) <= 0):
+            raise option_error("bins", "cut points as a strictly increasing list of finite numbers", list(bins))
+        if cuts[0] <= w.min() or cuts[-1] >= w.max():
+            raise InputError(
+                f"The bin cut points {list(cuts)} must lie inside the observed range of {moderator!r} "
+                f"({w.min():g} to {w.max():g}); move them inside it."
+            )
+    # Rows at a cut point go to the lower bin (right-closed bins, as pandas.cut).
+    return np.searchsorted(cuts, w, side="left"), cuts
 
 
 @dataclass(frozen=True)
@@ -56,7 +81,7 @@ def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str
     """Interior cut points: the option is checked by the in-memory rule on the observed range
     (same messages); quantile cuts then come from the streamed column."""
     _, lo, hi = summary
-    cuts = _bin_index(np.array([lo, hi]), bins, moderator)[1]
+    cuts = bin_index(np.array([lo, hi]), bins, moderator)[1]
     if isinstance(bins, (int, np.integer)):
         return quantiles(values, list(np.arange(1, bins) / bins), summary=summary)
     return cuts
@@ -185,7 +210,7 @@ def binning_fits(chunks: ChunkSource, *, focal: str, moderator: str, covariate_c
             else:
                 notes.append(f"Per-bin HC3 slopes unavailable: {bin_fit.reason}")
     wald = None
-    added = added_columns(chunks, lambda c: xbin(c), k)
+    added = added_columns(chunks, xbin, k)
     if added.size:
         if s.n > k + added.size + 1:
             fa = _hc3(chunks, lambda c: np.column_stack([c.X, xbin(c)[:, added]]))
