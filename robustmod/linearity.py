@@ -225,7 +225,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
         notes.append(f"The bins use {design.focal!r} on its raw scale, while the model transforms it.")
 
     jt = fits.wald
-    wald = None if jt is None else {
+    wald: dict[str, Any] | None = None if jt is None else {
         "statistic": _num(jt.statistic), "df": [int(jt.df_num), _num(jt.df_den)], "p": _num(jt.p),
         "method": f"HC3 {jt.method}: binning columns beyond the model are zero"}
     nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < alpha)
