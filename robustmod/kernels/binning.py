@@ -125,13 +125,22 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
                       dmax[present] > dmin[present], sd_all, n)
 
 
-def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str) -> np.ndarray:
-    """B = [G, G·D, G·(W − x_j), G·(W − x_j)·D] for the rows of one chunk (m × 4J)."""
+def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
+                    covariate_columns: Sequence[int] = ()) -> np.ndarray:
+    """B = [G, G·D, G·(W − x_j), G·(W − x_j)·D, X_cov] for the rows of one chunk (m × (4J + #cov)),
+    one Fortran-ordered array filled in place (the factorisations read it column by column)."""
     w, d = np.asarray(chunk.columns[moderator], dtype=float), np.asarray(chunk.columns[focal], dtype=float)
     idx = np.searchsorted(s.cuts, w, side="left")
-    G = (idx[:, None] == s.present[None, :]).astype(float)
-    Wc = w[:, None] - s.medians[None, :]
-    return np.column_stack([G, G * d[:, None], G * Wc, G * Wc * d[:, None]])
+    J, cov = s.present.size, list(covariate_columns)
+    out = np.empty((w.size, 4 * J + len(cov)), order="F")
+    G, GD, GW, GWD = (out[:, a * J:(a + 1) * J] for a in range(4))
+    np.equal(idx[:, None], s.present[None, :], out=G, casting="unsafe")
+    np.multiply(G, d[:, None], out=GD)
+    np.subtract(w[:, None], s.medians[None, :], out=GW)
+    GW *= G
+    np.multiply(GW, d[:, None], out=GWD)
+    out[:, 4 * J:] = chunk.X[:, cov]
+    return out
 
 
 def _hc3(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray]) -> StreamedOLS | str:
@@ -191,7 +200,7 @@ def binning_fits(chunks: ChunkSource, *, focal: str, moderator: str, covariate_c
         return BinningFits(s, None, None, np.zeros(0, dtype=int), tuple(notes))
 
     def xbin(c: Chunk) -> np.ndarray:
-        return np.column_stack([binning_columns(c, s, focal, moderator), c.X[:, cov_cols]])
+        return binning_columns(c, s, focal, moderator, cov_cols)
 
     n_bin_cols = 4 * J + len(cov_cols)
     est_bin = None
