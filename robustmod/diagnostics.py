@@ -5,11 +5,14 @@
 * White (1980): the same auxiliary regression on the regressors, their squares and
   cross-products, linearly dependent columns (e.g. squared dummies) dropped.
 * Goldfeld–Quandt (1965): rows sorted by the moderator, the middle fifth dropped,
-  F = s²(high) / s²(low) with equal halves, two-sided p.
+  F = s²(high) / s²(low), two-sided p; rows tied at a cut value stay in one group.
 * Spread of the residuals by moderator bins (terciles, or the levels of a categorical one).
 * Classical vs HC3 standard error of the product term: a large gap signals a misspecified
   mean model as much as non-constant variance (King & Roberts 2015).
 * Linearity of the interaction: the binning check of :mod:`robustmod.linearity`.
+
+Each test is computed once, by the streaming kernel of :mod:`robustmod.kernels`, here with the
+in-memory rows as one chunk (or a few, from the memory budget).
 """
 from __future__ import annotations
 
@@ -18,18 +21,22 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import linalg, stats
 
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
+from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, array_chunks, rows_per_chunk
+from .kernels.gq import DROP_SHARE
+from .kernels.gq import goldfeld_quandt as streamed_gq
+from .kernels.lmtests import AuxiliaryRegression, ResidualPasses
+from .kernels.spread import ResidualSpread
 from .linearity import BinningCheck, binning_check
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
-#: Share of middle rows the Goldfeld–Quandt split drops.
-GQ_DROP = 0.2
+#: Share of middle rows the Goldfeld–Quandt split drops (the kernel's value).
+GQ_DROP = DROP_SHARE
 #: Number of quantile bins of a continuous moderator for the residual-spread table.
 SPREAD_BINS = 3
 #: HC3/classical SE ratio beyond which (either way) the gap is called large. Our rule of
@@ -37,33 +44,21 @@ SPREAD_BINS = 3
 SE_GAP_LARGE = 1.5
 
 
-def _independent_columns(Z: np.ndarray, tol: float = 1e-10) -> np.ndarray:
-    """Keep a linearly independent subset of Z's columns (pivoted QR, scale-free)."""
-    norms = np.linalg.norm(Z, axis=0)
-    keep = norms > 0
-    Zs = Z[:, keep] / norms[keep]
-    _, R, piv = linalg.qr(Zs, mode="economic", pivoting=True)
-    d = np.abs(np.diag(R))
-    rank = int((d > tol * d[0]).sum()) if d.size else 0
-    idx = np.flatnonzero(keep)[np.sort(piv[:rank])]
-    return Z[:, idx]
+def _residual_passes(X: np.ndarray, e: np.ndarray, width: int, budget: int) -> ResidualPasses:
+    """The in-memory rows as chunks of (X rows, their residuals), as many rows per chunk as the
+    budget allows for ``width`` columns per row (one chunk for most data sets)."""
+    chunks = array_chunks(X, e, chunk_rows=rows_per_chunk(budget, width))
+    return lambda: ((c, c.y) for c in chunks())
 
 
-def _lm_test(u2: np.ndarray, Z: np.ndarray) -> dict[str, Any]:
-    """n·R² of u2 on Z (Z contains a constant) and its χ² p-value with rank(Z) − 1 df."""
-    n = u2.size
-    Q, _ = np.linalg.qr(Z, mode="reduced")
-    fitted = Q @ (Q.T @ u2)
-    dev = u2 - u2.mean()
-    ss_tot = float(dev @ dev)
-    r2 = float(((fitted - u2.mean()) ** 2).sum() / ss_tot) if ss_tot > 0 else 0.0
-    df = Z.shape[1] - 1
-    stat = n * r2
-    return {"statistic": _num(stat), "df": int(df), "p": _num(stats.chi2.sf(stat, df)) if df > 0 else None}
-
-
-def _with_constant(Z: np.ndarray) -> np.ndarray:
-    return np.column_stack([np.ones(Z.shape[0]), Z])
+def _lm_test(resid: np.ndarray, X: np.ndarray, *, white: bool, budget: int) -> dict[str, Any]:
+    X = np.asarray(X, dtype=float)
+    k = X.shape[1]
+    passes = _residual_passes(X, np.asarray(resid, dtype=float), 2 + k + (k * (k + 1) // 2 if white else 0), budget)
+    aux = AuxiliaryRegression(white=white)
+    for c, e in passes():
+        aux.add(c, e)
+    return aux.result(passes)
 
 
 def ols_residuals(design: Design) -> np.ndarray:
@@ -72,20 +67,24 @@ def ols_residuals(design: Design) -> np.ndarray:
     return design.y - Q @ (Q.T @ design.y)
 
 
-def breusch_pagan_lm(resid: np.ndarray, X: np.ndarray) -> dict[str, Any]:
-    """Koenker's LM = n·R² of ê² on X (plus a constant), χ²(rank − 1); arrays in, dict out."""
-    Z = _independent_columns(_with_constant(np.asarray(X, dtype=float)))
-    e = np.asarray(resid, dtype=float)
-    return {**_lm_test(e**2, Z), "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
+def breusch_pagan_lm(resid: np.ndarray, X: np.ndarray, *, budget: int = DEFAULT_BUDGET) -> dict[str, Any]:
+    """Koenker's LM = n·R² of ê² on X (plus a constant), χ²(rank − 1); arrays in, dict out.
+
+    Computed by :class:`robustmod.kernels.lmtests.AuxiliaryRegression` over the rows in chunks
+    of at most ``budget`` bytes of work space.
+    """
+    return {**_lm_test(resid, X, white=False, budget=budget),
+            "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
 
 
-def white_lm(resid: np.ndarray, X: np.ndarray) -> dict[str, Any]:
-    """White's LM = n·R² of ê² on X, its squares and cross-products (dependent columns dropped)."""
-    X = np.asarray(X, dtype=float)
-    iu, ju = np.triu_indices(X.shape[1])
-    Z = _independent_columns(_with_constant(np.column_stack([X, X[:, iu] * X[:, ju]])))
-    e = np.asarray(resid, dtype=float)
-    return {**_lm_test(e**2, Z), "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
+def white_lm(resid: np.ndarray, X: np.ndarray, *, budget: int = DEFAULT_BUDGET) -> dict[str, Any]:
+    """White's LM = n·R² of ê² on X, its squares and cross-products (dependent columns dropped).
+
+    The k(k+1)/2 products exist one chunk at a time; their centred cross-products are solved by
+    scaled pivoted Cholesky, or by TSQR when ill-conditioned (:mod:`robustmod.kernels.lmtests`).
+    """
+    return {**_lm_test(resid, X, white=True, budget=budget),
+            "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
 
 
 def breusch_pagan(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
@@ -98,46 +97,41 @@ def white(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
     return white_lm(ols_residuals(design) if resid is None else resid, design.X)
 
 
+def _design_chunks(design: Design, columns: Mapping[str, np.ndarray], y: np.ndarray | None = None,
+                   budget: int = DEFAULT_BUDGET) -> ChunkSource:
+    X = design.X
+    return array_chunks(X, design.y if y is None else y, chunk_rows=rows_per_chunk(budget, X.shape[1] + 1),
+                        columns=columns)
+
+
 def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, Any] | None:
     """Split along a continuous moderator; F of residual variances high vs low, two-sided.
 
-    None when the model has no continuous moderator or the halves are too small to fit.
+    The rule of :func:`robustmod.kernels.gq.goldfeld_quandt`: rows tied at a cut value are never
+    split between the groups. None when the model has no continuous moderator, the halves are too
+    small to fit, or ties leave the groups overlapping.
     """
     conts = design.continuous_moderators
     if moderator is None:
         if not conts:
             return None
         moderator = conts[0]
-    w = design.moderators[moderator].values
-    assert w is not None  # a continuous moderator keeps its observed values
-    order = np.argsort(w, kind="stable")
-    n, k = design.X.shape
-    drop = int(round(GQ_DROP * n))
-    n1 = (n - drop) // 2
-    if n1 <= k + 1:
+    w = np.asarray(design.moderators[moderator].values, dtype=float)
+    out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP)
+    if out is None:
         return None
-    lo, hi = order[:n1], order[n - n1:]
-    s2 = []
-    for idx in (lo, hi):  # the two halves
-        Xs, ys = design.X[idx], design.y[idx]
-        beta, *_ = linalg.lstsq(Xs, ys)
-        r = ys - Xs @ beta
-        s2.append(float(r @ r) / (len(idx) - k))
-    if s2[0] <= 0:
-        return None
-    F = s2[1] / s2[0]
-    d = n1 - k
-    p = 2 * min(stats.f.sf(F, d, d), stats.f.cdf(F, d, d))
-    return {"statistic": _num(F), "df": [int(d), int(d)], "p": _num(min(1.0, p)), "moderator": moderator,
-            "n_dropped_middle": int(n - 2 * n1),
-            "form": f"sorted by {moderator}, middle {int(100 * GQ_DROP)}% dropped, F = s²(high)/s²(low), two-sided"}
+    tied = "" if out["group_sizes"]["low"] == out["group_sizes"]["high"] == (w.size - round(GQ_DROP * w.size)) // 2 \
+        else ", rows tied at a cut kept in one group"
+    return {**out, "form": f"sorted by {moderator}, middle {int(100 * GQ_DROP)}% dropped{tied}, "
+                           "F = s²(high)/s²(low), two-sided"}
 
 
 def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderator: str | None = None,
                     bins: int = SPREAD_BINS) -> dict[str, Any] | None:
     """SD of the OLS residuals within moderator bins (quantile bins, or levels if categorical).
 
-    ``ratio`` is the largest bin SD over the smallest.
+    ``ratio`` is the largest bin SD over the smallest. Continuous moderators go through
+    :class:`robustmod.kernels.spread.ResidualSpread`.
     """
     if isinstance(bins, bool) or not isinstance(bins, (int, np.integer)) or bins < 2:
         raise option_error("bins", "a whole number ≥ 2", bins)
@@ -147,24 +141,20 @@ def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderato
             return None
         moderator = (design.continuous_moderators or tuple(design.moderators))[0]
     info = design.moderators[moderator]
-    rows: list[dict[str, Any]] = []
-    if info.categorical:
-        col = design.data.frame[moderator]
-        labels = col.astype(str).to_numpy() if not info.levels or isinstance(info.levels[0], str) else col.to_numpy()
-        groups = [(lev, labels == lev) for lev in info.levels]
-        for lev, mask in groups:  # one entry per level
-            rows.append({"level": lev if isinstance(lev, str) else _num(lev), "range": None, **_spread(e[mask])})
-    else:
-        w = np.asarray(info.values, dtype=float)
-        cuts = np.quantile(w, np.arange(1, bins) / bins)
-        idx = np.searchsorted(cuts, w, side="left")  # right-closed bins, as pandas.cut
-        for j in np.unique(idx):  # one entry per bin
-            mask = idx == j
-            rows.append({"level": None, "range": [float(w[mask].min()), float(w[mask].max())], **_spread(e[mask])})
+    form = "SD of OLS residuals (ddof 1) within moderator bins"
+    if not info.categorical:
+        chunks = _design_chunks(design, {moderator: np.asarray(info.values, dtype=float)}, y=e)
+        spread = ResidualSpread.quantile_bins(chunks, moderator, bins)
+        for c in chunks():
+            spread.add(c, c.y)
+        return {**spread.result(), "form": f"{form} ({bins} quantile bins)"}
+    col = design.data.frame[moderator]
+    labels = col.astype(str).to_numpy() if not info.levels or isinstance(info.levels[0], str) else col.to_numpy()
+    rows = [{"level": lev if isinstance(lev, str) else _num(lev), "range": None, **_spread(e[labels == lev])}
+            for lev in info.levels]
     sds = [r["sd"] for r in rows if r["sd"] is not None]
     ratio = _num(max(sds) / min(sds)) if len(sds) >= 2 and min(sds) > 0 else None
-    return {"moderator": moderator, "bins": rows, "ratio": ratio,
-            "form": "SD of OLS residuals (ddof 1) within moderator bins" + ("" if info.categorical else f" ({bins} quantile bins)")}
+    return {"moderator": moderator, "bins": rows, "ratio": ratio, "form": form}
 
 
 def _spread(e: np.ndarray) -> dict[str, Any]:

@@ -10,7 +10,9 @@ intervals). The linear-interaction model predicts that slope as b_D + b_DW·x_j;
 nested in the binning model (μ_j and α_j linear in x_j, η_j and β_j equal across bins:
 4(J − 1) restrictions for J bins), so a Wald test of those restrictions checks linearity.
 The test is run as: the user's model matrix augmented by the binning columns it does not
-span, HC3 covariance, joint F test that the added coefficients are zero. For the plain
+span, HC3 covariance, joint F test that the added coefficients are zero. The fits come from
+the streaming kernel :func:`robustmod.kernels.binning.binning_fits`, here with the in-memory
+rows as one chunk (or a few, from the memory budget). For the plain
 model y ~ D * W + Z this is exactly the nested test.
 
 Common support: a bin with few rows, or in which the focal predictor barely varies, gives
@@ -23,13 +25,14 @@ from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
-from scipy import linalg
 
 from .backends.base import WaldFit
 from .backends.ols import ols_fit
 from .design import Design
 from .errors import InputError, option_error
 from .jsonvalues import num as _num
+from .kernels.binning import bin_index, binning_fits
+from .kernels.chunks import DEFAULT_BUDGET, array_chunks, rows_per_chunk
 from .tables import Column, Table, format_df, format_number, format_p, make_table
 
 #: Default number of quantile bins (terciles, as Hainmueller, Mummolo & Xu 2019 use).
@@ -39,8 +42,6 @@ MIN_BIN_ROWS = 20
 #: A bin whose focal SD is below this share of the overall focal SD is flagged
 #: as lacking common support (our rule of thumb).
 MIN_FOCAL_SPREAD = 0.25
-#: Relative size below which a residualised column counts as spanned by the model.
-SPAN_TOL = 1e-8
 
 
 @dataclass(frozen=True)
@@ -81,75 +82,13 @@ class BinningCheck(Mapping[str, Any]):
         return linearity_table(self)
 
 
-def _bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
-    """Bin number of each row and the interior cut points."""
-    if isinstance(bins, (bool, np.bool_)):
-        raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
-    if isinstance(bins, (int, np.integer)):
-        if bins < 2:
-            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
-        cuts = np.quantile(w, np.arange(1, bins) / bins)
-    else:
-        try:
-            cuts = np.asarray(list(bins), dtype=float)
-        except (TypeError, ValueError):
-            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins) from None
-        if cuts.ndim != 1 or cuts.size == 0 or not np.all(np.isfinite(cuts)) or np.any(np.diff(cuts) <= 0):
-            raise option_error("bins", "cut points as a strictly increasing list of finite numbers", list(bins))
-        if cuts[0] <= w.min() or cuts[-1] >= w.max():
-            raise InputError(
-                f"The bin cut points {list(cuts)} must lie inside the observed range of {moderator!r} "
-                f"({w.min():g} to {w.max():g}); move them inside it."
-            )
-    # Rows at a cut point go to the lower bin (right-closed bins, as pandas.cut).
-    return np.searchsorted(cuts, w, side="left"), cuts
-
-
-def _added_columns(X: np.ndarray, B: np.ndarray) -> np.ndarray:
-    """Indices of B's columns that add to span(X) (pivoted QR of B residualised on X)."""
-    Q, _ = np.linalg.qr(X, mode="reduced")
-    Res = B - Q @ (Q.T @ B)
-    norms = np.linalg.norm(B, axis=0)
-    rel = np.linalg.norm(Res, axis=0) / np.where(norms > 0, norms, 1.0)
-    cand = np.flatnonzero(rel > SPAN_TOL)
-    if cand.size == 0:
-        return cand
-    Rs = Res[:, cand] / np.linalg.norm(Res[:, cand], axis=0)
-    _, R, piv = linalg.qr(Rs, mode="economic", pivoting=True)
-    d = np.abs(np.diag(R))
-    rank = int((d > SPAN_TOL * max(d[0], 1e-300)).sum())
-    return np.sort(cand[piv[:rank]])
+#: Names of the focal and moderator columns in the chunks handed to the binning kernel.
+FOCAL, MODERATOR = "focal", "moderator"
 
 
 def _covariate_columns(design: Design, moderator: str) -> list[int]:
     """Columns of the model matrix not involving the focal predictor, this moderator or the intercept."""
     return design.columns_without({design.focal, moderator})
-
-
-def _bin_slopes(Xbin: np.ndarray, y: np.ndarray, J: int, alpha: float, notes: list[str]) -> Any:
-    """HC3 estimates of the J per-bin focal slopes from the binning model alone (None if it cannot be fitted)."""
-    n = y.size
-    est_bin = None
-    if Xbin.shape[0] <= Xbin.shape[1] + 1:
-        notes.append(f"Too few rows ({n}) for the {Xbin.shape[1]} columns of the binning model; "
-                     "per-bin slopes cannot be estimated.")
-        rdiag = np.zeros(0)
-    else:
-        Q, R = np.linalg.qr(Xbin, mode="reduced")
-        rdiag = np.abs(np.diag(R)) / np.maximum(np.linalg.norm(Xbin, axis=0), 1e-300)
-    if rdiag.size == 0:
-        pass
-    elif np.all(rdiag > 1e-10):
-        fit_bin = ols_fit("hc3", Q, R, y, tuple(f"c{i}" for i in range(Xbin.shape[1])))
-        if isinstance(fit_bin, WaldFit):
-            est_bin = fit_bin.estimate(np.eye(Xbin.shape[1])[J:2 * J], alpha)
-        else:
-            notes.append(f"Per-bin HC3 slopes unavailable: {fit_bin.reason}")
-    else:
-        notes.append("The binning model is rank-deficient (a bin has too few distinct rows or no focal variation); "
-                     "per-bin slopes cannot be estimated.")
-
-    return est_bin
 
 
 def _linear_slopes(design: Design, moderator: str, med: np.ndarray, alpha: float) -> Any:
@@ -163,29 +102,6 @@ def _linear_slopes(design: Design, moderator: str, med: np.ndarray, alpha: float
         est_lin = fit_lin.estimate(design.slope_rows_along(moderator, med, fixed), alpha)
 
     return est_lin
-
-
-def _linearity_wald(design: Design, Xbin: np.ndarray, alpha: float, notes: list[str]) -> dict[str, Any] | None:
-    """HC3 Wald test that the binning columns the linear model lacks are zero."""
-    y = design.y
-    wald: dict[str, Any] | None = None
-    added = _added_columns(design.X, Xbin)
-    if added.size:
-        Xa = np.column_stack([design.X, Xbin[:, added]])
-        if Xa.shape[0] > Xa.shape[1] + 1:
-            Qa, Ra = np.linalg.qr(Xa, mode="reduced")
-            fit_a = ols_fit("hc3", Qa, Ra, y, tuple(f"c{i}" for i in range(Xa.shape[1])))
-            if isinstance(fit_a, WaldFit):
-                L = np.zeros((added.size, Xa.shape[1]))
-                L[np.arange(added.size), design.n_params + np.arange(added.size)] = 1.0
-                jt = fit_a.joint_test(L, alpha)
-                wald = {"statistic": _num(jt.statistic), "df": [int(jt.df_num), _num(jt.df_den)], "p": _num(jt.p),
-                        "method": f"HC3 {jt.method}: binning columns beyond the model are zero"}
-            else:
-                notes.append(f"Wald test unavailable: {fit_a.reason}")
-    else:
-        notes.append("The model already spans the binning model; nothing to test.")
-    return wald
 
 
 def _bin_rows(G: np.ndarray, w: np.ndarray, d: np.ndarray, idx: np.ndarray, present: np.ndarray, med: np.ndarray,
@@ -275,7 +191,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     w = np.asarray(design.moderators[moderator].values, dtype=float)
     d = design.data.frame[design.focal].to_numpy(dtype=float)
     y = design.y
-    idx, cuts = _bin_index(w, bins, moderator)
+    idx, cuts = bin_index(w, bins, moderator)
     notes: list[str] = []
     present = np.unique(idx)
     if present.size < idx.max() + 1:
@@ -288,12 +204,13 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
 
     G = (idx[:, None] == present[None, :]).astype(float)  # n × J
     med = np.array([np.median(w[idx == j]) for j in present])  # J bins, not rows
-    Wc = w[:, None] - med[None, :]
-    blocks = np.column_stack([G, G * d[:, None], G * Wc, G * Wc * d[:, None]])
     cov_cols = _covariate_columns(design, moderator)
-    Xbin = np.column_stack([blocks, design.X[:, cov_cols]])
-
-    est_bin = _bin_slopes(Xbin, y, J, alpha, notes)
+    width = design.n_params + 2 * (4 * J + len(cov_cols))
+    chunks = array_chunks(design.X, y, chunk_rows=rows_per_chunk(DEFAULT_BUDGET, width),
+                          columns={FOCAL: d, MODERATOR: w})
+    fits = binning_fits(chunks, focal=FOCAL, moderator=MODERATOR, covariate_columns=cov_cols, bins=bins, alpha=alpha)
+    notes = list(fits.notes)
+    est_bin = fits.bin_slopes
 
     est_lin = _linear_slopes(design, moderator, med, alpha)
 
@@ -307,7 +224,10 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     if not design.focal_linear:
         notes.append(f"The bins use {design.focal!r} on its raw scale, while the model transforms it.")
 
-    wald = _linearity_wald(design, Xbin, alpha, notes)
+    jt = fits.wald
+    wald: dict[str, Any] | None = None if jt is None else {
+        "statistic": _num(jt.statistic), "df": [int(jt.df_num), _num(jt.df_den)], "p": _num(jt.p),
+        "method": f"HC3 {jt.method}: binning columns beyond the model are zero"}
     nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < alpha)
     return BinningCheck(moderator=moderator, cut_points=[float(c) for c in cuts], bins=bin_rows, wald=wald,
                         nonlinear=nonlinear, alpha=float(alpha), notes=tuple(notes), thin_bins=thin_any,

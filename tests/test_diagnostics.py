@@ -233,3 +233,20 @@ def test_user_data_is_not_modified(hprice1):
     pd.testing.assert_frame_equal(hprice1, before)
     np.testing.assert_array_equal(d.y, y0)
     np.testing.assert_array_equal(d.X, X0)
+
+
+def test_goldfeld_quandt_in_memory_keeps_ties_together():
+    # Common practice, no source: with a moderator of 11 values every cut is tied; the in-memory
+    # test uses the kernel's rule, so no value is split between the low and the high group.
+    rng = np.random.default_rng(21)
+    n = 600
+    x, w = rng.normal(size=n), rng.integers(0, 11, n).astype(float)
+    y = 1 + x + w + 0.2 * x * w + rng.normal(size=n) * (0.5 + 0.3 * w)
+    d = _design(pd.DataFrame({"y": y, "x": x, "w": w}), "y ~ x * w", "x", "w")
+    out = goldfeld_quandt(d)
+    assert out is not None
+    lo, hi = out["split"]["low_at_most"], out["split"]["high_at_least"]
+    assert out["group_sizes"] == {"low": int((w <= lo).sum()), "high": int((w >= hi).sum())}
+    assert "tied" in out["form"]
+    k = d.X.shape[1]
+    assert out["df"] == [out["group_sizes"]["high"] - k, out["group_sizes"]["low"] - k]

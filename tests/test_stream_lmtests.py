@@ -9,7 +9,7 @@ from statsmodels.stats.diagnostic import het_breuschpagan, het_white
 from robustmod.design import thin_qr
 from robustmod.diagnostics import breusch_pagan_lm, white_lm
 from robustmod.kernels.chunks import array_chunks
-from robustmod.kernels.lmtests import AuxiliaryRegression
+from robustmod.kernels.lmtests import AuxiliaryRegression, ols_residual_passes
 from robustmod.kernels.ols import streamed_ols
 
 
@@ -59,3 +59,50 @@ def test_wooldridge_example_8_4() -> None:
     bp, _ = _streamed(X, df["price"].to_numpy(float), 17)
     assert bp["statistic"] == pytest.approx(14.09, abs=0.005)
     assert bp["p"] == pytest.approx(0.0028, abs=0.00005)
+
+
+def _ill_conditioned(n: int = 3000, seed: int = 4) -> tuple[np.ndarray, np.ndarray]:
+    # Known-truth simulation (invented data): w in [100, 101] makes w and w² nearly collinear.
+    rng = np.random.default_rng(seed)
+    x, w = rng.normal(5, 1, n), rng.uniform(100, 101, n)
+    X = np.column_stack([np.ones(n), x, w, x * w])
+    return X, x + rng.normal(size=n) * (1 + (w - 100))
+
+
+@pytest.mark.parametrize("chunk_rows", (7, 1000, 10**5))
+def test_cholesky_route_equals_tsqr_route(chunk_rows: int) -> None:
+    X, y = _data()
+    Q, _ = thin_qr(X)
+    e = y - Q @ (Q.T @ y)
+    for white in (False, True):
+        chol, qr = AuxiliaryRegression(white=white), AuxiliaryRegression(white=white, method="tsqr")
+        for c in array_chunks(X, e, chunk_rows=chunk_rows)():
+            chol.add(c, c.y)
+            qr.add(c, c.y)
+        a, b = chol.result(), qr.result()
+        assert a["solved_by"] == "cholesky" and b["solved_by"] == "tsqr"
+        assert a["df"] == b["df"] and a["statistic"] == pytest.approx(b["statistic"], rel=1e-9)
+
+
+def test_ill_conditioned_white_falls_back_to_tsqr() -> None:
+    # Reference library: statsmodels het_white on the same residuals and regressors.
+    X, y = _ill_conditioned()
+    Q, _ = thin_qr(X)
+    e = y - Q @ (Q.T @ y)
+    got = white_lm(e, X)
+    assert got["solved_by"] == "tsqr"
+    lm, lm_p, _, _ = het_white(e, X)
+    assert got["statistic"] == pytest.approx(lm, rel=1e-7) and got["p"] == pytest.approx(lm_p, rel=1e-6)
+    assert got["df"] == 8  # x, w, xw, x², w², x²w, xw², x²w² (common practice, no source: counted by hand)
+
+
+def test_streamed_fallback_recomputes_residuals() -> None:
+    X, y = _ill_conditioned()
+    wh = AuxiliaryRegression(white=True)
+    chunks = array_chunks(X, y, chunk_rows=256)
+    fit = streamed_ols(chunks, ["hc3"], consumers=[wh])
+    assert wh.result()["solved_by"] == "cholesky (ill-conditioned)"
+    got = wh.result(ols_residual_passes(chunks, fit.beta))
+    Q, _ = thin_qr(X)
+    e = y - Q @ (Q.T @ y)
+    assert got["solved_by"] == "tsqr" and got["statistic"] == pytest.approx(white_lm(e, X)["statistic"], rel=1e-9)

@@ -18,13 +18,15 @@ import argparse
 import resource
 import sys
 import time
-import tracemalloc
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from measure import measured  # noqa: E402
 
 from robustmod.diagnostics import breusch_pagan_lm, white_lm
 from robustmod.kernels.chunks import array_chunks, rows_per_chunk
@@ -42,39 +44,6 @@ def simulate(rng: np.random.Generator, m: int) -> dict[str, np.ndarray]:
     x, w, a, b = (rng.normal(size=m) for _ in range(4))
     y = 1 + x + 0.5 * w + 0.2 * x * w + 0.3 * a + rng.normal(size=m) * np.exp(0.2 + 0.3 * w)
     return {"y": y, "x": x, "w": w, "a": a, "b": b}
-
-
-def _status_kib(field: str) -> int | None:
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith(field + ":"):
-                return int(line.split()[1])
-    except OSError:
-        return None
-    return None
-
-
-def measured(fn: Any) -> tuple[Any, float, int]:
-    """(result, seconds, peak bytes above what was in use before the call).
-
-    The peak is the larger of tracemalloc's (numpy buffers) and the rise of the resident set
-    (LAPACK work space too), the kernel's high-water mark being reset first (Linux clear_refs).
-    """
-    try:
-        Path("/proc/self/clear_refs").write_text("5")
-        before = _status_kib("VmRSS")
-    except OSError:
-        before = None
-    tracemalloc.start()
-    t0 = time.perf_counter()
-    out = fn()
-    seconds = time.perf_counter() - t0
-    peak = tracemalloc.get_traced_memory()[1]
-    tracemalloc.stop()
-    hwm = _status_kib("VmHWM")
-    if before is not None and hwm is not None:
-        peak = max(peak, (hwm - before) * 1024)
-    return out, seconds, peak
 
 
 #: Above this n the in-memory tests (n × 36 White matrix and its Q) are not run beside the kernels.

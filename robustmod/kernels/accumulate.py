@@ -66,3 +66,29 @@ class TSQR:
         R = np.zeros((self.p, self.p))
         R[: self.R.shape[0]] = self.R[: self.p]
         return R
+
+
+class CrossProducts:
+    """Count, column means and centred cross-products C = Σ(aᵢ − ā)(aᵢ − ā)ᵀ of p columns, merged
+    chunk by chunk with the pairwise update C = C₁ + C₂ + δδᵀ·n₁n₂/n (Chan, Golub & LeVeque 1979)."""
+
+    def __init__(self, p: int) -> None:
+        self.n = 0
+        self.mean = np.zeros(p)
+        self.C = np.zeros((p, p))
+
+    def add(self, block: np.ndarray, *, overwrite: bool = False) -> None:
+        """Merge the rows of ``block`` (m × p). With ``overwrite`` the block is centred in place;
+        a Fortran-ordered block makes the product BᵀB several times faster than a C-ordered one."""
+        m = block.shape[0]
+        if m == 0:
+            return
+        mean_b = block.mean(axis=0)
+        centred = block if overwrite else block.copy(order="F")
+        centred -= mean_b
+        C_b = centred.T @ centred
+        total = self.n + m
+        delta = mean_b - self.mean
+        self.C += C_b + np.outer(delta, delta) * (self.n * m / total)
+        self.mean = self.mean + delta * (m / total)
+        self.n = total

@@ -24,15 +24,40 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.base import Estimates, JointTest, WaldFit
-from ..errors import InputError
-from ..linearity import SPAN_TOL, _bin_index
+from ..errors import InputError, option_error
 from .accumulate import TSQR, RunningMoments
 from .chunks import Chunk, ChunkSource, mapped
 from .ols import StreamedOLS, streamed_ols
 from .order import column_summary, order_statistics, quantiles
 
-#: |R_jj| / ‖column‖ at or below which the binning model counts as rank-deficient (as in memory).
+#: |R_jj| / ‖column‖ at or below which the binning model counts as rank-deficient.
 RANK_TOL = 1e-10
+#: Relative size below which a residualised column counts as spanned by the model.
+SPAN_TOL = 1e-8
+
+
+def bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
+    """Bin number of each row and the interior cut points."""
+    if isinstance(bins, (bool, np.bool_)):
+        raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
+    if isinstance(bins, (int, np.integer)):
+        if bins < 2:
+            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins)
+        cuts = np.quantile(w, np.arange(1, bins) / bins)
+    else:
+        try:
+            cuts = np.asarray(list(bins), dtype=float)
+        except (TypeError, ValueError):
+            raise option_error("bins", "a whole number ≥ 2 or a list of interior cut points", bins) from None
+        if cuts.ndim != 1 or cuts.size == 0 or not np.all(np.isfinite(cuts)) or np.any(np.diff(cuts) <= 0):
+            raise option_error("bins", "cut points as a strictly increasing list of finite numbers", list(bins))
+        if cuts[0] <= w.min() or cuts[-1] >= w.max():
+            raise InputError(
+                f"The bin cut points {list(cuts)} must lie inside the observed range of {moderator!r} "
+                f"({w.min():g} to {w.max():g}); move them inside it."
+            )
+    # Rows at a cut point go to the lower bin (right-closed bins, as pandas.cut).
+    return np.searchsorted(cuts, w, side="left"), cuts
 
 
 @dataclass(frozen=True)
@@ -56,7 +81,7 @@ def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str
     """Interior cut points: the option is checked by the in-memory rule on the observed range
     (same messages); quantile cuts then come from the streamed column."""
     _, lo, hi = summary
-    cuts = _bin_index(np.array([lo, hi]), bins, moderator)[1]
+    cuts = bin_index(np.array([lo, hi]), bins, moderator)[1]
     if isinstance(bins, (int, np.integer)):
         return quantiles(values, list(np.arange(1, bins) / bins), summary=summary)
     return cuts
@@ -100,13 +125,22 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
                       dmax[present] > dmin[present], sd_all, n)
 
 
-def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str) -> np.ndarray:
-    """B = [G, G·D, G·(W − x_j), G·(W − x_j)·D] for the rows of one chunk (m × 4J)."""
+def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
+                    covariate_columns: Sequence[int] = ()) -> np.ndarray:
+    """B = [G, G·D, G·(W − x_j), G·(W − x_j)·D, X_cov] for the rows of one chunk (m × (4J + #cov)),
+    one Fortran-ordered array filled in place (the factorisations read it column by column)."""
     w, d = np.asarray(chunk.columns[moderator], dtype=float), np.asarray(chunk.columns[focal], dtype=float)
     idx = np.searchsorted(s.cuts, w, side="left")
-    G = (idx[:, None] == s.present[None, :]).astype(float)
-    Wc = w[:, None] - s.medians[None, :]
-    return np.column_stack([G, G * d[:, None], G * Wc, G * Wc * d[:, None]])
+    J, cov = s.present.size, list(covariate_columns)
+    out = np.empty((w.size, 4 * J + len(cov)), order="F")
+    G, GD, GW, GWD = (out[:, a * J:(a + 1) * J] for a in range(4))
+    np.equal(idx[:, None], s.present[None, :], out=G, casting="unsafe")
+    np.multiply(G, d[:, None], out=GD)
+    np.subtract(w[:, None], s.medians[None, :], out=GW)
+    GW *= G
+    np.multiply(GW, d[:, None], out=GWD)
+    out[:, 4 * J:] = chunk.X[:, cov]
+    return out
 
 
 def _hc3(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray]) -> StreamedOLS | str:
@@ -167,7 +201,7 @@ def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same no
         return BinningFits(s, None, None, np.zeros(0, dtype=int), tuple(notes))
 
     def xbin(c: Chunk) -> np.ndarray:
-        return np.column_stack([binning_columns(c, s, focal, moderator), c.X[:, cov_cols]])
+        return binning_columns(c, s, focal, moderator, cov_cols)
 
     n_bin_cols = 4 * J + len(cov_cols)
     est_bin = None

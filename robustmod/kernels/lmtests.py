@@ -2,30 +2,65 @@
 
 Both are n·R² of the auxiliary regression of uᵢ = êᵢ² on a constant and Z (the regressors for
 Breusch–Pagan; the regressors, their squares and cross-products for White), χ² with
-rank(Z) − 1 df (Breusch & Pagan 1979; Koenker 1981; White 1980). Per chunk the TSQR factor of
-[1 Z  u − c] is updated, c being the mean of u in the first chunk (a shift that keeps the sums
-of squares free of cancellation; the regression has a constant, so the shift changes nothing).
-At the end:
+rank(Z) − 1 df (Breusch & Pagan 1979; Koenker 1981; White 1980).
 
-* the independent columns are chosen by a pivoted QR of the factor with its columns scaled to
-  unit norm: the same pivots a pivoted QR of the scaled n-row matrix gives, since both share
-  their R (so the same columns are kept as in :mod:`robustmod.diagnostics`);
-* the factor of the kept columns and u − c gives Qᵀ(u − c), and the explained sum of squares
-  about the mean is ‖Qᵀ(u − c)‖² − n(ū − c)²; R² divides it by Σ(uᵢ − ū)², merged chunk by chunk.
+Cross-product route (the default). Per chunk the centred cross-products of [Z u] are merged
+(:class:`~robustmod.kernels.accumulate.CrossProducts`), so White's k(k+1)/2 products exist for one
+chunk at a time and the cost per row is one p × p rank update. At the end the centred Gram
+matrix of Z is scaled to unit diagonal, K = D C_ZZ D, and factored by pivoted Cholesky (LAPACK
+dpstrf): columns whose pivot falls below :data:`GRAM_DROP` are linearly dependent on the others
+and dropped (squared dummies, the intercept's products), df is the number kept, and
+R² = bᵀK⁻¹b / C_uu with b = D C_Zu, solved with the triangular factor. When the kept columns'
+scaled Gram matrix has a condition number beyond :data:`MAX_CONDITION` (the solve would lose
+more than about κ·ε ≈ 2e-10 of relative accuracy) the answer comes from the TSQR route instead.
+
+TSQR route. Per chunk the TSQR factor of [1 Z u − c] is updated, c being the mean of u in the
+first chunk (a shift that keeps the sums of squares free of cancellation; the regression has a
+constant, so the shift changes nothing). The independent columns are chosen by a pivoted QR of
+the factor with its columns scaled to unit norm — the pivots a pivoted QR of the scaled n-row
+matrix gives, since both share their R; the factor of the kept columns and u − c gives Qᵀ(u − c),
+and the explained sum of squares is ‖Qᵀ(u − c)‖² − n(ū − c)².
 """
 from __future__ import annotations
 
+from collections.abc import Callable, Iterable
+from contextlib import AbstractContextManager, nullcontext
 from typing import Any
 
 import numpy as np
 from scipy import linalg, stats
+from scipy.linalg import lapack
 
 from ..jsonvalues import num
-from .accumulate import TSQR, RunningMoments
-from .chunks import Chunk
+from .accumulate import TSQR, CrossProducts, RunningMoments
+from .chunks import Chunk, ChunkSource
 
-#: Relative pivot size below which a column counts as dependent (as robustmod.diagnostics).
+#: A pass over (chunk, residuals of its rows) pairs, started anew on each call.
+ResidualPasses = Callable[[], Iterable[tuple[Chunk, np.ndarray]]]
+
+#: Relative pivot size below which a column counts as dependent (TSQR route, on the R scale).
 DEPENDENT_TOL = 1e-10
+#: Pivot of the unit-diagonal Gram matrix below which a column counts as dependent (the square
+#: of a relative residual norm of about 3e-5; exact dependencies give pivots near 1e-16).
+GRAM_DROP = 1e-9
+#: Largest condition number of the kept scaled Gram matrix the Cholesky route accepts.
+MAX_CONDITION = 1e6
+#: A column whose SD is below this share of its mean magnitude is constant (spanned by the intercept).
+CONSTANT_TOL = 1e-12
+METHODS = ("cholesky", "tsqr")
+#: Rows of the auxiliary block built at a time: a block that stays in the processor's cache makes
+#: its cross-product an order of magnitude faster than one of a whole large chunk (measured).
+CACHE_ROWS = 1 << 14
+
+
+def one_blas_thread() -> AbstractContextManager[Any]:
+    """One BLAS thread while the small cross-products run: for a p × p update from a cached block,
+    threads cost more in hand-over than they save, and on a busy machine far more (measured)."""
+    try:
+        from threadpoolctl import threadpool_limits  # noqa: PLC0415  (optional; only the speed changes)
+    except ImportError:  # pragma: no cover
+        return nullcontext()
+    return threadpool_limits(1, user_api="blas")
 
 
 def white_columns(X: np.ndarray) -> np.ndarray:
@@ -34,12 +69,37 @@ def white_columns(X: np.ndarray) -> np.ndarray:
     return np.column_stack([X, X[:, iu] * X[:, ju]])
 
 
-class AuxiliaryRegression:
-    """Accumulates n·R² of êᵢ² on a constant and ``columns(X)``; give it to the OLS residual pass."""
+def auxiliary_block(X: np.ndarray, u: np.ndarray, white: bool) -> np.ndarray:
+    """[X, (XᵢXⱼ for i ≤ j if white), u] as one Fortran-ordered array, filled column by column."""
+    k = X.shape[1]
+    iu, ju = np.triu_indices(k) if white else (np.zeros(0, dtype=int), np.zeros(0, dtype=int))
+    out = np.empty((X.shape[0], k + iu.size + 1), order="F")
+    out[:, :k] = X
+    for c, (i, j) in enumerate(zip(iu, ju, strict=True)):  # k(k+1)/2 columns, each contiguous
+        np.multiply(X[:, i], X[:, j], out=out[:, k + c])
+    out[:, -1] = u
+    return out
 
-    def __init__(self, white: bool = False) -> None:
-        self.white = white
+
+def _lm(stat: float, df: int, method: str) -> dict[str, Any]:
+    return {"statistic": num(stat), "df": int(df), "p": num(stats.chi2.sf(stat, df)) if df > 0 else None,
+            "solved_by": method}
+
+
+class AuxiliaryRegression:
+    """Accumulates n·R² of êᵢ² on a constant and ``columns(X)``; give it to the OLS residual pass.
+
+    ``method`` is 'cholesky' (cross-products, the cheap route) or 'tsqr'. :meth:`result` of the
+    Cholesky route falls back to a TSQR pass over ``redo`` when the scaled Gram matrix is
+    ill-conditioned.
+    """
+
+    def __init__(self, white: bool = False, method: str = "cholesky") -> None:
+        if method not in METHODS:
+            raise ValueError(f"method must be one of {METHODS}; got {method!r}")
+        self.white, self.method = white, method
         self.tsqr: TSQR | None = None
+        self.cross: CrossProducts | None = None
         self.shift: float | None = None
         self.u = RunningMoments(1)
 
@@ -47,19 +107,69 @@ class AuxiliaryRegression:
         u = resid * resid
         if u.size == 0:
             return
-        if self.shift is None:
-            self.shift = float(u.mean())
-        Z = white_columns(chunk.X) if self.white else chunk.X
-        block = np.column_stack([np.ones(u.size), Z, u - self.shift])
-        if self.tsqr is None:
-            self.tsqr = TSQR(block.shape[1])
-        self.tsqr.add(block)
+        if self.method == "cholesky":
+            with one_blas_thread():
+                for a in range(0, u.size, CACHE_ROWS):
+                    block = auxiliary_block(chunk.X[a:a + CACHE_ROWS], u[a:a + CACHE_ROWS], self.white)
+                    self.cross = self.cross or CrossProducts(block.shape[1])
+                    self.cross.add(block, overwrite=True)
+        else:
+            Z = white_columns(chunk.X) if self.white else chunk.X
+            if self.shift is None:
+                self.shift = float(u.mean())
+            block = np.column_stack([np.ones(u.size), Z, u - self.shift])
+            self.tsqr = self.tsqr or TSQR(block.shape[1])
+            self.tsqr.add(block)
         self.u.add(u)
 
-    def result(self) -> dict[str, Any]:
-        """{statistic, df, p} as :func:`robustmod.diagnostics.breusch_pagan_lm` / ``white_lm`` give them."""
+    def result(self, redo: ResidualPasses | None = None) -> dict[str, Any]:
+        """{statistic, df, p, solved_by}: n·R², its df and χ² p-value, and the route that solved it.
+
+        ``redo`` (e.g. :func:`ols_residual_passes`) allows the TSQR fallback of the Cholesky route;
+        without it an ill-conditioned Gram matrix is solved anyway and ``solved_by`` says so."""
+        if self.method == "tsqr":
+            return self._tsqr_result()
+        if self.cross is None:
+            return {"statistic": None, "df": 0, "p": None, "solved_by": self.method}
+        out = self._gram_result()
+        if out is not None:
+            return out
+        if redo is None:
+            return self._gram_result(force=True) or {}
+        again = AuxiliaryRegression(self.white, method="tsqr")
+        for c, e in redo():
+            again.add(c, e)
+        return again.result()
+
+    def _gram_result(self, force: bool = False) -> dict[str, Any] | None:
+        assert self.cross is not None
+        C, n = self.cross.C, self.cross.n
+        p = C.shape[0] - 1
+        s = np.sqrt(np.maximum(np.diag(C)[:p], 0.0))
+        varying = np.flatnonzero(s > CONSTANT_TOL * np.maximum(np.abs(self.cross.mean[:p]), 1e-300))
+        cuu = float(C[p, p])
+        if varying.size == 0 or cuu <= 0:
+            return _lm(0.0, 0, "cholesky")
+        sv = s[varying]
+        K = C[np.ix_(varying, varying)] / np.outer(sv, sv)
+        U, piv, rank, info = lapack.dpstrf(K, lower=0, tol=GRAM_DROP)
+        if info < 0:  # pragma: no cover - LAPACK argument errors only
+            raise RuntimeError(f"dpstrf failed with info {info}")
+        kept = piv[:rank] - 1
+        Uk = np.triu(U[:rank, :rank])
+        d = np.abs(np.diag(Uk))
+        condition = float((d.max() / d.min()) ** 2) if rank else 1.0
+        if rank and condition > MAX_CONDITION and not force:
+            return None
+        b = C[varying[kept], p] / sv[kept]
+        z = linalg.solve_triangular(Uk, b, trans="T", lower=False) if rank else np.zeros(0)
+        r2 = float(z @ z) / cuu
+        label = "cholesky" if condition <= MAX_CONDITION else "cholesky (ill-conditioned)"
+        return _lm(n * r2, rank, label)
+
+    def _tsqr_result(self) -> dict[str, Any]:
         if self.tsqr is None or self.shift is None:
-            return {"statistic": None, "df": 0, "p": None}
+            return {"statistic": None, "df": 0, "p": None, "solved_by": "tsqr"}
         Raug = self.tsqr.factor()
         p = Raug.shape[1] - 1
         RZ = Raug[:, :p]
@@ -75,6 +185,11 @@ class AuxiliaryRegression:
         ss_tot = float(self.u.m2[0])
         ess = float(qtu @ qtu) - n * (float(self.u.mean[0]) - self.shift) ** 2
         r2 = ess / ss_tot if ss_tot > 0 else 0.0
-        df = rank - 1
-        stat = n * r2
-        return {"statistic": num(stat), "df": int(df), "p": num(stats.chi2.sf(stat, df)) if df > 0 else None}
+        return _lm(n * r2, rank - 1, "tsqr")
+
+
+def ols_residual_passes(chunks: ChunkSource, beta: np.ndarray) -> ResidualPasses:
+    """Passes over (chunk, yᵢ − xᵢᵀβ̂) for the TSQR fallback."""
+    def passes() -> Iterable[tuple[Chunk, np.ndarray]]:
+        return ((c, c.y - c.X @ beta) for c in chunks())
+    return passes
