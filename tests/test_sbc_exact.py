@@ -10,6 +10,7 @@ import sys
 from pathlib import Path
 
 import numpy as np
+import pytest
 from scipy import stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "validation"))
@@ -32,6 +33,7 @@ def test_woodbury_marginal_matches_the_dense_normal_density():
     np.testing.assert_allclose(fast - fast[0], dense - dense[0], rtol=1e-9, atol=1e-8)
 
 
+@pytest.mark.slow
 def test_importance_sampled_cdf_matches_grid_quadrature():
     # Two numerical routes to the same posterior CDF of γ₁ (common practice, no source): importance
     # sampling from the t proposal, and the trapezoid rule on a 3-D grid around the mode.
