@@ -15,7 +15,7 @@ whether the 95 % equal-tailed interval covers the truth. Compared with the sampl
 coverage on the same replicates, this tells sampler error apart from the Monte Carlo spread
 of the study: a correct sampler agrees with this reference replicate by replicate.
 
-Run: python validation/sbc_exact.py --seed 2018 --replicates 400 [--compare FILE.csv] [--out FILE.csv]
+Run: python validation/sbc_exact.py --seed 2018 --replicates 400 [--compare FILE.csv] [--out FILE.csv | --load FILE.csv]
 """
 from __future__ import annotations
 
@@ -93,7 +93,13 @@ def main() -> None:
     ap.add_argument("--draws", type=int, default=20000, help="importance draws per replicate")
     ap.add_argument("--compare", default=None, help="per-replicate CSV of sbc_bayes.py with the same seed")
     ap.add_argument("--out", default=None, help="CSV of the reference CDFs per replicate")
+    ap.add_argument("--load", default=None, help="summarise a CSV written earlier by --out instead of recomputing")
     a = ap.parse_args()
+    if a.load:
+        import pandas as pd
+
+        report(a, pd.read_csv(a.load).iloc[: a.replicates].to_dict("records"))
+        return
     # The SBC's random stream, reproduced draw for draw (sbc_bayes.main).
     rng = np.random.default_rng(a.seed)
     Xs, Zs = design(a.n, a.seed)
