@@ -210,13 +210,15 @@ class Comparison:
 
     def __str__(self) -> str:
         parts = [render_text(t) for t in self._tables]
-        return "\n\n".join(parts) + "\n\n" + self.summary["sentence"] + "\n" + CAUTION_LINE
+        warned = "".join(f"warning: {w}\n" for w in self.warnings)
+        return "\n\n".join(parts) + "\n\n" + warned + self.summary["sentence"] + "\n" + CAUTION_LINE
 
     def __repr__(self) -> str:
         return f"<Comparison of {len(self.results)} back-ends on {self.spec.formula!r}; primary {self.primary}>"
 
     def _repr_html_(self) -> str:
         parts = [render_html(t, heading="h4") for t in self._tables]
+        parts += [f"<p><strong>Warning:</strong> {html.escape(w)}</p>" for w in self.warnings]
         parts.append(f"<p>{html.escape(self.summary['sentence'])}</p>")
         parts.append(f"<p><small>{html.escape(CAUTION_LINE)}</small></p>")
         return "\n".join(parts)
