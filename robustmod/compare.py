@@ -7,6 +7,7 @@ the appendix never disagree.
 """
 from __future__ import annotations
 
+import dataclasses
 import html
 import time
 from collections.abc import Mapping, Sequence
@@ -20,7 +21,8 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend
+from .backends.kernels import leverage_one_note
+from .backends.registry import CONSTANT_VARIANCE, check_ids, make_backend, residual_per_row_ids
 from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
 from .comparison_tables import backend_tables, product_term_table, regions_table, slopes_table
 from .data import NaValues, load_data
@@ -268,9 +270,13 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
                 boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}
     primary_supported = bool(prim is not None and prim.interaction["supported"])
     robust_usable = [b for b in usable if b not in CONSTANT_VARIANCE]
-    survives = bool(primary_supported and sign_consistent and robust_usable
+    leverage_one = leverage_one_note(c.design) is not None
+    survives = bool(primary_supported and sign_consistent and robust_usable and not leverage_one
                     and all(usable[b].interaction["supported"] for b in robust_usable))
     sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
+    if leverage_one:
+        sentence += (" Some rows have leverage 1, so back-ends built from each row's residual are degenerate and not "
+                     "counted; no verdict on survival is drawn until those rows are dealt with (see the warnings).")
     return {
         "primary": c.primary, "supported_by": supported, "not_supported_by": not_supported, "unreliable": unreliable,
         "sign_consistent": sign_consistent, "survives": survives, "primary_supported": primary_supported,
@@ -428,7 +434,12 @@ def compare(
         fit = backend.fit(design, seed=spec.seed, progress=progress)
         results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
         report_step(on_step, f"back-end {bid}", t0)
+    leverage_note = leverage_one_note(design)
+    if leverage_note is not None:
+        results = mark_degenerate(results, leverage_note)
     if not results[primary].available:
+        if leverage_note is not None:
+            raise InputError(f"The primary back-end {primary!r} cannot answer on these data: {leverage_note}")
         raise InputError(
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
             "Choose another primary back-end (e.g. hc0) or fix the data."
@@ -442,5 +453,13 @@ def compare(
         calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly, workers=workers,
                           options=options, progress=progress)
         report_step(on_step, f"calibration ({calibration} datasets)", started)
-    warnings = tuple(design.warnings)
+    warnings = tuple(design.warnings) + ((leverage_note,) if leverage_note else ())
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)
+
+
+def mark_degenerate(results: dict[str, BackendResult], note: str) -> dict[str, BackendResult]:
+    """Back-ends whose standard errors need each row's residual are unreliable when a row has
+    leverage one (its residual is zero whatever the variance there): kept, shown, never counted."""
+    degenerate = residual_per_row_ids()
+    return {bid: dataclasses.replace(r, reliable=False, warnings=(*r.warnings, note))
+            if bid in degenerate else r for bid, r in results.items()}

@@ -412,6 +412,8 @@ def _moderator_info(prepared: PreparedData, spec: ModelSpec) -> dict[str, Modera
 def _probe_range_note(name: str, info: ModeratorInfo, values: list[float], kind: str) -> str | None:
     """The warning for probe values outside [min, max] of the moderator, or below zero for a
     moderator that is never negative (mean − 1 SD of a skewed count, say), or None."""
+    if info.minimum is None or info.maximum is None:
+        return None
     outside = [v for v in values if v < info.minimum or v > info.maximum]
     if not outside:
         return None

@@ -86,6 +86,38 @@ def leverage_one_reason(h: np.ndarray, what: str, row_numbers: Sequence[int] | n
             f"(each alone determines a coefficient); {remedy}.")
 
 
+def leverage_one_note(design: Design) -> str | None:
+    """Rows of the design with leverage one and their likely cause, or None if there are none.
+
+    The cause named: a level (of a text, categorical or few-valued numeric column of the model)
+    that occurs in such a row only, else the model terms that are non-zero in those rows only.
+    There each row's residual is zero, so a standard error built from residuals is degenerate.
+    """
+    ones = leverage_one_rows(np.einsum("ij,ij->i", design.qr[0], design.qr[0]))
+    if ones.size == 0:
+        return None
+    rows = design_row_numbers(design)[ones]
+    shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
+    causes = []
+    frame = design.data.frame
+    for name in frame.columns:
+        col = frame[name]
+        if col.nunique() > max(10, frame.shape[0] // 2):  # a measurement, not a category
+            continue
+        counts = col.map(col.value_counts()).to_numpy()
+        causes += [f"the level {col.iloc[i]!r} of {name!r} occurs in data row {int(r)} only"
+                   for i, r in zip(ones, rows, strict=True) if counts[i] == 1]
+    if not causes:
+        nonzero = np.abs(design.X) > 0
+        others = np.setdiff1d(np.arange(design.n_obs), ones)
+        alone = np.flatnonzero(nonzero[ones].any(axis=0) & ~nonzero[others].any(axis=0))
+        causes = [f"the term {design.term_names[j]!r} is non-zero in those rows only" for j in alone]
+    cause = "; ".join(causes[:5]) if causes else "each alone determines a combination of the coefficients"
+    return (f"Data row(s) {shown} have leverage 1 ({cause}: a category or dummy with a single row); their "
+            "residuals are zero, so standard errors built from residuals are degenerate there. Merge that "
+            "level with another, drop the row(s) or the term.")
+
+
 def design_row_numbers(design: Design) -> np.ndarray:
     """1-based data row numbers of the design rows (positions in the user's data), for messages."""
     return np.asarray(design.data.frame.index, dtype=int) + 1
