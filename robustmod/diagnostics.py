@@ -25,6 +25,8 @@ from .backends.ols import ols_fit
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
+from .kernels.chunks import array_chunks
+from .kernels.gq import goldfeld_quandt as streamed_goldfeld_quandt
 from .linearity import BinningCheck, binning_check
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
@@ -101,35 +103,24 @@ def white(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
 def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, Any] | None:
     """Split along a continuous moderator; F of residual variances high vs low, two-sided.
 
-    None when the model has no continuous moderator or the halves are too small to fit.
+    The split is by value, ties never split between a group and the dropped middle (the one
+    implementation of :func:`robustmod.kernels.gq.goldfeld_quandt`, here over one in-memory
+    chunk), so the result does not depend on the order of the rows. None when the model has no
+    continuous moderator, the groups are too small to fit, or so many ties that they would overlap.
     """
     conts = design.continuous_moderators
     if moderator is None:
         if not conts:
             return None
         moderator = conts[0]
-    w = design.moderators[moderator].values
-    order = np.argsort(w, kind="stable")
-    n, k = design.X.shape
-    drop = int(round(GQ_DROP * n))
-    n1 = (n - drop) // 2
-    if n1 <= k + 1:
+    w = np.asarray(design.moderators[moderator].values, dtype=float)
+    chunks = array_chunks(design.X, design.y, chunk_rows=max(design.n_obs, 1), columns={moderator: w})
+    out = streamed_goldfeld_quandt(chunks, moderator, drop_share=GQ_DROP)
+    if out is None:
         return None
-    lo, hi = order[:n1], order[n - n1:]
-    s2 = []
-    for idx in (lo, hi):  # the two halves
-        Xs, ys = design.X[idx], design.y[idx]
-        beta, *_ = linalg.lstsq(Xs, ys)
-        r = ys - Xs @ beta
-        s2.append(float(r @ r) / (len(idx) - k))
-    if s2[0] <= 0:
-        return None
-    F = s2[1] / s2[0]
-    d = n1 - k
-    p = 2 * min(stats.f.sf(F, d, d), stats.f.cdf(F, d, d))
-    return {"statistic": _num(F), "df": [int(d), int(d)], "p": _num(min(1.0, p)), "moderator": moderator,
-            "n_dropped_middle": int(n - 2 * n1),
-            "form": f"sorted by {moderator}, middle {int(100 * GQ_DROP)}% dropped, F = s²(high)/s²(low), two-sided"}
+    out["form"] = (f"sorted by {moderator}, middle {int(100 * GQ_DROP)}% dropped (rows tied at a cut stay in one "
+                   "group), F = s²(high)/s²(low), two-sided")
+    return out
 
 
 def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderator: str | None = None,
