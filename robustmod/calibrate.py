@@ -39,6 +39,7 @@ from .backends.registry import (
     check_ids,
     make_backend,
 )
+from .defaults import MAX_DATASETS, MIN_DATASETS
 from .design import Design
 from .engines import Engine, make_engine
 from .engines.base import available_cores
@@ -50,8 +51,6 @@ CHUNK = 50
 #: Datasets a costly back-end (one whose class sets ``costly = True``, e.g. a sampler) gets
 #: when it is asked for; each one is a full fit.
 COSTLY_DATASETS = 20
-#: Allowed numbers of simulated datasets (fewer says nothing; more takes hours on 2 cores).
-MIN_DATASETS, MAX_DATASETS = 10, 100_000
 #: Run the remaining chunks in worker processes when they would take longer than this (s).
 PARALLEL_MIN_SECONDS = 2.0
 

@@ -7,6 +7,7 @@ the appendix never disagree.
 """
 from __future__ import annotations
 
+import dataclasses
 import html
 import time
 from collections.abc import Callable, Mapping, Sequence
@@ -21,7 +22,8 @@ import pandas as pd
 
 from . import effects
 from .backends.base import Fit, Unavailable
-from .backends.registry import CONSTANT_VARIANCE, check_ids, independent_rows_ids, make_backend
+from .backends.kernels import leverage_one_note
+from .backends.registry import CONSTANT_VARIANCE, check_ids, independent_rows_ids, make_backend, residual_per_row_ids
 from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
 from .clusters import FEW_CLUSTERS, cluster_sizes, residual_icc
 from .comparison_tables import backend_tables, cluster_table, product_term_table, regions_table, slopes_table
@@ -224,13 +226,15 @@ class Comparison:
 
     def __str__(self) -> str:
         parts = [render_text(t) for t in self._tables]
-        return "\n\n".join(parts) + "\n\n" + self.summary["sentence"] + "\n" + CAUTION_LINE
+        warned = "".join(f"warning: {w}\n" for w in self.warnings)
+        return "\n\n".join(parts) + "\n\n" + warned + self.summary["sentence"] + "\n" + CAUTION_LINE
 
     def __repr__(self) -> str:
         return f"<Comparison of {len(self.results)} back-ends on {self.spec.formula!r}; primary {self.primary}>"
 
     def _repr_html_(self) -> str:
         parts = [render_html(t, heading="h4") for t in self._tables]
+        parts += [f"<p><strong>Warning:</strong> {html.escape(w)}</p>" for w in self.warnings]
         parts.append(f"<p>{html.escape(self.summary['sentence'])}</p>")
         parts.append(f"<p><small>{html.escape(CAUTION_LINE)}</small></p>")
         return "\n".join(parts)
@@ -283,7 +287,8 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
                 boundary_shift[b] = {"max_shift": None, "share_of_observed_range": None, "same_shape": False}
     primary_supported = bool(prim is not None and inter[c.primary]["supported"])
     robust_usable = [b for b in usable if b not in CONSTANT_VARIANCE]
-    survives = bool(primary_supported and sign_consistent and robust_usable
+    leverage_one = leverage_one_note(c.design) is not None
+    survives = bool(primary_supported and sign_consistent and robust_usable and not leverage_one
                     and all(inter[b]["supported"] for b in robust_usable))
     sentence = _sentence(c, usable, supported, not_supported, unreliable, sign_consistent, survives, primary_supported)
     if rowwise:
@@ -292,6 +297,9 @@ def robustness_summary(c: Comparison) -> dict[str, Any]:
         sentence = sentence.replace(" Agreement speaks", f" Not counted because they assume independent rows, which "
                                     f"the clusters of {c.design.cluster_name!r} are not: {', '.join(said)}."
                                     " Agreement speaks")
+    if leverage_one:
+        sentence += (" Some rows have leverage 1, so back-ends built from each row's residual are degenerate and not "
+                     "counted; no verdict on survival is drawn until those rows are dealt with (see the warnings).")
     return {
         "primary": c.primary, "supported_by": supported, "not_supported_by": not_supported, "unreliable": unreliable,
         "assumes_independent_rows": rowwise,
@@ -527,7 +535,12 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
         fit = backend.fit(design, seed=spec.seed, progress=progress)
         results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
         report_step(on_step, f"back-end {bid}", t0)
+    leverage_note = leverage_one_note(design)
+    if leverage_note is not None:
+        results = mark_degenerate(results, leverage_note)
     if not results[primary].available:
+        if leverage_note is not None:
+            raise InputError(f"The primary back-end {primary!r} cannot answer on these data: {leverage_note}")
         raise InputError(
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
             "Choose another primary back-end (e.g. hc0) or fix the data."
@@ -541,7 +554,7 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
         calib = calibrate(design, ids, n_datasets=calibration, seed=spec.seed, include_costly=calibrate_costly,
                           workers=workers, engine=engine, options=options, progress=progress)
         report_step(on_step, f"calibration ({calibration} datasets)", started)
-    warnings = tuple(design.warnings)
+    warnings = tuple(design.warnings) + ((leverage_note,) if leverage_note else ())
     return Comparison(spec, design, results, primary, diagnostics, calib, warnings, source)
 
 
@@ -554,3 +567,11 @@ def _open_engine(engine: str | Engine, scheduler: str | None, workers: int | Non
     if check_engine_choice(engine, scheduler) == "local":
         return None
     return stack.enter_context(make_engine(engine, scheduler=scheduler, workers=workers, announce=announce))
+
+
+def mark_degenerate(results: dict[str, BackendResult], note: str) -> dict[str, BackendResult]:
+    """Back-ends whose standard errors need each row's residual are unreliable when a row has
+    leverage one (its residual is zero whatever the variance there): kept, shown, never counted."""
+    degenerate = residual_per_row_ids()
+    return {bid: dataclasses.replace(r, reliable=False, warnings=(*r.warnings, note))
+            if bid in degenerate else r for bid, r in results.items()}

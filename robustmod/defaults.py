@@ -26,6 +26,8 @@ ENGINE = "local"
 
 #: Default number of simulated datasets of ``--calibrate`` when no number is given.
 CALIBRATION_DATASETS = 1000
+#: Allowed numbers of simulated datasets (fewer says nothing; more takes hours on 2 cores).
+MIN_DATASETS, MAX_DATASETS = 10, 100_000
 
 #: Leverages at or above 1 − LEVERAGE_ONE_TOL count as leverage one (HC2–HC5 undefined there).
 LEVERAGE_ONE_TOL = 1e-10

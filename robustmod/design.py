@@ -416,6 +416,24 @@ def _moderator_info(prepared: PreparedData, spec: ModelSpec) -> dict[str, Modera
     return out
 
 
+def _probe_range_note(name: str, info: ModeratorInfo, values: list[float], kind: str) -> str | None:
+    """The warning for probe values outside [min, max] of the moderator, or below zero for a
+    moderator that is never negative (mean − 1 SD of a skewed count, say), or None."""
+    if info.minimum is None or info.maximum is None:
+        return None
+    outside = [v for v in values if v < info.minimum or v > info.maximum]
+    if not outside:
+        return None
+    shown = ", ".join(f"{v:g}" for v in outside)
+    what = "The default probe value(s)" if kind == "sd" else "Probe value(s)"
+    rule = " (mean ± 1 SD)" if kind == "sd" else ""
+    negative = info.minimum >= 0 and any(v < 0 for v in outside)
+    where = (f"below zero, but {name!r} is never negative (observed range [{info.minimum:g}, {info.maximum:g}])"
+             if negative else f"outside its observed range [{info.minimum:g}, {info.maximum:g}]")
+    return (f"{what} {shown} of {name!r}{rule} lie {where}; effects there are extrapolations. "
+            f"Probe inside the data with --at percentiles (probe={{{name!r}: 'percentiles'}} in Python).")
+
+
 def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warnings: list[str]) -> tuple[dict[str, Any], ...]:
     per: list[list[Any]] = []
     for name, info in moderators.items():
@@ -442,12 +460,8 @@ def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warning
             values = [float(np.percentile(info.values, q)) for q in vals]
         else:
             values = list(vals)
-            outside = [v for v in values if v < info.minimum or v > info.maximum]
-            if outside:
-                warnings.append(
-                    f"Probe value(s) {', '.join(f'{v:g}' for v in outside)} of {name!r} lie outside its observed range "
-                    f"[{info.minimum:g}, {info.maximum:g}]; effects there are extrapolations."
-                )
+        if kind != "percentiles" and (note := _probe_range_note(name, info, [float(v) for v in values], kind)):
+            warnings.append(note)
         per.append([float(v) for v in values])
     names = list(moderators)
     return tuple(dict(zip(names, combo, strict=False)) for combo in itertools.product(*per))

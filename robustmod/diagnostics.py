@@ -107,9 +107,10 @@ def _design_chunks(design: Design, columns: Mapping[str, np.ndarray], y: np.ndar
 def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, Any] | None:
     """Split along a continuous moderator; F of residual variances high vs low, two-sided.
 
-    The rule of :func:`robustmod.kernels.gq.goldfeld_quandt`: rows tied at a cut value are never
-    split between the groups. None when the model has no continuous moderator, the halves are too
-    small to fit, or ties leave the groups overlapping.
+    The split is by value, ties never split between a group and the dropped middle (the one
+    implementation of :func:`robustmod.kernels.gq.goldfeld_quandt`, here over one in-memory
+    chunk), so the result does not depend on the order of the rows. None when the model has no
+    continuous moderator, the groups are too small to fit, or so many ties that they would overlap.
     """
     conts = design.continuous_moderators
     if moderator is None:

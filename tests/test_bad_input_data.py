@@ -176,6 +176,26 @@ def case_unread_file_ending(tmp: Path) -> tuple[list[str], Path]:
     return args(p), p
 
 
+def case_calibrate_too_few(tmp: Path) -> tuple[list[str], Path]:
+    p = tmp / "wage.csv"
+    wage().to_csv(p, index=False)
+    return [*args(p), "--calibrate", "5"], p
+
+
+def case_calibrate_too_many(tmp: Path) -> tuple[list[str], Path]:
+    p = tmp / "wage.csv"
+    wage().to_csv(p, index=False)
+    return [*args(p), "--calibrate", "250000"], p
+
+
+def case_single_row_category_under_default_primary(tmp: Path) -> tuple[list[str], Path]:
+    d = wage()
+    d["region"] = np.where(np.arange(len(d)) == 9, "coast", "inland")  # one row in 'coast': data row 10
+    p = tmp / "wage.csv"
+    d.to_csv(p, index=False)
+    return args(p, formula="lwage ~ educ * exper + region"), p
+
+
 CASES: dict[str, Callable[[Path], tuple[list[str], Path]]] = {
     name[len("case_"):]: fn for name, fn in globals().items() if name.startswith("case_") and callable(fn)
 }
@@ -206,6 +226,9 @@ EXPECT: dict[str, list[str]] = {
     "broken_stata_file": ["'wage.dta'", "Stata file"],
     "broken_spss_file": ["'wage.sav'", "SPSS file"],
     "unread_file_ending": ["'.sas7bdat'", ".dta", ".sav"],
+    "calibrate_too_few": ["--calibrate", "from 10 to 100,000", "got 5"],
+    "calibrate_too_many": ["--calibrate", "from 10 to 100,000", "got 250,000"],
+    "single_row_category_under_default_primary": ["'hc3'", "data row 10", "level 'coast' of 'region'", "Merge that level"],
 }
 
 

@@ -5,6 +5,8 @@ over it), so a fit and a calibration study of D simulated outcomes run the same 
 
 * :func:`wald_test` — the Wald decision: t test for one restriction, F (or χ²) for several;
 * :func:`leverage_one_reason` — the one message for rows whose leverage is one;
+* :func:`exact_zeros`, :func:`floored_squares`, :func:`zero_residual_note` — residuals that are zero
+  to machine precision, their floor before a log, and the warning saying why;
 * :func:`log_square_regression`, :func:`twostep_fgls` — the two-step variance regression
   log ê² on z (Harvey 1976), used by the ``wls`` back-end and the calibration's fallback model.
 """
@@ -24,8 +26,11 @@ if TYPE_CHECKING:  # pragma: no cover
 
 #: −E[log χ²₁] = −(ψ(1/2) + log 2) ≈ 1.2704, the intercept correction of the log ê² regression.
 LOG_CHI2_CORRECTION = float(-(special.digamma(0.5) + math.log(2.0)))
-#: Squared residuals below this share of their mean are raised to it before the log.
+#: Exactly zero squared residuals are raised to this share of the mean ê² before the log.
 ZERO_RESIDUAL_FLOOR = 1e-8
+#: A residual counts as exactly zero when |êᵢ| ≤ ZERO_RESIDUAL_RTOL · max|y| (≈ 4500 ε: rounding
+#: of the QR residual, not a small but genuine one).
+ZERO_RESIDUAL_RTOL = 1e-12
 #: log-variances are clipped here so that exp() never overflows.
 ETA_LIMIT = 600.0
 
@@ -81,16 +86,82 @@ def leverage_one_reason(h: np.ndarray, what: str, row_numbers: Sequence[int] | n
             f"(each alone determines a coefficient); {remedy}.")
 
 
+def leverage_one_note(design: Design) -> str | None:
+    """Rows of the design with leverage one and their likely cause, or None if there are none.
+
+    The cause named: a level (of a text, categorical or few-valued numeric column of the model)
+    that occurs in such a row only, else the model terms that are non-zero in those rows only.
+    There each row's residual is zero, so a standard error built from residuals is degenerate.
+    """
+    ones = leverage_one_rows(np.einsum("ij,ij->i", design.qr[0], design.qr[0]))
+    if ones.size == 0:
+        return None
+    rows = design_row_numbers(design)[ones]
+    shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
+    causes = []
+    frame = design.data.frame
+    for name in frame.columns:
+        col = frame[name]
+        if col.nunique() > max(10, frame.shape[0] // 2):  # a measurement, not a category
+            continue
+        counts = col.map(col.value_counts()).to_numpy()
+        causes += [f"the level {col.iloc[i]!r} of {name!r} occurs in data row {int(r)} only"
+                   for i, r in zip(ones, rows, strict=True) if counts[i] == 1]
+    if not causes:
+        nonzero = np.abs(design.X) > 0
+        others = np.setdiff1d(np.arange(design.n_obs), ones)
+        alone = np.flatnonzero(nonzero[ones].any(axis=0) & ~nonzero[others].any(axis=0))
+        causes = [f"the term {design.term_names[j]!r} is non-zero in those rows only" for j in alone]
+    cause = "; ".join(causes[:5]) if causes else "each alone determines a combination of the coefficients"
+    return (f"Data row(s) {shown} have leverage 1 ({cause}: a category or dummy with a single row); their "
+            "residuals are zero, so standard errors built from residuals are degenerate there. Merge that "
+            "level with another, drop the row(s) or the term.")
+
+
 def design_row_numbers(design: Design) -> np.ndarray:
     """1-based data row numbers of the design rows (positions in the user's data), for messages."""
     return np.asarray(design.data.frame.index, dtype=int) + 1
 
 
-def floored_squares(E: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """ê² raised to ZERO_RESIDUAL_FLOOR·mean(ê²) per dataset (rows of E), and the count raised."""
+def exact_zeros(E: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """Residuals that are zero to machine precision: |êᵢ| ≤ ZERO_RESIDUAL_RTOL · max|y| per
+    dataset (rows of E and Y, or one vector each)."""
+    E = np.asarray(E, dtype=float)
+    scale = np.max(np.abs(np.asarray(Y, dtype=float)), axis=-1, keepdims=True)
+    return np.abs(E) <= ZERO_RESIDUAL_RTOL * np.maximum(scale, np.finfo(float).tiny)
+
+
+def floored_squares(E: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """ê² per dataset (rows of E; Y the outcomes), the exact zeros (:func:`exact_zeros`) raised to
+    ZERO_RESIDUAL_FLOOR·mean(ê²) so that log ê² is finite; and the count raised. Small but genuine
+    residuals keep their squares."""
     e2 = E**2
     floor = ZERO_RESIDUAL_FLOOR * np.maximum(e2.mean(axis=1, keepdims=True), np.finfo(float).tiny)
-    return np.maximum(e2, floor), (e2 < floor).sum(axis=1)
+    zero = exact_zeros(E, Y)
+    return np.where(zero, floor, e2), zero.sum(axis=1)
+
+
+def zero_residual_note(X: np.ndarray, y: np.ndarray, row_numbers: Sequence[int] | np.ndarray) -> str | None:
+    """The warning for exactly zero OLS residuals, with why when that is knowable (leverage one:
+    the row alone determines a coefficient; a cell of identical rows fitted exactly), or None."""
+    Q, _ = np.linalg.qr(X, mode="reduced")
+    e = y - Q @ (Q.T @ y)
+    zero = exact_zeros(e, y)
+    if not zero.any():
+        return None
+    rows = np.asarray(row_numbers)[zero]
+    shown = ", ".join(str(int(r)) for r in rows[:10]) + (" …" if rows.size > 10 else "")
+    ones = leverage_one_rows(np.einsum("ij,ij->i", Q, Q))
+    _, inverse, counts = np.unique(np.column_stack([X, y]), axis=0, return_inverse=True, return_counts=True)
+    duplicated = counts[inverse.ravel()] > 1
+    why = []
+    if np.isin(np.flatnonzero(zero), ones).any():
+        why.append("leverage 1 (a row alone determines a coefficient, e.g. a category with one row)")
+    if (zero & duplicated).any():
+        why.append("duplicated rows (identical rows fitted exactly)")
+    cause = f"; likely cause: {' and '.join(why)}" if why else ""
+    return (f"{int(zero.sum())} residual(s) are exactly zero (data row(s) {shown}){cause}; their squares were "
+            f"raised to {ZERO_RESIDUAL_FLOOR:g} × mean(ê²) before taking logs.")
 
 
 def log_square_regression(ly: np.ndarray, Z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -115,7 +186,7 @@ def twostep_fgls(X: np.ndarray, y: np.ndarray, Z: np.ndarray) -> tuple[np.ndarra
     """Two-step FGLS with log σᵢ² = zᵢᵀγ (Harvey 1976): OLS residuals, :func:`log_square_regression`,
     then the regression of y/σ̂ on X/σ̂ by QR. Returns (β̂, σ̂ of each row)."""
     Q, _ = np.linalg.qr(X, mode="reduced")
-    e2, _ = floored_squares((y - Q @ (Q.T @ y))[None, :])
+    e2, _ = floored_squares((y - Q @ (Q.T @ y))[None, :], y[None, :])
     gamma = log_square_regression(np.log(e2), Z)[0][0]
     sigma = np.exp(0.5 * np.clip(Z @ gamma, -ETA_LIMIT, ETA_LIMIT))
     Qw, Rw = np.linalg.qr(X / sigma[:, None], mode="reduced")

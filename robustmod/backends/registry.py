@@ -31,7 +31,9 @@ class BackendEntry:
 
     ``fixed`` holds constructor options set by the id itself (e.g. the HC type of ``hc3``);
     a user cannot override them. ``colour`` is the back-end's colour in every figure (None: a
-    palette colour by position in the registry).
+    palette colour by position in the registry). ``needs_residual_of_each_row``: its standard error
+    is built from each row's residual, so it is degenerate where a row has leverage one (that
+    residual is zero whatever the variance there).
     """
 
     id: str
@@ -44,6 +46,7 @@ class BackendEntry:
     fixed: Mapping[str, Any] = field(default_factory=dict)
     colour: str | None = None
     default: bool = False
+    needs_residual_of_each_row: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "fixed", MappingProxyType(dict(self.fixed)))
@@ -56,13 +59,13 @@ class BackendEntry:
 def _ols(bid: str, label: str, colour: str) -> BackendEntry:
     return BackendEntry(bid, "robustmod.backends.ols", "OLSBackend", label, assumes_constant_variance=bid == "ols",
                         assumes_independent_rows=True, cost="cheap", fixed={"id": bid}, colour=colour,
-                        default=bid in BACKENDS)
+                        default=bid in BACKENDS, needs_residual_of_each_row=bid != "ols")
 
 
 def _cluster(bid: str, label: str, colour: str) -> BackendEntry:
     return BackendEntry(bid, "robustmod.backends.cluster", "ClusterBackend", label, assumes_constant_variance=False,
                         assumes_independent_rows=False, cost="cheap", fixed={"id": bid}, colour=colour,
-                        default=bid in BACKENDS)
+                        default=bid in BACKENDS, needs_residual_of_each_row=True)
 
 
 _ENTRIES: dict[str, BackendEntry] = {e.id: e for e in (
@@ -80,10 +83,10 @@ _ENTRIES: dict[str, BackendEntry] = {e.id: e for e in (
     _cluster("cr3", "OLS + CR3 (cluster jackknife)", OKABE_ITO["yellow"]),
     BackendEntry("wild", "robustmod.backends.wild", "WildBootstrapBackend", "Wild bootstrap (HC3-t, Rademacher)",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="moderate",
-                 colour=OKABE_ITO["orange"], default="wild" in BACKENDS),
+                 colour=OKABE_ITO["orange"], default="wild" in BACKENDS, needs_residual_of_each_row=True),
     BackendEntry("wls", "robustmod.backends.wls", "WLSBackend", "WLS, log-linear variance (ML) + HC3",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="cheap",
-                 colour=OKABE_ITO["green"], default="wls" in BACKENDS),
+                 colour=OKABE_ITO["green"], default="wls" in BACKENDS, needs_residual_of_each_row=True),
     BackendEntry("bayes", "robustmod.backends.bayes", "BayesBackend", "Bayesian location–scale (PyMC)",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="costly",
                  colour=OKABE_ITO["purple"], default="bayes" in BACKENDS),
@@ -157,6 +160,11 @@ def constant_variance_ids() -> frozenset[str]:
     """Ids whose standard errors assume constant variance (the summary does not let them decide
     whether a finding survives non-constant variance)."""
     return frozenset(b for b, e in _ENTRIES.items() if e.assumes_constant_variance)
+
+
+def residual_per_row_ids() -> frozenset[str]:
+    """Ids whose standard errors are built from each row's residual (degenerate at leverage one)."""
+    return frozenset(b for b, e in _ENTRIES.items() if e.needs_residual_of_each_row)
 
 
 def independent_rows_ids() -> frozenset[str]:

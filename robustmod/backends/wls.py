@@ -47,12 +47,12 @@ from .cluster import ClusterFit, weighted_cr2_fit
 from .hc import hc_weights, leverages, r_inverse, sandwich
 from .kernels import (
     ETA_LIMIT,
-    ZERO_RESIDUAL_FLOOR,
     design_row_numbers,
     floored_squares,
     leverage_one_reason,
     log_square_regression,
     wald_test,
+    zero_residual_note,
 )
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -168,7 +168,7 @@ def twostep_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray) -> tuple[np.n
     Qx, _ = np.linalg.qr(X, mode="reduced")
     fitted = (Y @ Qx) @ Qx.T
     E = Y - fitted
-    e2, raised = floored_squares(E)
+    e2, raised = floored_squares(E, Y)
     if vm.function == "groups":
         assert vm.Z is not None
         G = vm.Z  # one-hot, n × p
@@ -398,7 +398,8 @@ class _VarianceEstimate:
     notes: list[str]
 
 
-def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimation: str) -> _VarianceEstimate:
+def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimation: str,
+                       row_numbers: np.ndarray | None = None) -> _VarianceEstimate:
     """Weights from the variance model: known, two-step FGLS, or ML from the two-step start
     (kept only if it converged and does not lower the log-likelihood; otherwise two-step with a note)."""
     k = X.shape[1]
@@ -418,9 +419,9 @@ def _estimate_variance(vm: VarianceModel, X: np.ndarray, y: np.ndarray, estimati
     else:
         g2, g2_se, raised_arr = twostep_gamma(vm, X, y[None, :])
         gamma, gamma_se, raised = g2[0], g2_se[0], int(raised_arr[0])
-        if raised:
-            notes.append(f"{raised} residual(s) were exactly zero; their squares were raised to "
-                         f"{ZERO_RESIDUAL_FLOOR:g} × mean(ê²) before taking logs.")
+        rows = np.arange(1, len(y) + 1) if row_numbers is None else row_numbers
+        if raised and (note := zero_residual_note(X, y, rows)):
+            notes.append(note)
         beta_ols = np.linalg.lstsq(X, y, rcond=None)[0]
         W = np.exp(-np.clip(vm.eta(X, beta_ols, gamma, floor), -ETA_LIMIT, ETA_LIMIT))
         Q, R = weighted_qr(X, W[None, :])
@@ -458,7 +459,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     X = np.asarray(X, dtype=float)
     n, k = X.shape
     floor = vm.mean_floor(y)
-    ve = _estimate_variance(vm, X, y, estimation)
+    ve = _estimate_variance(vm, X, y, estimation, row_numbers)
     W, gamma, gamma_se, notes, used, converged = ve.W, ve.gamma, ve.gamma_se, ve.notes, ve.used, ve.converged
     ratio = float(W.max() / W.min())
     if not math.isfinite(ratio) or ratio > WEIGHT_RATIO_WARNING:

@@ -39,6 +39,9 @@ def add_command(subparsers: Any) -> None:
                    help="appendix folder to create (default: the config's output.folder, "
                         f"else ./{defaults.APPENDIX_FOLDER})")
     add_force(p)
+    p.add_argument("--record-paths", action="store_true", default=False,
+                   help="record the full paths of the data file and the command in provenance.json "
+                        "(default: file names and SHA-256 only)")
     add_model_options(p, required=False)
     add_prior_sensitivity(p, default_on=True)
     p.set_defaults(func=run)
@@ -67,7 +70,9 @@ def write(args: argparse.Namespace, comparison: Any, out: Path, started: float, 
 
     steps = step_lines(args)
     t0 = time.perf_counter()
-    path = write_appendix(comparison, out, command_line=command_line(args), progress=steps.show, **extra)
+    record = bool(getattr(args, "record_paths", False))
+    path = write_appendix(comparison, out, command_line=command_line(args, record_paths=record),
+                          progress=steps.show, record_paths=record, **extra)
     steps("appendix", time.perf_counter() - t0)
     print(comparison.summary["sentence"])
     print(f"Appendix written in {time.perf_counter() - started:.1f} s: {path / 'appendix.html'}")

@@ -8,7 +8,14 @@ from typing import Any
 
 from .. import defaults
 from .appendix import add_force, refuse_existing, say, write
-from .options import PRIOR_SENSITIVITY, parse_settings, set_prior_sensitivity, split_list, step_lines
+from .options import (
+    PRIOR_SENSITIVITY,
+    check_calibration_count,
+    parse_settings,
+    set_prior_sensitivity,
+    split_list,
+    step_lines,
+)
 
 DEMO_OUT = "robustmod-demo-appendix"
 #: The default back-ends, which show each variance treatment.
@@ -52,6 +59,7 @@ def run(args: argparse.Namespace) -> int:
     refuse_existing(out, args.force)
     backends = split_list(args.backends) or list(DEMO_BACKENDS)
     calibration = None if args.calibrate == 0 else args.calibrate
+    check_calibration_count(calibration)
     say(args, "Demo on INVENTED field-trial data (no real trial): "
               f"{DEMO_FORMULA}; back-ends {', '.join(backends)}; calibration {calibration or 'off'} …")
     options = {b: dict(o) for b, o in DEMO_OPTIONS.items() if b in backends}

@@ -85,9 +85,27 @@ def split_list(values: Sequence[str] | None) -> list[str]:
     return out
 
 
-def command_line(args: argparse.Namespace) -> str:
-    """The command exactly as typed (shell-quoted), for provenance.json."""
-    return " ".join([PROG, *(shlex.quote(str(a)) for a in getattr(args, "argv", []))])
+#: Arguments that hold a file or folder; provenance keeps only their last part unless --record-paths.
+PATH_ARGUMENTS = ("data", "config", "out")
+
+
+def command_line(args: argparse.Namespace, *, record_paths: bool = False) -> str:
+    """The command as typed (shell-quoted), for provenance.json; the data, config and output
+    arguments are cut to their file names unless ``record_paths`` (folders can name people)."""
+    argv = [str(a) for a in getattr(args, "argv", [])]
+    if not record_paths:
+        paths = {str(v) for v in (getattr(args, n, None) for n in PATH_ARGUMENTS) if v}
+        argv = [_file_name_only(a, paths) for a in argv]
+    return " ".join([PROG, *(shlex.quote(a) for a in argv)])
+
+
+def _file_name_only(token: str, paths: set[str]) -> str:
+    from pathlib import PurePath  # noqa: PLC0415
+
+    option, eq, value = token.partition("=")
+    if eq and option.startswith("--") and value in paths:
+        return f"{option}={PurePath(value).name}"
+    return PurePath(token).name if token in paths else token
 
 
 def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> None:
@@ -215,10 +233,19 @@ def compare_kwargs(args: argparse.Namespace) -> dict[str, Any]:
         kw["center"] = True
     if args.calibrate_costly:
         kw["calibrate_costly"] = True
+    check_calibration_count(kw.get("calibration"))
     kw["progress"] = not args.quiet and stderr_is_terminal()
     kw.update(reading_kwargs(args))
     kw.update(engine_kwargs(args))
     return kw
+
+
+def check_calibration_count(n: int | None) -> None:
+    """--calibrate N within the allowed range, said in the option's own name before any reading."""
+    if n is not None and not defaults.MIN_DATASETS <= n <= defaults.MAX_DATASETS:
+        raise InputError(f"--calibrate must be a whole number of simulated datasets from {defaults.MIN_DATASETS} "
+                         f"to {defaults.MAX_DATASETS:,}; got {n:,}. Use e.g. --calibrate "
+                         f"{defaults.CALIBRATION_DATASETS}.")
 
 
 def check_calibrate_costly(kw: dict[str, Any]) -> None:

@@ -3,8 +3,9 @@
 Matches the ML path of :mod:`robustmod.backends.wls` (``variance="loglinear"``) at its optimum:
 
 1. OLS (:func:`robustmod.kernels.ols.factor_pass`), then the two-step start (Harvey 1976):
-   OLS of log max(êᵢ², floor) on z with −E[log χ²₁] = 1.2704 added along the constant
-   (floor = 10⁻⁸ · mean ê², as the in-memory fit), from a TSQR factor of [Z  log ê²  1].
+   OLS of log êᵢ² on z with −E[log χ²₁] = 1.2704 added along the constant, exact zeros
+   (|êᵢ| ≤ 10⁻¹² · max|y|) raised to 10⁻⁸ · mean ê² as in the in-memory fit, from a TSQR
+   factor of [Z  log ê²  1].
 2. Fisher scoring of the likelihood with β profiled out (Harvey 1976):
    γ ← γ + t·(ZᵀZ)⁻¹ Zᵀ(r − 1), rᵢ = êᵢ(γ)² e^{−ηᵢ}, ê(γ) the WLS residuals at weights
    e^{−η}; one pass gives β̂(γ) and −ℓ = ½ Σ [log 2π + ηᵢ + rᵢ] (TSQR of √w·[X y]), a second the
@@ -25,15 +26,8 @@ import numpy as np
 from scipy import linalg
 
 from ..backends.hc import r_inverse
-from ..backends.kernels import LOG_CHI2_CORRECTION
-from ..backends.wls import (
-    ETA_LIMIT,
-    ML_DECREMENT_TOL,
-    ML_MAXITER,
-    ML_ROUNDING_TOL,
-    SE_TYPES,
-    ZERO_RESIDUAL_FLOOR,
-)
+from ..backends.kernels import ETA_LIMIT, LOG_CHI2_CORRECTION, ZERO_RESIDUAL_FLOOR, ZERO_RESIDUAL_RTOL
+from ..backends.wls import ML_DECREMENT_TOL, ML_MAXITER, ML_ROUNDING_TOL, SE_TYPES
 from ..errors import option_error
 from .accumulate import TSQR
 from .chunks import Chunk, ChunkSource, mapped
@@ -68,18 +62,20 @@ def _eta(c: Chunk, gamma: np.ndarray) -> np.ndarray:
 
 def twostep_start(chunks: ChunkSource, beta_ols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(γ̂ two-step, R_z with R_zᵀR_z = ZᵀZ): two passes (mean ê², then the log ê² regression)."""
-    rss, n = 0.0, 0
+    rss, n, y_max = 0.0, 0, 0.0
     for c in chunks():
         e = c.y - c.X @ beta_ols
         rss += float(e @ e)
         n += c.size
+        y_max = max(y_max, float(np.abs(c.y).max(initial=0.0)))
     floor = ZERO_RESIDUAL_FLOOR * max(rss / n, np.finfo(float).tiny)
+    zero_below = ZERO_RESIDUAL_RTOL * max(y_max, np.finfo(float).tiny)  # as exact_zeros in memory
     acc: TSQR | None = None
     for c in chunks():
         e = c.y - c.X @ beta_ols
         Z = c.columns["Z"]
         acc = acc or TSQR(Z.shape[1] + 2)
-        acc.add(np.column_stack([Z, np.log(np.maximum(e * e, floor)), np.ones(c.size)]))
+        acc.add(np.column_stack([Z, np.log(np.where(np.abs(e) <= zero_below, floor, e * e)), np.ones(c.size)]))
     assert acc is not None
     R = acc.factor()
     p = R.shape[0] - 2

@@ -129,7 +129,8 @@ def render_latex(ctx: Mapping[str, Any]) -> str:
     """booktabs tables for a manuscript (needs \\usepackage{booktabs}); every string escaped."""
     m = ctx["model"]
     lines = ["% Sensitivity appendix tables. Needs \\usepackage{booktabs} in the preamble.",
-             "% Model: " + latex_escape(m["formula"]) + "; summary: " + latex_escape(ctx["summary"]["sentence"]), ""]
+             "% Model: " + latex_escape(m["formula"]) + "; summary: " + latex_escape(ctx["summary"]["sentence"]),
+             *("% Warning: " + latex_escape(w) for w in ctx.get("warnings") or []), ""]
     for name in ("comparison", "diagnostics", "calibration", "backends"):
         for t in ctx["groups"][name]:
             lines += table_latex(t)

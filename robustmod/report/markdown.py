@@ -67,6 +67,8 @@ def _header(ctx: Mapping[str, Any]) -> list[str]:
               f"{m['n_obs']} rows used, {m['n_dropped']} dropped; alpha = {m['alpha']:g}; primary back-end "
               f"{code(s['primary'])}; coefficients on the {md_escape(m['scale'])}.", "",
               "## Robustness summary", "", md_escape(s["sentence"]), ""]
+    if ctx.get("warnings"):
+        lines += ["## Warnings about the data and model", ""] + [f"- {md_escape(w)}" for w in ctx["warnings"]] + [""]
     return lines
 
 

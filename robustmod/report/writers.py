@@ -57,10 +57,14 @@ def csv_guard(cell: Any) -> Any:
 
 
 # ---- the parts --------------------------------------------------------------------
-def results_dict(comparison: Comparison) -> tuple[dict[str, Any], dict[str, float]]:
+def results_dict(comparison: Comparison, *, record_paths: bool = False) -> tuple[dict[str, Any], dict[str, float]]:
     """The results contract, minus the wall-clock timings (those go to provenance so that
-    results.json is byte-identical on a rerun with the same seed)."""
+    results.json is byte-identical on a rerun with the same seed); the data source by its file
+    name only unless ``record_paths``."""
     res = comparison.to_dict()
+    source = res.get("model", {}).get("data_source")
+    if source and not record_paths:
+        res["model"]["data_source"] = Path(source).name
     timings: dict[str, Any] = {}
     for bid, b in res["backends"].items():
         if "seconds" in b:
@@ -75,7 +79,9 @@ def results_dict(comparison: Comparison) -> tuple[dict[str, Any], dict[str, floa
 
 
 def provenance(comparison: Comparison, *, command_line: str | None, data_path: str | Path | None,
-               timings: Mapping[str, float]) -> dict[str, Any]:
+               timings: Mapping[str, float], record_paths: bool = False) -> dict[str, Any]:
+    """What was run on what: the data file's name and SHA-256 (its full path only with
+    ``record_paths``, since folder names can identify people), versions, seed and timings."""
     from ..data import file_sha256  # noqa: PLC0415
 
     path = data_path if data_path is not None else comparison.data_source
@@ -88,10 +94,10 @@ def provenance(comparison: Comparison, *, command_line: str | None, data_path: s
             packages[name] = metadata.version(name)
         except metadata.PackageNotFoundError:
             packages[name] = "not installed"
-    return {
+    out: dict[str, Any] = {
         "created_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "command_line": command_line,
-        "data_file": None if path is None else str(path),
+        "data_file": None if path is None else Path(path).name,
         "data_sha256": sha,
         "formula": comparison.spec.formula,
         "focal": comparison.spec.focal,
@@ -103,6 +109,9 @@ def provenance(comparison: Comparison, *, command_line: str | None, data_path: s
         "packages": packages,
         "seconds_per_backend": dict(timings),
     }
+    if record_paths and path is not None:
+        out["data_path"] = str(Path(path).expanduser().resolve())
+    return out
 
 
 #: Which appendix section shows a table, by the table's source; every other source is a
@@ -203,7 +212,7 @@ def _check_target(out: Path, force: bool) -> None:
 
 def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool = False,
                    command_line: str | None = None, data_path: str | Path | None = None,
-                   progress: bool = False, data_note: str | None = None) -> Path:
+                   progress: bool = False, data_note: str | None = None, record_paths: bool = False) -> Path:
     """Write the appendix folder for ``comparison`` and return its path.
 
     Parameters
@@ -222,6 +231,8 @@ def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool =
         Print the steps on stderr.
     data_note : str, optional
         A line about the data shown at the top of the page (e.g. that they are invented).
+    record_paths : bool, default=False
+        Also record the data file's full path in provenance.json (by default only its name and SHA-256).
 
     Returns
     -------
@@ -249,8 +260,9 @@ def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool =
             if progress:
                 sys.stderr.write(f"appendix: {msg}\n")
 
-        res, timings = results_dict(comparison)
-        prov = provenance(comparison, command_line=command_line, data_path=data_path, timings=timings)
+        res, timings = results_dict(comparison, record_paths=record_paths)
+        prov = provenance(comparison, command_line=command_line, data_path=data_path, timings=timings,
+                          record_paths=record_paths)
         step("drawing figures")
         figures = render_figures(comparison, tmp / "figures")
         ctx = context(comparison, res, prov, figures)
