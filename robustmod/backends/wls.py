@@ -460,7 +460,7 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
     n, k = X.shape
     floor = vm.mean_floor(y)
     ve = _estimate_variance(vm, X, y, estimation, row_numbers)
-    W, gamma, gamma_se, notes, used, converged = ve.W, ve.gamma, ve.gamma_se, ve.notes, ve.used, ve.converged
+    W, notes, used = ve.W, ve.notes, ve.used
     ratio = float(W.max() / W.min())
     if not math.isfinite(ratio) or ratio > WEIGHT_RATIO_WARNING:
         notes.append(f"The largest weight is {ratio:.3g} times the smallest; a few rows dominate the fit "
@@ -489,17 +489,35 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
         cov = s2 * (Rinv @ Rinv.T)
         se_label = "model-based s²(XᵀWX)⁻¹"
     sigma_hat = np.sqrt(s2 / W)
-    ll = None
+    design_info = _variance_info(vm, X, y, ve, beta, ratio=ratio, s2=s2, se=se, estimation=estimation, floor=floor)
+    extras = {"variance_model": design_info, "df_resid": df, "sigma": float(math.sqrt(s2))}
+    est_part = "" if vm.function == "known" else f" ({est_label})"
+    if clusters is not None and se == "robust":
+        return weighted_cr2_fit(Q, R, sw * y, W, clusters, tuple(term_names), cluster_name=cluster_name,
+                                label=f"WLS, {label_fn}{est_part} + CR2", backend_id=backend_id,
+                                warnings=tuple(notes), extras={**extras, "adjustment": CR2_WEIGHTED},
+                                fit_class=ClusteredWLSFit,
+                                fit_kwargs={"sigma_hat": sigma_hat, "weights": W})
+    label = f"WLS, {label_fn}{est_part} + {'HC3' if se == 'robust' else 'model SE'}"
+    return WLSFit(backend_id, label, tuple(term_names), beta, cov, df, warnings=tuple(notes),
+                  extras=extras, se_label=se_label, sigma_hat=sigma_hat, weights=W)
+
+
+def _variance_info(vm: VarianceModel, X: np.ndarray, y: np.ndarray, ve: Any, beta: np.ndarray, *, ratio: float,
+                   s2: float, se: str, estimation: str, floor: float) -> dict[str, Any]:
+    """The fitted variance model as the fit's extras report it: γ with SEs, log-likelihoods, the LR
+    test against constant variance, AIC, the weight ratio and how the estimate was reached."""
+    n, k = X.shape
+    gamma, gamma_se, used, converged = ve.gamma, ve.gamma_se, ve.used, ve.converged
     if vm.function == "known":
-        ll = _loglik_known(y, X, beta, W)
+        ll = _loglik_known(y, X, beta, ve.W)
     elif converged:
         assert ve.beta_ml is not None  # set whenever the ML fit converged
         ll = loglik(vm, X, y, ve.beta_ml, gamma, floor)
     else:
         ll = _loglik_profiled_scale(vm, X, y, beta, gamma, floor)
-    p = vm.n_gamma
-    lr = _lr_parts(n, k, p, y, X, ll)
-    design_info: dict[str, Any] = {
+    lr = _lr_parts(n, k, vm.n_gamma, y, X, ll)
+    info: dict[str, Any] = {
         "function": vm.function,
         "z_terms": list(vm.names) if vm.function in ("loglinear", "groups") else
                    (["log_sigma2", "theta"] if vm.function == "power" else []),
@@ -513,20 +531,10 @@ def fit_wls(y: np.ndarray, X: np.ndarray, vm: VarianceModel, term_names: tuple[s
         "zero_residuals_raised": ve.raised,
     }
     if vm.function == "power":
-        design_info["sigma"] = float(math.exp(0.5 * gamma[0]))
+        info["sigma"] = float(math.exp(0.5 * gamma[0]))
     if estimation == "twostep" and vm.function != "known":
-        design_info["loglik_note"] = "evaluated at the two-step estimates with the scale profiled out"
-    extras = {"variance_model": design_info, "df_resid": df, "sigma": float(math.sqrt(s2))}
-    est_part = "" if vm.function == "known" else f" ({est_label})"
-    if clusters is not None and se == "robust":
-        return weighted_cr2_fit(Q, R, sw * y, W, clusters, tuple(term_names), cluster_name=cluster_name,
-                                label=f"WLS, {label_fn}{est_part} + CR2", backend_id=backend_id,
-                                warnings=tuple(notes), extras={**extras, "adjustment": CR2_WEIGHTED},
-                                fit_class=ClusteredWLSFit,
-                                fit_kwargs={"sigma_hat": sigma_hat, "weights": W})
-    label = f"WLS, {label_fn}{est_part} + {'HC3' if se == 'robust' else 'model SE'}"
-    return WLSFit(backend_id, label, tuple(term_names), beta, cov, df, warnings=tuple(notes),
-                  extras=extras, se_label=se_label, sigma_hat=sigma_hat, weights=W)
+        info["loglik_note"] = "evaluated at the two-step estimates with the scale profiled out"
+    return info
 
 
 def _gamma_names(vm: VarianceModel) -> tuple[str, ...]:
