@@ -20,6 +20,9 @@ BACKENDS: tuple[str, ...] = ("ols", "hc3", "wild", "wls", "bayes")
 #: Default appendix folder of ``robustmod appendix``.
 APPENDIX_FOLDER = "robustmod-appendix"
 
+#: Default folder of ``robustmod grid``.
+GRID_FOLDER = "robustmod-grid"
+
 #: Default number of simulated datasets of ``--calibrate`` when no number is given.
 CALIBRATION_DATASETS = 1000
 

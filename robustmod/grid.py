@@ -16,6 +16,7 @@ import itertools
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -24,6 +25,7 @@ from scipy import special, stats
 
 from .backends.base import Unavailable
 from .backends.registry import check_ids, make_backend
+from .defaults import ALPHA, SEED
 from .design import Design, build_design
 from .errors import InputError, close_matches, option_error
 from .spec import ModelSpec
@@ -423,10 +425,60 @@ class GridResult:
         })
 
 
-def grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
+def grid(data: pd.DataFrame | str | Path, formula: str, focal: str, moderator: str | Sequence[str],
+         choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
          options: Mapping[str, Mapping[str, Any]] | None = None, engine: Any = None, resamples: int | None = None,
-         on_progress: Callable[[int, int], None] | None = None, announce: Callable[[str], None] | None = None
-         ) -> GridResult:
+         probe: Any = None, alpha: float = ALPHA, seed: int = SEED, center: bool = False,
+         na_values: Any = None, on_progress: Callable[[int, int], None] | None = None,
+         announce: Callable[[str], None] | None = None) -> GridResult:
+    """The specification grid of one moderation model (``robustmod.grid``).
+
+    Parameters
+    ----------
+    data : DataFrame or path
+        The data (read as :func:`robustmod.compare` reads them); never modified.
+    formula, focal, moderator : str
+        The primary model: its formula, focal predictor and moderator(s), as for ``compare``.
+    choices : mapping
+        The grid, with the keys of the TOML ``[grid]`` table: ``covariates`` (terms of the formula
+        each left in or out), ``outcome``, ``outliers``, ``backends``, ``primary``, ``resamples``.
+    backends : list of str, optional
+        Back-end ids (default: ``choices["backends"]``, else ols, hc3, wls).
+    engine : robustmod.engines.Engine, optional
+        Where the groups of specifications run (default: local processes on the available cores).
+    resamples : int, optional
+        Null datasets of the inferential test (0: no test; default ``choices["resamples"]``, else 500).
+    on_progress, announce : callable, optional
+        ``on_progress(done, total)`` as groups finish; ``announce(line)`` with the count and the
+        projected time after the first group.
+
+    Returns
+    -------
+    GridResult
+        ``to_dict()`` is the ``grid`` key of results.json.
+
+    Examples
+    --------
+    >>> from robustmod.demo import demo_data
+    >>> g = grid(demo_data(300), "grain_yield ~ fertiliser * soil_moisture + field_slope", "fertiliser",
+    ...          "soil_moisture", {"covariates": ["field_slope"], "outliers": ["none", "cooks-4n"]}, resamples=0)
+    >>> len(g.specifications)
+    4
+    """
+    from .data import load_data  # noqa: PLC0415
+
+    frame, _ = load_data(data, na_values=na_values)
+    mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
+    spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
+                     alpha=alpha, seed=seed, center=center)
+    return run_grid(frame, spec, choices, backends=backends, options=options, engine=engine, resamples=resamples,
+                    on_progress=on_progress, announce=announce)
+
+
+def run_grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *,
+             backends: Sequence[str] | None = None, options: Mapping[str, Mapping[str, Any]] | None = None,
+             engine: Any = None, resamples: int | None = None, on_progress: Callable[[int, int], None] | None = None,
+             announce: Callable[[str], None] | None = None) -> GridResult:
     """Fit every specification of the grid; summarise support per back-end and run the inferential test.
 
     ``engine`` is a robustmod.engines Engine (default: local, this process's cores). The first
@@ -478,4 +530,4 @@ def _duration(seconds: float) -> str:
 
 
 __all__ = ["GRID_CAUTIONS", "GridPlan", "GridResult", "OUTCOME_RULES", "OUTLIER_RULES", "Specification", "grid",
-           "inferential_test", "make_plan"]
+           "inferential_test", "make_plan", "run_grid"]
