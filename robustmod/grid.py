@@ -14,7 +14,8 @@ from __future__ import annotations
 
 import itertools
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -243,7 +244,20 @@ def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Des
     return design, rows
 
 
-def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alpha: float) -> dict[str, Any]:
+def _linear(design: Design, cache: dict[int, tuple[np.ndarray, Any]]) -> tuple[Any]:
+    """``(design.slope_is_linear_in(first continuous moderator),)``, computed once per model matrix:
+    the back-ends of a specification, and its outcome rules, share one X (kept in the cache, so that
+    an id is never reused while its entry lives)."""
+    hit = cache.get(id(design.X))
+    if hit is None or hit[0] is not design.X:
+        conts = design.continuous_moderators
+        hit = (design.X, design.slope_is_linear_in(conts[0], {}) if conts else None)
+        cache[id(design.X)] = hit
+    return (hit[1],)
+
+
+def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alpha: float,
+            linear: tuple[Any]) -> dict[str, Any]:
     from . import effects  # noqa: PLC0415
 
     fit = make_backend(bid, **dict(options)).fit(design, seed=seed, progress=False)
@@ -251,7 +265,7 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
         return {"estimate": None, "se": None, "ci": None, "p": None, "supported": None, "boundaries": [],
                 "reason": fit.reason}
     it = effects.interaction(fit, design, alpha)
-    reg = effects.significance_region(fit, design, alpha)
+    reg = effects.significance_region(fit, design, alpha, linear=linear)
     inside: list[float] = []
     if reg is not None:
         lo, hi = reg["observed_range"]
@@ -287,7 +301,7 @@ def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -
 
 
 def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError, seed: int,
-             v: np.ndarray | None) -> dict[str, Any]:
+             v: np.ndarray | None, cache: dict[int, tuple[np.ndarray, Any]]) -> dict[str, Any]:
     plan: GridPlan = state["plan"]
     out: dict[str, Any] = {"index": s.index, "choices": s.choices()}
     try:
@@ -299,7 +313,8 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
         return out
     seeds = np.random.SeedSequence(seed).generate_state(len(plan.backends))
     out["rows_used"] = design.n_obs
-    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha)
+    linear = _linear(design, cache)
+    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha, linear)
                        for b, sd in zip(plan.backends, seeds, strict=False)}
     if len(design.interaction_columns) == 1 and v is not None:
         est, rej = _null_draws(design, rows, v, plan.base.alpha)
@@ -309,7 +324,28 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
 
 def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple[int, ...],
               seeds: tuple[int, ...]) -> list[dict[str, Any]]:
-    """The specifications that share one set of covariates (one model matrix): an engine task."""
+    """The specifications that share one set of covariates (one model matrix): an engine task.
+
+    Runs on one BLAS thread: its matrices are small (n × k), where a second thread costs more in
+    synchronisation than it gains, and the engine already fills the cores with tasks.
+    """
+    with _one_blas_thread():
+        return _run_group(state, covariates, members, seeds)
+
+
+@contextmanager
+def _one_blas_thread() -> Iterator[None]:
+    try:
+        from threadpoolctl import threadpool_limits  # noqa: PLC0415
+    except ImportError:  # pragma: no cover
+        yield
+        return
+    with threadpool_limits(1):
+        yield
+
+
+def _run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple[int, ...],
+               seeds: tuple[int, ...]) -> list[dict[str, Any]]:
     plan: GridPlan = state["plan"]
     base: Design | InputError
     try:
@@ -320,7 +356,8 @@ def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple
     if state["resamples"]:  # the same null signs for every specification: one draw per source row
         rng = np.random.default_rng(state["null_seed"])
         v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
-    return [_run_one(state, state["specs"][i], base, sd, v) for i, sd in zip(members, seeds, strict=False)]
+    cache: dict[int, tuple[np.ndarray, Any]] = {}
+    return [_run_one(state, state["specs"][i], base, sd, v, cache) for i, sd in zip(members, seeds, strict=False)]
 
 
 # ---- summaries ---------------------------------------------------------------------------
