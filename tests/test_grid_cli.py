@@ -150,7 +150,7 @@ def test_json_output_has_the_grid_key(project: Path, capsys: pytest.CaptureFixtu
 def test_bad_grid_tables_are_one_line_errors(project: Path, capsys: pytest.CaptureFixture[str], grid_table: str,
                                              message: str) -> None:
     cfg = project / "bad.toml"
-    cfg.write_text(CONFIG.split("[grid]")[0] + "[grid]\n" + grid_table + "\n", encoding="utf-8")
+    cfg.write_text(CONFIG.split("[grid]", maxsplit=1)[0] + "[grid]\n" + grid_table + "\n", encoding="utf-8")
     capsys.readouterr()
     assert main(["grid", "--config", str(cfg), "--out", str(project / "never"), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
@@ -177,7 +177,7 @@ def test_too_many_specifications_refused_before_fitting(tmp_path: Path, capsys: 
 
 def test_config_without_grid_table(project: Path, capsys: pytest.CaptureFixture[str]) -> None:
     cfg = project / "nogrid.toml"
-    cfg.write_text(CONFIG.split("[grid]")[0], encoding="utf-8")
+    cfg.write_text(CONFIG.split("[grid]", maxsplit=1)[0], encoding="utf-8")
     assert main(["grid", "--config", str(cfg), "--quiet"]) == 2
     assert "no [grid] table" in capsys.readouterr().err
 
