@@ -232,3 +232,11 @@ def test_appendix_with_grid_table_includes_the_section(project: Path, written: P
     assert "## Specification grid" in (out / "appendix.md").read_text()
     assert "tab:robustmod-grid-inferential-test" in (out / "tables.tex").read_text()
     assert (out / "grid.csv").is_file() and (out / "figures" / "specification_curve.pdf").is_file()
+
+
+def test_unknown_engine_is_a_usage_error(project: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as stop:
+        main(["grid", "--config", str(project / "grid.toml"), "--engine", "spark"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "local" in err and "dask" in err
