@@ -276,10 +276,13 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
 
 
 def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
-    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê ⊙ v.
+    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê/(1 − h) ⊙ v.
 
     μ̂₀ is the fit without the product term(s); ê are the full model's residuals, so each
     dataset keeps the specification's variance pattern (a wild null, Rademacher v per source row).
+    The residuals are divided by 1 − hᵢ, so that the null spread of each estimate, Σ aᵢ² êᵢ²/(1 − hᵢ)²,
+    is its HC3 variance: raw residuals are shrunk towards zero, and with them the null spread was
+    too narrow and the test rejected too often (validation/grid_null.py).
     """
     from scipy import linalg  # noqa: PLC0415
 
@@ -288,7 +291,8 @@ def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -
     X0 = design.X[:, keep]
     mu0 = X0 @ linalg.lstsq(X0, design.y, check_finite=False)[0]
     e, h, A = _ols_parts(design)
-    Ystar = mu0[:, None] + e[:, None] * v[rows]
+    u = e / np.maximum(1.0 - h, 1e-15)
+    Ystar = mu0[:, None] + u[:, None] * v[rows]
     Q, _ = design.qr
     Estar = Ystar - Q @ (Q.T @ Ystar)
     n, k = design.X.shape
@@ -426,7 +430,8 @@ def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any
         "median_estimate": med_obs, "median_estimate_null_median": float(np.median(med_null)),
         "median_estimate_p": float((1 + np.sum(np.abs(med_null) >= abs(med_obs))) / (1 + R)),
         "alpha": alpha,
-        "method": ("null datasets y* = fit without the product term + residual × Rademacher sign per row, the same "
+        "method": ("null datasets y* = fit without the product term + residual / (1 − leverage) × Rademacher sign "
+                   "per row, the same "
                    "signs for every specification; HC3 test per specification"),
     }
 
