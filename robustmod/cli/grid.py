@@ -61,7 +61,7 @@ def grid_arguments(cfg: dict[str, Any]) -> dict[str, Any]:
     return kw
 
 
-class Progress:
+class ProgressBar:
     """A rich progress bar on stderr, started on the first report."""
 
     def __init__(self, show: bool) -> None:
@@ -109,7 +109,7 @@ def run(args: argparse.Namespace) -> int:
             sys.stderr.write(f"grid: {line}\n")
             sys.stderr.flush()
 
-    bar = Progress(talk and stderr_is_terminal())
+    bar = ProgressBar(talk and stderr_is_terminal())
     with make_engine(args.engine, announce=announce) as engine:
         try:
             result = grid(data, engine=engine, on_progress=bar, announce=announce, **kw)
