@@ -18,6 +18,7 @@ from .errors import InputError, RobustmodError
 if TYPE_CHECKING:  # pragma: no cover
     from .compare import Comparison, compare
     from .design import Design, build_design
+    from .grid import GridResult, grid
     from .spec import ModelSpec
 
 __version__ = "0.1.0"
@@ -28,11 +29,13 @@ _LAZY = {
     "compare": "robustmod.compare",
     "Design": "robustmod.design",
     "build_design": "robustmod.design",
+    "grid": "robustmod.grid",
+    "GridResult": "robustmod.grid",
     "ModelSpec": "robustmod.spec",
 }
 
-__all__ = ["Comparison", "Design", "InputError", "ModelSpec", "RobustmodError", "__version__", "build_design",
-           "compare"]
+__all__ = ["Comparison", "Design", "GridResult", "InputError", "ModelSpec", "RobustmodError", "__version__",
+           "build_design", "compare", "grid"]
 
 
 def __getattr__(name: str) -> Any:
@@ -48,10 +51,10 @@ def __dir__() -> list[str]:
 
 
 class _Package(types.ModuleType):
-    """Keeps ``robustmod.compare`` the function.
+    """Keeps ``robustmod.compare`` and ``robustmod.grid`` the functions.
 
-    Loading the submodule ``robustmod.compare`` binds the submodule on the package under the
-    same name; the function of that name is what ``robustmod.compare`` has always meant.
+    Loading the submodule ``robustmod.compare`` (or ``robustmod.grid``) binds the submodule on the
+    package under the same name; the function of that name is what the public name means.
     """
 
     def __setattr__(self, name: str, value: Any) -> None:

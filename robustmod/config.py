@@ -26,6 +26,14 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
     folder = "appendix"
     force = false
 
+    [grid]                            # optional: the specification grid (robustmod grid, and a section
+    covariates = ["field_slope"]      # of the appendix); each optional covariate in or out
+    outcome = ["none", "log"]
+    outliers = ["none", "cooks-4n"]
+    backends = ["ols", "hc3", "wls"]
+    resamples = 500
+    primary = { covariates = ["field_slope"], outcome = "none", outliers = "none" }
+
     [engine]
     name = "dask"                     # "local" (default) or "dask"
     scheduler = "tcp://scheduler-host:8786" # a running Dask scheduler; left out: a local cluster on 127.0.0.1
@@ -63,6 +71,7 @@ TOP_KEYS: dict[str, str] = {
     "output": "a table with 'folder' and 'force'",
     "engine": "a table with 'name', 'scheduler' and 'workers'",
     "na_values": "a missing-value code or a list of them, e.g. \".\" or [\".\", \"-99\"]",
+    "grid": "a table with covariates, outcome, outliers, backends, primary and resamples",
 }
 OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
                                "force": "true or false (default: false)"}
@@ -71,9 +80,22 @@ ENGINE_KEYS: dict[str, str] = {"name": f"one of {', '.join(defaults.ENGINES)} (d
                                "workers": "a whole number ≥ 1 (default: the available cores)"}
 
 
+#: Keys of the [grid] table (the choices of robustmod.grid.make_plan).
+GRID_KEYS: dict[str, str] = {
+    "covariates": "a list of covariate terms of the formula, each left in or out",
+    "outcome": "a list of outcome rules (none, log, log1p, inverse-normal)",
+    "outliers": "a list of outlier rules (none, studentized-3, cooks-4n)",
+    "backends": "a list of back-end ids (default: ols, hc3, wls)",
+    "primary": "a table with covariates (a list), outcome and outliers (text)",
+    "resamples": "0 (no inferential test) or a whole number in [100, 100000] (default: 500)",
+}
+PRIMARY_KEYS = ("covariates", "outcome", "outliers")
+
+
 def _bad(key: str, got: Any, where: Path) -> InputError:
-    last = key.rsplit(".", maxsplit=1)[-1]
-    need = TOP_KEYS.get(key) or (ENGINE_KEYS if key.startswith("engine.") else OUTPUT_KEYS).get(last, "valid")
+    tail = key.rsplit(".", maxsplit=1)[-1]
+    table = GRID_KEYS if key.startswith("grid.") else ENGINE_KEYS if key.startswith("engine.") else OUTPUT_KEYS
+    need = TOP_KEYS.get(key) or table.get(tail, "valid")
     return InputError(f"In the config file '{where.name}', '{key}' must be {need}; got {got!r}.")
 
 
@@ -221,6 +243,51 @@ def load_config(path: str | Path) -> dict[str, Any]:
     _lists(raw, p, out)
     _tables(raw, p, base, out)
     _engine(raw, p, out)
+    if "grid" in raw:
+        out["grid"] = _grid(raw["grid"], p)
+    return out
+
+
+def _texts(value: Any, *, allow_one: bool) -> list[str] | None:
+    """A list of non-empty strings (one string too when ``allow_one``), else None."""
+    items = [value] if allow_one and isinstance(value, str) else value
+    if not isinstance(items, list) or not all(isinstance(x, str) and x.strip() for x in items):
+        return None
+    return list(items)
+
+
+def _grid(g: Any, p: Path) -> dict[str, Any]:
+    """The [grid] table: the choices of robustmod.grid.make_plan, checked for their types here
+    (their values — known rules, covariates of the formula — are checked against the model there)."""
+    if not isinstance(g, dict):
+        raise _bad("grid", g, p)
+    _unknown(list(g), GRID_KEYS, p, "grid")
+    out: dict[str, Any] = {}
+    for key in ("covariates", "outcome", "outliers", "backends"):
+        if key in g:
+            items = _texts(g[key], allow_one=key != "covariates")
+            if items is None or (key != "covariates" and not items):
+                raise _bad(f"grid.{key}", g[key], p)
+            out[key] = items
+    if "resamples" in g:
+        r = g["resamples"]
+        if isinstance(r, bool) or not isinstance(r, int) or r < 0 or 0 < r < 100 or r > 100_000:
+            raise _bad("grid.resamples", r, p)
+        out["resamples"] = r
+    if "primary" in g:
+        prim = g["primary"]
+        if not isinstance(prim, dict):
+            raise _bad("grid.primary", prim, p)
+        bad = [k for k in prim if k not in PRIMARY_KEYS]
+        if bad:
+            raise InputError(f"Unknown key {bad[0]!r} in the [grid.primary] table of the config file '{p.name}'; "
+                             f"valid keys: {', '.join(PRIMARY_KEYS)}.")
+        if "covariates" in prim and _texts(prim["covariates"], allow_one=False) is None:
+            raise _bad("grid.primary", prim, p)
+        for key in ("outcome", "outliers"):
+            if key in prim and (not isinstance(prim[key], str) or not prim[key].strip()):
+                raise _bad("grid.primary", prim, p)
+        out["primary"] = dict(prim)
     return out
 
 

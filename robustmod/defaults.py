@@ -24,6 +24,9 @@ APPENDIX_FOLDER = "robustmod-appendix"
 ENGINES: tuple[str, ...] = ("local", "dask")
 ENGINE = "local"
 
+#: Default folder of ``robustmod grid``.
+GRID_FOLDER = "robustmod-grid"
+
 #: Default number of simulated datasets of ``--calibrate`` when no number is given.
 CALIBRATION_DATASETS = 1000
 #: Allowed numbers of simulated datasets (fewer says nothing; more takes hours on 2 cores).

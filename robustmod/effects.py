@@ -196,10 +196,13 @@ def _grid_region(fit: Fit, design: Design, alpha: float, moderator: str, fixed: 
 
 
 def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: str | None = None,
-                        fixed: dict[str, Any] | None = None, band: str = "pointwise") -> dict[str, Any] | None:
+                        fixed: dict[str, Any] | None = None, band: str = "pointwise",
+                        linear: tuple[tuple[np.ndarray, np.ndarray] | None] | None = None) -> dict[str, Any] | None:
     """Johnson–Neyman region of the focal slope along ``moderator`` (first continuous one by default).
 
     ``band`` is "pointwise" (each w tested alone) or "simultaneous" (a band over all w).
+    ``linear`` may carry ``(design.slope_is_linear_in(moderator, fixed),)`` already computed, for
+    callers that ask several fits about one design (the grid).
     Every back-end reports boundaries inside the same :func:`search_window`; closed-form roots
     beyond it are listed under ``boundaries_outside_window``. Returns None when no moderator is
     continuous.
@@ -215,7 +218,7 @@ def significance_region(fit: Fit, design: Design, alpha: float, *, moderator: st
     assert info.minimum is not None and info.maximum is not None  # a continuous moderator has its range
     fixed = dict(fixed or {})
     window = search_window(info)
-    lin = design.slope_is_linear_in(moderator, fixed)
+    lin = design.slope_is_linear_in(moderator, fixed) if linear is None else linear[0]
     outside: list[float] = []
     if isinstance(fit, WaldFit) and lin is not None:
         crit = fit.critical_value(alpha, rank=2 if band == "simultaneous" else 1)

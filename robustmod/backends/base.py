@@ -218,13 +218,11 @@ class WaldFit(Fit):
         self.cov.setflags(write=False)
         self.df = df
 
-    def _dist(self) -> Any:
-        return stats.norm if self.df is None else stats.t(self.df)
-
     def critical_value(self, alpha: float, rank: int = 1) -> float:
         """t_{1−α/2, df} pointwise; Scheffé sqrt(r·F_{r, df; 1−α}) for a band of rank r (Potthoff 1964)."""
-        if rank <= 1:
-            return float(self._dist().ppf(1 - alpha / 2))
+        if rank <= 1:  # the distributions' own ppf: building a frozen distribution costs more than the quantile
+            q = 1 - alpha / 2
+            return float(stats.norm.ppf(q) if self.df is None else stats.t.ppf(q, self.df))
         if self.df is None:
             return float(np.sqrt(stats.chi2.ppf(1 - alpha, rank)))
         return float(np.sqrt(rank * stats.f.ppf(1 - alpha, rank, self.df)))

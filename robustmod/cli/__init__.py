@@ -1,4 +1,4 @@
-"""The command line: ``robustmod check``, ``appendix``, ``demo`` and ``backends``.
+"""The command line: ``robustmod check``, ``appendix``, ``grid``, ``demo`` and ``backends``.
 
 One module per command; :mod:`.options` holds what they share. Building the parser imports
 no pandas, scipy or back-end, so ``robustmod --help`` is quick; each command imports what it
@@ -15,11 +15,11 @@ import warnings
 from collections.abc import Sequence
 
 from ..errors import RobustmodError
-from . import appendix, backends, check, demo
+from . import appendix, backends, check, demo, grid
 from .options import PROG, Parser
 
 #: The commands in the order ``--help`` lists them.
-COMMANDS = (check, appendix, demo, backends)
+COMMANDS = (check, appendix, grid, demo, backends)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -83,6 +83,7 @@ def run(args: argparse.Namespace) -> int:
 
     started = time.perf_counter()
     kw: dict[str, Any] = {}
+    cfg: dict[str, Any] = {}
     data, out, force = args.data, args.out, args.force
     if args.config:
         from ..config import compare_arguments, load_config  # noqa: PLC0415
@@ -108,8 +109,25 @@ def run(args: argparse.Namespace) -> int:
     refuse_existing(target, force)
     say(args, f"fitting {data} …")
     comparison = compare(data, on_step=step_lines(args), **kw)
-    write(args, comparison, target, started, force=force, data_path=data)
+    extra: dict[str, Any] = {}
+    if args.config and "grid" in cfg:
+        extra["grid"] = run_grid(args, data, cfg, kw)
+    write(args, comparison, target, started, force=force, data_path=data, **extra)
     return 0
+
+
+def run_grid(args: argparse.Namespace, data: str, cfg: dict[str, Any], kw: dict[str, Any]) -> Any:
+    """The config's [grid] on the same model (command-line overrides included), on local processes."""
+    from ..grid import grid  # noqa: PLC0415
+    from .grid import grid_arguments  # noqa: PLC0415
+
+    gk = grid_arguments({**cfg, **{k: v for k, v in kw.items() if k in ("formula", "focal", "moderator", "probe",
+                                                                        "alpha", "seed", "center", "options",
+                                                                        "na_values")}})
+    t0 = time.perf_counter()
+    result = grid(data, announce=lambda line: say(args, f"grid: {line}"), **gk)
+    step_lines(args)("specification grid", time.perf_counter() - t0)
+    return result
 
 
 def given_on_command_line(args: argparse.Namespace, base: dict[str, Any]) -> dict[str, Any]:

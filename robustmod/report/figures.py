@@ -540,6 +540,15 @@ FIGURES: list[tuple[str, str, str, Callable[[Comparison], Figure]]] = [
 ]
 
 
+def save_figure(fig: Figure, stem: Path) -> tuple[Path, Path]:
+    """Write ``fig`` as ``stem``.png and ``stem``.pdf; fixed metadata keeps reruns byte-identical."""
+    png, pdf = stem.parent / f"{stem.name}.png", stem.parent / f"{stem.name}.pdf"
+    fig.savefig(png, format="png", metadata={"Software": None})
+    fig.set_layout_engine("none")  # keep the layout the PNG draw computed; saves a second solve
+    fig.savefig(pdf, format="pdf", metadata={"CreationDate": None, "ModDate": None, "Producer": None, "Creator": None})
+    return png, pdf
+
+
 def render_figures(comparison: Comparison, folder: Path) -> list[FigureRecord]:
     """Write every figure as PNG and PDF into ``folder``; record skipped ones with the reason."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -550,10 +559,6 @@ def render_figures(comparison: Comparison, folder: Path) -> list[FigureRecord]:
         except MissingInput as exc:
             records.append(FigureRecord(stem, title, caption, skipped=str(exc)))
             continue
-        png, pdf = folder / f"{stem}.png", folder / f"{stem}.pdf"
-        # Fixed metadata keeps reruns byte-identical.
-        fig.savefig(png, format="png", metadata={"Software": None})
-        fig.set_layout_engine("none")  # keep the layout the PNG draw computed; saves a second solve
-        fig.savefig(pdf, format="pdf", metadata={"CreationDate": None, "ModDate": None, "Producer": None, "Creator": None})
+        png, pdf = save_figure(fig, folder / stem)
         records.append(FigureRecord(stem, title, caption, png=png, pdf=pdf))
     return records

@@ -134,4 +134,8 @@ def render_latex(ctx: Mapping[str, Any]) -> str:
     for name in ("comparison", "diagnostics", "calibration", "backends"):
         for t in ctx["groups"][name]:
             lines += table_latex(t)
+    if ctx.get("grid"):
+        from .grid_pages import latex_section  # noqa: PLC0415
+
+        lines += latex_section(ctx["grid"])
     return "\n".join(lines)

@@ -94,6 +94,10 @@ def render_markdown(ctx: Mapping[str, Any]) -> str:
                       f"*{md_escape(f['title'])}.* {md_escape(f['caption'])}", ""]
         else:
             lines += [f"*{md_escape(f['title'])}: not drawn ({md_escape(f['skipped'])}).*", ""]
+    if ctx.get("grid"):
+        from .grid_pages import markdown_section  # noqa: PLC0415
+
+        lines += markdown_section(ctx["grid"])
     lines += ["## Cautions", ""] + [f"- {md_escape(c)}" for c in ctx["cautions"]] + [""]
     p = ctx["provenance"]
     lines += ["## Provenance", "", f"- written: {p['created_utc']}",

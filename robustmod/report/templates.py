@@ -70,7 +70,7 @@ HTML = r"""<!DOCTYPE html>
   <li><a href="#comparison">Comparison of back-ends</a></li><li><a href="#robustness">Robustness summary</a></li>
   <li><a href="#diagnostics">Variance diagnostics</a></li><li><a href="#calibration">Calibration</a></li>
   <li><a href="#backends">Checks of each back-end</a></li><li><a href="#figures">Figures</a></li>
-  <li><a href="#cautions">Cautions</a></li><li><a href="#provenance">Provenance</a></li>
+  {% if grid %}<li><a href="#grid">Specification grid</a></li>{% endif %}<li><a href="#cautions">Cautions</a></li><li><a href="#provenance">Provenance</a></li>
 </ol></nav>
 
 <section id="model">
@@ -151,13 +151,18 @@ HTML = r"""<!DOCTYPE html>
 {% endif %}{% endfor %}
 </section>
 
+{% if grid %}<section id="grid">
+<h2>9. Specification grid</h2>
+{{ grid_section }}
+</section>
+{% endif %}
 <section id="cautions">
-<h2>9. Cautions</h2>
+<h2>{{ 10 if grid else 9 }}. Cautions</h2>
 <ul class="cautions">{% for c in cautions %}<li>{{ c }}</li>{% endfor %}</ul>
 </section>
 
 <section id="provenance">
-<h2>10. Provenance</h2>
+<h2>{{ 11 if grid else 10 }}. Provenance</h2>
 <dl class="kv">
   <dt>Written</dt><dd>{{ provenance.created_utc }}</dd>
   <dt>Command</dt><dd><code>{{ provenance.command_line or "called from Python" }}</code></dd>

@@ -17,7 +17,8 @@ import platform
 import shutil
 import sys
 import tempfile
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from importlib import metadata
 from pathlib import Path
@@ -25,16 +26,17 @@ from typing import TYPE_CHECKING, Any
 
 from ..compare import CAUTIONS
 from ..errors import InputError
-from ..tables import Table, signed
+from ..tables import NotApplicable, Table, signed
 from ..tables import render_html as render_table_html
 from .latex import latex_escape, render_latex
 from .markdown import md_escape, render_markdown
 
-__all__ = ["APPENDIX_FILES", "csv_guard", "latex_escape", "md_escape", "render_csv", "render_html", "render_latex",
-           "render_markdown", "write_appendix"]
+__all__ = ["APPENDIX_FILES", "atomic_folder", "csv_guard", "latex_escape", "md_escape", "render_csv", "render_html", "render_latex",
+           "render_markdown", "render_table_csv", "write_appendix"]
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..compare import Comparison
+    from ..grid import GridResult
     from .figures import FigureRecord
 
 #: Files every appendix holds (figures come on top, under figures/).
@@ -78,6 +80,17 @@ def results_dict(comparison: Comparison, *, record_paths: bool = False) -> tuple
     return res, timings
 
 
+def package_versions() -> dict[str, str]:
+    """Installed versions of robustmod and the libraries its numbers depend on."""
+    packages = {}
+    for name in ("robustmod", *DEPENDENCIES):
+        try:
+            packages[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            packages[name] = "not installed"
+    return packages
+
+
 def provenance(comparison: Comparison, *, command_line: str | None, data_path: str | Path | None,
                timings: Mapping[str, float], record_paths: bool = False) -> dict[str, Any]:
     """What was run on what: the data file's name and SHA-256 (its full path only with
@@ -88,12 +101,7 @@ def provenance(comparison: Comparison, *, command_line: str | None, data_path: s
     sha = None
     if path is not None and Path(path).is_file():
         sha = file_sha256(path)
-    packages = {}
-    for name in ("robustmod", *DEPENDENCIES):
-        try:
-            packages[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            packages[name] = "not installed"
+    packages = package_versions()
     out: dict[str, Any] = {
         "created_utc": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "command_line": command_line,
@@ -169,7 +177,7 @@ def context(comparison: Comparison, res: Mapping[str, Any], prov: Mapping[str, A
         "shifts": _shifts(s), "groups": grouped_tables(comparison),
         "figures": [{"name": f.name, "title": f.title, "caption": f.caption, "skipped": f.skipped,
                      "src": _figure_src(f), "png": f.png, "pdf": f.pdf} for f in figures],
-        "cautions": CAUTIONS, "provenance": prov, "data_note": None,
+        "cautions": CAUTIONS, "provenance": prov, "data_note": None, "grid": None,
     }
 
 
@@ -182,7 +190,12 @@ def render_html(ctx: Mapping[str, Any]) -> str:
     env = jinja2.Environment(autoescape=True, undefined=jinja2.StrictUndefined, keep_trailing_newline=True)
     sections = {name: Markup("\n".join(render_table_html(t) for t in tables))  # noqa: S704  (escaped by render_table_html)
                 for name, tables in ctx["groups"].items()}
-    return env.from_string(HTML).render(**ctx, sections=sections)
+    grid_section = Markup("")
+    if ctx.get("grid"):
+        from .grid_pages import html_section  # noqa: PLC0415
+
+        grid_section = Markup(html_section(ctx["grid"]))  # noqa: S704  (escaped by the grid's own template)
+    return env.from_string(HTML).render(**ctx, sections=sections, grid_section=grid_section)
 
 
 def render_csv(comparison: Comparison) -> str:
@@ -194,6 +207,18 @@ def render_csv(comparison: Comparison) -> str:
     w.writerow([csv_guard(str(c)) for c in table.columns])
     for row in table.itertuples(index=False):
         w.writerow(["" if v is None or (isinstance(v, float) and math.isnan(v)) else csv_guard(v) for v in row])
+    return buf.getvalue()
+
+
+def render_table_csv(table: Table) -> str:
+    """Any Table as CSV: machine keys as the header, numbers as numbers, a cell that does not apply
+    empty, text cells guarded against formula injection."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow([csv_guard(k) for k in table.keys])
+    for row in table.rows:
+        w.writerow(["" if c is None or isinstance(c, NotApplicable) or (isinstance(c, float) and not math.isfinite(c))
+                    else csv_guard(c) for c in row])
     return buf.getvalue()
 
 
@@ -212,7 +237,8 @@ def _check_target(out: Path, force: bool) -> None:
 
 def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool = False,
                    command_line: str | None = None, data_path: str | Path | None = None,
-                   progress: bool = False, data_note: str | None = None, record_paths: bool = False) -> Path:
+                   progress: bool = False, data_note: str | None = None, record_paths: bool = False,
+                   grid: GridResult | None = None) -> Path:
     """Write the appendix folder for ``comparison`` and return its path.
 
     Parameters
@@ -233,6 +259,9 @@ def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool =
         A line about the data shown at the top of the page (e.g. that they are invented).
     record_paths : bool, default=False
         Also record the data file's full path in provenance.json (by default only its name and SHA-256).
+    grid : GridResult, optional
+        A specification grid of the same model: adds its section to the pages, ``grid.csv``,
+        the specification-curve figure and the ``grid`` key of results.json.
 
     Returns
     -------
@@ -245,6 +274,40 @@ def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool =
     """
     from .figures import render_figures  # noqa: PLC0415  (matplotlib only when writing)
 
+    def step(msg: str) -> None:
+        if progress:
+            sys.stderr.write(f"appendix: {msg}\n")
+
+    with atomic_folder(out_dir, force) as (tmp, out):
+        res, timings = results_dict(comparison, record_paths=record_paths)
+        prov = provenance(comparison, command_line=command_line, data_path=data_path, timings=timings,
+                          record_paths=record_paths)
+        step("drawing figures")
+        figures = render_figures(comparison, tmp / "figures")
+        ctx = context(comparison, res, prov, figures)
+        ctx["data_note"] = data_note
+        if grid is not None:
+            from .grid_pages import grid_context, render_grid_csv  # noqa: PLC0415
+
+            step("writing the specification grid")
+            res["grid"] = grid.to_dict()
+            ctx["grid"] = grid_context(grid, tmp / "figures")
+            (tmp / "grid.csv").write_text(render_grid_csv(grid), encoding="utf-8")
+        step("writing pages and tables")
+        (tmp / "results.json").write_text(_dump(res), encoding="utf-8")
+        (tmp / "provenance.json").write_text(_dump(prov), encoding="utf-8")
+        (tmp / "appendix.html").write_text(render_html(ctx), encoding="utf-8")
+        (tmp / "appendix.md").write_text(render_markdown(ctx), encoding="utf-8")
+        (tmp / "tables.tex").write_text(render_latex(ctx), encoding="utf-8")
+        (tmp / "comparison.csv").write_text(render_csv(comparison), encoding="utf-8")
+    step(f"written to {out}")
+    return out
+
+
+@contextmanager
+def atomic_folder(out_dir: str | Path, force: bool) -> Iterator[tuple[Path, Path]]:
+    """(temporary folder to fill, final path): the folder appears at ``out_dir`` in one rename only when
+    the block finishes; on any error the temporary folder is removed and ``out_dir`` is left as it was."""
     out = Path(out_dir).expanduser()
     out = out.parent.resolve() / out.name if out.name else out.resolve()
     _check_target(out, force)
@@ -256,31 +319,12 @@ def write_appendix(comparison: Comparison, out_dir: str | Path, *, force: bool =
         raise InputError(f"The output folder '{out}' cannot be created ({exc.strerror or exc}); "
                          "choose a writable location with --out.") from None
     try:
-        def step(msg: str) -> None:
-            if progress:
-                sys.stderr.write(f"appendix: {msg}\n")
-
-        res, timings = results_dict(comparison, record_paths=record_paths)
-        prov = provenance(comparison, command_line=command_line, data_path=data_path, timings=timings,
-                          record_paths=record_paths)
-        step("drawing figures")
-        figures = render_figures(comparison, tmp / "figures")
-        ctx = context(comparison, res, prov, figures)
-        ctx["data_note"] = data_note
-        step("writing pages and tables")
-        (tmp / "results.json").write_text(_dump(res), encoding="utf-8")
-        (tmp / "provenance.json").write_text(_dump(prov), encoding="utf-8")
-        (tmp / "appendix.html").write_text(render_html(ctx), encoding="utf-8")
-        (tmp / "appendix.md").write_text(render_markdown(ctx), encoding="utf-8")
-        (tmp / "tables.tex").write_text(render_latex(ctx), encoding="utf-8")
-        (tmp / "comparison.csv").write_text(render_csv(comparison), encoding="utf-8")
+        yield tmp, out
         os.chmod(tmp, 0o755)  # mkdtemp makes it private; the appendix is for sharing
         _move_into_place(tmp, out, force)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    step(f"written to {out}")
-    return out
 
 
 def _move_into_place(tmp: Path, out: Path, force: bool) -> None:
