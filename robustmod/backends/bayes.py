@@ -541,6 +541,51 @@ def _sensitivity_table(ps: Mapping[str, Any], src: str) -> Table:
                       source=src, level=level)
 
 
+@dataclass(frozen=True)
+class _Standardised:
+    """The design on the sampler's scale (see :meth:`BayesBackend._standardised`)."""
+
+    X: np.ndarray
+    y: np.ndarray
+    Z: np.ndarray
+    z_labels: tuple[str, ...]
+    xs: Scaling
+    zs: Scaling
+    order: list[int]
+    zorder: list[int]
+    Xs: np.ndarray
+    Zs: np.ndarray
+    ys: np.ndarray
+    y_center: float
+    y_scale: float
+
+    @property
+    def inv(self) -> np.ndarray:
+        return np.argsort(self.order)
+
+
+def sampler_warnings(diag: dict[str, Any], target_accept: float) -> tuple[list[str], bool]:
+    """Warnings from R-hat, bulk/tail ESS and divergences (thresholds of Vehtari et al. 2021), and
+    whether the fit is reliable."""
+    warnings: list[str] = []
+    reliable = True
+    if diag["max_rhat"] is None or diag["max_rhat"] > RHAT_MAX:
+        shown = "undefined" if diag["max_rhat"] is None else f"up to {diag['max_rhat']:.3f}"
+        warnings.append(f"R-hat {shown} exceeds {RHAT_MAX} (Vehtari et al. 2021): the chains disagree; "
+                        "raise 'tune'/'draws'.")
+        reliable = False
+    for key, label in (("min_ess_bulk", "bulk"), ("min_ess_tail", "tail")):
+        if diag[key] is None or diag[key] < ESS_MIN:
+            shown = "undefined" if diag[key] is None else f"{diag[key]:.0f}"
+            warnings.append(f"The {label} ESS ({shown}) is below {ESS_MIN} (Vehtari et al. 2021); raise 'draws'.")
+            reliable = False
+    if diag["divergences"] > 0:
+        warnings.append(f"{diag['divergences']} divergent transition(s); raise 'target_accept' (now "
+                        f"{target_accept:g}) or simplify the variance model.")
+        reliable = False
+    return warnings, reliable
+
+
 class BayesBackend(Backend):
     """Bayesian location–scale model (PyMC, NUTS, CPU).
 
@@ -615,32 +660,19 @@ class BayesBackend(Backend):
 
     # ---- variance model ------------------------------------------------------------
     # ---- fit ---------------------------------------------------------------------------
-    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:  # noqa: PLR0912, PLR0915 - split is open work
+    def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
         t_start = time.perf_counter()
         az = _quiet_import("arviz")
-
-        X, y = design.X, design.y
-        n, k = X.shape
-        Z, z_labels = design.variance_matrix(self.variance_terms)
-        has_intercept = any(np.all(X[:, j] == 1.0) for j in range(k))
-        if not has_intercept:
-            return Unavailable(self.id, self.label, "The Bayesian back-end needs a model with an intercept; "
-                               "remove '- 1' / '+ 0' from the formula.")
-        xs, zs = column_scaling(X), column_scaling(Z)
-        y_center, y_scale = float(y.mean()), float(y.std(ddof=1))
-        if not y_scale > 0:
-            return Unavailable(self.id, self.label, f"The outcome {design.spec.response!r} is constant; nothing to model.")
-        ys = (y - y_center) / y_scale
-        assert xs.intercept is not None and zs.intercept is not None  # X was checked above; Z always starts with ones
-        order = [xs.intercept] + [j for j in range(k) if j != xs.intercept]
-        zorder = [zs.intercept] + [j for j in range(Z.shape[1]) if j != zs.intercept]
-        Xs, Zs = xs.apply(X)[:, order], zs.apply(Z)[:, zorder]
+        prep = self._standardised(design)
+        if isinstance(prep, Unavailable):
+            return prep
+        n, k = prep.X.shape
         cores = self.cores or min(self.chains, os.cpu_count() or 1)
         t0 = time.perf_counter()
         codes = design.clusters if self.model == "location-scale" else None
-        cm = compiled_model(Xs, ys, Zs, likelihood=self.likelihood, model=self.model, target_accept=self.target_accept,
-                            codes=codes)
+        cm = compiled_model(prep.Xs, prep.ys, prep.Zs, likelihood=self.likelihood, model=self.model,
+                            target_accept=self.target_accept, codes=codes)
         t_build = time.perf_counter() - t0
         settings = {"draws": self.draws, "tune": self.tune, "chains": self.chains, "cores": cores,
                     "target_accept": self.target_accept, "likelihood": self.likelihood, "model": self.model,
@@ -650,51 +682,14 @@ class BayesBackend(Backend):
         t0 = time.perf_counter()
         idata = run_sampler(cm, draws=self.draws, tune=self.tune, seed=seed, prior_scale=self.prior_scale, **common)
         t_first = time.perf_counter() - t0
-
-        inv = np.argsort(order)
-        b_std = _stack(idata, cm.mean_names)[:, inv]
-        beta = coefficients_to_user(b_std, xs, y_center, y_scale)
-        if self.model == "constant-conjugate":
-            g_std = 0.5 * np.log(_stack(idata, ("sigma2",)))
-            gamma = g_std + np.log(y_scale)
-            gamma_names: tuple[str, ...] = ("Intercept",)
-            Zu = np.ones((n, 1))
-        else:
-            g_std = _stack(idata, cm.log_sigma_names)[:, np.argsort(zorder)]
-            gamma = log_scale_to_user(g_std, zs, y_scale)
-            gamma_names = z_labels
-            Zu = Z
-        nu = _stack(idata, ("nu",))[:, 0] if self.likelihood == "student" else None
-        S = beta.shape[0]
+        beta, gamma, gamma_names, Zu, nu = self._user_scale_draws(idata, cm, prep, design)
+        offset = cluster_offsets(idata, codes, prep.y_scale)
         shape = (idata.posterior.sizes["chain"], idata.posterior.sizes["draw"])
-        idata.posterior["beta"] = (("chain", "draw", "term"), beta.reshape(*shape, k))
-        idata.posterior["gamma"] = (("chain", "draw", "variance_term"), gamma.reshape(*shape, -1))
-        idata.posterior = idata.posterior.assign_coords(term=list(design.term_names), variance_term=list(gamma_names))
-        offset = cluster_offsets(idata, codes, y_scale)
-        ll = pointwise_loglik(y, X, Zu, beta, gamma, nu, offset)
-        _add_loglik(idata, ll.reshape(*shape, n))
-
-        warnings: list[str] = []
+        _add_loglik(idata, pointwise_loglik(prep.y, prep.X, Zu, beta, gamma, nu, offset).reshape(*shape, n))
         diag = convergence(idata, ["beta", "gamma"] + (["nu"] if nu is not None else [])
                            + (["cluster_sd"] if codes is not None else []))
-        reliable = True
-        if diag["max_rhat"] is None or diag["max_rhat"] > RHAT_MAX:
-            shown = "undefined" if diag["max_rhat"] is None else f"up to {diag['max_rhat']:.3f}"
-            warnings.append(f"R-hat {shown} exceeds {RHAT_MAX} (Vehtari et al. 2021): the chains disagree; "
-                            "raise 'tune'/'draws'.")
-            reliable = False
-        for key, label in (("min_ess_bulk", "bulk"), ("min_ess_tail", "tail")):
-            if diag[key] is None or diag[key] < ESS_MIN:
-                shown = "undefined" if diag[key] is None else f"{diag[key]:.0f}"
-                warnings.append(f"The {label} ESS ({shown}) is below {ESS_MIN} (Vehtari et al. 2021); raise 'draws'.")
-                reliable = False
-        if diag["divergences"] > 0:
-            warnings.append(f"{diag['divergences']} divergent transition(s); raise 'target_accept' (now "
-                            f"{self.target_accept:g}) or simplify the variance model.")
-            reliable = False
-
+        warnings, reliable = sampler_warnings(diag, self.target_accept)
         sig = np.exp(Zu @ gamma.T)  # n × S
-        sigma_hat = sig.mean(axis=1)
         extras: dict[str, Any] = {
             "sampler": settings,
             "diagnostics": {**diag, "thresholds": {"rhat_max": RHAT_MAX, "ess_min": ESS_MIN}},
@@ -704,53 +699,104 @@ class BayesBackend(Backend):
         if nu is not None:
             extras["nu"] = _summaries(nu[:, None], ("nu",))["nu"]
         if codes is not None:
-            extras.update(cluster_extras(idata, y_scale, sig, design.cluster_name, int(codes.max()) + 1))
-
+            extras.update(cluster_extras(idata, prep.y_scale, sig, design.cluster_name, int(codes.max()) + 1))
         # Only PyMC's refits start from the first fit's adaptation; the others tune afresh.
         aux: dict[str, Any] = {"draws": min(self.draws, AUX_DRAWS),
                                "tune": min(self.tune, AUX_TUNE) if self.sampler == "pymc" else self.tune, **common}
         refit_seconds: list[float] = []
-        if self.model == "location-scale" and Z.shape[1] > 1:
-            t0 = time.perf_counter()
-            idata_c = run_sampler(cm, seed=seed + 1, prior_scale=self.prior_scale, variance_on=0.0,
-                                  previous=idata, **aux)
+        t0 = time.perf_counter()
+        extras.update(self._against_constant_variance(az, cm, idata, prep, design, beta, gamma, nu, Zu, offset,
+                                                      codes, seed, aux))
+        if "loo" in extras:
             refit_seconds.append(time.perf_counter() - t0)
-            beta_c = coefficients_to_user(_stack(idata_c, cm.mean_names)[:, inv], xs, y_center, y_scale)
-            g0_c = _stack(idata_c, ("g_intercept",))
-            gamma_c = np.log(y_scale) + g0_c
-            nu_c = _stack(idata_c, ("nu",))[:, 0] if nu is not None else None
-            shape_c = (idata_c.posterior.sizes["chain"], idata_c.posterior.sizes["draw"])
-            offset_c = cluster_offsets(idata_c, codes, y_scale)
-            ll_c = pointwise_loglik(y, X, np.ones((n, 1)), beta_c, gamma_c, nu_c, offset_c)
-            _add_loglik(idata_c, ll_c.reshape(*shape_c, n))
-            extras["loo"] = loo_compare(az, idata, idata_c)
-            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, np.ones((n, 1)), beta_c,
-                                                      gamma_c, nu_c, seed, offsets=(offset, offset_c))
-        else:
-            extras["predictive_check"] = spread_check(design, y, X, Zu, beta, gamma, nu, None, None, None, None, seed,
-                                                      offsets=(offset, None))
-        for w in extras.get("loo", {}).get("warnings", []):
-            warnings.append(w)
+        warnings.extend(extras.get("loo", {}).get("warnings", []))
         if self.prior_sensitivity:
             t0 = time.perf_counter()
-            extras["prior_sensitivity"] = self._sensitivity(cm, design, beta, inv, xs, y_center, y_scale, seed,
-                                                            idata, aux)
+            extras["prior_sensitivity"] = self._sensitivity(cm, design, beta, prep.inv, prep.xs, prep.y_center,
+                                                            prep.y_scale, seed, idata, aux)
             refit_seconds.append(time.perf_counter() - t0)
-        if self.save_posterior is not None:
-            try:
-                idata.to_netcdf(self.save_posterior)
-            except (OSError, ValueError) as exc:
-                raise InputError(f"The 'save_posterior' file {self.save_posterior!r} could not be written ({exc}); "
-                                 "choose a writable path.") from None
-            extras["posterior_file"] = self.save_posterior
+        self._save(idata, extras)
         extras["seconds"] = {"build": round(t_build, 3), "first_fit": round(t_first, 3),
                              "refits": [round(s, 3) for s in refit_seconds],
                              "total": round(time.perf_counter() - t_start, 3)}
-        extras["n_draws"] = S
+        extras["n_draws"] = beta.shape[0]
         label = self.label + (" + cluster intercepts" if codes is not None else "")
         return BayesFit(self.id, label, design.term_names, beta, idata=idata, gamma_draws=gamma,
-                        gamma_names=gamma_names, sigma_hat=sigma_hat, warnings=tuple(warnings), reliable=reliable,
-                        extras=extras, se_label="posterior SD")
+                        gamma_names=gamma_names, sigma_hat=sig.mean(axis=1), warnings=tuple(warnings),
+                        reliable=reliable, extras=extras, se_label="posterior SD")
+
+    def _standardised(self, design: Design) -> _Standardised | Unavailable:
+        """The design on the sampler's scale: columns scaled, intercepts first, y standardised."""
+        X, y = design.X, design.y
+        k = X.shape[1]
+        Z, z_labels = design.variance_matrix(self.variance_terms)
+        if not any(np.all(X[:, j] == 1.0) for j in range(k)):
+            return Unavailable(self.id, self.label, "The Bayesian back-end needs a model with an intercept; "
+                               "remove '- 1' / '+ 0' from the formula.")
+        xs, zs = column_scaling(X), column_scaling(Z)
+        y_center, y_scale = float(y.mean()), float(y.std(ddof=1))
+        if not y_scale > 0:
+            return Unavailable(self.id, self.label, f"The outcome {design.spec.response!r} is constant; nothing to model.")
+        assert xs.intercept is not None and zs.intercept is not None  # X was checked above; Z always starts with ones
+        order = [xs.intercept] + [j for j in range(k) if j != xs.intercept]
+        zorder = [zs.intercept] + [j for j in range(Z.shape[1]) if j != zs.intercept]
+        return _Standardised(X, y, Z, tuple(z_labels), xs, zs, order, zorder, xs.apply(X)[:, order],
+                             zs.apply(Z)[:, zorder], (y - y_center) / y_scale, y_center, y_scale)
+
+    def _user_scale_draws(self, idata: Any, cm: CompiledModel, prep: _Standardised, design: Design
+                          ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], np.ndarray, np.ndarray | None]:
+        """Draws of β and γ back on the user's scale (also stored in ``idata``), the variance terms'
+        names and matrix, and ν for a Student-t likelihood."""
+        n, k = prep.X.shape
+        beta = coefficients_to_user(_stack(idata, cm.mean_names)[:, prep.inv], prep.xs, prep.y_center, prep.y_scale)
+        if self.model == "constant-conjugate":
+            gamma = 0.5 * np.log(_stack(idata, ("sigma2",))) + np.log(prep.y_scale)
+            gamma_names: tuple[str, ...] = ("Intercept",)
+            Zu = np.ones((n, 1))
+        else:
+            g_std = _stack(idata, cm.log_sigma_names)[:, np.argsort(prep.zorder)]
+            gamma = log_scale_to_user(g_std, prep.zs, prep.y_scale)
+            gamma_names, Zu = prep.z_labels, prep.Z
+        nu = _stack(idata, ("nu",))[:, 0] if self.likelihood == "student" else None
+        shape = (idata.posterior.sizes["chain"], idata.posterior.sizes["draw"])
+        idata.posterior["beta"] = (("chain", "draw", "term"), beta.reshape(*shape, k))
+        idata.posterior["gamma"] = (("chain", "draw", "variance_term"), gamma.reshape(*shape, -1))
+        idata.posterior = idata.posterior.assign_coords(term=list(design.term_names), variance_term=list(gamma_names))
+        return beta, gamma, gamma_names, Zu, nu
+
+    def _against_constant_variance(self, az: Any, cm: CompiledModel, idata: Any, prep: _Standardised,
+                                   design: Design, beta: np.ndarray, gamma: np.ndarray, nu: np.ndarray | None,
+                                   Zu: np.ndarray, offset: np.ndarray | None, codes: np.ndarray | None, seed: int,
+                                   aux: dict[str, Any]) -> dict[str, Any]:
+        """PSIS-LOO against a constant-variance refit and the predictive spread check of both
+        (the check alone when the model has no variance slope)."""
+        X, y = prep.X, prep.y
+        n = X.shape[0]
+        if not (self.model == "location-scale" and prep.Z.shape[1] > 1):
+            return {"predictive_check": spread_check(design, y, X, Zu, beta, gamma, nu, None, None, None, None, seed,
+                                                     offsets=(offset, None))}
+        idata_c = run_sampler(cm, seed=seed + 1, prior_scale=self.prior_scale, variance_on=0.0, previous=idata, **aux)
+        beta_c = coefficients_to_user(_stack(idata_c, cm.mean_names)[:, prep.inv], prep.xs, prep.y_center,
+                                      prep.y_scale)
+        gamma_c = np.log(prep.y_scale) + _stack(idata_c, ("g_intercept",))
+        nu_c = _stack(idata_c, ("nu",))[:, 0] if nu is not None else None
+        shape_c = (idata_c.posterior.sizes["chain"], idata_c.posterior.sizes["draw"])
+        offset_c = cluster_offsets(idata_c, codes, prep.y_scale)
+        ll_c = pointwise_loglik(y, X, np.ones((n, 1)), beta_c, gamma_c, nu_c, offset_c)
+        _add_loglik(idata_c, ll_c.reshape(*shape_c, n))
+        return {"loo": loo_compare(az, idata, idata_c),
+                "predictive_check": spread_check(design, y, X, Zu, beta, gamma, nu, np.ones((n, 1)), beta_c, gamma_c,
+                                                 nu_c, seed, offsets=(offset, offset_c))}
+
+    def _save(self, idata: Any, extras: dict[str, Any]) -> None:
+        if self.save_posterior is None:
+            return
+        try:
+            idata.to_netcdf(self.save_posterior)
+        except (OSError, ValueError) as exc:
+            raise InputError(f"The 'save_posterior' file {self.save_posterior!r} could not be written ({exc}); "
+                             "choose a writable path.") from None
+        extras["posterior_file"] = self.save_posterior
 
     def _sensitivity(self, cm: CompiledModel, design: Design, beta: np.ndarray, inv: np.ndarray, xs: Scaling,
                      y_center: float, y_scale: float, seed: int, idata: Any, aux: dict[str, Any]) -> dict[str, Any]:
