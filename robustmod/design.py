@@ -245,7 +245,7 @@ class Design:
         return frame
 
     def _matrix(self, frame: pd.DataFrame) -> np.ndarray:
-        mm = self._model_spec.get_model_matrix(frame)
+        mm = self._model_spec.get_model_matrix(frame, context=FORMULA_CONTEXT)  # the allow-listed transforms (log1p …)
         return np.asarray(mm, dtype=float)
 
 
