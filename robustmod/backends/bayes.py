@@ -95,7 +95,12 @@ def _quiet_import(name: str) -> Any:
     with pywarnings.catch_warnings():
         pywarnings.simplefilter("ignore", UserWarning)
         pywarnings.simplefilter("ignore", FutureWarning)
-        return importlib.import_module(name)
+        try:
+            return importlib.import_module(name)
+        except ImportError:
+            extra = "pip install 'robustmod[numpyro]'" if name in ("jax", "numpyro") else f"pip install {name}"
+            raise InputError(f"The Bayesian back-end needs the package '{name}', which is not installed; "
+                             f"install it ({extra}) or choose another sampler (--set bayes.sampler=pymc).") from None
 
 def column_scaling(A: np.ndarray) -> Scaling:
     """Centre and scale every non-constant column when A has a column of ones; scale only otherwise."""
