@@ -276,6 +276,19 @@ def test_figures_with_labels_have_legends(demo: object) -> None:
                 assert ax.get_legend() is not None or fig.legends, (func.__name__, labelled)
 
 
+@pytest.mark.slow
+def test_posterior_figures_with_labels_have_legends() -> None:
+    # The rank plot labels every chain; its legend says which is which (a short sampler run suffices).
+    bayes = compare(demo_data(), DEMO_FORMULA, DEMO_FOCAL, DEMO_MODERATOR, backends=["hc3", "bayes"],
+                    options={"bayes": {"draws": 150, "tune": 150, "chains": 2, "cores": 1}})
+    for func in (F.rank_figure,):
+        fig = func(bayes)
+        labelled = [lab for ax in fig.axes for lab in ax.get_legend_handles_labels()[1] if not lab.startswith("_")]
+        assert labelled, func.__name__
+        assert fig.legends or all(ax.get_legend() is not None for ax in fig.axes
+                                  if ax.get_legend_handles_labels()[1]), func.__name__
+
+
 def test_results_json_carries_the_tables_beside_the_contract(appendix: Path) -> None:
     import json
 
