@@ -413,6 +413,8 @@ def compare(
     sep: str | None = None,
     decimal: str | None = None,
     sheet: str | int | None = None,
+    stream: bool | None = None,
+    memory: int | str | None = None,
 ) -> Comparison:
     """Fit the moderation model with several back-ends and compare them.
 
@@ -469,6 +471,14 @@ def compare(
         Separator and decimal mark of a CSV/TSV file (detected when not given).
     sheet : str or int, optional
         Sheet of an Excel workbook by name or 0-based position (default: the first).
+    stream : bool, optional
+        Read a Parquet file, a folder of Parquet files or a CSV file in chunks (True), into memory
+        (False), or decide (None, the default): stream when the frame of the model's columns
+        (rows × columns × 8 bytes) times ``robustmod.defaults.STREAM_MEMORY_FACTOR`` exceeds the
+        memory budget. See :mod:`robustmod.stream` and docs/scale.md.
+    memory : int or str, optional
+        The memory budget: bytes, or "2GB", "512MB" (powers of 1024). Default: a quarter
+        (``robustmod.defaults.MEMORY_SHARE``) of the memory available when the run starts.
 
     Returns
     -------
@@ -493,10 +503,16 @@ def compare(
     True
     """
     started = time.perf_counter()
-    frame, source = load_data(data, na_values=na_values, sep=sep, decimal=decimal, sheet=sheet)
     mods = (moderator,) if isinstance(moderator, str) else tuple(moderator)
     spec = ModelSpec(formula=formula, focal=focal, moderators=mods, probe=probe if probe is not None else {},
                      alpha=alpha, seed=seed, center=center, cluster=cluster)
+    from .stream import choose_stream, memory_budget, stream_compare  # noqa: PLC0415  (pyarrow only for files)
+
+    budget = memory_budget(memory)
+    streamed = choose_stream(data, stream, budget, spec, {"na_values": na_values, "sep": sep, "decimal": decimal,
+                                                          "sheet": sheet})
+    if not streamed:
+        frame, source = load_data(data, na_values=na_values, sep=sep, decimal=decimal, sheet=sheet)
     clustered = cluster is not None
     ids = check_ids(list(backends) if backends is not None else list(CLUSTER_BACKENDS if clustered else BACKENDS))
     (primary,) = check_ids([primary or (CLUSTER_PRIMARY if clustered else PRIMARY)])
@@ -512,6 +528,10 @@ def compare(
                            f"{MAX_DATASETS:,}", calibration)
     if not isinstance(engine, Engine):
         check_engine_choice(engine, scheduler)
+    if streamed:
+        assert isinstance(data, (str, Path))  # choose_stream streams only a file path
+        return stream_compare(data, spec, ids, primary, options, budget=budget, calibration=calibration,
+                              progress=progress, on_step=on_step, started=started)
     with ExitStack() as stack:  # a cluster is reached (or started) before the fitting, and closed at the end
         eng = _open_engine(engine, scheduler, workers, announce, stack) if calibration is not None else None
         if eng is not None and not isinstance(engine, Engine):

@@ -52,3 +52,15 @@ CLUSTER_BACKENDS: tuple[str, ...] = ("ols", "cr2", "wild", "wls", "bayes")
 
 #: The primary back-end when the rows are clustered and the user names none.
 CLUSTER_PRIMARY = "cr2"
+
+#: The Bayesian back-end refuses more rows than this (its sampler's cost grows with n: at 2·10⁵ rows one fit
+#: takes many minutes on 2 cores); above it, fit it on a seeded random subsample (its ``subsample`` option).
+BAYES_MAX_ROWS = 200_000
+
+#: Data read in chunks: the memory budget when none is given is this share of the memory available when
+#: the run starts (``--memory`` / ``memory=`` set it).
+MEMORY_SHARE = 0.25
+#: A file is read in chunks automatically (``stream=None``) when its frame of the model's columns
+#: (rows × columns × 8 bytes) times this factor exceeds the budget: the in-memory path peaks at about
+#: 6–33 times that frame (design, QR, diagnostics; measured in validation/README.md).
+STREAM_MEMORY_FACTOR = 20

@@ -96,6 +96,9 @@ def test_entry_agrees_with_the_class(bid: str) -> None:
     assert registry.colour(bid).startswith("#") and len(registry.colour(bid)) == 7
     assert (bid in registry.constant_variance_ids()) == e.assumes_constant_variance
     assert (bid in registry.independent_rows_ids()) == e.assumes_independent_rows
+    # Streaming is declared by the class and recorded in the entry (robustmod.stream reads only the entry).
+    assert backend.streams == e.streams == (bid in registry.streaming_ids())
+    assert type(backend).fit_stream is not Backend.fit_stream or not e.streams
     # The calibration constructs the back-end with these settings (robustmod.calibrate).
     make_backend(bid, **type(backend).calibration_options)
     for line in registry.option_help(bid):

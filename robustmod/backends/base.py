@@ -28,6 +28,7 @@ from .kernels import wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..stream import StreamData
     from ..tables import Table
 
 
@@ -479,6 +480,11 @@ class Backend(ABC):
     calibration_options: Mapping[str, Any] = {}
     calibration_note: str = ""
     costly = _CostlyFlag()
+    #: Whether :meth:`fit_stream` fits data read in chunks (the registry entry records the same fact).
+    streams: bool = False
+    #: Why a back-end that does not stream cannot fit data read in chunks, and the fix.
+    stream_reason: str = ("it needs the whole design in memory; read the data into memory instead "
+                          "(--no-stream, stream=False) on a machine with enough memory")
 
     def __init_subclass__(cls, **kwargs: Any) -> None:
         super().__init_subclass__(**kwargs)
@@ -510,6 +516,16 @@ class Backend(ABC):
     @abstractmethod
     def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Fit the moderation model on ``design``; an Unavailable says why no answer is possible."""
+
+    def shared_ols_kinds(self) -> tuple[str, ...]:
+        """Covariance kinds ('ols', 'hc0' … 'hc5') this back-end takes from the shared OLS passes over
+        data read in chunks (they are computed once for every back-end that asks)."""
+        return ()
+
+    def fit_stream(self, data: StreamData, *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """Fit on data read in chunks (:class:`robustmod.stream.StreamData`); a back-end with
+        ``streams = True`` overrides this. The default says why it cannot, and the fix."""
+        return Unavailable(self.id, self.label, f"{self.label} cannot fit data read in chunks: {self.stream_reason}.")
 
     def __repr__(self) -> str:
         shown = ", ".join(f"{k}={v!r}" for k, v in self.get_options().items())

@@ -30,12 +30,15 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from scipy import linalg, special
 
+from ..defaults import BAYES_MAX_ROWS
 from ..errors import InputError, option_error
+from ..subsample import fit_on_subsample, fit_stream_rows, subsample_tables
 from ..tables import format_number
 from .base import Backend, Fit, Option, PosteriorFit, Unavailable, one_row_table
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..stream import StreamData
     from ..tables import Table
 
 #: Vehtari, Gelman, Simpson, Carpenter & Bürkner (2021): rank-normalised R-hat and ESS thresholds.
@@ -471,7 +474,7 @@ class BayesFit(PosteriorFit):
             ("prior_scale", "Prior SD multiplier", "number", st.get("prior_scale")),
             ("qr", "QR reparameterisation", "flag", st.get("qr_reparameterisation")),
         ]
-        tables = [one_row_table(f"{src}.sampler", "Sampler settings", src, settings)]
+        tables = [*subsample_tables(ex, src), one_row_table(f"{src}.sampler", "Sampler settings", src, settings)]
         dg = ex.get("diagnostics") or {}
         th = dg.get("thresholds") or {}
         verdict = "reliable" if self.reliable else "unreliable (see the warnings)"
@@ -641,6 +644,8 @@ class BayesBackend(Backend):
                "model with a closed-form posterior (for checking the sampler).", choices=MODELS),
         Option("sampler", "text", DEFAULT_SAMPLER, "The NUTS implementation: pymc, nutpie or numpyro.",
                choices=SAMPLERS, case="insensitive"),
+        Option("subsample", "integer", None, f"Fit on a seeded random subsample of this many rows (needed above "
+               f"{BAYES_MAX_ROWS:,} rows; rule in robustmod.subsample).", low=100, high=BAYES_MAX_ROWS),
     )
     calibration_options = {"draws": 500, "tune": 500, "chains": 2, "prior_sensitivity": False}
     calibration_note = ("The Bayesian back-end was calibrated with 2 chains x 500 draws after 500 tuning steps "
@@ -658,6 +663,12 @@ class BayesBackend(Backend):
     cores: int | None
     model: str
     sampler: str
+    subsample: int | None
+    streams = True
+
+    def fit_stream(self, data: StreamData, *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """The rows (all, or the seeded subsample) read in one pass, then the in-memory fit."""
+        return fit_stream_rows(self, data, seed=seed, progress=progress)
 
     def finish_options(self) -> None:
         if self.model == "constant-conjugate" and self.likelihood != "normal":
@@ -667,6 +678,8 @@ class BayesBackend(Backend):
     # ---- fit ---------------------------------------------------------------------------
     def fit(self, design: Design, *, seed: int, progress: bool = False) -> Fit | Unavailable:
         """Sample the location–scale model; refits for LOO and prior sensitivity reuse the compiled step."""
+        if self.subsample is not None or design.n_obs > BAYES_MAX_ROWS:  # a seeded subsample, or the refusal
+            return fit_on_subsample(self, design, seed=seed, progress=progress)
         t_start = time.perf_counter()
         az = _quiet_import("arviz")
         prep = self._standardised(design)

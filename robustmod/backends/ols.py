@@ -18,6 +18,7 @@ from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..stream import StreamData
 
 LABELS = {
     "ols": "OLS, classical SE",
@@ -45,9 +46,18 @@ class OLSBackend(FamilyBackend):
     def __init__(self, id: str = "hc3", **options: Any) -> None:
         super().__init__(id=id, **options)
 
+    streams = True
+
     def finish_options(self) -> None:
         super().finish_options()
         self.assumes_constant_variance = self.id == "ols"
+
+    def shared_ols_kinds(self) -> tuple[str, ...]:
+        return (self.id,)
+
+    def fit_stream(self, data: StreamData, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
+        """From the shared streamed OLS passes (:func:`robustmod.kernels.ols.streamed_ols`)."""
+        return data.ols_fit(self.id, label=self.label, backend_id=self.id)
 
     def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
         Q, R = design.qr

@@ -33,7 +33,9 @@ class BackendEntry:
     a user cannot override them. ``colour`` is the back-end's colour in every figure (None: a
     palette colour by position in the registry). ``needs_residual_of_each_row``: its standard error
     is built from each row's residual, so it is degenerate where a row has leverage one (that
-    residual is zero whatever the variance there).
+    residual is zero whatever the variance there). ``streams``: the back-end fits data read in chunks
+    (its class declares ``streams = True`` and implements ``fit_stream``); the others are listed as
+    unavailable for such data, with the reason their class gives.
     """
 
     id: str
@@ -47,6 +49,7 @@ class BackendEntry:
     colour: str | None = None
     default: bool = False
     needs_residual_of_each_row: bool = False
+    streams: bool = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "fixed", MappingProxyType(dict(self.fixed)))
@@ -59,7 +62,7 @@ class BackendEntry:
 def _ols(bid: str, label: str, colour: str) -> BackendEntry:
     return BackendEntry(bid, "robustmod.backends.ols", "OLSBackend", label, assumes_constant_variance=bid == "ols",
                         assumes_independent_rows=True, cost="cheap", fixed={"id": bid}, colour=colour,
-                        default=bid in BACKENDS, needs_residual_of_each_row=bid != "ols")
+                        default=bid in BACKENDS, needs_residual_of_each_row=bid != "ols", streams=True)
 
 
 def _cluster(bid: str, label: str, colour: str) -> BackendEntry:
@@ -83,13 +86,15 @@ _ENTRIES: dict[str, BackendEntry] = {e.id: e for e in (
     _cluster("cr3", "OLS + CR3 (cluster jackknife)", OKABE_ITO["yellow"]),
     BackendEntry("wild", "robustmod.backends.wild", "WildBootstrapBackend", "Wild bootstrap (HC3-t, Rademacher)",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="moderate",
-                 colour=OKABE_ITO["orange"], default="wild" in BACKENDS, needs_residual_of_each_row=True),
+                 colour=OKABE_ITO["orange"], default="wild" in BACKENDS, needs_residual_of_each_row=True,
+                 streams=True),
     BackendEntry("wls", "robustmod.backends.wls", "WLSBackend", "WLS, log-linear variance (ML) + HC3",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="cheap",
-                 colour=OKABE_ITO["green"], default="wls" in BACKENDS, needs_residual_of_each_row=True),
+                 colour=OKABE_ITO["green"], default="wls" in BACKENDS, needs_residual_of_each_row=True,
+                 streams=True),
     BackendEntry("bayes", "robustmod.backends.bayes", "BayesBackend", "Bayesian location–scale (PyMC)",
                  assumes_constant_variance=False, assumes_independent_rows=True, cost="costly",
-                 colour=OKABE_ITO["purple"], default="bayes" in BACKENDS),
+                 colour=OKABE_ITO["purple"], default="bayes" in BACKENDS, streams=True),
 )}
 
 #: id → entry (read-only view; add entries with :func:`register`).
@@ -165,6 +170,11 @@ def constant_variance_ids() -> frozenset[str]:
 def residual_per_row_ids() -> frozenset[str]:
     """Ids whose standard errors are built from each row's residual (degenerate at leverage one)."""
     return frozenset(b for b, e in _ENTRIES.items() if e.needs_residual_of_each_row)
+
+
+def streaming_ids() -> frozenset[str]:
+    """Ids that fit data read in chunks (files larger than memory)."""
+    return frozenset(b for b, e in _ENTRIES.items() if e.streams)
 
 
 def independent_rows_ids() -> frozenset[str]:

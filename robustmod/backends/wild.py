@@ -65,7 +65,13 @@ from .kernels import batched_quadratic, design_row_numbers, leverage_one_reason
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..stream import StreamData
     from ..tables import Table
+
+#: Said in the warnings of a wild bootstrap fitted on data read in chunks (docs/method-streaming.md).
+STREAM_WEIGHTS_NOTE = ("Read in chunks: the bootstrap weights come from a counter-based stream (rows in fixed blocks "
+                       "of 4096, each block seeded by (seed, batch, block)), so the replicates are other draws than "
+                       "the in-memory back-end's; they do not depend on the chunk size.")
 
 WEIGHT_KINDS = ("rademacher", "mammen", "webb")
 TRANSFORMS = ("hc2", "hc3", "none")
@@ -518,8 +524,26 @@ class WildBootstrapBackend(Backend):
     se: str
     transform: str
 
+    streams = True
+
     def finish_options(self) -> None:
         self.label = f"Wild bootstrap ({self.se.upper()}-t, {WEIGHT_LABELS[self.weights]})"
+
+    def fit_stream(self, data: StreamData, *, seed: int, progress: bool = False) -> Fit | Unavailable:
+        """Replicate batches over the chunks (:func:`robustmod.kernels.wild.streamed_wild`); the weights
+        differ from the in-memory draws by design, which the fit's warnings say."""
+        from ..kernels.wild import BATCH, streamed_wild  # noqa: PLC0415  (kernels import the back-ends)
+
+        d = data.design
+        with data.stage(lambda i: f"wild bootstrap, replicates {(i - 3) // 2 * BATCH + 1}–"
+                        f"{min(self.replications, ((i - 3) // 2 + 1) * BATCH)}" if i > 3 else "wild bootstrap: fits"):
+            fit = streamed_wild(data.chunks, d.term_names, d.interaction_columns, replications=self.replications,
+                                weights=self.weights, se=self.se, transform=self.transform, seed=seed)
+        if isinstance(fit, Unavailable):
+            return Unavailable(self.id, self.label, fit.reason)
+        fit.label = self.label
+        fit.warnings = (*fit.warnings, STREAM_WEIGHTS_NOTE)
+        return fit
 
     # ---- shared pieces -------------------------------------------------------------------
     def _omega(self, design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray] | str:

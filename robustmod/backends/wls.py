@@ -57,6 +57,7 @@ from .kernels import (
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
+    from ..stream import StreamData
     from ..tables import Table
 
 VARIANCE_FUNCTIONS = ("loglinear", "power", "groups", "known")
@@ -326,6 +327,42 @@ class ClusteredWLSFit(ClusterFit):
         return super().report_tables() + variance_model_tables(self.extras, self.backend_id)
 
 
+class StreamedWLSFit(WaldFit):
+    """The WLS fit of data read in chunks: no per-row weights are held; the variance model's tables."""
+
+    def report_tables(self) -> tuple[Table, ...]:
+        return variance_model_tables(self.extras, self.backend_id)
+
+
+def streamed_wls_fit(backend_id: str, s: Any, names: tuple[str, ...], rss_ols: float, *, se: str,
+                     term_names: tuple[str, ...]) -> StreamedWLSFit:
+    """The Wald fit and the extras of :func:`fit_wls` from a :class:`robustmod.kernels.wls.StreamedWLS`."""
+    n, k, p = s.weighted.n, s.weighted.k, len(names)
+    notes: list[str] = []
+    used = "ml" if s.converged else "twostep (ML did not converge)"
+    if not s.converged:
+        notes.append("ML of the variance model did not converge (scoring stopped); the two-step FGLS "
+                     "estimate is reported instead.")
+    if not math.isfinite(s.weight_ratio) or s.weight_ratio > WEIGHT_RATIO_WARNING:
+        notes.append(f"The largest weight is {s.weight_ratio:.3g} times the smallest; a few rows dominate the fit "
+                     "(check the variance model or the data).")
+    lr = lr_from_rss(n, k, p, rss_ols, s.loglik)
+    info: dict[str, Any] = {
+        "function": "loglinear", "z_terms": list(names), "source_column": None,
+        "gamma": {name: {"estimate": float(g), "se": float(e)} for name, g, e in zip(names, s.gamma, s.gamma_se,
+                                                                                  strict=True)},
+        "loglik": s.loglik, "loglik_constant": lr["loglik_constant"], "lr_test": lr["lr_test"], "aic": lr["aic"],
+        "aic_constant": lr["aic_constant"], "weight_ratio": s.weight_ratio, "scale_s2": s.scale_s2,
+        "estimation": used, "se_type": se, "converged": s.converged, "iterations": s.iterations,
+        "zero_residuals_raised": None, "read_in_chunks": True,
+    }
+    est = "ML" if s.converged else "two-step FGLS"
+    label = f"WLS, {_FUNCTION_LABELS['loglinear']} ({est}) + {'HC3' if se == 'robust' else 'model SE'}"
+    return StreamedWLSFit(backend_id, label, term_names, s.beta, s.cov, n - k, warnings=tuple(notes),
+                          extras={"variance_model": info, "df_resid": n - k, "sigma": float(math.sqrt(s.scale_s2))},
+                          se_label="HC3 on the weighted fit" if se == "robust" else "model-based s²(XᵀWX)⁻¹")
+
+
 def variance_model_tables(extras: dict[str, Any], src: str) -> tuple[Table, ...]:
     """The variance model (coefficients on the user's terms) and its fit: LR test against constant
     variance, AIC of both, convergence, weight ratio — all from ``extras['variance_model']``."""
@@ -370,7 +407,11 @@ def _lr_parts(n: int, k: int, p: int, y: np.ndarray, X: np.ndarray, ll: float | 
     """LR test of the variance model against constant variance, AIC of both."""
     Q, _ = np.linalg.qr(X, mode="reduced")
     e = y - Q @ (Q.T @ y)
-    rss = float(e @ e)
+    return lr_from_rss(n, k, p, float(e @ e), ll)
+
+
+def lr_from_rss(n: int, k: int, p: int, rss: float, ll: float | None) -> dict[str, Any]:
+    """The LR test and AICs of :func:`_lr_parts` from the OLS residual sum of squares."""
     ll0 = -0.5 * n * (math.log(2 * math.pi) + math.log(max(rss, np.finfo(float).tiny) / n) + 1.0)
     out: dict[str, Any] = {"loglik_constant": ll0, "aic_constant": -2 * ll0 + 2 * (k + 1)}
     if ll is None or p <= 1:
@@ -678,6 +719,24 @@ class WLSBackend(Backend):
             raise option_error("weights", "left unset unless variance='known'", self.weights, "wls")
         est = "" if self.variance == "known" else (" (ML)" if self.estimation == "ml" else " (two-step FGLS)")
         self.label = f"WLS, {_FUNCTION_LABELS[self.variance]}{est} + {'HC3' if self.se == 'robust' else 'model SE'}"
+
+    streams = True
+
+    def fit_stream(self, data: StreamData, *, seed: int = 0, progress: bool = False) -> WaldFit | Unavailable:
+        """The log-linear ML fit over chunks (:func:`robustmod.kernels.wls.streamed_wls`); other variance
+        functions and the two-step estimate are fitted in memory only."""
+        if self.variance != "loglinear" or self.estimation != "ml":
+            return Unavailable(self.id, self.label, "Only the log-linear variance model fitted by ML reads data in "
+                               "chunks; set wls.variance=loglinear and wls.estimation=ml, or read the data into "
+                               "memory (--no-stream).")
+        from ..kernels.wls import streamed_wls  # noqa: PLC0415  (kernels import the back-ends)
+
+        chunks, names = data.variance_chunks(self.variance_terms)
+        stage = {1: "WLS: OLS start", 2: "WLS: two-step start", 3: "WLS: two-step start"}
+        with data.stage(lambda i: stage.get(i, f"WLS scoring pass {i - 3}")):
+            s = streamed_wls(chunks, se=self.se)
+        return streamed_wls_fit(self.id, s, names, data.ols().rss, se=self.se,
+                                term_names=data.design.term_names)
 
     def variance_model(self, design: Design) -> VarianceModel:
         return variance_model_for(design, self.variance, self.variance_terms, self.group, self.weights)
