@@ -24,7 +24,6 @@ from __future__ import annotations
 import dataclasses
 import math
 import os
-import re
 import time
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -50,6 +49,7 @@ from .errors import InputError
 from .kernels.chunks import DEFAULT_BUDGET, ChunkSource
 from .kernels.ols import StreamedOLS, streamed_ols
 from .kernels.order import quantiles
+from .memory import parse_memory
 from .source import ModelChunks, Source
 from .spec import ModelSpec, parse_probe_rule
 
@@ -57,34 +57,15 @@ from .spec import ModelSpec, parse_probe_rule
 STREAM_SUFFIXES = (".parquet", ".pq", ".csv", ".txt")
 #: Share of the memory budget that one chunk's work space may take, and its upper end.
 CHUNK_SHARE = 8
+#: Rows per chunk regardless of the budget (None: from the budget). The tests set a few rows.
+CHUNK_ROWS: int | None = None
+#: Rows per batch of the first pass (and of every pass when no budget applies).
+BATCH_ROWS = 1 << 17
 #: A pass shows its progress bar once it has taken this long (seconds).
 PROGRESS_AFTER = 2.0
-_UNITS = {"": 1, "b": 1, "k": 2**10, "kb": 2**10, "kib": 2**10, "m": 2**20, "mb": 2**20, "mib": 2**20,
-          "g": 2**30, "gb": 2**30, "gib": 2**30, "t": 2**40, "tb": 2**40, "tib": 2**40}
-_SIZE = re.compile(r"^\s*(\d+(?:\.\d*)?|\.\d+)\s*([a-zA-Z]*)\s*$")
 
 
 # ---- the memory budget ----------------------------------------------------------------------------
-def parse_memory(value: Any, option: str = "memory") -> int:
-    """Bytes of a memory size: a whole number of bytes, or text such as "2GB", "512MB", "1.5GiB"
-    (K, M, G, T with or without B or iB, all powers of 1024). Anything else is a one-line InputError."""
-    fix = (f"The {option!r} option must be a memory size such as '2GB', '512MB' or a whole number of bytes "
-           f"(at least 64MB); got {value!r}.")
-    if isinstance(value, bool):
-        raise InputError(fix)
-    if isinstance(value, (int, np.integer)):
-        size = int(value)
-    elif isinstance(value, float) and value.is_integer():
-        size = int(value)
-    elif isinstance(value, str) and (m := _SIZE.match(value)) and m.group(2).lower() in _UNITS:
-        size = int(float(m.group(1)) * _UNITS[m.group(2).lower()])
-    else:
-        raise InputError(fix)
-    if size < 64 * 2**20:
-        raise InputError(fix)
-    return size
-
-
 def available_memory() -> int:
     """Bytes of memory available now (psutil's ``available``; else the machine's physical memory)."""
     try:
@@ -414,6 +395,7 @@ class StreamData:
             with self.stage("profile for the variance terms"):
                 chunks = ModelChunks(self.source, spec, variance_terms=names, categorical=(),
                                      memory_budget=chunk_budget(self.budget))
+                chunks.chunk_rows = CHUNK_ROWS or chunks.chunk_rows
         labels = ["Intercept"]
         for name in names:
             prof = chunks.profile.columns[name]
@@ -464,9 +446,11 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
     log = PassLog(progress)
     try:
         cb = chunk_budget(budget)
-        source = TrackedSource(path, log, batch_rows=1 << 17)
+        source = TrackedSource(path, log, batch_rows=CHUNK_ROWS or BATCH_ROWS)
         log.total = _file_rows(source)
         chunks = ModelChunks(source, spec, memory_budget=cb)
+        if CHUNK_ROWS is not None:
+            chunks.chunk_rows = CHUNK_ROWS
         log.total = chunks.profile.n_input
         data = StreamData(source, chunks, streamed_design(chunks, spec, chunks.chunk_rows), log, budget)
         report_step(on_step, "profile and design (read in chunks)", started)

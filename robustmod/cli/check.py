@@ -9,6 +9,7 @@ from typing import Any
 from .options import (
     add_model_options,
     add_prior_sensitivity,
+    add_stream_options,
     check_calibrate_costly,
     compare_kwargs,
     parse_settings,
@@ -23,6 +24,7 @@ def add_command(subparsers: Any) -> None:
                                           "Each slow step prints its time on stderr (on a terminal, unless --quiet).")
     p.add_argument("data", help="data file: .csv, .tsv, .parquet, .xlsx, .dta (Stata) or .sav (SPSS)")
     add_model_options(p)
+    add_stream_options(p)
     add_prior_sensitivity(p, default_on=False)
     p.add_argument("--json", action="store_true",
                    help="print the results contract as JSON on stdout (default: table)")
@@ -33,6 +35,8 @@ def run(args: argparse.Namespace) -> int:
     from ..compare import compare  # noqa: PLC0415  (pandas and scipy only when running)
 
     kw = compare_kwargs(args)
+    if args.json:  # the JSON goes to stdout and nothing else is shown: no progress bars
+        kw["progress"] = False
     check_calibrate_costly(kw)
     set_prior_sensitivity(kw, args.prior_sensitivity, default=None, cli_settings=parse_settings(args.set))
     res = compare(args.data, on_step=step_lines(args), **kw)

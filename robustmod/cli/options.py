@@ -209,6 +209,29 @@ def reading_kwargs(args: argparse.Namespace) -> dict[str, Any]:
     return kw
 
 
+def add_stream_options(p: argparse.ArgumentParser) -> None:
+    """Reading a file in chunks (Parquet file, folder of Parquet files, CSV) and the memory budget."""
+    p.add_argument("--stream", action=argparse.BooleanOptionalAction, default=None,
+                   help="read a .parquet file, a folder of .parquet files or a .csv file in chunks (--stream), or "
+                        "into memory (--no-stream) (default: in chunks when the model's columns times "
+                        f"{defaults.STREAM_MEMORY_FACTOR} would exceed the memory budget)")
+    p.add_argument("--memory", metavar="SIZE", default=None,
+                   help="memory budget, e.g. 2GB or 512MB (powers of 1024; default: "
+                        f"{100 * defaults.MEMORY_SHARE:.0f}%% of the memory available at the start)")
+
+
+def stream_kwargs(args: argparse.Namespace) -> dict[str, Any]:
+    """--stream/--no-stream and --memory as keyword arguments of compare(); a bad size is one line."""
+    from ..memory import parse_memory  # noqa: PLC0415  (no heavy import)
+
+    kw: dict[str, Any] = {}
+    if getattr(args, "stream", None) is not None:
+        kw["stream"] = args.stream
+    if getattr(args, "memory", None) is not None:
+        kw["memory"] = parse_memory(args.memory, option="--memory")
+    return kw
+
+
 def add_prior_sensitivity(p: argparse.ArgumentParser, *, default_on: bool) -> None:
     """``--prior-sensitivity`` / ``--no-prior-sensitivity`` (None when not given)."""
     p.add_argument("--prior-sensitivity", action=argparse.BooleanOptionalAction, default=None,
@@ -237,6 +260,7 @@ def compare_kwargs(args: argparse.Namespace) -> dict[str, Any]:
     kw["progress"] = not args.quiet and stderr_is_terminal()
     kw.update(reading_kwargs(args))
     kw.update(engine_kwargs(args))
+    kw.update(stream_kwargs(args))
     return kw
 
 
