@@ -16,8 +16,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import robustmod.stream as stream
-from robustmod import compare
+from robustmod import compare, stream
 from robustmod.backends import registry
 from robustmod.errors import InputError
 from robustmod.memory import parse_memory

@@ -76,55 +76,69 @@ def bad_copy(src: Path, dst: Path, row: int) -> None:
     tmp.replace(dst)
 
 
+def report(runs: dict[int, dict[str, object]], bad: dict[str, object] | None, commit: str) -> None:
+    """Write validation/results/bench_bigfile.md from the runs so far."""
+    lines = ["# `robustmod check` on Parquet files read in chunks", "",
+             "`nice -n 10 python validation/bench_bigfile.py`; hc3 and wls with every default diagnostic, "
+             f"`--memory 2GB --json`, whole CLI process (peak RSS of the child from os.wait4); commit {commit}.", "",
+             "| rows | wall time (s) | peak RSS (GiB) | exit | load average before → after |",
+             "|---|---|---|---|---|"]
+    for n, r in runs.items():
+        lb, la = r["load_before"], r["load_after"]
+        assert isinstance(lb, tuple) and isinstance(la, tuple)
+        lines.append(f"| {n:,} | {float(str(r['seconds'])):.1f} | {float(str(r['rss'])) / 2**30:.2f} | {r['status']} | "
+                     f"{lb[0]:.2f} → {la[0]:.2f} |")
+    if 10**7 in runs and 10**8 in runs:
+        ratio = float(str(runs[10**8]["seconds"])) / (10 * float(str(runs[10**7]["seconds"])))
+        rss = float(str(runs[10**8]["rss"]))
+        lines += ["", f"Time at 10⁸ over ten times the time at 10⁷: **{ratio:.2f}** (goal ≤ 2, "
+                      f"{'met' if ratio <= 2 else 'not met'}); peak RSS at 10⁸: **{rss / 2**30:.2f} GiB** (goal ≤ 2 GB, "
+                      f"{'met' if rss <= 2e9 else 'not met'})."]
+        print(lines[-1])
+    if bad is not None:
+        lines += ["", f"Copy of the 10⁸ file with x = inf at data row {BAD_ROW:,}: exit status {bad['status']} after "
+                      f"{float(str(bad['seconds'])):.1f} s, {bad['stderr_lines']} line on stderr:", "",
+                  f"    {bad['stderr']}"]
+    RESULTS.write_text("\n".join(lines) + "\n")
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=float, action="append", help="10000000 and/or 100000000 (default: both)")
     parser.add_argument("--skip-bad", action="store_true", help="no run on the copy with an infinite value")
     parser.add_argument("--work", type=Path, default=Path("/tmp"), help="folder for outputs and the bad copy")
     args = parser.parse_args(argv)
+    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True,
+                            cwd=ROOT).stdout.strip()
     sizes = sorted(int(r) for r in (args.rows or FILES))
-    runs: dict[int, dict[str, object]] = {}
     for n in sizes:
-        path = FILES[n]
-        if not path.exists():
-            path.parent.mkdir(parents=True, exist_ok=True)
-            write_parquet(path, n)
-        r = run_check(path, args.work / f"bigfile_{n}.json")
-        runs[n] = r
-        print(f"n = {n:,}: {r['seconds']:.1f} s, peak RSS {r['rss'] / 2**30:.2f} GiB, exit {r['status']}, "
-              f"load {r['load_before'][0]:.2f} → {r['load_after'][0]:.2f}", flush=True)
+        if not FILES[n].exists():
+            FILES[n].parent.mkdir(parents=True, exist_ok=True)
+            write_parquet(FILES[n], n)
+    runs: dict[int, dict[str, object]] = {}
     bad = None
-    if not args.skip_bad and 10**8 in FILES and FILES[10**8].exists():
-        dst = args.work / "big1e8_inf.parquet"
-        t0 = time.perf_counter()
-        bad_copy(FILES[10**8], dst, BAD_ROW)
-        print(f"bad copy written in {time.perf_counter() - t0:.0f} s", flush=True)
-        bad = run_check(dst, args.work / "bigfile_bad.json")
-        dst.unlink()
-        print(f"bad value: exit {bad['status']} after {bad['seconds']:.1f} s; stderr ({bad['stderr_lines']} line): "
-              f"{bad['stderr']}", flush=True)
-    lines = ["# `robustmod check` on Parquet files read in chunks", "",
-             "`nice -n 10 python validation/bench_bigfile.py`; hc3 and wls with every default diagnostic, "
-             "`--memory 2GB --json`, whole CLI process (peak RSS of the child from os.wait4).", "",
-             "| rows | wall time (s) | peak RSS (GiB) | exit | load average before → after |",
-             "|---|---|---|---|---|"]
-    for n, r in runs.items():
-        lb, la = r["load_before"], r["load_after"]
-        assert isinstance(lb, tuple) and isinstance(la, tuple)
-        lines.append(f"| {n:,} | {r['seconds']:.1f} | {float(r['rss']) / 2**30:.2f} | {r['status']} | "  # type: ignore[arg-type]
-                     f"{lb[0]:.2f} → {la[0]:.2f} |")
-    if 10**7 in runs and 10**8 in runs:
-        ratio = float(runs[10**8]["seconds"]) / (10 * float(runs[10**7]["seconds"]))  # type: ignore[arg-type]
-        rss = float(runs[10**8]["rss"]) / 2**30  # type: ignore[arg-type]
-        lines += ["", f"Time at 10⁸ over ten times the time at 10⁷: **{ratio:.2f}** (goal ≤ 2, "
-                      f"{'met' if ratio <= 2 else 'not met'}); peak RSS at 10⁸: **{rss:.2f} GiB** (goal ≤ 2 GB, "
-                      f"{'met' if rss * 2**30 <= 2e9 else 'not met'})."]
-        print(lines[-1])
-    if bad is not None:
-        lines += ["", f"Copy of the 10⁸ file with x = inf at data row {BAD_ROW:,}: exit status {bad['status']} after "
-                      f"{float(bad['seconds']):.1f} s, {bad['stderr_lines']} line on stderr:", "",  # type: ignore[arg-type]
-                  f"    {bad['stderr']}"]
-    RESULTS.write_text("\n".join(lines) + "\n")
+    # The small file first, then the bad copy (a single pass that stops at the bad row), then the long run.
+    for step in [*(n for n in sizes if n < 10**8), "bad", *(n for n in sizes if n >= 10**8)]:
+        if step == "bad":
+            if args.skip_bad or not FILES[10**8].exists():
+                continue
+            dst = args.work / "big1e8_inf.parquet"
+            t0 = time.perf_counter()
+            bad_copy(FILES[10**8], dst, BAD_ROW)
+            print(f"bad copy written in {time.perf_counter() - t0:.0f} s", flush=True)
+            bad = run_check(dst, args.work / "bigfile_bad.json")
+            dst.unlink()
+            print(f"bad value: exit {bad['status']} after {float(str(bad['seconds'])):.1f} s; stderr "
+                  f"({bad['stderr_lines']} line): {bad['stderr']}", flush=True)
+        else:
+            assert isinstance(step, int)
+            r = run_check(FILES[step], args.work / f"bigfile_{step}.json")
+            runs[step] = r
+            lb, la = r["load_before"], r["load_after"]
+            assert isinstance(lb, tuple) and isinstance(la, tuple)
+            print(f"n = {step:,}: {float(str(r['seconds'])):.1f} s, peak RSS {float(str(r['rss'])) / 2**30:.2f} GiB, "
+                  f"exit {r['status']}, load {lb[0]:.2f} → {la[0]:.2f}", flush=True)
+        report(runs, bad, commit)
     print(f"written {RESULTS}")
     return 0
 
