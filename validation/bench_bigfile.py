@@ -108,7 +108,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--skip-bad", action="store_true", help="no run on the copy with an infinite value")
     parser.add_argument("--work", type=Path, default=Path("/tmp"), help="folder for outputs and the bad copy")
     args = parser.parse_args(argv)
-    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True,
+    commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], check=False, capture_output=True, text=True,
                             cwd=ROOT).stdout.strip()
     sizes = sorted(int(r) for r in (args.rows or FILES))
     for n in sizes:
