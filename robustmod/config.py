@@ -15,6 +15,8 @@ its default from :mod:`robustmod.defaults`, as on the command line)::
     calibration = 200
     calibrate_costly = false
     na_values = ["."]                 # codes that mean "missing" besides empty cells
+    stream = true                     # read a Parquet/CSV file in chunks (false: into memory; left out: automatic)
+    memory = "2GB"                    # the memory budget (default: a quarter of the memory available)
 
     [probe]
     soil_moisture = [15, 25, 35]      # or "sd", "percentiles", "percentiles:10,50,90"
@@ -72,6 +74,8 @@ TOP_KEYS: dict[str, str] = {
     "engine": "a table with 'name', 'scheduler' and 'workers'",
     "na_values": "a missing-value code or a list of them, e.g. \".\" or [\".\", \"-99\"]",
     "grid": "a table with covariates, outcome, outliers, backends, primary and resamples",
+    "stream": "true (read the file in chunks) or false (into memory); left out: automatic",
+    "memory": "a memory size such as \"2GB\" or \"512MB\", or a whole number of bytes (at least 64MB)",
 }
 OUTPUT_KEYS: dict[str, str] = {"folder": f"a folder path (text; default: {defaults.APPENDIX_FOLDER})",
                                "force": "true or false (default: false)"}
@@ -136,11 +140,23 @@ def _scalars(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
             if isinstance(v, bool) or not isinstance(v, int) or v < low:
                 raise _bad(key, v, p)
             out[key] = v
-    for key in ("center", "calibrate_costly"):
+    for key in ("center", "calibrate_costly", "stream"):
         if key in raw:
             if not isinstance(raw[key], bool):
                 raise _bad(key, raw[key], p)
             out[key] = raw[key]
+    _memory(raw, p, out)
+
+
+def _memory(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
+    """The memory budget of data read in chunks, in bytes."""
+    if "memory" in raw:
+        from .memory import parse_memory  # noqa: PLC0415
+
+        try:
+            out["memory"] = parse_memory(raw["memory"])
+        except InputError:
+            raise _bad("memory", raw["memory"], p) from None
 
 
 def _lists(raw: dict[str, Any], p: Path, out: dict[str, Any]) -> None:
@@ -294,5 +310,6 @@ def _grid(g: Any, p: Path) -> dict[str, Any]:
 def compare_arguments(config: dict[str, Any]) -> dict[str, Any]:
     """The keyword arguments of :func:`robustmod.compare` a loaded config sets."""
     keys = ("formula", "focal", "moderator", "probe", "backends", "primary", "cluster", "alpha", "seed", "center",
-            "calibration", "calibrate_costly", "options", "na_values", "engine", "scheduler", "workers")
+            "calibration", "calibrate_costly", "options", "na_values", "engine", "scheduler", "workers", "stream",
+            "memory")
     return {k: config[k] for k in keys if k in config}

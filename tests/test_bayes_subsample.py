@@ -12,8 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-import robustmod.stream as stream
-from robustmod import compare
+from robustmod import compare, stream
 from robustmod.backends.bayes import BayesBackend
 from robustmod.backends.registry import make_backend
 from robustmod.defaults import BAYES_MAX_ROWS

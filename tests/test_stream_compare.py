@@ -236,3 +236,31 @@ def test_progress_bars_name_the_pass(tmp_path: Path, chunk_rows: Any, monkeypatc
     for expected in ("profile", "quantiles of exper", "OLS factor", "OLS residuals and tests", "Goldfeld–Quandt",
                      "binning check", "WLS: OLS start", "WLS scoring pass 1"):
         assert expected in names, (expected, names)
+
+
+def test_appendix_of_a_file_read_in_chunks(tmp_path: Path) -> None:
+    path = _write(_wage1(), tmp_path, "parquet")
+    out = tmp_path / "app"
+    got = _cli("appendix", str(path), "--formula", FORMULA, "--focal", "educ", "--moderator", "exper",
+               "--backends", "hc3,wls", "--stream", "--memory", "1GB", "--out", str(out), "--quiet")
+    assert got.returncode == 0, got.stderr
+    md = (out / "appendix.md").read_text()
+    assert "read in chunks" in md  # the figures of the rows say why they are not drawn, the warning says how
+    assert (out / "results.json").exists() and (out / "figures").is_dir()
+
+
+def test_config_keys_stream_and_memory(tmp_path: Path) -> None:
+    from robustmod.config import compare_arguments, load_config
+
+    cfg = tmp_path / "a.toml"
+    cfg.write_text('data = "d.parquet"\nformula = "y ~ x * w"\nfocal = "x"\nmoderators = ["w"]\n'
+                   'stream = true\nmemory = "1GB"\n')
+    kw = compare_arguments(load_config(cfg))
+    assert kw["stream"] is True and kw["memory"] == 2**30
+    cfg.write_text('stream = true\nmemory = "a lot"\n')
+    with pytest.raises(InputError, match=r"^In the config file 'a.toml', 'memory' must be a memory size such as "
+                                         r"\"2GB\" .*; got 'a lot'\.$"):
+        load_config(cfg)
+    cfg.write_text('stream = "yes"\n')
+    with pytest.raises(InputError, match=r"'stream' must be true \(read the file in chunks\) or false"):
+        load_config(cfg)

@@ -17,6 +17,7 @@ from .options import (
     Announce,
     add_model_options,
     add_prior_sensitivity,
+    add_stream_options,
     check_calibrate_costly,
     command_line,
     compare_kwargs,
@@ -43,6 +44,7 @@ def add_command(subparsers: Any) -> None:
                    help="record the full paths of the data file and the command in provenance.json "
                         "(default: file names and SHA-256 only)")
     add_model_options(p, required=False)
+    add_stream_options(p)
     add_prior_sensitivity(p, default_on=True)
     p.set_defaults(func=run)
 
@@ -149,7 +151,7 @@ def given_on_command_line(args: argparse.Namespace, base: dict[str, Any]) -> dic
             merged.setdefault(b, {}).update(o)
         out["options"] = merged
     for k in ("backends", "primary", "cluster", "alpha", "seed", "calibration", "center", "calibrate_costly", "na_values",
-              "sep", "decimal", "sheet", "engine", "scheduler", "workers"):
+              "sep", "decimal", "sheet", "engine", "scheduler", "workers", "stream", "memory"):
         if k in kw:
             out[k] = kw[k]
     return out

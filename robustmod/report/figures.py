@@ -48,6 +48,10 @@ STYLE: dict[RcKeyType, Any] = {
 }
 
 
+#: Why a figure of the rows is not drawn for data read in chunks.
+NO_ROWS = "the data were read in chunks, so their rows are not held in memory to draw"
+
+
 class MissingInput(InputError):
     """The comparison lacks what a figure draws (the reason is the message)."""
 
@@ -150,9 +154,10 @@ def slope_figure(comparison: Comparison, backends: list[str] | None = None) -> F
         ax.set_xlim(lo_obs - pad, hi_obs + pad)
         ax.axvspan(lo_obs - pad, lo_obs, color="#bbbbbb", alpha=0.35, linewidth=0, label="outside observed range")
         ax.axvspan(hi_obs, hi_obs + pad, color="#bbbbbb", alpha=0.35, linewidth=0)
-        vals = np.asarray(info.values, dtype=float)
-        ax.plot(vals, np.full_like(vals, 0.02), "|", color="#333333", markersize=6, alpha=0.45,
-                transform=ax.get_xaxis_transform(), label="observed moderator values")
+        if info.values is not None:  # data read in chunks keep no rows for a rug
+            vals = np.asarray(info.values, dtype=float)
+            ax.plot(vals, np.full_like(vals, 0.02), "|", color="#333333", markersize=6, alpha=0.45,
+                    transform=ax.get_xaxis_transform(), label="observed moderator values")
         ax.plot([], [], color="#555555", linestyle="--", linewidth=1.0, label="Johnson–Neyman boundary")
         ax.set_xlabel(f"{m} (raw scale)")
         ax.set_ylabel(f"slope of {c.spec.focal}")
@@ -171,6 +176,8 @@ def data_figure(comparison: Comparison) -> Figure:
     prim = c.results.get(c.primary)
     if prim is None or not prim.available or prim.fit is None:
         raise MissingInput(f"the primary back-end ({c.primary}) gave no fit")
+    if d.X.shape[0] == 0:
+        raise MissingInput(NO_ROWS)
     m = d.spec.moderators[0]
     info = d.moderators[m]
     x = d.data.frame[d.focal].to_numpy(dtype=float)
@@ -224,6 +231,8 @@ def residual_figure(comparison: Comparison) -> Figure:
     from scipy import stats  # noqa: PLC0415
 
     d = comparison.design
+    if d.X.shape[0] == 0:
+        raise MissingInput(NO_ROWS)
     Q, _ = d.qr
     fitted = Q @ (Q.T @ d.y)
     e = d.y - fitted
@@ -496,8 +505,9 @@ def heatmap_figure(comparison: Comparison) -> Figure:
         if sig.sum() < sig.size:  # hatch where the interval includes zero
             ax.contourf(g1, g2, sig.T, levels=[-0.5, 0.5], colors="none", hatches=["///"])
         d = c.design
-        ax.scatter(d.moderators[m1].values, d.moderators[m2].values, s=4, color="black", alpha=0.35, linewidths=0,
-                   label="observed rows")
+        if d.moderators[m1].values is not None:  # data read in chunks keep no rows to scatter
+            ax.scatter(d.moderators[m1].values, d.moderators[m2].values, s=4, color="black", alpha=0.35,
+                       linewidths=0, label="observed rows")
         ax.fill_between([], [], color="none", hatch="///", edgecolor="black", label=f"{100 * grid['level']:g}% interval includes 0")
         ax.set_xlabel(f"{m1} (raw scale)")
         ax.set_ylabel(f"{m2} (raw scale)")
