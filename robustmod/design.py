@@ -49,6 +49,16 @@ class ModeratorInfo:
     maximum: float | None = None
     values: np.ndarray | None = field(default=None, repr=False)  # observed raw values (continuous)
 
+    @cached_property
+    def sorted_values(self) -> np.ndarray:
+        """The observed raw values in ascending order, sorted once and shared by every order statistic
+        of the moderator (quantile bins, Goldfeld–Quandt cuts, bin medians)."""
+        if self.values is None:
+            raise TypeError(f"The moderator {self.name!r} is categorical; it has no sorted values.")
+        out = np.sort(self.values)
+        out.setflags(write=False)
+        return out
+
     def observed_range(self) -> tuple[float, float]:
         """(minimum, maximum) of a continuous moderator's observed raw values."""
         if self.minimum is None or self.maximum is None:

@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from .backends.base import WaldFit
-from .backends.ols import ols_fit
+from .backends.ols import design_fit
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
@@ -117,8 +117,10 @@ def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, A
         if not conts:
             return None
         moderator = conts[0]
-    w = np.asarray(design.moderators[moderator].values, dtype=float)
-    out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP)
+    info = design.moderators[moderator]
+    w = np.asarray(info.values, dtype=float)
+    out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP,
+                      sorted_values=info.sorted_values)
     if out is None:
         return None
     tied = "" if out["group_sizes"]["low"] == out["group_sizes"]["high"] == (w.size - round(GQ_DROP * w.size)) // 2 \
@@ -145,7 +147,7 @@ def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderato
     form = "SD of OLS residuals (ddof 1) within moderator bins"
     if not info.categorical:
         chunks = _design_chunks(design, {moderator: np.asarray(info.values, dtype=float)}, y=e)
-        spread = ResidualSpread.quantile_bins(chunks, moderator, bins)
+        spread = ResidualSpread.quantile_bins(chunks, moderator, bins, sorted_values=info.sorted_values)
         for c in chunks():
             spread.add(c, c.y)
         return {**spread.result(), "form": f"{form} ({bins} quantile bins)"}
@@ -164,8 +166,7 @@ def _spread(e: np.ndarray) -> dict[str, Any]:
 
 def se_gap(design: Design) -> dict[str, Any] | None:
     """Classical vs HC3 SE of each product-term coefficient, and their ratio (King & Roberts 2015)."""
-    Q, R = design.qr
-    fits = [f for kind in ("ols", "hc3") if isinstance(f := ols_fit(kind, Q, R, design.y, design.term_names), WaldFit)]
+    fits = [f for kind in ("ols", "hc3") if isinstance(f := design_fit(design, kind), WaldFit)]
     if len(fits) < 2:
         return None
     L = design.interaction_rows()

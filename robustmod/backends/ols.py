@@ -6,6 +6,7 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
+import weakref
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -50,8 +51,7 @@ class OLSBackend(FamilyBackend):
         self.assumes_constant_variance = self.id == "ols"
 
     def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
-        Q, R = design.qr
-        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design))
+        return design_fit(design, self.id)
 
     def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
@@ -85,6 +85,20 @@ class OLSBackend(FamilyBackend):
             w = hc_weights(self.id, h, n, k)
             S = np.einsum("ia,ib,id->dab", C * w[:, None], C, E2, optimize=True)
         return wald_test(r.T, S, df)[1] < alpha
+
+
+#: Fits already made on a design (by identity, dropped with it): the back-end, the SE gap and the
+#: binning check all ask for the design's HC3 fit, which then costs one pass over the rows.
+_DESIGN_FITS: weakref.WeakKeyDictionary[Design, dict[str, WaldFit | Unavailable]] = weakref.WeakKeyDictionary()
+
+
+def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
+    """:func:`ols_fit` of ``kind`` on the design's own QR, made once per design and kind."""
+    fits = _DESIGN_FITS.setdefault(design, {})
+    if kind not in fits:
+        Q, R = design.qr
+        fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design))
+    return fits[kind]
 
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
