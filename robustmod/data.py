@@ -528,11 +528,17 @@ def _check_names(columns: list[str], spec: ModelSpec) -> list[str]:
     return needed
 
 
+#: Copy-on-write is on (always from pandas 3): a column selection then costs no copy.
+_COPY_ON_WRITE = int(pd.__version__.split(".")[0]) >= 3 or bool(pd.get_option("mode.copy_on_write") is True)
+
+
 def _check_finite(frame: pd.DataFrame) -> None:
     for name in frame.columns:
         col = frame[name]
         if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
             values = col.to_numpy(dtype=float, na_value=np.nan)
+            if np.abs(values).max(initial=0.0) <= OVERFLOW_LIMIT:  # no inf, no huge value, no NaN: nothing to say
+                continue
             bad = np.isinf(values)
             if bad.any():
                 row = int(np.flatnonzero(bad)[0]) + 1
@@ -565,13 +571,16 @@ def prepare_data(data: pd.DataFrame, spec: ModelSpec, *, na_values: NaValues = N
         raise InputError(f"The column name {dup!r} appears more than once in the data; rename one of them.")
     data = apply_na_values(data, na_values)
     needed = _check_names(columns, spec)
-    frame = data.loc[:, needed].copy()
+    # With copy-on-write (always on from pandas 3) the selection shares the user's columns until one is
+    # changed; without it the selection is already a copy, but it is copied once more to be safe.
+    frame = data.loc[:, needed].copy(deep=not _COPY_ON_WRITE)
     frame.index = pd.RangeIndex(len(frame))  # positions, whatever index the user's frame has
     frame = _check_columns(frame, spec)
     _check_finite(frame)
     complete = frame.notna().all(axis=1).to_numpy()
     dropped = tuple(int(i) + 1 for i in np.flatnonzero(~complete))
-    frame = frame.loc[complete]
+    if dropped:
+        frame = frame.loc[complete]
     for name in frame.columns:  # levels seen only in dropped rows would be empty dummy columns
         if isinstance(frame[name].dtype, pd.CategoricalDtype):
             frame[name] = frame[name].cat.remove_unused_categories()
@@ -592,6 +601,14 @@ def prepare_data(data: pd.DataFrame, spec: ModelSpec, *, na_values: NaValues = N
     return PreparedData(frame, n_input, dropped, tuple(categorical), tuple(warnings_), data)
 
 
+def _varies(col: pd.Series) -> bool:
+    """At least two distinct values (a numeric column without gaps: its minimum is below its maximum)."""
+    if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col) and not col.hasnans:
+        v = col.to_numpy()
+        return bool(v.size) and bool(v.min() < v.max())
+    return bool(col.nunique() >= 2)
+
+
 def _check_focal_and_moderators(frame: pd.DataFrame, spec: ModelSpec) -> list[str]:
     focal = frame[spec.focal]
     if is_categorical(focal):
@@ -599,7 +616,7 @@ def _check_focal_and_moderators(frame: pd.DataFrame, spec: ModelSpec) -> list[st
             f"The focal predictor {spec.focal!r} is not numeric (e.g. {str(focal.iloc[0])!r}); "
             "code it as numbers (a 0/1 indicator for two groups)."
         )
-    if focal.nunique() < 2:
+    if not _varies(focal):
         raise InputError(f"The focal predictor {spec.focal!r} is constant in the rows used; it needs at least two values.")
     wrapped = {col for fn, col in spec.column_calls if fn == "C"}
     categorical: list[str] = []
@@ -612,6 +629,6 @@ def _check_focal_and_moderators(frame: pd.DataFrame, spec: ModelSpec) -> list[st
                     "it needs at least two."
                 )
             categorical.append(mod)
-        elif col.nunique() < 2:
+        elif not _varies(col):
             raise InputError(f"The moderator {mod!r} is constant in the rows used; it needs at least two values.")
     return categorical

@@ -49,6 +49,16 @@ class ModeratorInfo:
     maximum: float | None = None
     values: np.ndarray | None = field(default=None, repr=False)  # observed raw values (continuous)
 
+    @cached_property
+    def sorted_values(self) -> np.ndarray:
+        """The observed raw values in ascending order, sorted once and shared by every order statistic
+        of the moderator (quantile bins, Goldfeld–Quandt cuts, bin medians)."""
+        if self.values is None:
+            raise TypeError(f"The moderator {self.name!r} is categorical; it has no sorted values.")
+        out = np.sort(self.values)
+        out.setflags(write=False)
+        return out
+
     def observed_range(self) -> tuple[float, float]:
         """(minimum, maximum) of a continuous moderator's observed raw values."""
         if self.minimum is None or self.maximum is None:
@@ -269,7 +279,12 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     aliased and refused. Probe values default to mean ± 1 SD (Aiken & West 1991).
     """
     prepared, clustering = attach_clusters(prepare_data(data, spec), spec)
-    frame = prepared.frame.copy()
+    frame = prepared.frame
+    cats = prepared.categorical_moderators
+    if spec.center or any((name in cats and not isinstance(frame[name].dtype, pd.CategoricalDtype))
+                          or (name not in cats and not pd.api.types.is_numeric_dtype(frame[name]))
+                          for name in frame.columns):
+        frame = frame.copy()  # the model-scale frame differs from the prepared one: its own copy
     centering: dict[str, float] = {}
     if spec.center:
         for name in [spec.focal, *spec.moderators]:
@@ -327,8 +342,80 @@ def _focal_enters_linearly(design: Design) -> bool:
     return bool(np.allclose(diffs[0], diffs[1], rtol=1e-9, atol=1e-12))
 
 
+#: Rows on which formulaic builds the model spec (and the check values) for the direct build.
+SPEC_ROWS = 64
+
+
+def _plain_columns(frame: pd.DataFrame, names: Sequence[str]) -> bool:
+    """Are these columns plain numbers (int or float numpy dtypes, not bool, not categories)?"""
+    return all(name in frame.columns and isinstance(frame[name].dtype, np.dtype) and frame[name].dtype.kind in "iuf"
+               for name in names)
+
+
+def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]] | None:
+    """The response column and each model-matrix column as the product of the columns named (the
+    intercept an empty product), when every term is that; else None."""
+    lhs_terms = mm.lhs.model_spec.terms
+    if len(lhs_terms) != 1 or len(lhs_terms[0].factors) != 1:
+        return None
+    response = lhs_terms[0].factors[0]
+    if response.eval_method.value != "lookup" or not _plain_columns(frame, [response.expr]):
+        return None
+    products: list[list[str]] = []
+    for part in mm.rhs.model_spec.structure:
+        factors = list(part.term.factors)
+        intercept = len(factors) == 1 and factors[0].eval_method.value == "literal" and factors[0].expr == "1"
+        plain = bool(factors) and all(f.eval_method.value == "lookup" for f in factors) and \
+            _plain_columns(frame, [f.expr for f in factors])
+        if len(part.columns) != 1 or not (intercept or plain):
+            return None
+        products.append([] if intercept else [f.expr for f in factors])
+    return (response.expr, products) if len(products) == mm.rhs.shape[1] else None
+
+
+def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any] | None:
+    """y, X, term names and model spec without formulaic's n-row frames, for a formula whose terms are
+    an intercept, plain numeric columns and their products (e.g. ``y ~ x * w + a``); None otherwise.
+
+    formulaic builds the model spec from the first :data:`SPEC_ROWS` rows (plain numeric columns keep
+    no state, so it is the spec of all rows), X is filled column by column with the same products in
+    the same order, and both must agree exactly on those rows, else None (and formulaic builds all)."""
+    head = frame.iloc[:SPEC_ROWS]
+    try:
+        mm = model_matrix(spec.formula, head, context=FORMULA_CONTEXT, na_action="ignore")
+    except Exception:  # noqa: BLE001 - the full build reports the error in the user's terms
+        return None
+    plan = _plain_products(mm, frame)
+    if plan is None:
+        return None
+    response, products = plan
+    X = np.empty((len(frame), len(products)))
+    for j, factors in enumerate(products):
+        if not factors:
+            X[:, j] = 1.0
+            continue
+        col = frame[factors[0]].to_numpy(dtype=float)
+        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row below
+            for name in factors[1:]:  # left to right, as formulaic multiplies
+                col = col * frame[name].to_numpy(dtype=float)
+        X[:, j] = col
+    y = frame[response].to_numpy(dtype=float).copy()
+    m = len(head)
+    if not (np.array_equal(X[:m], np.asarray(mm.rhs, dtype=float))
+            and np.array_equal(y[:m], np.asarray(mm.lhs, dtype=float)[:, 0])):
+        return None
+    return y, X, tuple(str(c) for c in mm.rhs.columns), mm.rhs.model_spec
+
+
 def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any]:
-    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row."""
+    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row.
+
+    Plain numeric terms are built directly (:func:`_direct_model_matrices`), anything else by formulaic."""
+    direct = _direct_model_matrices(spec, frame)
+    if direct is not None:
+        y, X, term_names, model_spec = direct
+        _check_finite_cells(spec, y, X, term_names, rows)
+        return direct
     try:
         mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
     except InputError:
@@ -342,15 +429,21 @@ def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tup
     y = lhs[:, 0].copy()
     X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
     term_names = tuple(str(c) for c in mm.rhs.columns)
-    for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
-        bad = ~np.isfinite(arr)
-        if bad.any():
-            i, j = np.argwhere(bad)[0]
-            raise InputError(
-                f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
-                f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
-            )
+    _check_finite_cells(spec, y, X, term_names, rows)
     return y, X, term_names, mm.rhs.model_spec
+
+
+def _check_finite_cells(spec: ModelSpec, y: np.ndarray, X: np.ndarray, term_names: tuple[str, ...],
+                        rows: pd.Index) -> None:
+    """A non-finite cell of y or X is an error naming the term and the data row."""
+    for arr, names in ((y[:, None], [spec.response]), (X, term_names)):
+        if np.isfinite(arr).all():
+            continue
+        i, j = np.argwhere(~np.isfinite(arr))[0]
+        raise InputError(
+            f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
+            f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
+        )
 
 
 def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -369,8 +462,8 @@ def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _check_rank(X: np.ndarray, R: np.ndarray, names: tuple[str, ...]) -> None:
-    """Refuse a rank-deficient X, naming the aliased terms (|R_jj| tiny against ‖X_j‖)."""
-    norms = np.linalg.norm(X, axis=0)
+    """Refuse a rank-deficient X, naming the aliased terms (|R_jj| tiny against ‖X_j‖ = ‖R_j‖, as X = QR)."""
+    norms = np.linalg.norm(R, axis=0)
     rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
     aliased = [names[j] for j in np.flatnonzero((rel < ALIAS_TOL) | (norms == 0))]
     if aliased:

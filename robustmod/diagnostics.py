@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 
 from .backends.base import WaldFit
-from .backends.ols import ols_fit
+from .backends.ols import design_fit, design_residuals
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
@@ -61,10 +61,34 @@ def _lm_test(resid: np.ndarray, X: np.ndarray, *, white: bool, budget: int) -> d
     return aux.result(passes)
 
 
+def _constant_column(design: Design) -> int | None:
+    """The intercept's column when it is 1 in every row (its White products repeat other columns)."""
+    if "Intercept" not in design.term_names:
+        return None
+    j = design.term_names.index("Intercept")
+    return j if bool(np.all(design.X[:, j] == 1.0)) else None
+
+
+def lm_tests(design: Design, resid: np.ndarray, *, budget: int = DEFAULT_BUDGET) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Breusch–Pagan and White from one pass: White's centred cross-products hold Breusch–Pagan's
+    (the levels and ê²) as a block, so both come from one accumulation
+    (:meth:`robustmod.kernels.lmtests.AuxiliaryRegression.levels_result`)."""
+    X = design.X
+    k = X.shape[1]
+    passes = _residual_passes(X, np.asarray(resid, dtype=float), 2 + k + k * (k + 1) // 2, budget)
+    aux = AuxiliaryRegression(white=True, constant_column=_constant_column(design))
+    for c, e in passes():
+        aux.add(c, e)
+    if aux.cross is None:  # no rows: as the separate tests answer
+        return breusch_pagan(design, resid), white(design, resid)
+    bp = {**aux.levels_result(passes), "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
+    wh = {**aux.result(passes), "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
+    return bp, wh
+
+
 def ols_residuals(design: Design) -> np.ndarray:
-    """ê = y − Q Qᵀ y from the design's thin QR."""
-    Q, _ = design.qr
-    return design.y - Q @ (Q.T @ design.y)
+    """ê = y − Q Qᵀ y from the design's thin QR (computed once per design, read-only)."""
+    return design_residuals(design)[1]
 
 
 def breusch_pagan_lm(resid: np.ndarray, X: np.ndarray, *, budget: int = DEFAULT_BUDGET) -> dict[str, Any]:
@@ -117,8 +141,10 @@ def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, A
         if not conts:
             return None
         moderator = conts[0]
-    w = np.asarray(design.moderators[moderator].values, dtype=float)
-    out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP)
+    info = design.moderators[moderator]
+    w = np.asarray(info.values, dtype=float)
+    out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP,
+                      sorted_values=info.sorted_values)
     if out is None:
         return None
     tied = "" if out["group_sizes"]["low"] == out["group_sizes"]["high"] == (w.size - round(GQ_DROP * w.size)) // 2 \
@@ -145,7 +171,7 @@ def residual_spread(design: Design, resid: np.ndarray | None = None, *, moderato
     form = "SD of OLS residuals (ddof 1) within moderator bins"
     if not info.categorical:
         chunks = _design_chunks(design, {moderator: np.asarray(info.values, dtype=float)}, y=e)
-        spread = ResidualSpread.quantile_bins(chunks, moderator, bins)
+        spread = ResidualSpread.quantile_bins(chunks, moderator, bins, sorted_values=info.sorted_values)
         for c in chunks():
             spread.add(c, c.y)
         return {**spread.result(), "form": f"{form} ({bins} quantile bins)"}
@@ -164,8 +190,7 @@ def _spread(e: np.ndarray) -> dict[str, Any]:
 
 def se_gap(design: Design) -> dict[str, Any] | None:
     """Classical vs HC3 SE of each product-term coefficient, and their ratio (King & Roberts 2015)."""
-    Q, R = design.qr
-    fits = [f for kind in ("ols", "hc3") if isinstance(f := ols_fit(kind, Q, R, design.y, design.term_names), WaldFit)]
+    fits = [f for kind in ("ols", "hc3") if isinstance(f := design_fit(design, kind), WaldFit)]
     if len(fits) < 2:
         return None
     L = design.interaction_rows()
@@ -264,7 +289,7 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> VarianceDiagnos
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
     e = ols_residuals(design)
-    bp, wh, gq = breusch_pagan(design, e), white(design, e), goldfeld_quandt(design)
+    (bp, wh), gq = lm_tests(design, e), goldfeld_quandt(design)
     tests = [t for t in (bp, wh, gq) if t is not None]
     return VarianceDiagnostics(
         alpha=float(alpha), breusch_pagan=bp, white=wh,

@@ -12,7 +12,7 @@ nested in the binning model (μ_j and α_j linear in x_j, η_j and β_j equal ac
 The test is run as: the user's model matrix augmented by the binning columns it does not
 span, HC3 covariance, joint F test that the added coefficients are zero. The fits come from
 the streaming kernel :func:`robustmod.kernels.binning.binning_fits`, here with the in-memory
-rows as one chunk (or a few, from the memory budget). For the plain
+rows as one chunk (or a few, from the memory budget) and the design's sorted moderator. For the plain
 model y ~ D * W + Z this is exactly the nested test.
 
 Common support: a bin with few rows, or in which the focal predictor barely varies, gives
@@ -27,11 +27,11 @@ from typing import Any
 import numpy as np
 
 from .backends.base import WaldFit
-from .backends.ols import ols_fit
+from .backends.ols import design_fit
 from .design import Design
 from .errors import InputError, option_error
 from .jsonvalues import num as _num
-from .kernels.binning import bin_index, binning_fits
+from .kernels.binning import BinSummary, binning_fits
 from .kernels.chunks import DEFAULT_BUDGET, array_chunks, rows_per_chunk
 from .tables import Column, Table, format_df, format_number, format_p, make_table
 
@@ -82,10 +82,6 @@ class BinningCheck(Mapping[str, Any]):
         return linearity_table(self)
 
 
-#: Names of the focal and moderator columns in the chunks handed to the binning kernel.
-FOCAL, MODERATOR = "focal", "moderator"
-
-
 def _covariate_columns(design: Design, moderator: str) -> list[int]:
     """Columns of the model matrix not involving the focal predictor, this moderator or the intercept."""
     return design.columns_without({design.focal, moderator})
@@ -93,9 +89,7 @@ def _covariate_columns(design: Design, moderator: str) -> list[int]:
 
 def _linear_slopes(design: Design, moderator: str, med: np.ndarray, alpha: float) -> Any:
     """HC3 conditional slopes of the linear-interaction model at the bin medians (None if unavailable)."""
-    y = design.y
-    Qu, Ru = design.qr
-    fit_lin = ols_fit("hc3", Qu, Ru, y, design.term_names)
+    fit_lin = design_fit(design, "hc3")  # the design's own HC3 fit, shared with the back-end
     est_lin = None
     if isinstance(fit_lin, WaldFit):
         fixed = {m: info.mean for m, info in design.moderators.items() if m != moderator and not info.categorical}
@@ -104,32 +98,22 @@ def _linear_slopes(design: Design, moderator: str, med: np.ndarray, alpha: float
     return est_lin
 
 
-def _bin_rows(G: np.ndarray, w: np.ndarray, d: np.ndarray, idx: np.ndarray, present: np.ndarray, med: np.ndarray,
-              est_bin: Any, est_lin: Any, min_bin_rows: int, min_focal_spread: float
+def _bin_rows(s: BinSummary, est_bin: Any, est_lin: Any, min_bin_rows: int, min_focal_spread: float
               ) -> tuple[list[dict[str, Any]], bool, bool]:
     """One entry per bin (range, rows, focal spread, its slope and the linear model's), and whether
     any bin is thin or has too little focal variation."""
-    n, J = G.shape
     bin_rows: list[dict[str, Any]] = []
-    sd_all = float(np.std(d, ddof=1)) if n > 1 else 0.0
-    counts = G.sum(axis=0)
-    means = (G * d[:, None]).sum(axis=0) / counts
-    ss = (G * (d[:, None] - means) ** 2).sum(axis=0)
-    focal_sd = np.sqrt(ss / np.maximum(counts - 1, 1))
-    lows = np.array([w[idx == j].min() for j in present])
-    highs = np.array([w[idx == j].max() for j in present])
-
+    sd_all = s.focal_sd_all
     thin_any = False
     sparse_any = False
-    for pos in range(J):
-        thin = bool(counts[pos] < min_bin_rows)
-        sparse = bool(sd_all > 0 and focal_sd[pos] < min_focal_spread * sd_all) or \
-            np.unique(d[idx == present[pos]]).size < 2
+    for pos in range(s.present.size):
+        thin = bool(s.counts[pos] < min_bin_rows)
+        sparse = bool(sd_all > 0 and s.focal_sd[pos] < min_focal_spread * sd_all) or not s.focal_varies[pos]
         thin_any |= thin
         sparse_any |= sparse
         row: dict[str, Any] = {
-            "range": [float(lows[pos]), float(highs[pos])], "n": int(counts[pos]), "median": float(med[pos]),
-            "focal_sd": _num(focal_sd[pos]), "thin": thin, "low_focal_variation": bool(sparse),
+            "range": [float(s.lows[pos]), float(s.highs[pos])], "n": int(s.counts[pos]), "median": float(s.medians[pos]),
+            "focal_sd": _num(s.focal_sd[pos]), "thin": thin, "low_focal_variation": bool(sparse),
             "estimate": None, "se": None, "ci": [None, None],
             "linear_prediction": None, "linear_ci": [None, None], "outside": None,
         }
@@ -188,34 +172,22 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
             f"The binning check needs a continuous moderator; {moderator!r} is not one "
             f"(continuous moderators: {list(conts) or 'none'})."
         )
-    w = np.asarray(design.moderators[moderator].values, dtype=float)
+    info = design.moderators[moderator]
+    w = np.asarray(info.values, dtype=float)
     d = design.data.frame[design.focal].to_numpy(dtype=float)
-    y = design.y
-    idx, cuts = bin_index(w, bins, moderator)
-    notes: list[str] = []
-    present = np.unique(idx)
-    if present.size < idx.max() + 1:
-        notes.append("Some bins are empty (many tied moderator values); they were left out.")
-    J = present.size
-    if J < 2:
-        return BinningCheck(moderator=moderator, cut_points=[float(c) for c in cuts], bins=[], wald=None,
+    cov_cols = _covariate_columns(design, moderator)
+    chunks = array_chunks(design.X, design.y, chunk_rows=rows_per_chunk(DEFAULT_BUDGET, design.n_params + 4),
+                          columns={design.focal: d, moderator: w})
+    fits = binning_fits(chunks, focal=design.focal, moderator=moderator, covariate_columns=cov_cols, bins=bins,
+                        alpha=alpha, sorted_values=info.sorted_values)
+    s = fits.summary
+    notes = list(fits.notes)
+    if s.present.size < 2:
+        return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=[], wald=None,
                             nonlinear=None, alpha=float(alpha),
                             notes=(*notes, "Fewer than two non-empty bins; no check possible."))
-
-    G = (idx[:, None] == present[None, :]).astype(float)  # n × J
-    med = np.array([np.median(w[idx == j]) for j in present])  # J bins, not rows
-    cov_cols = _covariate_columns(design, moderator)
-    width = design.n_params + 2 * (4 * J + len(cov_cols))
-    chunks = array_chunks(design.X, y, chunk_rows=rows_per_chunk(DEFAULT_BUDGET, width),
-                          columns={FOCAL: d, MODERATOR: w})
-    fits = binning_fits(chunks, focal=FOCAL, moderator=MODERATOR, covariate_columns=cov_cols, bins=bins, alpha=alpha)
-    notes = list(fits.notes)
-    est_bin = fits.bin_slopes
-
-    est_lin = _linear_slopes(design, moderator, med, alpha)
-
-    bin_rows, thin_any, sparse_any = _bin_rows(G, w, d, idx, present, med, est_bin, est_lin,
-                                               min_bin_rows, min_focal_spread)
+    est_lin = _linear_slopes(design, moderator, s.medians, alpha)
+    bin_rows, thin_any, sparse_any = _bin_rows(s, fits.bin_slopes, est_lin, min_bin_rows, min_focal_spread)
     if thin_any:
         notes.append(f"At least one bin has fewer than {min_bin_rows} rows; its slope is imprecise.")
     if sparse_any:
@@ -229,7 +201,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
         "statistic": _num(jt.statistic), "df": [int(jt.df_num), _num(jt.df_den)], "p": _num(jt.p),
         "method": f"HC3 {jt.method}: binning columns beyond the model are zero"}
     nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < alpha)
-    return BinningCheck(moderator=moderator, cut_points=[float(c) for c in cuts], bins=bin_rows, wald=wald,
+    return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=bin_rows, wald=wald,
                         nonlinear=nonlinear, alpha=float(alpha), notes=tuple(notes), thin_bins=thin_any,
                         low_focal_variation=sparse_any)
 

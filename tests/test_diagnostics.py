@@ -117,6 +117,30 @@ def test_white_drops_squared_dummies(hprice1):
     assert out["df"] == np.linalg.matrix_rank(Z) - 1
 
 
+@pytest.mark.parametrize(("formula", "focal", "moderator"), [
+    ("lprice ~ llotsize * lsqrft + bdrms", "llotsize", "lsqrft"), ("price ~ lotsize * sqrft + bdrms", "lotsize", "sqrft"),
+    ("lprice ~ llotsize * lsqrft + colonial", "llotsize", "lsqrft")])
+def test_one_pass_breusch_pagan_and_white_match_statsmodels(hprice1, formula, focal, moderator):
+    # variance_diagnostics gets both tests from one accumulation (Breusch–Pagan as a block of White's
+    # cross-products, the intercept's products left out); each must still equal statsmodels.
+    d = _design(hprice1, formula, focal, moderator)
+    e = ols_residuals(d)
+    out = variance_diagnostics(d)
+    Xs = d.X / np.abs(d.X).max(axis=0)  # scaled as in the test above (statsmodels' pinv cut-off)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        bp_lm, bp_p, _, _ = het_breuschpagan(e, d.X)  # reference library
+        w_lm, w_p, _, _ = het_white(e, Xs)  # reference library
+    assert out["breusch_pagan"]["statistic"] == pytest.approx(bp_lm, rel=1e-9)
+    assert out["breusch_pagan"]["p"] == pytest.approx(bp_p, rel=1e-7)
+    assert out["white"]["statistic"] == pytest.approx(w_lm, rel=1e-6)
+    assert out["white"]["p"] == pytest.approx(w_p, rel=1e-5)
+    assert out["breusch_pagan"] == {**breusch_pagan(d), "solved_by": out["breusch_pagan"]["solved_by"],
+                                    "statistic": pytest.approx(breusch_pagan(d)["statistic"], rel=1e-10),
+                                    "p": pytest.approx(breusch_pagan(d)["p"], rel=1e-9)}
+    assert out["white"]["df"] == white(d)["df"]
+
+
 def test_goldfeld_quandt_matches_statsmodels(hprice1):
     d = _design(hprice1, "lprice ~ llotsize * lsqrft + bdrms", "llotsize", "lsqrft")
     out = goldfeld_quandt(d)

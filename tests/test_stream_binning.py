@@ -77,3 +77,66 @@ def test_cut_points_outside_the_range_give_the_in_memory_message() -> None:
     with pytest.raises(InputError) as got:
         _streamed(design, 40, [-1.0, 5.0])
     assert str(got.value) == str(mem.value)
+
+
+def _statsmodels_bins(df: pd.DataFrame, covariates: list[str], bins: int = 3):
+    """The binning model written out by hand and fitted by statsmodels OLS with HC3."""
+    import statsmodels.api as sm
+
+    b = pd.qcut(df["w"], bins, labels=False).to_numpy()
+    med = df.groupby(b)["w"].median().to_numpy()
+    G = np.eye(bins)[b]
+    wc = df["w"].to_numpy() - med[b]
+    x = df["x"].to_numpy()
+    X = np.column_stack([G, G * x[:, None], G * wc[:, None], G * (wc * x)[:, None], df[covariates].to_numpy()])
+    return sm.OLS(df["y"].to_numpy(), X).fit(cov_type="HC3")
+
+
+def test_ill_conditioned_bins_take_the_tsqr_route_and_match_statsmodels(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Invented data: the moderator sits far from zero (1e4 + U(0, 1)), so within a bin its column is
+    # nearly the intercept and the bins' Gram matrices are too ill-conditioned for the Cholesky route.
+    from robustmod.kernels import binning
+
+    seen: list[bool] = []
+    original = binning._cholesky_factor
+    monkeypatch.setattr(binning, "_cholesky_factor", lambda G: seen.append((f := original(G)) is None) or f)
+    rng = np.random.default_rng(11)
+    n = 800
+    x, w, a = rng.normal(size=n), 1e4 + rng.uniform(0, 1, n), rng.normal(size=n)
+    y = 1 + x + 0.5 * (w - 1e4) + 0.3 * x * (w - 1e4) ** 2 + a + rng.normal(size=n)
+    df = pd.DataFrame({"y": y, "x": x, "w": w, "a": a})
+    got = binning_check(build_design(df, SPEC))
+    assert got is not None and any(seen)
+    res = _statsmodels_bins(df, ["a"])
+    # Reference library: statsmodels OLS, HC3, on the hand-built binning model.
+    np.testing.assert_allclose([b["estimate"] for b in got["bins"]], res.params[3:6], rtol=1e-7)
+    np.testing.assert_allclose([b["se"] for b in got["bins"]], res.bse[3:6], rtol=1e-7)
+
+
+def test_a_chunk_that_breaks_the_first_chunks_layout_gives_the_same_answer(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Invented data, no intercept: the column s is 1 on the first 100 rows (so in the first chunk it
+    # looks like the bins' constant) and 0 or 1 afterwards; later chunks must not rely on it.
+    from robustmod.kernels import binning
+
+    layouts: list[dict[str, int]] = []
+    original = binning._wide_factor
+    monkeypatch.setattr(binning, "_wide_factor", lambda chunks, s, lay, *a: layouts.append(dict(lay.in_x))
+                        or original(chunks, s, lay, *a))
+    rng = np.random.default_rng(12)
+    n = 1200
+    s = np.r_[np.ones(100), rng.integers(0, 2, n - 100)].astype(float)
+    x, w, a = rng.normal(size=n), rng.uniform(0, 10, n), rng.normal(size=n)
+    y = 1 + s + x + w + 0.2 * x * w + 0.05 * x * w**2 + a + rng.normal(size=n)
+    df = pd.DataFrame({"y": y, "x": x, "w": w, "a": a, "s": s})
+    design = build_design(df, ModelSpec(formula="y ~ 0 + s + x * w + a", focal="x", moderators=("w",)))
+    mem = binning_check(design)
+    got = _streamed(design, 50)
+    assert layouts[-2].get("one") == 0 and layouts[-1] == {}  # s taken for the constant, then dropped
+    assert mem is not None and got.bin_slopes is not None and got.wald is not None
+    np.testing.assert_allclose(got.bin_slopes.estimate, [b["estimate"] for b in mem["bins"]], rtol=1e-9)
+    np.testing.assert_allclose(got.bin_slopes.se, [b["se"] for b in mem["bins"]], rtol=1e-9)
+    assert got.wald.statistic == pytest.approx(mem["wald"]["statistic"], rel=1e-9)
+    res = _statsmodels_bins(df, ["s", "a"])
+    # Reference library: statsmodels OLS, HC3, on the hand-built binning model.
+    np.testing.assert_allclose(got.bin_slopes.estimate, res.params[3:6], rtol=1e-8)
+    np.testing.assert_allclose(got.bin_slopes.se, res.bse[3:6], rtol=1e-8)

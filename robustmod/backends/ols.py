@@ -6,6 +6,7 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
+import weakref
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -60,8 +61,7 @@ class OLSBackend(FamilyBackend):
         return data.ols_fit(self.id, label=self.label, backend_id=self.id)
 
     def fit(self, design: Design, *, seed: int = 0, progress: bool = False) -> Fit | Unavailable:
-        Q, R = design.qr
-        return ols_fit(self.id, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design))
+        return design_fit(design, self.id)
 
     def reject_many(self, design: Design, Y: np.ndarray, alpha: float, *, seed: int = 0) -> np.ndarray:
         """Does the product-term test reject at ``alpha`` for each column of Y (n × D)?
@@ -97,19 +97,54 @@ class OLSBackend(FamilyBackend):
         return wald_test(r.T, S, df)[1] < alpha
 
 
+#: Fits already made on a design (by identity, dropped with it): the back-end, the SE gap and the
+#: binning check all ask for the design's HC3 fit, which then costs one pass over the rows.
+_DESIGN_FITS: weakref.WeakKeyDictionary[Design, dict[str, WaldFit | Unavailable]] = weakref.WeakKeyDictionary()
+
+
+_DESIGN_PIECES: weakref.WeakKeyDictionary[Design, tuple[np.ndarray, np.ndarray]] = weakref.WeakKeyDictionary()
+
+
+def design_residuals(design: Design) -> tuple[np.ndarray, np.ndarray]:
+    """(Qᵀy, ê = y − QQᵀy) of the design, computed once per design (read-only arrays)."""
+    if design not in _DESIGN_PIECES:
+        Q, _ = design.qr
+        qty = Q.T @ design.y
+        resid = design.y - Q @ qty
+        qty.setflags(write=False)
+        resid.setflags(write=False)
+        _DESIGN_PIECES[design] = (qty, resid)
+    return _DESIGN_PIECES[design]
+
+
+def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
+    """:func:`ols_fit` of ``kind`` on the design's own QR, made once per design and kind."""
+    fits = _DESIGN_FITS.setdefault(design, {})
+    if kind not in fits:
+        Q, R = design.qr
+        fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design),
+                             residuals=design_residuals(design))
+    return fits[kind]
+
+
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
             *, row_numbers: Any = None, label: str | None = None,
-            backend_id: str | None = None) -> WaldFit | Unavailable:
+            backend_id: str | None = None, residuals: tuple[np.ndarray, np.ndarray] | None = None
+            ) -> WaldFit | Unavailable:
     """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
 
     ``row_numbers``: 1-based data row numbers of the design rows (for messages; default 1 … n).
+    ``residuals``: (Qᵀy, y − QQᵀy) when already at hand (see :func:`design_residuals`).
     """
     n, k = Q.shape
     backend_id = backend_id or kind
     label = label or LABELS[kind]
-    qty = Q.T @ y
+    if residuals is None:
+        qty = Q.T @ y
+        resid = y - Q @ qty
+    else:
+        qty, resid = residuals
     beta = linalg.solve_triangular(R, qty, check_finite=False)
-    resid = y - Q @ qty
     Rinv = r_inverse(R)
     df = n - k
     warnings: list[str] = []

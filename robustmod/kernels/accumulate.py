@@ -49,12 +49,15 @@ class TSQR:
         self.p = p
         self.R = np.zeros((0, p))
 
-    def add(self, block: np.ndarray) -> None:
+    def add(self, block: np.ndarray, *, overwrite: bool = False) -> None:
         """Merge the rows of ``block``: its own factor first (LAPACK geqrf in place on one
-        Fortran-ordered copy), then the factor of the 2p × p stack of the two factors."""
+        Fortran-ordered copy, or on ``block`` itself with ``overwrite`` when it is a Fortran-ordered
+        float64 array), then the factor of the 2p × p stack of the two factors."""
         if block.shape[0] == 0:
             return
-        qr, _, _, info = lapack.dgeqrf(np.array(block, dtype=float, order="F"), overwrite_a=1)
+        own = overwrite and block.dtype == np.float64 and block.flags.f_contiguous
+        work = block if own else np.array(block, dtype=float, order="F")
+        qr, _, _, info = lapack.dgeqrf(work, overwrite_a=1)
         if info != 0:  # pragma: no cover - LAPACK argument errors only
             raise RuntimeError(f"geqrf failed with info {info}")
         r = np.triu(qr[: min(qr.shape), :])

@@ -3,37 +3,51 @@
 The same quantities as :func:`robustmod.linearity.binning_check`, from passes over the chunks:
 the cut points (exact streamed quantiles), per-bin counts, ranges and focal spread (merged
 running moments), the bin medians (exact order statistics: bin j holds the ranks after the
-rows of the bins below it), then three least-squares problems on chunk-built columns
+rows of the bins below it), then three least-squares problems on the columns
 
-    B = [G, G·D, G·(W − x_j), G·(W − x_j)·D]   (n × 4J, built per chunk from the bin index),
+    B = [G, G·D, G·(W − x_j), G·(W − x_j)·D]   (n × 4J, from the bin index),
 
-the binning model [B, covariates] with HC3 (per-bin slopes), the TSQR factor of [X, B] whose
-lower-right block gives B residualised on X (which binning columns add to the model), and the
-augmented model [X, B_added] with HC3 for the Wald test. Each HC3 fit is
-:func:`robustmod.kernels.ols.streamed_ols` on mapped chunks.
+the binning model [B, covariates] with HC3 (per-bin slopes), the factor of [X, B] whose lower-right
+block gives B residualised on X (which binning columns add to the model), and the augmented model
+[X, B_added] with HC3 for the Wald test.
+
+None of the three is built as an n-row matrix. A row of bin j has its binning columns in bin j's
+places only, and there they are the four base columns 1, D, W − x_j, (W − x_j)·D; so the row of the
+wide matrix [X, B, covariates, y] is c·T_j, with c the row of the compact block C = [X, the base
+columns X does not hold already, y] and T_j a fixed 0/±x_j matrix. Pass 1 accumulates each bin's
+CᵀC (cache-sized blocks of rows, sorted by bin) and factors it by Cholesky of the column-scaled
+matrix when its condition number is at most :data:`robustmod.kernels.ols.MAX_CONDITION` (else a
+TSQR pass gives the factors, Householder accuracy); stacking the bins' factors R_j·T_j and one small
+QR gives R of the wide matrix (Demmel et al. 2012), hence the factor of any column subset. Pass 2
+gives the residuals, the leverages hᵢ = cᵢᵀ A_j A_jᵀ cᵢ (A_j = T_j R_S⁻¹ for model S) and the HC3
+meat Σ_j A_jᵀ (C_jᵀ diag(ωᵢêᵢ²) C_j) A_j of both models at once.
 
 The chunks carry the raw focal predictor and moderator as ``columns[focal]``, ``columns[moderator]``.
 """
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from scipy import linalg
 
 from ..backends.base import Estimates, JointTest, WaldFit
+from ..backends.hc import LEVERAGE_ONE_TOL, hc_weights, r_inverse
 from ..errors import InputError, option_error
 from .accumulate import TSQR, RunningMoments
-from .chunks import Chunk, ChunkSource, mapped
-from .ols import StreamedOLS, streamed_ols
-from .order import column_summary, order_statistics, quantiles
+from .chunks import Chunk, ChunkSource
+from .ols import MAX_CONDITION, SHOWN_ROWS, StreamedOLS
+from .order import bin_numbers, column_summary, order_statistics, quantiles, sorted_summary
 
 #: |R_jj| / ‖column‖ at or below which the binning model counts as rank-deficient.
 RANK_TOL = 1e-10
 #: Relative size below which a residualised column counts as spanned by the model.
 SPAN_TOL = 1e-8
+#: Relative residual below which two models count as spanning the same space (the plain model
+#: y ~ D * W + Z: its augmented model is the binning model in other coordinates).
+SAME_SPAN_TOL = 1e-10
 
 
 def bin_index(w: np.ndarray, bins: int | Sequence[float], moderator: str) -> tuple[np.ndarray, np.ndarray]:
@@ -77,52 +91,60 @@ class BinSummary:
 
 
 def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str,
-          summary: tuple[int, float, float]) -> np.ndarray:
+          summary: tuple[int, float, float], sorted_values: np.ndarray | None = None) -> np.ndarray:
     """Interior cut points: the option is checked by the in-memory rule on the observed range
     (same messages); quantile cuts then come from the streamed column."""
     _, lo, hi = summary
     cuts = bin_index(np.array([lo, hi]), bins, moderator)[1]
     if isinstance(bins, (int, np.integer)):
-        return quantiles(values, list(np.arange(1, bins) / bins), summary=summary)
+        return quantiles(values, list(np.arange(1, bins) / bins), summary=summary, sorted_values=sorted_values)
     return cuts
 
 
-def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Sequence[float]) -> BinSummary:
-    """Cut points, counts, ranges, medians and focal spread of each non-empty bin."""
+def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Sequence[float], *,
+                sorted_values: np.ndarray | None = None) -> BinSummary:
+    """Cut points, counts, ranges, medians and focal spread of each non-empty bin.
+
+    ``sorted_values``: the whole moderator column in ascending order, when at hand; the cut points,
+    counts, ranges and medians are then read off it and one pass gathers the focal spread."""
     def values() -> Any:
         return (np.asarray(c.columns[moderator], dtype=float) for c in chunks())
 
-    summary = column_summary(values)
-    cuts = _cuts(values, bins, moderator, summary)
+    summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
+    cuts = _cuts(values, bins, moderator, summary, sorted_values)
     nb = cuts.size + 1
     counts = np.zeros(nb, dtype=np.int64)
     lows, highs = np.full(nb, np.inf), np.full(nb, -np.inf)
-    dmin, dmax = np.full(nb, np.inf), np.full(nb, -np.inf)
     per_bin = [RunningMoments(1) for _ in range(nb)]
     all_d = RunningMoments(1)
     for chunk in chunks():
         w = np.asarray(chunk.columns[moderator], dtype=float)
         d = np.asarray(chunk.columns[focal], dtype=float)
-        idx = np.searchsorted(cuts, w, side="left")  # rows at a cut go to the lower bin
-        counts += np.bincount(idx, minlength=nb)
-        np.minimum.at(lows, idx, w)
-        np.maximum.at(highs, idx, w)
-        np.minimum.at(dmin, idx, d)
-        np.maximum.at(dmax, idx, d)
+        idx = bin_numbers(cuts, w)  # rows at a cut go to the lower bin
+        here = np.bincount(idx, minlength=nb)
+        counts += here
         all_d.add(d)
-        for j in np.unique(idx):  # bins, not rows
-            per_bin[j].add(d[idx == j])
+        for j in np.flatnonzero(here):  # bins, not rows
+            rows = idx == j
+            if sorted_values is None:
+                wj = w[rows]
+                lows[j], highs[j] = min(lows[j], float(wj.min())), max(highs[j], float(wj.max()))
+            per_bin[j].add(d[rows])
     present = np.flatnonzero(counts)
     start = np.concatenate([[0], np.cumsum(counts)])[present]
     c = counts[present]
+    if sorted_values is not None:  # bins are runs of the sorted column
+        lows[present], highs[present] = sorted_values[start], sorted_values[start + c - 1]
     ranks = sorted({int(r) for r in np.concatenate([start + (c - 1) // 2, start + c // 2])})
-    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary), strict=False))
+    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary, sorted_values=sorted_values),
+                     strict=False))
     medians = np.array([0.5 * (stats[int(s + (m - 1) // 2)] + stats[int(s + m // 2)]) for s, m in zip(start, c, strict=False)])
     focal_sd = np.array([np.sqrt(per_bin[j].m2[0] / max(per_bin[j].n - 1, 1)) for j in present])
     n = int(summary[0])
     sd_all = float(np.sqrt(all_d.m2[0] / (n - 1))) if n > 1 else 0.0
-    return BinSummary(cuts, present, c, medians, lows[present], highs[present], focal_sd,
-                      dmax[present] > dmin[present], sd_all, n)
+    dmin = np.array([per_bin[j].minimum[0] for j in present])
+    dmax = np.array([per_bin[j].maximum[0] for j in present])
+    return BinSummary(cuts, present, c, medians, lows[present], highs[present], focal_sd, dmax > dmin, sd_all, n)
 
 
 def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
@@ -143,14 +165,6 @@ def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
     return out
 
 
-def _hc3(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray]) -> StreamedOLS | str:
-    """HC3 fit of y on the columns ``build`` makes per chunk, or the reason it cannot be had."""
-    try:
-        return streamed_ols(mapped(chunks, lambda c: replace(c, X=build(c))), ["hc3"], alias_tol=RANK_TOL)
-    except InputError:
-        return "rank-deficient"
-
-
 def added_columns(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray], k: int) -> np.ndarray:
     """Indices of B's columns that add to span(X): TSQR of [X, B]; its block R₂₂ is B residualised on X,
     so a pivoted QR of R₂₂ (columns scaled) picks the same columns as one of the n-row residuals."""
@@ -160,7 +174,11 @@ def added_columns(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray], k: 
         acc = acc or TSQR(block.shape[1])
         acc.add(block)
     assert acc is not None
-    R = acc.factor()
+    return added_from_factor(acc.factor(), k)
+
+
+def added_from_factor(R: np.ndarray, k: int) -> np.ndarray:
+    """The columns of B that add to span(X), from the triangular factor R of [X, B] (X first, k columns)."""
     R22 = R[k:, k:]
     res_norm = np.linalg.norm(R22, axis=0)
     norms = np.linalg.norm(R[:, k:], axis=0)
@@ -174,6 +192,264 @@ def added_columns(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray], k: 
     return np.sort(cand[piv[:rank]])
 
 
+#: Rows of a chunk handled at a time: cache-sized blocks make the small products fast and bound the work space.
+BLOCK_ROWS = 1 << 15
+#: The four base columns of a bin, in the order of B's column groups.
+BASE = ("one", "d", "w", "dw")
+
+
+class _LayoutChanged(Exception):
+    """A chunk's X does not hold a base column where the first chunk's did."""
+
+
+@dataclass(frozen=True)
+class _Layout:
+    """Where the compact block C = [X, extra columns, y] holds each base column of a bin: the X
+    column that equals it exactly (the intercept, the raw focal predictor, the raw moderator, their
+    product) or, when X has none, an extra column (the moderator's two then centred at the bin median)."""
+
+    k: int
+    in_x: dict[str, int]
+
+    @property
+    def extras(self) -> tuple[str, ...]:
+        return tuple(b for b in BASE if b not in self.in_x)
+
+    @property
+    def width(self) -> int:
+        """Columns of C before y."""
+        return self.k + len(self.extras)
+
+    def col(self, base: str) -> int:
+        return self.in_x[base] if base in self.in_x else self.k + self.extras.index(base)
+
+
+def _base_values(d: np.ndarray, w: np.ndarray, base: str) -> np.ndarray:
+    if base == "one":
+        return np.ones_like(d)
+    return d if base == "d" else w if base == "w" else d * w
+
+
+def _find_layout(chunk: Chunk, d: np.ndarray, w: np.ndarray) -> _Layout:
+    """The base columns X holds exactly on the first rows (pass 1 checks the rest)."""
+    X = chunk.X
+    k = X.shape[1]
+    head = slice(0, min(64, X.shape[0]))
+    found: dict[str, int] = {}
+    for base in BASE:
+        v = _base_values(d[head], w[head], base)
+        for j in range(k):
+            if j not in found.values() and np.array_equal(X[head, j], v):  # pass 1 checks every row
+                found[base] = j
+                break
+    return _Layout(k, found)
+
+
+def _check_layout(lay: _Layout, chunk: Chunk, d: np.ndarray, w: np.ndarray) -> None:
+    for base, j in lay.in_x.items():
+        if not np.array_equal(chunk.X[:, j], _base_values(d, w, base)):
+            raise _LayoutChanged
+
+
+def _sorted_blocks(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str, *,
+                   check: bool = True) -> Any:
+    """(C, starts, rows) per block of rows: the compact block with its rows sorted by bin (bin j in
+    rows starts[j]:starts[j + 1]), Fortran-ordered, and the data positions of its rows."""
+    J, k = s.present.size, lay.k
+    lookup = np.zeros(s.cuts.size + 1, dtype=np.uint8 if J < 256 else np.int64)
+    lookup[s.present] = np.arange(J)
+    for c in chunks():
+        w_all = np.asarray(c.columns[moderator], dtype=float)
+        d_all = np.asarray(c.columns[focal], dtype=float)
+        if check:
+            _check_layout(lay, c, d_all, w_all)
+        for a in range(0, c.size, BLOCK_ROWS):
+            b = min(c.size, a + BLOCK_ROWS)
+            w, d = w_all[a:b], d_all[a:b]
+            pos = lookup[bin_numbers(s.cuts, w)]
+            order = np.argsort(pos, kind="stable")  # a radix sort of small integers
+            starts = np.concatenate([[0], np.cumsum(np.bincount(pos, minlength=J))])
+            C = np.empty((b - a, lay.width + 1), order="F")
+            Xb = c.X[a:b]
+            for j in range(k):
+                np.take(Xb[:, j], order, out=C[:, j])
+            np.take(c.y[a:b], order, out=C[:, lay.width])
+            ws, ds = w[order], d[order]
+            for base in lay.extras:
+                col = C[:, lay.col(base)]
+                if base == "one":
+                    col.fill(1.0)
+                elif base == "d":
+                    col[:] = ds
+                else:
+                    for j in range(J):
+                        r = slice(starts[j], starts[j + 1])
+                        np.subtract(ws[r], s.medians[j], out=col[r])
+                        if base == "dw":
+                            col[r] *= ds[r]
+            yield C, starts, c.rows[a:b][order]
+
+
+def _wide_map(lay: _Layout, s: BinSummary, j: int, cov: Sequence[int]) -> np.ndarray:
+    """T_j: bin j's row of [X, B, y] (B = [G, G·D, G·(W − x_j), G·(W − x_j)·D, covariates]) is c·T_j."""
+    k, J, nb = lay.k, s.present.size, 4 * s.present.size + len(cov)
+    T = np.zeros((lay.width + 1, k + nb + 1))
+    T[np.arange(k), np.arange(k)] = 1.0
+    T[lay.col("one"), k + j] = 1.0
+    T[lay.col("d"), k + J + j] = 1.0
+    if s.lows[j] < s.highs[j]:  # else W − x_j is exactly zero in the bin: so are its two columns
+        T[lay.col("w"), k + 2 * J + j] = 1.0
+        if "w" in lay.in_x:  # the raw moderator column: centre it here
+            T[lay.col("one"), k + 2 * J + j] = -s.medians[j]
+        T[lay.col("dw"), k + 3 * J + j] = 1.0
+        if "dw" in lay.in_x:
+            T[lay.col("d"), k + 3 * J + j] = -s.medians[j]
+    for i, col in enumerate(cov):
+        T[col, k + 4 * J + i] = 1.0
+    T[lay.width, -1] = 1.0
+    return T
+
+
+def _cholesky_factor(G: np.ndarray) -> np.ndarray | None:
+    """[[R, Rᵀ⁻¹Cᵀy], [0, r]] from the Gram matrix of [C y] by Cholesky of the column-scaled CᵀC,
+    or None when that is singular or its condition number exceeds MAX_CONDITION."""
+    p = G.shape[0] - 1
+    norms = np.sqrt(np.diag(G)[:p])
+    if np.any(norms == 0):
+        return None
+    dinv = 1.0 / norms
+    Gs = G[:p, :p] * dinv[:, None] * dinv[None, :]
+    condition = float(np.linalg.cond(Gs))
+    if not np.isfinite(condition) or condition > MAX_CONDITION:
+        return None
+    try:
+        R = linalg.cholesky(Gs, lower=False, check_finite=False) * norms[None, :]
+    except linalg.LinAlgError:
+        return None
+    out = np.zeros((p + 1, p + 1))
+    out[:p, :p] = R
+    out[:p, p] = linalg.solve_triangular(R, G[:p, p], trans="T", check_finite=False)
+    out[p, p] = np.sqrt(max(float(G[p, p] - out[:p, p] @ out[:p, p]), 0.0))
+    return out
+
+
+def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
+                 cov: Sequence[int]) -> tuple[np.ndarray, str]:
+    """R of the wide matrix [X, B, y] from the bins' compact factors (pass 1, a TSQR pass if needed)."""
+    J, p = s.present.size, lay.width + 1
+    grams = [np.zeros((p, p)) for _ in range(J)]
+    for C, starts, _ in _sorted_blocks(chunks, s, lay, focal, moderator):
+        for j in range(J):
+            Cj = C[starts[j]:starts[j + 1]]
+            grams[j] += Cj.T @ Cj
+    factors = [_cholesky_factor(G) for G in grams]
+    method = "cholesky"
+    if any(f is None for f in factors):
+        method = "tsqr"
+        accs = [TSQR(p) for _ in range(J)]
+        for C, starts, _ in _sorted_blocks(chunks, s, lay, focal, moderator):
+            for j in range(J):
+                accs[j].add(C[starts[j]:starts[j + 1]])
+        factors = [acc.factor() for acc in accs]
+    stacked = np.vstack([f @ _wide_map(lay, s, j, cov) for j, f in enumerate(factors) if f is not None])
+    width = stacked.shape[1]
+    R = np.zeros((width, width))
+    top = np.asarray(np.linalg.qr(stacked, mode="r"))
+    R[:top.shape[0]] = top[:width]
+    return R, method
+
+
+@dataclass
+class _Model:
+    """One least-squares model on a subset S of the wide columns, and its HC3 pass-2 sums."""
+
+    beta: np.ndarray
+    R: np.ndarray
+    A: list[np.ndarray]  # per bin, T_j[:, S] R_S⁻¹ (compact → Q-factor coordinates)
+    P: list[np.ndarray]  # per bin, A_j A_jᵀ (the leverage form)
+    g: list[np.ndarray]  # per bin, T_j[:, S] β (the fitted values' form)
+    meats: list[np.ndarray]
+    rss: float = 0.0
+    hmax: float = 0.0
+    n_ones: int = 0
+    ones: list[np.ndarray] | None = None
+    columns: tuple[int, ...] = ()
+    sums_from: _Model | None = None  # a model with the same column space: same residuals and leverages
+
+
+def _same_span(R_wide: np.ndarray, a: _Model, b: _Model) -> bool:
+    """Do the two models' columns span the same space (so their residuals and leverages agree)?"""
+    if len(a.columns) != len(b.columns):
+        return False
+    Q, _ = np.linalg.qr(R_wide[:, list(b.columns)])
+    A = R_wide[:, list(a.columns)]
+    resid = np.linalg.norm(A - Q @ (Q.T @ A), axis=0)
+    return bool(np.all(resid <= SAME_SPAN_TOL * np.maximum(np.linalg.norm(A, axis=0), 1e-300)))
+
+
+def _model(R_wide: np.ndarray, S: Sequence[int], maps: list[np.ndarray], width: int) -> _Model | None:
+    """The factor, β̂ and per-bin forms of the model on wide columns S; None when it is rank-deficient
+    (|R_jj| / ‖column j‖ below RANK_TOL, the rule of the streamed OLS kernel)."""
+    cols = [*S, R_wide.shape[1] - 1]
+    Ra = np.asarray(np.linalg.qr(R_wide[:, cols], mode="r"))
+    q = len(S)
+    R, qty = Ra[:q, :q], Ra[:q, q]
+    norms = np.linalg.norm(R_wide[:, list(S)], axis=0)
+    rel = np.abs(np.diag(R)) / np.where(norms > 0, norms, 1.0)
+    if np.any((rel < RANK_TOL) | (norms == 0)):
+        return None
+    beta = linalg.solve_triangular(R, qty, check_finite=False)
+    Rinv = r_inverse(R)
+    A = [T[:width, list(S)] @ Rinv for T in maps]
+    return _Model(beta, R, A, [a @ a.T for a in A], [T[:width, list(S)] @ beta for T in maps],
+                  [np.zeros((width, width)) for _ in maps], ones=[], columns=tuple(S))
+
+
+def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
+                   models: list[_Model]) -> float:
+    """Pass 2 for every model at once: RSS, leverages, leverage-one rows and the HC3 meats; returns
+    the centred sum of squares of y."""
+    n, width, J = s.n, lay.width, s.present.size
+    ymom = RunningMoments(1)
+    for C, starts, rows in _sorted_blocks(chunks, s, lay, focal, moderator, check=False):
+        ymom.add(C[:, width])
+        for m in models:
+            at_one: list[np.ndarray] = []
+            for j in range(J):
+                r = slice(starts[j], starts[j + 1])
+                Cj, yj = C[r, :width], C[r, width]
+                if yj.size == 0:
+                    continue
+                e = yj - Cj @ m.g[j]
+                h = np.einsum("ij,ij->i", Cj @ m.P[j], Cj)
+                m.rss += float(e @ e)
+                m.hmax = max(m.hmax, float(h.max()))
+                one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
+                if one.size:
+                    m.n_ones += one.size
+                    at_one.append(rows[r][one])
+                if not m.n_ones:
+                    u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
+                    m.meats[j] += (Cj * u[:, None]).T @ Cj
+            if at_one and m.ones is not None and sum(a.size for a in m.ones) < SHOWN_ROWS:
+                m.ones.append(np.sort(np.concatenate(at_one)))
+    return float(ymom.m2[0])
+
+
+def _streamed(m: _Model, n: int, ss_total: float, method: str) -> StreamedOLS:
+    """The model's HC3 fit in the form the streamed OLS kernel gives it."""
+    src = m.sums_from or m
+    Rinv = r_inverse(m.R)
+    cov = None
+    if not src.n_ones:
+        meat = sum(a.T @ M @ a for a, M in zip(m.A, src.meats, strict=True))
+        meat = 0.5 * (meat + meat.T)
+        cov = Rinv @ meat @ Rinv.T
+    shown = np.concatenate(src.ones)[:SHOWN_ROWS] if src.ones else np.zeros(0, dtype=int)
+    return StreamedOLS(m.beta, m.R, n, m.beta.size, src.rss, ss_total, src.hmax, shown, src.n_ones, {"hc3": cov},
+                       method)
+
+
 @dataclass(frozen=True)
 class BinningFits:
     """Per-bin HC3 slopes (or why not), and the HC3 Wald test of the added binning columns (or why not)."""
@@ -185,11 +461,25 @@ class BinningFits:
     notes: tuple[str, ...]
 
 
+def _layout_and_factor(chunks: ChunkSource, first: Chunk, s: BinSummary, focal: str, moderator: str,
+                       cov: Sequence[int]) -> tuple[_Layout, np.ndarray, str]:
+    """The compact layout (from the first chunk) and R of the wide matrix."""
+    lay = _find_layout(first, np.asarray(first.columns[focal], dtype=float),
+                       np.asarray(first.columns[moderator], dtype=float))
+    try:
+        return (lay, *_wide_factor(chunks, s, lay, focal, moderator, cov))
+    except _LayoutChanged:  # a later chunk's X differs: every base column as an extra one
+        lay = _Layout(lay.k, {})
+        return (lay, *_wide_factor(chunks, s, lay, focal, moderator, cov))
+
+
 def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same notes, same order); a split is open work
         chunks: ChunkSource, *, focal: str, moderator: str, covariate_columns: Sequence[int],
-        bins: int | Sequence[float] = 3, alpha: float = 0.05) -> BinningFits:
-    """The streamed pieces of :func:`robustmod.linearity.binning_check` (its notes' wording kept)."""
-    s = bin_summary(chunks, focal, moderator, bins)
+        bins: int | Sequence[float] = 3, alpha: float = 0.05, sorted_values: np.ndarray | None = None) -> BinningFits:
+    """The streamed pieces of :func:`robustmod.linearity.binning_check` (its notes' wording kept).
+
+    ``sorted_values``: the whole moderator column in ascending order, when at hand (fewer passes)."""
+    s = bin_summary(chunks, focal, moderator, bins, sorted_values=sorted_values)
     notes: list[str] = []
     if s.present.size < s.cuts.size + 1:
         notes.append("Some bins are empty (many tied moderator values); they were left out.")
@@ -199,32 +489,39 @@ def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same no
     k = first.X.shape[1]
     if J < 2:
         return BinningFits(s, None, None, np.zeros(0, dtype=int), tuple(notes))
-
-    def xbin(c: Chunk) -> np.ndarray:
-        return binning_columns(c, s, focal, moderator, cov_cols)
-
     n_bin_cols = 4 * J + len(cov_cols)
-    est_bin = None
+    lay, R_wide, method = _layout_and_factor(chunks, first, s, focal, moderator, cov_cols)
+    maps = [_wide_map(lay, s, j, cov_cols) for j in range(J)]
+    bin_model = None
     if s.n <= n_bin_cols + 1:
         notes.append(f"Too few rows ({s.n}) for the {n_bin_cols} columns of the binning model; "
                      "per-bin slopes cannot be estimated.")
     else:
-        fit = _hc3(chunks, xbin)
-        if isinstance(fit, str):
+        bin_model = _model(R_wide, range(k, k + n_bin_cols), maps, lay.width)
+        if bin_model is None:
             notes.append("The binning model is rank-deficient (a bin has too few distinct rows or no focal "
                          "variation); per-bin slopes cannot be estimated.")
+    added = added_from_factor(R_wide[:k + n_bin_cols, :k + n_bin_cols], k)
+    aug_model = None
+    aug_tried = bool(added.size) and s.n > k + added.size + 1
+    if aug_tried:
+        aug_model = _model(R_wide, [*range(k), *(k + added)], maps, lay.width)
+    if bin_model is not None and aug_model is not None and _same_span(R_wide, aug_model, bin_model):
+        aug_model.sums_from = bin_model
+    models = [m for m in (bin_model, aug_model) if m is not None and m.sums_from is None]
+    ss_total = _residual_pass(chunks, s, lay, focal, moderator, models) if models else 0.0
+    est_bin = None
+    if bin_model is not None:
+        bin_fit = _streamed(bin_model, s.n, ss_total, method).fit("hc3", tuple(f"c{i}" for i in range(n_bin_cols)))
+        if isinstance(bin_fit, WaldFit):
+            est_bin = bin_fit.estimate(np.eye(n_bin_cols)[J:2 * J], alpha)
         else:
-            bin_fit = fit.fit("hc3", tuple(f"c{i}" for i in range(n_bin_cols)))
-            if isinstance(bin_fit, WaldFit):
-                est_bin = bin_fit.estimate(np.eye(n_bin_cols)[J:2 * J], alpha)
-            else:
-                notes.append(f"Per-bin HC3 slopes unavailable: {bin_fit.reason}")
+            notes.append(f"Per-bin HC3 slopes unavailable: {bin_fit.reason}")
     wald = None
-    added = added_columns(chunks, xbin, k)
     if added.size:
-        if s.n > k + added.size + 1:
-            fa = _hc3(chunks, lambda c: np.column_stack([c.X, xbin(c)[:, added]]))
-            wf = None if isinstance(fa, str) else fa.fit("hc3", tuple(f"c{i}" for i in range(k + added.size)))
+        if aug_tried:
+            wf = None if aug_model is None else _streamed(aug_model, s.n, ss_total, method).fit(
+                "hc3", tuple(f"c{i}" for i in range(k + added.size)))
             if isinstance(wf, WaldFit):
                 L = np.zeros((added.size, k + added.size))
                 L[np.arange(added.size), k + np.arange(added.size)] = 1.0

@@ -21,21 +21,35 @@ from scipy import stats
 from ..jsonvalues import num
 from .accumulate import TSQR
 from .chunks import ChunkSource
-from .order import column_summary, order_statistics
+from .order import column_summary, order_statistics, sorted_summary
 
 #: Share of middle rows dropped (the in-memory test's value, robustmod.diagnostics.GQ_DROP).
 DROP_SHARE = 0.2
+#: Rows of a chunk gathered into one group block at a time (bounds the work space of a large chunk).
+BLOCK_ROWS = 1 << 16
 
 
-def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE) -> dict[str, Any] | None:
+def _group_block(X: np.ndarray, y: np.ndarray, rows: np.ndarray) -> np.ndarray:
+    """[X y] at ``rows``, gathered column by column into one Fortran-ordered array (TSQR works in place)."""
+    k = X.shape[1]
+    out = np.empty((rows.size, k + 1), order="F")
+    for j in range(k):
+        np.take(X[:, j], rows, out=out[:, j])
+    np.take(y, rows, out=out[:, k])
+    return out
+
+
+def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
+                    sorted_values: np.ndarray | None = None) -> dict[str, Any] | None:
     """F test of the residual variances of the high and low moderator groups; None when too few rows.
 
-    ``moderator`` names the chunk column holding the moderator's raw values.
+    ``moderator`` names the chunk column holding the moderator's raw values; ``sorted_values``, when
+    at hand, is that whole column in ascending order (the cut values are then read off it).
     """
     def values() -> Any:
         return (np.asarray(c.columns[moderator], dtype=float) for c in chunks())
 
-    summary = column_summary(values)
+    summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
     n = summary[0]
     first = next(iter(chunks()))
     k = first.X.shape[1]
@@ -43,17 +57,20 @@ def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = 
     n1 = (n - drop) // 2
     if n1 <= k + 1:
         return None
-    c_lo, c_hi = order_statistics(values, [n1 - 1, n - n1], summary=summary)
+    c_lo, c_hi = order_statistics(values, [n1 - 1, n - n1], summary=summary, sorted_values=sorted_values)
     if c_lo >= c_hi:
         return None
     groups = {"low": TSQR(k + 1), "high": TSQR(k + 1)}
     sizes = {"low": 0, "high": 0}
     for c in chunks():
         w = np.asarray(c.columns[moderator], dtype=float)
-        for name, mask in (("low", w <= c_lo), ("high", w >= c_hi)):
-            if mask.any():
-                groups[name].add(np.column_stack([c.X[mask], c.y[mask]]))
-                sizes[name] += int(mask.sum())
+        for a in range(0, c.size, BLOCK_ROWS):
+            wb, Xb, yb = w[a:a + BLOCK_ROWS], c.X[a:a + BLOCK_ROWS], c.y[a:a + BLOCK_ROWS]
+            for name, mask in (("low", wb <= c_lo), ("high", wb >= c_hi)):
+                rows = np.flatnonzero(mask)
+                if rows.size:
+                    groups[name].add(_group_block(Xb, yb, rows), overwrite=True)
+                    sizes[name] += int(rows.size)
     s2 = {name: float(acc.factor()[k, k] ** 2) / (sizes[name] - k) for name, acc in groups.items()}
     if s2["low"] <= 0:
         return None

@@ -53,14 +53,19 @@ METHODS = ("cholesky", "tsqr")
 CACHE_ROWS = 1 << 14
 
 
+_CONTROLLER: list[Any] = []  # one threadpoolctl controller: finding the loaded BLAS libraries costs ~10 ms
+
+
 def one_blas_thread() -> AbstractContextManager[Any]:
     """One BLAS thread while the small cross-products run: for a p × p update from a cached block,
     threads cost more in hand-over than they save, and on a busy machine far more (measured)."""
-    try:
-        from threadpoolctl import threadpool_limits  # noqa: PLC0415  (optional; only the speed changes)
-    except ImportError:  # pragma: no cover
-        return nullcontext()
-    return threadpool_limits(1, user_api="blas")
+    if not _CONTROLLER:
+        try:
+            from threadpoolctl import ThreadpoolController  # noqa: PLC0415  (optional; only the speed changes)
+        except ImportError:  # pragma: no cover
+            return nullcontext()
+        _CONTROLLER.append(ThreadpoolController())
+    return _CONTROLLER[0].limit(limits=1, user_api="blas")
 
 
 def white_columns(X: np.ndarray) -> np.ndarray:
@@ -69,10 +74,21 @@ def white_columns(X: np.ndarray) -> np.ndarray:
     return np.column_stack([X, X[:, iu] * X[:, ju]])
 
 
-def auxiliary_block(X: np.ndarray, u: np.ndarray, white: bool) -> np.ndarray:
-    """[X, (XᵢXⱼ for i ≤ j if white), u] as one Fortran-ordered array, filled column by column."""
+def product_pairs(k: int, constant_column: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """(i, j), i ≤ j, of White's products XᵢXⱼ; products with ``constant_column`` (a column equal to 1
+    in every row, the intercept) are left out, as they repeat the levels or the constant."""
+    iu, ju = np.triu_indices(k)
+    if constant_column is None:
+        return iu, ju
+    keep = (iu != constant_column) & (ju != constant_column)
+    return iu[keep], ju[keep]
+
+
+def auxiliary_block(X: np.ndarray, u: np.ndarray, white: bool, constant_column: int | None = None) -> np.ndarray:
+    """[X, (XᵢXⱼ for i ≤ j if white), u] as one Fortran-ordered array, filled column by column
+    (without the products of ``constant_column``, see :func:`product_pairs`)."""
     k = X.shape[1]
-    iu, ju = np.triu_indices(k) if white else (np.zeros(0, dtype=int), np.zeros(0, dtype=int))
+    iu, ju = product_pairs(k, constant_column) if white else (np.zeros(0, dtype=int), np.zeros(0, dtype=int))
     out = np.empty((X.shape[0], k + iu.size + 1), order="F")
     out[:, :k] = X
     for c, (i, j) in enumerate(zip(iu, ju, strict=True)):  # k(k+1)/2 columns, each contiguous
@@ -94,10 +110,12 @@ class AuxiliaryRegression:
     ill-conditioned.
     """
 
-    def __init__(self, white: bool = False, method: str = "cholesky") -> None:
+    def __init__(self, white: bool = False, method: str = "cholesky", *, constant_column: int | None = None) -> None:
         if method not in METHODS:
             raise ValueError(f"method must be one of {METHODS}; got {method!r}")
         self.white, self.method = white, method
+        self.constant_column = constant_column  # a column of X equal to 1 in every row (the caller vouches)
+        self.k: int | None = None
         self.tsqr: TSQR | None = None
         self.cross: CrossProducts | None = None
         self.shift: float | None = None
@@ -107,14 +125,16 @@ class AuxiliaryRegression:
         u = resid * resid
         if u.size == 0:
             return
+        self.k = chunk.X.shape[1]
         if self.method == "cholesky":
             with one_blas_thread():
                 for a in range(0, u.size, CACHE_ROWS):
-                    block = auxiliary_block(chunk.X[a:a + CACHE_ROWS], u[a:a + CACHE_ROWS], self.white)
+                    block = auxiliary_block(chunk.X[a:a + CACHE_ROWS], u[a:a + CACHE_ROWS], self.white,
+                                            self.constant_column)
                     self.cross = self.cross or CrossProducts(block.shape[1])
                     self.cross.add(block, overwrite=True)
         else:
-            Z = white_columns(chunk.X) if self.white else chunk.X
+            Z = auxiliary_block(chunk.X, u, self.white, self.constant_column)[:, :-1] if self.white else chunk.X
             if self.shift is None:
                 self.shift = float(u.mean())
             block = np.column_stack([np.ones(u.size), Z, u - self.shift])
@@ -141,12 +161,32 @@ class AuxiliaryRegression:
             again.add(c, e)
         return again.result()
 
-    def _gram_result(self, force: bool = False) -> dict[str, Any] | None:
+    def levels_result(self, redo: ResidualPasses | None = None) -> dict[str, Any]:
+        """Breusch–Pagan (êᵢ² on the levels X only) from a White accumulation: the levels' and ê²'s
+        block of the same centred cross-products, so one pass gives both tests; a TSQR pass over
+        ``redo`` when that block is ill-conditioned (as :meth:`result`)."""
+        if not self.white or self.cross is None or self.k is None:
+            raise ValueError("levels_result needs a White accumulation (white=True, Cholesky route) with rows")
+        cols = [*range(self.k), self.cross.C.shape[0] - 1]
+        out = self._gram_result(C=self.cross.C[np.ix_(cols, cols)], mean=self.cross.mean[cols])
+        if out is not None:
+            return out
+        if redo is None:
+            return self._gram_result(force=True, C=self.cross.C[np.ix_(cols, cols)], mean=self.cross.mean[cols]) or {}
+        again = AuxiliaryRegression(False, method="tsqr")
+        for c, e in redo():
+            again.add(c, e)
+        return again.result()
+
+    def _gram_result(self, force: bool = False, C: np.ndarray | None = None,
+                     mean: np.ndarray | None = None) -> dict[str, Any] | None:
         assert self.cross is not None
-        C, n = self.cross.C, self.cross.n
+        n = self.cross.n
+        if C is None or mean is None:
+            C, mean = self.cross.C, self.cross.mean
         p = C.shape[0] - 1
         s = np.sqrt(np.maximum(np.diag(C)[:p], 0.0))
-        varying = np.flatnonzero(s > CONSTANT_TOL * np.maximum(np.abs(self.cross.mean[:p]), 1e-300))
+        varying = np.flatnonzero(s > CONSTANT_TOL * np.maximum(np.abs(mean[:p]), 1e-300))
         cuu = float(C[p, p])
         if varying.size == 0 or cuu <= 0:
             return _lm(0.0, 0, "cholesky")

@@ -10,6 +10,10 @@ plus the gathered values.
 
 Quantiles follow numpy's default ('linear') rule, x₍ᵢ₎ + g·(x₍ᵢ₊₁₎ − x₍ᵢ₎) at the virtual index
 q·(n − 1), so they equal ``np.quantile`` on the whole column.
+
+In memory the column can be sorted once (``sorted_values``, e.g. the design's sorted moderator): every
+order statistic is then one look-up, and the quantiles, the Goldfeld–Quandt cuts and the bin medians
+of one design share that one sort.
 """
 from __future__ import annotations
 
@@ -46,9 +50,23 @@ def column_summary(values: ValueSource) -> tuple[int, float, float]:
     return n, lo, hi
 
 
+def sorted_summary(sorted_values: np.ndarray) -> tuple[int, float, float]:
+    """(n, min, max) of a column from its sorted values."""
+    n = int(sorted_values.size)
+    return (n, float(sorted_values[0]), float(sorted_values[-1])) if n else (0, np.inf, -np.inf)
+
+
 def order_statistics(values: ValueSource, ranks: Sequence[int], *, summary: tuple[int, float, float] | None = None,
-                     bins: int = BINS, collect_limit: int = COLLECT_LIMIT) -> np.ndarray:
-    """The ``ranks``-th smallest values (0-based) of the streamed column, exactly."""
+                     bins: int = BINS, collect_limit: int = COLLECT_LIMIT,
+                     sorted_values: np.ndarray | None = None) -> np.ndarray:
+    """The ``ranks``-th smallest values (0-based) of the streamed column, exactly.
+
+    ``sorted_values``: the whole column in ascending order, when at hand (no pass is made then)."""
+    if sorted_values is not None:
+        n = sorted_values.size
+        if any(not 0 <= r < n for r in ranks):
+            raise InputError(f"An order statistic was asked for outside the {n} rows of the column.")
+        return np.asarray(sorted_values, dtype=float)[np.asarray(ranks, dtype=np.int64)]
     n, vmin, vmax = summary if summary is not None else column_summary(values)
     if any(not 0 <= r < n for r in ranks):
         raise InputError(f"An order statistic was asked for outside the {n} rows of the column.")
@@ -92,16 +110,31 @@ def _narrow(open_targets: list[_Target], values: ValueSource, bins: int, collect
         t.hi = float(e[j + 1]) if j == bins - 1 else float(np.nextafter(e[j + 1], -np.inf))
 
 
-def quantiles(values: ValueSource, probs: Sequence[float], *, summary: tuple[int, float, float] | None = None
-              ) -> np.ndarray:
-    """``np.quantile(column, probs)`` (linear rule) from streamed order statistics."""
+def bin_numbers(cuts: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Bin of each value (finite values), rows at a cut in the lower bin: ``np.searchsorted(cuts, w, side="left")``,
+    which for a few cuts is a sum of comparisons (much faster than a binary search per row)."""
+    if cuts.size > 8:
+        return np.searchsorted(cuts, w, side="left")
+    out = np.zeros(w.shape, dtype=np.int64)
+    for c in cuts:
+        out += w > c
+    return out
+
+
+def quantiles(values: ValueSource, probs: Sequence[float], *, summary: tuple[int, float, float] | None = None,
+              sorted_values: np.ndarray | None = None) -> np.ndarray:
+    """``np.quantile(column, probs)`` (linear rule) from streamed order statistics (or from
+    ``sorted_values``, the column in ascending order, when at hand)."""
+    if sorted_values is not None:
+        summary = sorted_summary(sorted_values)
     summary = summary if summary is not None else column_summary(values)
     n = summary[0]
     virtual = np.asarray(probs, dtype=float) * (n - 1)
     i = np.floor(virtual).astype(int)
     g = virtual - i
     ranks = sorted(set(i.tolist()) | set(np.minimum(i + 1, n - 1).tolist()))
-    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary), strict=False))
+    stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary, sorted_values=sorted_values),
+                     strict=False))
     a = np.array([stats[int(r)] for r in i])
     b = np.array([stats[int(min(r + 1, n - 1))] for r in i])
     return np.where(g >= 0.5, b - (b - a) * (1 - g), a + (b - a) * g)

@@ -14,7 +14,7 @@ import numpy as np
 from ..jsonvalues import num
 from .accumulate import RunningMoments
 from .chunks import Chunk, ChunkSource
-from .order import quantiles
+from .order import bin_numbers, quantiles
 
 
 class ResidualSpread:
@@ -27,19 +27,23 @@ class ResidualSpread:
         self.low, self.high = np.full(nb, np.inf), np.full(nb, -np.inf)
 
     @classmethod
-    def quantile_bins(cls, chunks: ChunkSource, moderator: str, bins: int = 3) -> ResidualSpread:
-        """Bins at the 1/bins … (bins − 1)/bins quantiles of the streamed moderator."""
+    def quantile_bins(cls, chunks: ChunkSource, moderator: str, bins: int = 3, *,
+                      sorted_values: np.ndarray | None = None) -> ResidualSpread:
+        """Bins at the 1/bins … (bins − 1)/bins quantiles of the streamed moderator (read off
+        ``sorted_values``, the whole column in ascending order, when at hand)."""
         cuts = quantiles(lambda: (np.asarray(c.columns[moderator], dtype=float) for c in chunks()),
-                         list(np.arange(1, bins) / bins))
+                         list(np.arange(1, bins) / bins), sorted_values=sorted_values)
         return cls(moderator, cuts)
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None:
         w = np.asarray(chunk.columns[self.moderator], dtype=float)
-        idx = np.searchsorted(self.cuts, w, side="left")
-        np.minimum.at(self.low, idx, w)
-        np.maximum.at(self.high, idx, w)
-        for j in np.unique(idx):  # bins, not rows
-            self.moments[j].add(resid[idx == j])
+        idx = bin_numbers(self.cuts, w)
+        for j in np.flatnonzero(np.bincount(idx, minlength=self.cuts.size + 1)):  # bins, not rows
+            rows = idx == j
+            wj = w[rows]
+            self.low[j] = min(self.low[j], float(wj.min()))
+            self.high[j] = max(self.high[j], float(wj.max()))
+            self.moments[j].add(resid[rows])
 
     def result(self) -> dict[str, Any]:
         """{moderator, bins: [{level, range, n, sd}], ratio} as the in-memory table gives them."""
