@@ -485,3 +485,125 @@ def test_coefficient_table_uses_the_null_imposed_p_of_product_terms() -> None:
     assert co.p[j] == fit.test_coefficients([j], 0.05).p == fit.extras["interaction_p"]
     other = [c for c in range(design.n_params) if c != j]
     np.testing.assert_array_equal(co.p[other], fit.estimate(np.eye(design.n_params)[other], 0.05).p)
+
+
+# ---- wide data: replicates in batches, rows in blocks -----------------------------------------------
+BLOCKED_PLAN = (23, 128)  # replicates per batch, rows per block: uneven last batch and last block
+
+
+def _force_blocks(monkeypatch: pytest.MonkeyPatch, plan: tuple[int, int] = BLOCKED_PLAN) -> None:
+    """Use the blocked kernel at any n, with small batches and blocks (as wide data would)."""
+    monkeypatch.setattr(wild_module, "MIN_BATCH", 10**9)
+    monkeypatch.setattr(wild_module, "_batch_plan", lambda kind, n: plan)
+
+
+@pytest.mark.parametrize("weights", ["rademacher", "mammen", "webb"])
+@pytest.mark.parametrize("formula", ["y ~ x * w", "y ~ x * w + z + I(z**2) + I(z**3)"])
+def test_blocked_kernel_matches_refit_loop(weights: str, formula: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Reference: the textbook restricted and unrestricted wild bootstraps refitted with statsmodels
+    # HC3 per replicate, with the weights the seed draws; rows split in blocks of 128 (300 rows).
+    _force_blocks(monkeypatch)
+    design = _design(formula, df=_frame(300, seed=4))
+    B = 99
+    fit = WildBootstrapBackend(replications=B, weights=weights).fit(design, seed=5)
+    assert fit.extras["row_blocks"] == 3 and fit.extras["replicate_batch"] == BLOCKED_PLAN[0]
+    assert fit.extras["kernel"] == ("expanded" if design.n_params <= 5 else "direct")
+    V = draw_weights(weights, design.n_obs, B, np.random.default_rng(5))
+    j = design.interaction_columns[0]
+    np.testing.assert_allclose(fit.null_t_star(j), _reference_null_t(design.X, design.y, j, V), rtol=1e-9)
+    L = design.slope_rows([{"w": 0.2}, {"w": 1.8}])
+    np.testing.assert_allclose(fit.t_star(L).T, _reference_unrestricted_t(design.X, design.y, L, V),
+                               rtol=1e-9, atol=1e-11)
+
+
+@pytest.mark.parametrize(("weights", "keep", "workers"), [("rademacher", True, 2), ("rademacher", False, 1),
+                                                           ("mammen", False, 2), ("webb", True, 1)])
+@pytest.mark.parametrize(("formula", "moderator"), [("y ~ x * w + z + I(z**2) + I(z**3)", "w"), ("y ~ x * g", "g")])
+def test_blocked_kernel_equals_one_block(weights: str, keep: bool, workers: int, formula: str, moderator: str,
+                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    # Sums over rows taken block by block equal the sums over all rows (common practice, no source):
+    # same seed, same draws and p-values, whether the fixed arrays are kept or rebuilt per batch and
+    # whatever the number of worker threads. Several product terms (categorical g) included.
+    design = _design(formula, moderator, df=_frame(300, seed=8))
+    be = WildBootstrapBackend(replications=199, weights=weights)
+    one = be.fit(design, seed=13)
+    assert one.extras["row_blocks"] == 1
+    _force_blocks(monkeypatch)
+    monkeypatch.setattr(wild_module, "KEEP_BYTES", 2**30 if keep else 0)
+    monkeypatch.setattr(wild_module, "_workers", lambda: workers)
+    got = be.fit(design, seed=13)
+    assert got.extras["row_blocks"] == 3
+    np.testing.assert_allclose(got.delta, one.delta, rtol=1e-9, atol=1e-12 * np.abs(one.delta).max())
+    np.testing.assert_allclose(got.meat, one.meat, rtol=1e-9, atol=1e-12 * np.abs(one.meat).max())
+    assert got.null.keys() == one.null.keys()
+    for cols, (b, m) in one.null.items():
+        np.testing.assert_allclose(got.null[cols][0], b, rtol=1e-9, atol=1e-12 * np.abs(b).max())
+        np.testing.assert_allclose(got.null[cols][1], m, rtol=1e-9, atol=1e-12 * np.abs(m).max())
+        assert got.null_p[cols] == one.null_p[cols]
+    np.testing.assert_array_equal(got.coefficients(0.05).p, one.coefficients(0.05).p)
+
+
+@pytest.mark.parametrize("weights", ["rademacher", "mammen", "webb"])
+def test_batch_weights_are_the_weights_the_seed_draws(weights: str) -> None:
+    # Batches keep the weights compactly (bits or one-byte codes) but give back, block by block,
+    # exactly the draws of draw_weights with the same generator (common practice, no source).
+    n, B = 300, 50
+    want = draw_weights(weights, n, B, np.random.default_rng(21))
+    rng = np.random.default_rng(21)
+    width = wild_module._weight_width(weights, n)
+    got = []
+    for a, b in wild_module._chunks(B, 17):
+        batch = wild_module._BatchWeights(weights, n, b - a, rng)
+        got.append(np.hstack([batch(r0, r1) for r0, r1 in wild_module._chunks(width, 128)])[:, :n])
+    np.testing.assert_array_equal(np.vstack(got), want)
+
+
+def test_default_plan_splits_wide_data_and_keeps_the_budgets() -> None:
+    # The sizing rule itself (common practice, no source): compact weights of a batch within
+    # BATCH_WEIGHT_BYTES, a block of doubles within BLOCK_BYTES, rows in whole 64-row words.
+    for kind in ("rademacher", "mammen"):
+        for n in (20_000, 10**6, 10**7):
+            batch, rows = wild_module._batch_plan(kind, n)
+            per_replicate = 8 * ((n + 63) // 64) if kind == "rademacher" else n
+            assert wild_module.MIN_BATCH <= batch <= wild_module.MAX_BATCH
+            assert batch == wild_module.MIN_BATCH or batch * per_replicate <= wild_module.BATCH_WEIGHT_BYTES
+            assert rows % 64 == 0 and 8 * batch * rows <= wild_module.BLOCK_BYTES
+
+
+def test_wide_data_use_the_blocked_kernel_and_match_refit_loop() -> None:
+    # At n = 16,000 a chunk of a million weights holds fewer than MIN_BATCH replicates, so the
+    # default plan splits the rows. Reference: statsmodels HC3 refits of the first 15 replicates.
+    df = _frame(16_000, seed=2)
+    design = _design(df=df)
+    fit = WildBootstrapBackend(replications=99).fit(design, seed=4)
+    assert fit.extras["row_blocks"] > 1
+    V = draw_weights("rademacher", design.n_obs, 15, np.random.default_rng(4))
+    j = design.interaction_columns[0]
+    np.testing.assert_allclose(fit.null_t_star(j)[:15], _reference_null_t(design.X, design.y, j, V), rtol=1e-9)
+    L = design.slope_rows([{"w": 1.0}])
+    np.testing.assert_allclose(fit.t_star(L).T[:15], _reference_unrestricted_t(design.X, design.y, L, V),
+                               rtol=1e-9, atol=1e-11)
+
+
+def test_blocked_progress_advances_per_batch(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The progress bar moves once per batch of replicates, and showing it changes no number.
+    _force_blocks(monkeypatch)
+    design = _design(df=_frame(300, seed=4))
+    quiet = WildBootstrapBackend(replications=99).fit(design, seed=3)
+    steps: list[int] = []
+
+    class Recorder:
+        def __init__(self, show: bool, total: int, label: str) -> None:
+            assert show and total == 99
+
+        def __enter__(self) -> object:
+            return steps.append
+
+        def __exit__(self, *exc: object) -> None:
+            return None
+
+    monkeypatch.setattr(wild_module, "PROGRESS_MIN_WORK", 0)
+    monkeypatch.setattr(wild_module, "_progress", Recorder)
+    loud = WildBootstrapBackend(replications=99).fit(design, seed=3, progress=True)
+    assert steps == [23, 23, 23, 23, 7]
+    np.testing.assert_array_equal(quiet.meat, loud.meat)

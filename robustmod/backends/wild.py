@@ -31,8 +31,12 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import os
 import time
+from collections import deque
 from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -40,6 +44,7 @@ import numpy as np
 from scipy import linalg
 
 from ..errors import InputError, option_error
+from ..kernels.chunks import rows_per_chunk
 from .base import (
     Backend,
     Estimates,
@@ -86,6 +91,18 @@ ROW_CHUNK_ELEMENTS = 4_000_000
 PROGRESS_MIN_WORK = 50_000_000
 #: The expanded kernel needs k(1 + k(k+1)/2) rows; above this the direct kernel is cheaper.
 EXPANDED_MAX_ROWS = 160
+#: Fewest replicates a chunk of CHUNK_ELEMENTS weights must hold; for wider data (n above about
+#: 15,600) the rows are split into blocks instead, since a chunk of one replicate is matrix–vector
+#: work (0.2 s per replicate at n = 10⁶, k = 7: B = 9999 took over half an hour).
+MIN_BATCH = 64
+#: Replicates per batch of the blocked kernel at most, and the bytes of one batch's compact
+#: weights (64 Rademacher signs per word, or a one-byte code per Mammen or Webb weight).
+MAX_BATCH = 256
+BATCH_WEIGHT_BYTES = 32 * 2**20
+#: Bytes of one block of weights (replicates × rows as doubles): about what a core's cache holds.
+BLOCK_BYTES = 2 * 2**20
+#: The blocked kernel keeps its fixed per-row arrays up to this size, else rebuilds them per batch.
+KEEP_BYTES = 512 * 2**20
 
 _SQRT5 = math.sqrt(5.0)
 #: Mammen (1993) two-point weights: mean 0, variance 1, third moment 1.
@@ -179,72 +196,298 @@ def _expanded_meat(G: np.ndarray, T: np.ndarray, sq: np.ndarray) -> tuple[np.nda
     return D, sq - 2.0 * cross + quad
 
 
+@dataclass
+class _Rows:
+    """The fixed per-row arrays of rows a … b − 1 of the weight width (rows from n on are padding)."""
+
+    a: int
+    b: int
+    e: int  # min(b, n): rows a … e − 1 are data rows
+    F_t: np.ndarray | None  # (b − a) × (columns of G), zero on padding rows
+    resid: list[np.ndarray]  # per source, (e − a,)
+    Pt: dict[int, np.ndarray]  # direct sources: (e − a) × m, P (one block) or P ⊙ ẽ (blocked)
+    Pe2: dict[int, np.ndarray]  # weights of non-unit square: (e − a) × m, P ⊙ ẽ²
+    At: np.ndarray | None = None  # (e − a) × k (one block)
+    Xt: np.ndarray | None = None  # k × (e − a)
+
+
+def _pair_gram(P: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """Tₚⱼₗ = Σᵢ Pₚᵢ XᵢⱼXᵢₗ as one matrix product (m × k²)."""
+    m, k = P.shape[0], X.shape[1]
+    W = (np.ascontiguousarray(P.T)[:, :, None] * X[:, None, :]).reshape(X.shape[0], m * k)
+    return (W.T @ X).reshape(m, k * k)
+
+
 class _Kernel:
-    """β* − β_base and M for chunks of weights, for several residual sources at once.
+    """β* − β_base and M for batches of weights, for several residual sources at once.
 
     Expanded form (a source needing few pairs m): with u = ẽ⊙v, D = Au and e* = u − XD,
     M_p = Σᵢ Pₚᵢ vᵢ²ẽᵢ² − 2 Σⱼ Dⱼ Σᵢ Pₚᵢ Xᵢⱼ uᵢ + Σⱼₗ DⱼDₗ Σᵢ Pₚᵢ XᵢⱼXᵢₗ with Pₚᵢ = A_{jᵢ}A_{lᵢ}ωᵢ,
     so one product of the weight chunk with a fixed (k + k·m) × n matrix gives everything
     (vᵢ² = 1 for Rademacher weights makes the first term a constant).
-    Direct form (many pairs, k(1 + m) > EXPANDED_MAX_ROWS): e* formed explicitly, M = (e*)² Pᵀ.
+    Direct form (many pairs, k(1 + m) > EXPANDED_MAX_ROWS): a first product gives D = Au; then
+    e* = u − XD is formed and M = (e*)² Pᵀ.
+
+    Blocked (``block_rows`` given, for wide data): the rows are split into blocks of that many
+    rows (a multiple of 64) and every sum over rows is accumulated block by block, so a batch of c
+    replicates needs c × block_rows weights at a time besides its k-vectors and pair sums. The
+    direct form then takes two passes over the blocks: the first gives D (its columns A ⊙ ẽ join
+    the expanded ones in one product), the second the cross term Σᵢ Pₚᵢ ẽᵢvᵢ(XD)ᵢ of the
+    expansion above, from (XD) ⊙ v times the fixed P ⊙ ẽ. The fixed per-row arrays of the blocks
+    are kept when they fit in ``keep_bytes``, else rebuilt for every batch. Without blocks the
+    operations are exactly those of one product over all rows.
     """
 
     def __init__(self, X: np.ndarray, A: np.ndarray, omega: np.ndarray, sources: list[_Source],
-                 width: int, unit_square: bool) -> None:
+                 width: int, unit_square: bool, *, block_rows: int | None = None,
+                 keep_bytes: int | None = None) -> None:
         n, k = X.shape
         self.n, self.k, self.width, self.unit_square = n, k, width, unit_square
-        self.Xt = np.ascontiguousarray(X.T)
-        self.At = np.ascontiguousarray(A.T)
-        jj, ll = _pair_index(k)
+        self.X, self.A, self.omega = X, A, omega
+        self.jj, self.ll = _pair_index(k)
         self.sources = sources
-        P = [A[jj[s.pairs]] * A[ll[s.pairs]] * omega for s in sources]  # m × n each
         self.expanded = [k * (1 + len(s.pairs)) <= EXPANDED_MAX_ROWS for s in sources]
-        blocks: list[np.ndarray] = []
-        self.T: dict[int, np.ndarray] = {}
-        self.S2: dict[int, np.ndarray] = {}
-        self.Pe2: dict[int, np.ndarray] = {}
-        self.Pt: dict[int, np.ndarray] = {}
+        self.single = block_rows is None or block_rows >= width
+        self.ranges = list(_chunks(width, width if block_rows is None or self.single else int(block_rows)))
+        self.direct = [i for i, ex in enumerate(self.expanded) if not ex]
+        # Columns of G = V·F: each expanded source's [A; Xⱼ·Pₚ] ⊙ ẽ, and (blocked) each direct one's A ⊙ ẽ.
         self.offsets: dict[int, tuple[int, int]] = {}
         row = 0
-        for i, (s, Pi) in enumerate(zip(sources, P, strict=False)):
-            if not self.expanded[i]:
-                self.Pt[i] = np.ascontiguousarray(Pi.T)
+        for i, s in enumerate(sources):
+            if self.expanded[i] or not self.single:
+                width_i = k * (1 + len(s.pairs)) if self.expanded[i] else k
+                self.offsets[i] = (row, row + width_i)
+                row += width_i
+        self.columns = row
+        # Sums over all rows: T (m × k²) and S2 = P ẽ² (m) of every source the expansion serves.
+        self.T: dict[int, np.ndarray] = {}
+        self.S2: dict[int, np.ndarray] = {}
+        for i, s in enumerate(sources):
+            if self.single and not self.expanded[i]:
                 continue
-            base, self.T[i] = _expanded_factor(A, X, Pi)
-            F = np.zeros((base.shape[0], width))
-            F[:, :n] = base * s.resid
+            for a, b in self.ranges:
+                e = min(b, n)
+                if e <= a:
+                    continue
+                Pi = self._pairs_rows(s, a, e)
+                if self.single:  # the one-product kernel's own sums
+                    T = np.einsum("pi,ij,il->pjl", Pi, X[a:e], X[a:e]).reshape(Pi.shape[0], k * k)
+                else:
+                    T = _pair_gram(Pi, X[a:e])
+                S2 = Pi @ s.resid[a:e] ** 2
+                self.T[i] = T if i not in self.T else self.T[i] + T
+                self.S2[i] = S2 if i not in self.S2 else self.S2[i] + S2
+        # Doubles per row of the fixed arrays: F, the residuals, P ⊙ ẽ of the direct sources and
+        # P ⊙ ẽ² (weights of non-unit square).
+        per_row = self.columns + len(sources) + sum(
+            len(s.pairs) for i, s in enumerate(sources) if not self.expanded[i] or not unit_square)
+        keep = self.single or (keep_bytes is not None and 8 * per_row * n <= keep_bytes)
+        self._kept = [self._rows(a, b) for a, b in self.ranges] if keep else None
+
+    def _pairs_rows(self, s: _Source, a: int, e: int) -> np.ndarray:
+        """Pₚᵢ = A_{jᵢ}A_{lᵢ}ωᵢ for the pairs of source ``s`` and rows a … e − 1 (m × (e − a))."""
+        A = self.A[:, a:e]
+        return A[self.jj[s.pairs]] * A[self.ll[s.pairs]] * self.omega[a:e]
+
+    def _rows(self, a: int, b: int) -> _Rows:
+        n, k = self.n, self.k
+        e = min(b, n)
+        A, X = self.A[:, a:e], self.X[a:e]
+        blocks: list[np.ndarray] = []
+        Pt: dict[int, np.ndarray] = {}
+        Pe2: dict[int, np.ndarray] = {}
+        for i, s in enumerate(self.sources):
+            Pi = self._pairs_rows(s, a, e)
+            r = s.resid[a:e]
+            if not self.unit_square and (self.expanded[i] or not self.single):
+                Pe2[i] = np.ascontiguousarray((Pi * r**2).T)
+            if not self.expanded[i]:
+                Pt[i] = np.ascontiguousarray(Pi.T if self.single else (Pi * r).T)
+                if self.single:
+                    continue
+            m = Pi.shape[0]
+            base = np.vstack([A, (X.T[:, None, :] * Pi[None, :, :]).reshape(k * m, e - a)]) \
+                if self.expanded[i] else A
+            F = np.zeros((base.shape[0], b - a))
+            F[:, :e - a] = base * r
             blocks.append(F)
-            self.offsets[i] = (row, row + F.shape[0])
-            row += F.shape[0]
-            self.S2[i] = Pi @ s.resid**2
-            self.Pe2[i] = np.ascontiguousarray((Pi * s.resid**2).T)
-        self.F_t = np.ascontiguousarray(np.vstack(blocks).T) if blocks else None  # width × rows
+        F_t = np.ascontiguousarray(np.vstack(blocks).T) if blocks else None
+        rows = _Rows(a, b, e, F_t, [s.resid[a:e] for s in self.sources], Pt, Pe2)
+        if self.single and self.direct:
+            rows.At, rows.Xt = np.ascontiguousarray(A.T), np.ascontiguousarray(X.T)
+        return rows
+
+    def _blocks(self) -> Iterator[_Rows]:
+        if self._kept is not None:
+            yield from self._kept
+        else:
+            for a, b in self.ranges:
+                yield self._rows(a, b)
 
     def run(self, V: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
         """(D, M) for every source from a chunk of weights V (c × width)."""
-        n = self.n
-        G = V @ self.F_t if self.F_t is not None else None
-        V2 = None if self.unit_square or G is None else np.square(V[:, :n])
+        return self.batch(V.shape[0], lambda a, b: V if self.single else V[:, a:b])
+
+    def batch(self, c: int, weights: Callable[[int, int], np.ndarray]) -> list[tuple[np.ndarray, np.ndarray]]:
+        """(D, M) for every source for c replicates whose weights of rows a … b − 1 are ``weights(a, b)``
+        (c × (b − a); asked once per block and pass)."""
+        G, sq, D = self._first_pass(c, weights)
+        M = self._second_pass(c, weights, D) if self.direct else {}
         out = []
-        for i, s in enumerate(self.sources):
-            if self.expanded[i]:
-                a, b = self.offsets[i]
-                assert G is not None  # an expanded source added its block to F_t
-                sq = self.S2[i][None, :] if V2 is None else V2 @ self.Pe2[i]
-                out.append(_expanded_meat(G[:, a:b], self.T[i], sq))
+        for i in range(len(self.sources)):
+            s2 = sq[i] if i in sq else self.S2.get(i)
+            if i in self.direct:
+                if not self.single:  # M held the cross term: expand as in the class docstring
+                    assert s2 is not None
+                    quad = (D[i][:, :, None] * D[i][:, None, :]).reshape(c, self.k**2) @ self.T[i].T
+                    M[i] = s2 - 2.0 * M[i] + quad
+                out.append((D[i], M[i]))
                 continue
-            U = V[:, :n] * s.resid
-            D = U @ self.At
-            E = D @ self.Xt
-            np.subtract(U, E, out=E)
-            np.square(E, out=E)
-            out.append((D, E @ self.Pt[i]))
+            a, b = self.offsets[i]
+            assert G is not None and s2 is not None  # an expanded source has its columns in G
+            out.append(_expanded_meat(G[:, a:b], self.T[i], s2))
         return out
+
+    def _first_pass(self, c: int, weights: Callable[[int, int], np.ndarray]
+                    ) -> tuple[np.ndarray | None, dict[int, np.ndarray], dict[int, np.ndarray]]:
+        """G = V·F, Σ (P ⊙ ẽ²)·v² (weights of non-unit square) and D of the direct sources."""
+        G = np.zeros((c, self.columns)) if self.columns else None
+        sq = {i: np.zeros((c, len(self.sources[i].pairs))) for i in self.offsets} if not self.unit_square else {}
+        D = {i: np.zeros((c, self.k)) for i in self.direct} if self.single else {}
+        for blk in self._blocks():
+            V = weights(blk.a, blk.b)
+            if G is not None and blk.F_t is not None:
+                G += V @ blk.F_t
+            nb = blk.e - blk.a
+            if sq:
+                V2 = np.square(V[:, :nb])
+                for i in sq:
+                    sq[i] += V2 @ blk.Pe2[i]
+            for i in D:
+                assert blk.At is not None  # kept for the direct form in one block
+                D[i] += (V[:, :nb] * blk.resid[i]) @ blk.At
+        if not self.single:
+            assert G is not None or not self.direct  # a blocked direct source has its D columns in G
+            for i in self.direct:
+                a, b = self.offsets[i]
+                D[i] = np.ascontiguousarray(G[:, a:b])  # type: ignore[index]
+        return G, sq, D
+
+    def _second_pass(self, c: int, weights: Callable[[int, int], np.ndarray], D: dict[int, np.ndarray]
+                     ) -> dict[int, np.ndarray]:
+        """Direct sources: M = (e*)² Pᵀ (one block), or the cross term Σᵢ (P ⊙ ẽ)ₚᵢ vᵢ (XD)ᵢ (blocked)."""
+        M = {i: np.zeros((c, len(self.sources[i].pairs))) for i in self.direct}
+        scratch: dict[int, np.ndarray] = {}  # one work array per block width, reused
+        for blk in self._blocks():
+            V = weights(blk.a, blk.b)
+            nb = blk.e - blk.a
+            for i in self.direct:
+                if self.single:
+                    assert blk.Xt is not None  # kept for the direct form in one block
+                    U = V[:, :nb] * blk.resid[i]
+                    E = D[i] @ blk.Xt
+                    np.subtract(U, E, out=E)
+                    np.square(E, out=E)
+                else:
+                    E = scratch.setdefault(nb, np.empty((c, nb)))
+                    np.matmul(D[i], self.X[blk.a:blk.e].T, out=E)
+                    np.multiply(E, V[:, :nb], out=E)
+                M[i] += E @ blk.Pt[i]
+        return M
 
 
 def _chunks(total: int, size: int) -> Iterator[tuple[int, int]]:
     for start in range(0, total, size):
         yield start, min(total, start + size)
+
+
+def _batch_plan(kind: str, n: int) -> tuple[int, int]:
+    """(replicates per batch, rows per block) of the blocked kernel, from the memory budgets.
+
+    A batch holds its weights compactly (:class:`_BatchWeights`), so BATCH_WEIGHT_BYTES bounds it;
+    a block of it (batch × rows doubles) fits in BLOCK_BYTES; rows come in whole 64-row words.
+    """
+    per_replicate = 8 * ((n + 63) // 64) if kind == "rademacher" else n
+    batch = int(min(MAX_BATCH, max(MIN_BATCH, BATCH_WEIGHT_BYTES // per_replicate)))
+    rows = rows_per_chunk(BLOCK_BYTES, batch, factor=1)
+    return batch, max(64, rows // 64 * 64)
+
+
+class _BatchWeights:
+    """The weights of one batch of replicates, drawn exactly as :func:`_weight_chunk` draws them
+    (same stream, same values) but kept compact and expanded to doubles block by block."""
+
+    def __init__(self, kind: str, n: int, reps: int, rng: np.random.Generator) -> None:
+        self.kind, self.reps = kind, reps
+        if kind == "rademacher":
+            self.codes = rng.bit_generator.random_raw((reps, (n + 63) // 64))
+            return
+        self.codes = np.empty((reps, n), dtype=np.uint8)
+        for r in range(reps):  # row by row: the same stream as one reps × n draw
+            u = rng.random(n)
+            self.codes[r] = (u >= MAMMEN_P_LOW) if kind == "mammen" else np.minimum(6.0 * u, 5.0)
+        self.values = MAMMEN_VALUES if kind == "mammen" else WEBB_VALUES
+
+    def __call__(self, a: int, b: int) -> np.ndarray:
+        """Weights of rows a … b − 1 (a and b multiples of 64, or b the width), reps × (b − a)."""
+        if self.kind == "rademacher":
+            bits = self.codes[:, a // 64:b // 64].view(np.uint8)
+            return np.take(_SIGN_TABLE, bits, axis=0).reshape(self.reps, -1)
+        return self.values[self.codes[:, a:b]]
+
+
+def _workers() -> int:
+    """Threads for the blocked kernel: the cores this process may use, at most the BLAS threads
+    allowed (an engine worker limited to one BLAS thread gets one)."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover  (not Linux)
+        cores = os.cpu_count() or 1
+    try:
+        from threadpoolctl import threadpool_info  # noqa: PLC0415  (optional; only the speed changes)
+    except ImportError:  # pragma: no cover
+        return max(1, cores)
+    blas = [int(p.get("num_threads", 1)) for p in threadpool_info() if p.get("user_api") == "blas"]
+    return max(1, min([cores, *blas]))
+
+
+def _one_blas_thread() -> AbstractContextManager[Any]:
+    """One BLAS thread per call while the batches run in parallel threads: the products of a block
+    are small, and threads inside them cost more in hand-over than they save (far more on a busy
+    machine: measured 10–40× slower with two BLAS threads and one core taken by other work)."""
+    try:
+        from threadpoolctl import threadpool_limits  # noqa: PLC0415  (optional; only the speed changes)
+    except ImportError:  # pragma: no cover
+        return nullcontext()
+    return threadpool_limits(1, user_api="blas")
+
+
+def _run_blocked(kernel: _Kernel, kind: str, n: int, B: int, batch: int, rng: np.random.Generator,
+                 store: Callable[[int, int, list[tuple[np.ndarray, np.ndarray]]], None],
+                 advance: Callable[[int], None]) -> None:
+    """All B replicates through the blocked kernel, batch after batch.
+
+    Weights are drawn here in replicate order (so the stream is consumed as by one B × n draw);
+    the batches run on worker threads, at most one more batch alive than there are workers.
+    """
+    workers = _workers()
+    with _one_blas_thread():
+        if workers == 1:
+            for a, b in _chunks(B, batch):
+                store(a, b, kernel.batch(b - a, _BatchWeights(kind, n, b - a, rng)))
+                advance(b - a)
+            return
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            pending: deque[tuple[int, int, Future[list[tuple[np.ndarray, np.ndarray]]]]] = deque()
+            for a, b in _chunks(B, batch):
+                pending.append((a, b, pool.submit(kernel.batch, b - a, _BatchWeights(kind, n, b - a, rng))))
+                while len(pending) > workers:
+                    a0, b0, done = pending.popleft()
+                    store(a0, b0, done.result())
+                    advance(b0 - a0)
+            for a0, b0, done in pending:
+                store(a0, b0, done.result())
+                advance(b0 - a0)
 
 
 def _share_at_least(stat_star: np.ndarray, stat: np.ndarray) -> np.ndarray:
@@ -599,22 +842,30 @@ class WildBootstrapBackend(Backend):
         for cols in null_sets:
             sources.append(_Source(self._restricted(X, cols, y), _pairs_within(cols, k)))
         width = n if enum else _weight_width(self.weights, n)
-        kernel = _Kernel(X, A, omega, sources, width, unit_square=self.weights == "rademacher")
+        blocked = not enum and CHUNK_ELEMENTS // width < MIN_BATCH
+        batch, block_rows = _batch_plan(self.weights, n) if blocked else (max(1, CHUNK_ELEMENTS // width), None)
+        kernel = _Kernel(X, A, omega, sources, width, unit_square=self.weights == "rademacher",
+                         block_rows=block_rows, keep_bytes=KEEP_BYTES)
         delta = np.empty((B, k))
         meat = np.empty((B, k * (k + 1) // 2))
         null = {cols: (np.empty((B, len(cols))), np.empty((B, len(s.pairs))))
                 for cols, s in zip(null_sets, sources[1:], strict=False)}
+
+        def store(a: int, b: int, results: list[tuple[np.ndarray, np.ndarray]]) -> None:
+            delta[a:b], meat[a:b] = results[0]
+            for cols, (D, M) in zip(null_sets, results[1:], strict=False):
+                null[cols][0][a:b] = D[:, list(cols)]
+                null[cols][1][a:b] = M
+
         rng = np.random.default_rng(seed)
-        step = max(1, CHUNK_ELEMENTS // width)
         with _progress(progress and n * B * len(sources) >= PROGRESS_MIN_WORK, B, self.label) as advance:
-            for a, b in _chunks(B, step):
-                V = sign_patterns(n, a, b) if enum else _weight_chunk(self.weights, n, b - a, rng)
-                results = kernel.run(V)
-                delta[a:b], meat[a:b] = results[0]
-                for cols, (D, M) in zip(null_sets, results[1:], strict=False):
-                    null[cols][0][a:b] = D[:, list(cols)]
-                    null[cols][1][a:b] = M
-                advance(b - a)
+            if blocked:
+                _run_blocked(kernel, self.weights, n, B, batch, rng, store, advance)
+            else:
+                for a, b in _chunks(B, batch):
+                    V = sign_patterns(n, a, b) if enum else _weight_chunk(self.weights, n, b - a, rng)
+                    store(a, b, kernel.run(V))
+                    advance(b - a)
         interval = f"wild bootstrap-t ({WEIGHT_LABELS[self.weights]}, B = {B})"
         reliable = True
         alpha = float(design.spec.alpha)
@@ -631,6 +882,7 @@ class WildBootstrapBackend(Backend):
             "sign_patterns": B if enum else None, "enumerated": enum,
             "interaction_p": fit.null_p[all_cols], "seconds": time.perf_counter() - t0,
             "kernel": "expanded" if kernel.expanded[0] else "direct",
+            "replicate_batch": batch, "row_blocks": len(kernel.ranges),
         })
         return fit
 
