@@ -307,7 +307,9 @@ def null_outcomes(design: Design, v: np.ndarray, outcome: str) -> tuple[np.ndarr
     e, h, _ = _ols_parts(design)
     Ystar = mu0[:, None] + (e / np.maximum(1.0 - h, 1e-15))[:, None] * v
     if outcome == "inverse-normal":
-        Ystar = transform_outcome(Ystar, outcome, "")
+        # Rows with equal covariates and outcome give equal y* up to rounding (~1e-14 on this unit scale);
+        # rounding first keeps them tied, as the observed outcome's ranks tie them.
+        Ystar = transform_outcome(np.round(Ystar, 10), outcome, "")
     Q, _ = design.qr
     return Ystar, Ystar - Q @ (Q.T @ Ystar)
 
@@ -323,6 +325,8 @@ def hc3_product(design: Design, Ystar: np.ndarray, Estar: np.ndarray) -> tuple[n
 
 #: Null outcomes per block of the weighted fits (bounds the R × k × k and n × block temporaries).
 NULL_BLOCK = 128
+#: Smallest Cholesky pivot of Qᵀ W Q for a kept-row design counted as full rank.
+RANK_TOL = 1e-8
 
 
 def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -362,6 +366,10 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
                     L[r] = np.linalg.cholesky(G[r])
                 except np.linalg.LinAlgError:
                     ok[r], L[r] = False, eye
+        # The kept rows' Q has singular values in [0, 1]; one near 0 is a direction of X the kept rows lost
+        # (e.g. a dummy whose 1s were all dropped), which rounding can let through the factorisation.
+        ok &= np.diagonal(L, axis1=1, axis2=2).min(axis=1) > RANK_TOL
+        L[~ok] = eye
         Linv = linalg.solve_triangular(L, np.broadcast_to(eye, (m, k, k)), lower=True, check_finite=False)
         S = np.einsum("rjk,rjl->rkl", Linv, Linv)  # L⁻ᵀ L⁻¹
         h = QQ @ S.reshape(m, k * k).T  # n × m
