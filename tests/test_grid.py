@@ -17,6 +17,7 @@ from robustmod.engines import make_engine
 from robustmod.errors import InputError
 from robustmod.grid import (
     MAX_SPECIFICATIONS,
+    blom_scores,
     flag_rows,
     hc3_product,
     hc3_product_kept,
@@ -187,3 +188,12 @@ def test_inferential_test_size_on_null_data() -> None:
     assert share_rate <= SIZE_BOUND, share_rate
     assert median_rate <= SIZE_BOUND, median_rate
     assert share_rate + median_rate > 0  # a test that never rejects is no test either
+
+
+def test_blom_scores_match_scipy_ranks() -> None:
+    # Reference library: scipy's average ranks (rankdata) through Φ⁻¹((r − 3/8)/(n + 1/4)) (Blom 1958), column
+    # by column, on invented values with many ties and without.
+    rng = np.random.default_rng(4)
+    for Y in (np.round(rng.normal(size=(80, 30)), 1), rng.normal(size=(80, 30)), rng.integers(0, 3, size=25) * 1.0):
+        ref = special.ndtri((stats.rankdata(Y, axis=0) - 0.375) / (Y.shape[0] + 0.25))
+        assert np.allclose(blom_scores(Y), ref, rtol=0, atol=1e-14)
