@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import itertools
 import time
+import warnings
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
@@ -176,7 +177,10 @@ def make_plan(spec: ModelSpec, choices: Mapping[str, Any], *, backends: Sequence
 
 # ---- one specification -----------------------------------------------------------------------
 def transform_outcome(y: np.ndarray, rule: str, name: str) -> np.ndarray:
-    """none; log (y > 0); log1p (y > −1); inverse-normal: Φ⁻¹((r − 3/8)/(n + 1/4)), r the average rank (Blom 1958)."""
+    """none; log (y > 0); log1p (y > −1); inverse-normal: Φ⁻¹((r − 3/8)/(n + 1/4)), r the average rank (Blom 1958).
+
+    ``y`` is one outcome (n) or several (n × R, each column transformed on its own).
+    """
     if rule == "none":
         return y
     if rule == "log":
@@ -190,8 +194,35 @@ def transform_outcome(y: np.ndarray, rule: str, name: str) -> np.ndarray:
         if bad:
             raise InputError(f"The outcome rule 'log1p' needs {name} > −1, but {bad} of {y.size} rows are −1 or below.")
         return np.log1p(y)
-    r = stats.rankdata(y)
-    return special.ndtri((r - 0.375) / (y.size + 0.25))
+    return blom_scores(y)
+
+
+def blom_scores(y: np.ndarray) -> np.ndarray:
+    """Φ⁻¹((r − 3/8)/(n + 1/4)) with r the average rank of each value down axis 0 (Blom 1958).
+
+    One sort per column (ties share their average rank, so their order in the sort does not
+    matter), the scores looked up in a table of the 2n − 1 possible ranks 1, 1.5, …, n: R null
+    outcomes cost about one sort of n × R values.
+    """
+    Y = np.ascontiguousarray(y.reshape(y.shape[0], -1).T)  # one row per column of y: sorts along rows
+    n = Y.shape[1]
+    order = np.argsort(Y, axis=1)
+    srt = np.take_along_axis(Y, order, axis=1)
+    idx = np.broadcast_to(np.arange(n), Y.shape)
+    starts = np.ones(Y.shape, dtype=bool)  # where a run of equal values begins
+    starts[:, 1:] = srt[:, 1:] != srt[:, :-1]
+    if starts.all():  # no ties: the rank is the place in the sort
+        twice = 2 * idx
+    else:  # 0-based first + last place of the run = 2r − 2 for the run's average rank r
+        ends = np.ones(Y.shape, dtype=bool)
+        ends[:, :-1] = starts[:, 1:]
+        first = np.maximum.accumulate(np.where(starts, idx, 0), axis=1)
+        last = np.minimum.accumulate(np.where(ends, idx, n - 1)[:, ::-1], axis=1)[:, ::-1]
+        twice = first + last
+    table = special.ndtri((np.arange(2, 2 * n + 1) / 2 - 0.375) / (n + 0.25))
+    out = np.empty(Y.shape)
+    np.put_along_axis(out, order, table[twice], axis=1)
+    return out.T.reshape(y.shape)
 
 
 def _ols_parts(design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -206,25 +237,37 @@ def _ols_parts(design: Design) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def outlier_mask(design: Design, rule: str) -> np.ndarray:
-    """Rows flagged on the OLS fit: |externally studentized residual| > 3, or Cook's distance > 4/n.
-
-    t_i = e_i / (s_(i) √(1 − h_i)), s_(i)² = ((n − k)s² − e_i²/(1 − h_i)) / (n − k − 1);
-    D_i = e_i² h_i / (k s² (1 − h_i)²) (Cook 1977; Belsley, Kuh & Welsch 1980).
-    """
+    """Rows flagged on the OLS fit: |externally studentized residual| > 3, or Cook's distance > 4/n
+    (the formulas are those of :func:`flag_rows`)."""
     if rule == "none":
         return np.zeros(design.n_obs, dtype=bool)
     e, h, _ = _ols_parts(design)
-    n, k = design.X.shape
-    s2 = float(e @ e) / (n - k)
-    one_minus_h = np.maximum(1.0 - h, 1e-15)
+    return flag_rows(e[:, None], h, design.n_params, rule)[:, 0]
+
+
+def flag_rows(E: np.ndarray, h: np.ndarray, k: int, rule: str) -> np.ndarray:
+    """Outlier flags (n × R) for R outcomes fitted by OLS on one n × k model matrix: residuals E, leverages h.
+
+    t_i = e_i / (s_(i) √(1 − h_i)), s_(i)² = ((n − k)s² − e_i²/(1 − h_i)) / (n − k − 1);
+    D_i = e_i² h_i / (k s² (1 − h_i)²) (Cook 1977; Belsley, Kuh & Welsch 1980).
+    The observed data and every null dataset are flagged by this one function.
+    """
+    n = E.shape[0]
+    if rule == "none":
+        return np.zeros(E.shape, dtype=bool)
+    e2 = E**2
+    s2 = e2.sum(axis=0) / (n - k)
+    one_minus_h = np.maximum(1.0 - h, 1e-15)[:, None]
     if rule == "studentized-3":
-        s2_i = np.maximum(((n - k) * s2 - e**2 / one_minus_h) / (n - k - 1), 1e-300)
-        return np.abs(e / np.sqrt(s2_i * one_minus_h)) > 3.0
-    return (e**2 * h / (k * s2 * one_minus_h**2)) > 4.0 / n
+        s2_i = np.maximum(((n - k) * s2 - e2 / one_minus_h) / (n - k - 1), 1e-300)
+        return np.abs(E) / np.sqrt(s2_i * one_minus_h) > 3.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return (e2 * h[:, None] / (k * s2 * one_minus_h**2)) > 4.0 / n
 
 
-def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Design) -> tuple[Design, np.ndarray]:
-    """The specification's design (outcome transformed, outliers removed) and its 0-based source rows.
+def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Design) -> tuple[Design, Design]:
+    """The specification's design (outcome transformed, outliers removed) and its design before the
+    outlier rule (outcome transformed, every row).
 
     ``base`` is the design of the same covariates with no outcome or outlier rule: the rules only
     change y (same X, same QR) or drop rows (a new design on the kept rows).
@@ -232,16 +275,14 @@ def _design_for(frame: pd.DataFrame, plan: GridPlan, s: Specification, base: Des
     design = base
     if s.outcome != "none":
         design = replace(base, y=transform_outcome(base.y, s.outcome, plan.base.response))  # same X, same QR
+    before = design
     flagged = outlier_mask(design, s.outliers)
-    rows = design.data.frame.index.to_numpy()
     if flagged.any():
-        keep = rows[~flagged]
-        sub = frame.iloc[keep].copy()
+        sub = frame.iloc[design.data.frame.index.to_numpy()[~flagged]].copy()
         if s.outcome != "none":
             sub[plan.base.response] = design.y[~flagged]
         design = build_design(sub, base.spec)
-        rows = keep[design.data.frame.index.to_numpy()]
-    return design, rows
+    return design, before
 
 
 def _linear(design: Design, cache: dict[int, tuple[np.ndarray, Any]]) -> tuple[Any]:
@@ -275,43 +316,133 @@ def _answer(design: Design, bid: str, options: Mapping[str, Any], seed: int, alp
             "reason": None if fit.reliable else "failed its own diagnostics"}
 
 
-def _null_draws(design: Design, rows: np.ndarray, v: np.ndarray, alpha: float) -> tuple[np.ndarray, np.ndarray]:
-    """HC3 estimates and rejections of the product term on R null datasets y* = μ̂₀ + ê/(1 − h) ⊙ v.
+def null_outcomes(design: Design, v: np.ndarray, outcome: str) -> tuple[np.ndarray, np.ndarray]:
+    """R null outcomes Y* (n × R) of one specification before its outlier rule, and their OLS residuals.
 
-    μ̂₀ is the fit without the product term(s); ê are the full model's residuals, so each
-    dataset keeps the specification's variance pattern (a wild null, Rademacher v per source row).
-    The residuals are divided by 1 − hᵢ, so that the null spread of each estimate, Σ aᵢ² êᵢ²/(1 − hᵢ)²,
-    is its HC3 variance: raw residuals are shrunk towards zero, and with them the null spread was
-    too narrow and the test rejected too often (validation/grid_null.py).
+    y* = μ̂₀ + ê/(1 − h) ⊙ v: μ̂₀ is the fit without the product term(s) and ê the full model's
+    residuals (the specification's variance pattern, a wild null with Rademacher signs v, n × R).
+    Dividing by 1 − hᵢ makes the null spread of each estimate, Σ aᵢ² êᵢ²/(1 − hᵢ)², its HC3 variance;
+    raw residuals are shrunk towards zero and made the null too narrow (validation/grid_null.py).
+    ``design`` carries the transformed outcome; log and log1p are undone and redone exactly, so y* is
+    their outcome, but the inverse-normal rule is ranks, so y* is ranked again as the observed outcome was.
     """
     from scipy import linalg  # noqa: PLC0415
 
-    cols = list(design.interaction_columns)
-    keep = [j for j in range(design.X.shape[1]) if j not in cols]
+    keep = [j for j in range(design.X.shape[1]) if j not in design.interaction_columns]
     X0 = design.X[:, keep]
     mu0 = X0 @ linalg.lstsq(X0, design.y, check_finite=False)[0]
-    e, h, A = _ols_parts(design)
-    u = e / np.maximum(1.0 - h, 1e-15)
-    Ystar = mu0[:, None] + u[:, None] * v[rows]
+    e, h, _ = _ols_parts(design)
+    Ystar = mu0[:, None] + (e / np.maximum(1.0 - h, 1e-15))[:, None] * v
+    if outcome == "inverse-normal":
+        # Rows with equal covariates and outcome give equal y* up to rounding (~1e-14 on this unit scale);
+        # rounding first keeps them tied, as the observed outcome's ranks tie them.
+        Ystar = transform_outcome(np.round(Ystar, 10), outcome, "")
     Q, _ = design.qr
-    Estar = Ystar - Q @ (Q.T @ Ystar)
+    return Ystar, Ystar - Q @ (Q.T @ Ystar)
+
+
+def hc3_product(design: Design, Ystar: np.ndarray, Estar: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """HC3 estimate, SE and residual df of the product term for R outcomes on every row of ``design``."""
+    e, h, A = _ols_parts(design)
+    a = A[design.interaction_columns[0]]
     n, k = design.X.shape
-    a = A[cols[0]]
-    est = a @ Ystar
     se = np.sqrt(((a / np.maximum(1.0 - h, 1e-15)) ** 2) @ (Estar**2))
+    return a @ Ystar, se, np.full(Ystar.shape[1], float(n - k))
+
+
+#: Null outcomes per block of the weighted fits (bounds the R × k × k and n × block temporaries).
+NULL_BLOCK = 128
+#: Smallest Cholesky pivot of Qᵀ W Q for a kept-row design counted as full rank.
+RANK_TOL = 1e-8
+
+
+def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """HC3 estimate, SE and residual df of the product term for R outcomes, each on its own kept rows.
+
+    ``kept`` (n × R, 0/1) are row weights W_r. In the basis of the thin QR X = QR the fit on the kept
+    rows is G_r = Qᵀ W_r Q = L_r L_rᵀ (Cholesky; G_r is the identity less the dropped rows' qᵢqᵢᵀ, so it
+    is well conditioned, and no inverse of XᵀWX is formed), S_r = L_r⁻ᵀ L_r⁻¹ (triangular solves),
+    γ_r = S_r Qᵀ W_r y_r, leverages h_ri = q_iᵀ S_r q_i, coefficient rows a_r = W_r Q S_r R⁻ᵀ e_c and
+    the HC3 variance Σᵢ w_ri a_ri² e_ri² / (1 − h_ri)² (MacKinnon & White 1985) with e_r = y_r − Q γ_r.
+    A resample whose kept rows leave the design rank-deficient gets NaN (it is not used).
+    """
+    from scipy import linalg  # noqa: PLC0415
+
+    Q, Rfac = design.qr
+    n, k = Q.shape
+    QQ = (Q[:, :, None] * Q[:, None, :]).reshape(n, k * k)
+    unit = np.zeros(k)
+    unit[design.interaction_columns[0]] = 1.0
+    g = linalg.solve_triangular(Rfac, unit, trans="T", check_finite=False)  # R⁻ᵀ e_c
+    R_all = Ystar.shape[1]
+    est, se, df = np.full(R_all, np.nan), np.full(R_all, np.nan), np.full(R_all, np.nan)
+    eye = np.eye(k)
+    for start in range(0, R_all, NULL_BLOCK):
+        cols = slice(start, start + NULL_BLOCK)
+        W = kept[:, cols].astype(float)
+        Y = Ystar[:, cols]
+        m = W.shape[1]
+        G = (QQ.T @ W).T.reshape(m, k, k)
+        ok = np.ones(m, dtype=bool)
+        L = np.empty_like(G)
+        try:
+            L[:] = np.linalg.cholesky(G)
+        except np.linalg.LinAlgError:  # a rank-deficient resample fails the batch: factor one by one
+            for r in range(m):
+                try:
+                    L[r] = np.linalg.cholesky(G[r])
+                except np.linalg.LinAlgError:
+                    ok[r], L[r] = False, eye
+        # The kept rows' Q has singular values in [0, 1]; one near 0 is a direction of X the kept rows lost
+        # (e.g. a dummy whose 1s were all dropped), which rounding can let through the factorisation.
+        ok &= np.diagonal(L, axis1=1, axis2=2).min(axis=1) > RANK_TOL
+        L[~ok] = eye
+        Linv = linalg.solve_triangular(L, np.broadcast_to(eye, (m, k, k)), lower=True, check_finite=False)
+        S = np.einsum("rjk,rjl->rkl", Linv, Linv)  # L⁻ᵀ L⁻¹
+        h = QQ @ S.reshape(m, k * k).T  # n × m
+        gamma = np.einsum("rkl,lr->rk", S, Q.T @ (W * Y))
+        E = Y - Q @ gamma.T
+        a = W * (Q @ np.einsum("rkl,l->kr", S, g))
+        est[cols] = np.sum(a * Y, axis=0)
+        se[cols] = np.sqrt(np.sum((a * E / np.maximum(1.0 - h, 1e-15)) ** 2, axis=0))
+        df[cols] = W.sum(axis=0) - k
+        bad = ~ok | (df[cols] < 1)
+        est[cols][bad] = np.nan
+        se[cols][bad] = np.nan
+    return est, se, df
+
+
+def _null_draws(base: Design, outcome: str, rule: str, v: np.ndarray, alpha: float,
+                cache: dict[str, tuple[np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray]:
+    """HC3 estimates and rejections of the product term in R null datasets of one specification.
+
+    ``base`` is the specification before its outlier rule (its outcome transformed, every row); the
+    null outcomes (:func:`null_outcomes`) are drawn once per outcome rule and shared by the outlier
+    rules, and each outlier rule is applied anew in every null dataset (:func:`flag_rows` on the OLS
+    fit of that dataset), as it was on the observed data.
+    """
+    if outcome not in cache:
+        cache[outcome] = null_outcomes(base, v, outcome)
+    Ystar, Estar = cache[outcome]
+    if rule == "none":
+        est, se, df = hc3_product(base, Ystar, Estar)
+    else:
+        _, h, _ = _ols_parts(base)
+        est, se, df = hc3_product_kept(base, Ystar, ~flag_rows(Estar, h, base.n_params, rule))
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = 2 * stats.t.sf(np.abs(est / se), n - k)
+        p = 2 * stats.t.sf(np.abs(est / se), df)
     return est, p < alpha
 
 
 def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError, seed: int,
-             v: np.ndarray | None, cache: dict[int, tuple[np.ndarray, Any]]) -> dict[str, Any]:
+             v: np.ndarray | None, cache: dict[int, tuple[np.ndarray, Any]],
+             nulls: dict[str, tuple[np.ndarray, np.ndarray]]) -> dict[str, Any]:
     plan: GridPlan = state["plan"]
     out: dict[str, Any] = {"index": s.index, "choices": s.choices()}
     try:
         if isinstance(base, InputError):
             raise base
-        design, rows = _design_for(state["frame"], plan, s, base)
+        design, before = _design_for(state["frame"], plan, s, base)
     except InputError as exc:
         out.update(rows_used=0, reason=str(exc), backends={b: None for b in plan.backends})
         return out
@@ -321,7 +452,8 @@ def _run_one(state: dict[str, Any], s: Specification, base: Design | InputError,
     out["backends"] = {b: _answer(design, b, plan.options.get(b, {}), int(sd), plan.base.alpha, linear)
                        for b, sd in zip(plan.backends, seeds, strict=False)}
     if len(design.interaction_columns) == 1 and v is not None:
-        est, rej = _null_draws(design, rows, v, plan.base.alpha)
+        signs = v[before.data.frame.index.to_numpy()]  # one sign per source row
+        est, rej = _null_draws(before, s.outcome, s.outliers, signs, plan.base.alpha, nulls)
         out["null"] = {"estimate": est, "rejected": rej}
     return out
 
@@ -361,7 +493,9 @@ def _run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tupl
         rng = np.random.default_rng(state["null_seed"])
         v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
     cache: dict[int, tuple[np.ndarray, Any]] = {}
-    return [_run_one(state, state["specs"][i], base, sd, v, cache) for i, sd in zip(members, seeds, strict=False)]
+    nulls: dict[str, tuple[np.ndarray, np.ndarray]] = {}  # null outcomes per outcome rule, shared by the outlier rules
+    return [_run_one(state, state["specs"][i], base, sd, v, cache, nulls)
+            for i, sd in zip(members, seeds, strict=False)]
 
 
 # ---- summaries ---------------------------------------------------------------------------
@@ -413,8 +547,9 @@ def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any
     and the median estimate, against their distributions over null datasets.
 
     The dominant direction is the sign of the median estimate, found anew in every null dataset so that
-    observed and null statistics are chosen alike; p = (1 + #{null ≥ observed}) / (1 + R), the median
-    compared in absolute value (two-sided).
+    observed and null statistics are chosen alike; p = (1 + #{null ≥ observed}) / (1 + R), ties counted,
+    the median compared in absolute value (two-sided). A null dataset in which no specification could be
+    fitted (an outlier rule leaving a rank-deficient design everywhere) counts as at least as extreme.
     """
     have = [sp for sp in specs if "null" in sp and _usable(sp, NULL_TEST_BACKEND)]
     if not have:
@@ -426,7 +561,9 @@ def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any
     share_obs = float(np.mean(obs_sup & (np.sign(obs_est) == sign)))
     null_est = np.vstack([sp["null"]["estimate"] for sp in have])  # specs × R
     null_rej = np.vstack([sp["null"]["rejected"] for sp in have])
-    med_null = np.median(null_est, axis=0)
+    with warnings.catch_warnings():  # a null dataset where every specification failed has no median
+        warnings.simplefilter("ignore", RuntimeWarning)
+        med_null = np.nanmedian(null_est, axis=0)
     null_sign = np.where(med_null >= 0, 1.0, -1.0)
     share_null = np.mean(null_rej & (np.sign(null_est) == null_sign), axis=0)
     R = null_est.shape[1]
@@ -436,11 +573,12 @@ def inferential_test(specs: list[dict[str, Any]], alpha: float) -> dict[str, Any
         "share_supported": share_obs, "share_supported_null_median": float(np.median(share_null)),
         "share_supported_p": float((1 + np.sum(share_null >= share_obs)) / (1 + R)),
         "median_estimate": med_obs, "median_estimate_null_median": float(np.median(med_null)),
-        "median_estimate_p": float((1 + np.sum(np.abs(med_null) >= abs(med_obs))) / (1 + R)),
+        "median_estimate_p": float((1 + np.sum(~(np.abs(med_null) < abs(med_obs)))) / (1 + R)),
         "alpha": alpha,
         "method": ("null datasets y* = fit without the product term + residual / (1 − leverage) × Rademacher sign "
-                   "per row, the same "
-                   "signs for every specification; HC3 test per specification"),
+                   "per row, the same signs for every specification, drawn on every row before the outlier rule, "
+                   "which is applied anew in each null dataset (inverse-normal outcomes ranked anew); HC3 test per "
+                   "specification"),
     }
 
 
@@ -579,5 +717,5 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 60:.1f} min" if seconds < 5400 else f"{seconds / 3600:.1f} h"
 
 
-__all__ = ["GRID_CAUTIONS", "GridPlan", "GridResult", "OUTCOME_RULES", "OUTLIER_RULES", "Specification", "grid",
+__all__ = ["GRID_CAUTIONS", "blom_scores", "GridPlan", "GridResult", "OUTCOME_RULES", "OUTLIER_RULES", "Specification", "grid",
            "inferential_test", "make_plan", "run_grid"]
