@@ -65,9 +65,8 @@ def grid_tables(result: GridResult) -> list[Table]:
              ["median estimate", t["median_estimate"], t["median_estimate_null_median"], t["median_estimate_p"]]],
             source="grid",
             notes=[f"Simonsohn, Simmons & Nelson (2020); {t['method']}.",
-                   "On simulated data without moderation this test rejected more often than alpha at n = 150 "
-                   "(validation/grid_null.py): read its p-values as optimistic, and never as a reason to prefer "
-                   "one specification.",
+                   "On simulated data without moderation this test rejected at about alpha at n = 150 "
+                   "(validation/grid_null.py); its p-value is never a reason to prefer one specification.",
                    "Estimates of specifications with a transformed outcome are on another scale, so the median "
                    "estimate mixes scales when outcome rules are crossed; the share supported does not."]))
     return tables
