@@ -28,7 +28,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_stream import write_parquet  # noqa: E402
 
-DATA = Path("/work/data")
+#: Folder of the generated Parquet files (several GiB); set ROBUSTMOD_BENCH_DATA to put them elsewhere.
+DATA = Path(os.environ.get("ROBUSTMOD_BENCH_DATA", Path(__file__).resolve().parent / "data"))
 FILES = {10**7: DATA / "big1e7.parquet", 10**8: DATA / "big1e8.parquet"}
 BAD_ROW = 73_000_001  # data row (1-based) of the infinite value
 ARGS = ["--formula", "y ~ x * w + a + b", "--focal", "x", "--moderator", "w", "--backends", "hc3,wls",
