@@ -16,7 +16,7 @@ in-memory rows as one chunk (or a few, from the memory budget).
 """
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -190,7 +190,13 @@ def _spread(e: np.ndarray) -> dict[str, Any]:
 
 def se_gap(design: Design) -> dict[str, Any] | None:
     """Classical vs HC3 SE of each product-term coefficient, and their ratio (King & Roberts 2015)."""
-    fits = [f for kind in ("ols", "hc3") if isinstance(f := design_fit(design, kind), WaldFit)]
+    return se_gap_of_fits(design, [design_fit(design, kind) for kind in ("ols", "hc3")])
+
+
+def se_gap_of_fits(design: Design, fits: Sequence[Any]) -> dict[str, Any] | None:
+    """:func:`se_gap` from given classical and HC3 fits (None unless both are Wald fits); the streamed
+    diagnostics pass theirs."""
+    fits = [f for f in fits if isinstance(f, WaldFit)]
     if len(fits) < 2:
         return None
     L = design.interaction_rows()

@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .backends.base import WaldFit
-from .diagnostics import GQ_DROP, SE_GAP_LARGE, SPREAD_BINS, VarianceDiagnostics
+from .diagnostics import GQ_DROP, SPREAD_BINS, VarianceDiagnostics, se_gap_of_fits
 from .jsonvalues import num
 from .kernels.binning import binning_fits
 from .kernels.gq import goldfeld_quandt
@@ -98,24 +98,7 @@ class DiagnosticPasses:
     def _se_gap(self) -> dict[str, Any] | None:
         """Classical vs HC3 SE of each product-term coefficient (King & Roberts 2015), as in memory."""
         d = self.data
-        fits = [f for kind in ("ols", "hc3") if isinstance(f := d.ols_fit(kind), WaldFit)]
-        if len(fits) < 2:
-            return None
-        L = d.design.interaction_rows()
-        se_c, se_h = (f.estimate(L, 0.05).se for f in fits)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ratio = se_h / se_c
-        finite = ratio[np.isfinite(ratio) & (ratio > 0)]
-        worst = float(finite[np.argmax(np.abs(np.log(finite)))]) if finite.size else None
-        return {
-            "terms": list(d.design.interaction_terms),
-            "classical_se": [num(v) for v in se_c], "hc3_se": [num(v) for v in se_h],
-            "ratio": [num(v) for v in ratio], "largest_ratio": num(worst),
-            "large": None if worst is None else bool(worst > SE_GAP_LARGE or worst < 1 / SE_GAP_LARGE),
-            "threshold": SE_GAP_LARGE,
-            "note": "A large gap between classical and robust SEs points to a misspecified mean model "
-                    "as well as to non-constant variance (King & Roberts 2015).",
-        }
+        return se_gap_of_fits(d.design, [d.ols_fit(kind) for kind in ("ols", "hc3")])
 
     def _binning(self) -> BinningCheck:  # noqa: PLR0914 - mirrors linearity.binning_check field by field
         """As :func:`robustmod.linearity.binning_check` with its defaults, from the streamed bins."""

@@ -26,22 +26,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from bench_user_path import FORMULA, SEED, simulate  # noqa: E402
+from measure import _status_kib  # noqa: E402  (the one /proc reader of the benchmarks)
 
 from robustmod.compare import compare  # noqa: E402
 
 REPLICATIONS = 9999
 GOAL_SECONDS = 60.0
 GOAL_MEMORY_MB = 1024.0
-
-
-def _status_kib(field: str) -> int | None:
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith(field + ":"):
-                return int(line.split()[1])
-    except OSError:
-        return None
-    return None
 
 
 def _peak_above(fn: Any) -> tuple[Any, float, float, float]:
