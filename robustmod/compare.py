@@ -455,7 +455,10 @@ def compare(
     engine : "local", "dask" or robustmod.engines.Engine, default="local"
         Where the calibration's tasks run: this machine's processes, or a dask.distributed cluster
         (``scheduler``, or else a LocalCluster on 127.0.0.1 of ``workers`` workers, started only for
-        a calibration and closed after it). An Engine object is used as it is and left open.
+        a calibration and closed after it). An Engine object is used as it is and left open. For a file
+        read in chunks (``stream``) the dask engine runs the streaming passes as one task per partition
+        of the file (row groups of Parquet, byte blocks of CSV), merged by a tree reduction; every
+        worker must be able to read the file at the same path.
     scheduler : str, optional
         Address of a running Dask scheduler, e.g. ``"tcp://scheduler-host:8786"`` (dask engine only).
     announce : callable, optional
@@ -530,8 +533,10 @@ def compare(
         check_engine_choice(engine, scheduler)
     if streamed:
         assert isinstance(data, (str, Path))  # choose_stream streams only a file path
-        return stream_compare(data, spec, ids, primary, options, budget=budget, calibration=calibration,
-                              progress=progress, on_step=on_step, started=started)
+        with ExitStack() as stack:  # the dask engine runs the passes over the file's partitions
+            eng = _open_engine(engine, scheduler, workers, announce, stack)
+            return stream_compare(data, spec, ids, primary, options, budget=budget, calibration=calibration,
+                                  progress=progress, on_step=on_step, started=started, engine=eng)
     with ExitStack() as stack:  # a cluster is reached (or started) before the fitting, and closed at the end
         eng = _open_engine(engine, scheduler, workers, announce, stack) if calibration is not None else None
         if eng is not None and not isinstance(engine, Engine):

@@ -29,13 +29,33 @@ import pyarrow.parquet as pq
 from .data import OVERFLOW_LIMIT
 from .errors import InputError, close_matches
 from .kernels.accumulate import RunningMoments
-from .kernels.chunks import rows_per_chunk
+from .kernels.chunks import Partitioned, rows_per_chunk
 
 #: Rows per batch read from the file (the chunk size of the kernels that read the source).
 BATCH_ROWS = 1 << 17
 #: A Parquet row group of at most this many batches is read whole (memory stays at one row group).
 ROW_GROUP_WHOLE = 16
+#: Rows of a partition of a Parquet source (whole row groups are gathered up to this count).
+PARTITION_ROWS = 1 << 22
+#: Bytes of a partition of a CSV source (blocks end at a line end).
+PARTITION_BYTES = 1 << 26
 _CSV_ROW = re.compile(r"column #(\d+): Row #(\d+): CSV conversion error to \w+: invalid value '([^']*)'")
+
+
+@dataclass(frozen=True)
+class Partition:
+    """Consecutive rows of a source, the unit of one task: ``start`` is the 0-based position of its
+    first row in the whole data (so row numbers in messages count from the file's start), ``rows``
+    its row count; a Parquet partition is whole row groups of one file, a CSV one a byte range
+    [``first_byte``, ``end_byte``) of lines (the header is read apart)."""
+
+    index: int
+    start: int
+    rows: int
+    file: str = ""
+    row_groups: tuple[int, ...] = ()
+    first_byte: int = 0
+    end_byte: int = 0
 
 
 @dataclass(frozen=True)
@@ -93,6 +113,62 @@ class Source:
             raise InputError(f"The data '{p.name}' could not be read as {self.kind}: "
                              f"{str(exc).splitlines()[0] if str(exc) else type(exc).__name__}.") from None
         self.column_names = tuple(self._types)
+        self.part: Partition | None = None
+
+    def on(self, part: Partition) -> Source:
+        """The rows of ``part`` only, as a plain Source (what a task reads; rows still counted from the file start)."""
+        out = Source.__new__(Source)
+        out.__dict__.update({k: v for k, v in self.__dict__.items() if k in _SOURCE_FIELDS})
+        out.part = part
+        return out
+
+    def __reduce__(self) -> Any:
+        """A Source travels to a worker as a plain Source (no progress log)."""
+        return _rebuild_source, ({k: v for k, v in self.__dict__.items() if k in _SOURCE_FIELDS},)
+
+    def partitions(self, engine: Any = None, *, rows: int | None = None, size: int | None = None) -> list[Partition]:
+        """The source cut into partitions: runs of whole Parquet row groups of about ``rows`` rows
+        (default :data:`PARTITION_ROWS`; a row group is never split), or CSV byte blocks of about ``size``
+        bytes (default :data:`PARTITION_BYTES`) ending at a line end, whose rows are counted by one task
+        each on ``engine`` (a local count without it)."""
+        if self.kind == "parquet":
+            target = int(rows or PARTITION_ROWS)
+            parts: list[Partition] = []
+            start = 0
+            for name in self._files:
+                meta = pq.ParquetFile(name).metadata
+                groups: list[int] = []
+                count = 0
+                for g in range(meta.num_row_groups):
+                    groups.append(g)
+                    count += meta.row_group(g).num_rows
+                    if count >= target:
+                        parts.append(Partition(len(parts), start, count, name, tuple(groups)))
+                        start, groups, count = start + count, [], 0
+                if groups and count:
+                    parts.append(Partition(len(parts), start, count, name, tuple(groups)))
+                    start += count
+            return parts
+        block = int(size or PARTITION_BYTES)
+        total = self.path.stat().st_size
+        with open(self.path, "rb") as fh:
+            fh.readline()
+            edges = [fh.tell()]
+            while edges[-1] < total:
+                fh.seek(min(total, edges[-1] + block))
+                fh.readline()
+                edges.append(min(total, fh.tell()))
+        spans = [(a, b) for a, b in zip(edges[:-1], edges[1:], strict=True) if b > a]
+        blank = [Partition(i, 0, 0, first_byte=a, end_byte=b) for i, (a, b) in enumerate(spans)]
+        if engine is None:
+            counts = [_count_rows(self, p) for p in blank]
+        else:
+            counts = engine.map(_count_rows, [(p,) for p in blank], state=self)
+        out, start = [], 0
+        for p, n in zip(blank, counts, strict=True):
+            out.append(Partition(p.index, start, int(n), first_byte=p.first_byte, end_byte=p.end_byte))
+            start += int(n)
+        return out
 
     def check_columns(self, names: Sequence[str]) -> None:
         for name in names:
@@ -104,7 +180,7 @@ class Source:
         ``batch_rows`` rows per batch (at most; default the source's)."""
         self.check_columns(columns)
         size = int(batch_rows or self.batch_rows)
-        start = 0
+        start = self.part.start if self.part is not None else 0
         try:
             for batch in self._record_batches(list(columns), size):
                 if batch.num_rows:
@@ -116,10 +192,11 @@ class Source:
     def _record_batches(self, columns: list[str], size: int) -> Iterator[pa.RecordBatch]:
         """Synchronous readers, one row group (Parquet) or block (CSV) at a time: a scanner that
         reads ahead on its own threads can run far ahead of the kernels and hold much of the file."""
+        part = self.part
         if self.kind == "parquet":
-            for name in self._files:
+            for name in self._files if part is None else [part.file]:
                 pf = pq.ParquetFile(name)
-                for g in range(pf.num_row_groups):
+                for g in range(pf.num_row_groups) if part is None else part.row_groups:
                     if pf.metadata.row_group(g).num_rows <= ROW_GROUP_WHOLE * size:
                         yield from pf.read_row_group(g, columns=columns, use_threads=False).to_batches(size)
                     else:
@@ -128,14 +205,25 @@ class Source:
             return
         numeric = {c: t for c, t in self._types.items() if c in columns and pa.types.is_floating(t)}
         yield from pacsv.open_csv(
-            str(self.path), read_options=pacsv.ReadOptions(block_size=max(1 << 20, 64 * size), use_threads=False),
+            self._csv_input(), read_options=pacsv.ReadOptions(block_size=max(1 << 20, 64 * size), use_threads=False),
             convert_options=pacsv.ConvertOptions(column_types=numeric, include_columns=columns))
+
+    def _csv_input(self) -> Any:
+        """The CSV file, or for a partition its header line followed by the partition's bytes."""
+        if self.part is None:
+            return str(self.path)
+        with open(self.path, "rb") as fh:
+            header = fh.readline()
+            fh.seek(self.part.first_byte)
+            body = fh.read(self.part.end_byte - self.part.first_byte)
+        return pa.BufferReader(header + body)
 
     def _read_error(self, exc: pa.ArrowInvalid) -> InputError:
         m = _CSV_ROW.search(str(exc))
-        if m:  # pyarrow counts file lines from 1 with the header: data row = line − 1
+        if m:  # pyarrow counts lines from 1 with the header: data row = line − 1 (+ a partition's first row)
             col, line, value = self.column_names[int(m.group(1))], int(m.group(2)), m.group(3)
-            return InputError(f"Column {col!r} has the non-numeric value {value!r} in data row {line - 1}; "
+            row = line - 1 + (self.part.start if self.part is not None else 0)
+            return InputError(f"Column {col!r} has the non-numeric value {value!r} in data row {row}; "
                               "fix it, or leave the cell empty to drop the row.")
         return InputError(f"The data '{self.path.name}' could not be read: {str(exc).splitlines()[0]}")
 
@@ -190,6 +278,24 @@ class Source:
         return Profile(n_input, n_complete, out)
 
 
+_SOURCE_FIELDS = ("path", "batch_rows", "kind", "_files", "_types", "column_names", "part")
+
+
+def _rebuild_source(state: dict[str, Any]) -> Source:
+    out = Source.__new__(Source)
+    out.__dict__.update(state)
+    return out
+
+
+def _count_rows(source: Source, part: Partition) -> int:
+    """Rows of a CSV partition (every column read as text, so a bad number does not stop the count)."""
+    src = source.on(part)
+    reader = pacsv.open_csv(src._csv_input(), read_options=pacsv.ReadOptions(use_threads=False),
+                            convert_options=pacsv.ConvertOptions(
+                                column_types=dict.fromkeys(source.column_names, pa.string())))
+    return sum(batch.num_rows for batch in reader)
+
+
 def _check_numeric(name: str, values: np.ndarray, start: int, infinite: dict[str, list[int]]) -> None:
     """The in-memory checks of :func:`robustmod.data.prepare_data`, row numbers counted from the file start;
     infinite values are counted over the whole pass (the message gives the first row and the count)."""
@@ -204,7 +310,7 @@ def _check_numeric(name: str, values: np.ndarray, start: int, infinite: dict[str
                          "squares overflow; rescale the column (e.g. divide by 1e100) and refit.")
 
 
-class ModelChunks:
+class ModelChunks(Partitioned):
     """The model matrices of a :class:`Source`, chunk by chunk: a ChunkSource for the kernels.
 
     Each chunk holds the complete rows of one batch: X and y from the formula (formulaic, spec
@@ -251,6 +357,14 @@ class ModelChunks:
         k = len(self.term_names)
         self.chunk_rows = source.batch_rows if memory_budget is None else \
             rows_per_chunk(memory_budget, 1 + k + k * (k + 1) // 2)
+
+    def on(self, part: Partition) -> ModelChunks:
+        """The model chunks of the rows of ``part`` only (a task's share of a pass)."""
+        out = ModelChunks.__new__(ModelChunks)
+        out.__dict__.update(self.__dict__)
+        out.source = self.source.on(part)
+        out.plan = None
+        return out
 
     def _frames(self) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         """(0-based file positions, model-scale frame) of the complete rows of each batch."""

@@ -46,11 +46,11 @@ from .design import (
     thin_qr,
 )
 from .errors import InputError
-from .kernels.chunks import DEFAULT_BUDGET, ChunkSource
+from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, Partitioned, Plan, fold
 from .kernels.ols import StreamedOLS, streamed_ols
 from .kernels.order import quantiles
 from .memory import parse_memory
-from .source import ModelChunks, Source
+from .source import ModelChunks, Partition, Source
 from .spec import ModelSpec, parse_probe_rule
 
 #: File endings (besides a folder of Parquet files) that are read in chunks.
@@ -61,6 +61,8 @@ CHUNK_SHARE = 8
 CHUNK_ROWS: int | None = None
 #: Rows per batch of the first pass (and of every pass when no budget applies).
 BATCH_ROWS = 1 << 17
+#: Rows of a partition (one task) when an engine runs the passes (None: the source's default). Tests set few.
+PARTITION_ROWS: int | None = None
 #: A pass shows its progress bar once it has taken this long (seconds).
 PROGRESS_AFTER = 2.0
 
@@ -247,13 +249,26 @@ class StreamedDesign(Design):
         return 1e-4 * (self.focal_sd if self.focal_sd > 0 else 1.0)
 
 
-def _values(source: Source, needed: Sequence[str], column: str, chunk_rows: int) -> Callable[[], Iterator[np.ndarray]]:
-    """A pass over one column's values on the complete rows (no model matrix is built)."""
-    def passes() -> Iterator[np.ndarray]:
-        for _, batch in source.batches(needed, chunk_rows):
+class ColumnValues(Partitioned):
+    """Passes over one column's values on the complete rows (no model matrix is built)."""
+
+    def __init__(self, source: Source, needed: Sequence[str], column: str, chunk_rows: int,
+                 plan: Plan | None = None) -> None:
+        self.source, self.needed, self.column, self.chunk_rows = source, list(needed), column, chunk_rows
+        self.plan = plan
+
+    def __call__(self) -> Iterator[np.ndarray]:
+        for _, batch in self.source.batches(self.needed, self.chunk_rows):
             keep = ~batch.isna().any(axis=1).to_numpy()
-            yield batch[column].to_numpy(dtype=float)[keep]
-    return passes
+            yield batch[self.column].to_numpy(dtype=float)[keep]
+
+    def on(self, part: Partition) -> ColumnValues:
+        return ColumnValues(self.source.on(part), self.needed, self.column, self.chunk_rows)
+
+
+def _values(chunks: ModelChunks, column: str) -> ColumnValues:
+    """A pass over one column's values on the complete rows of ``chunks``' file (its partitions kept)."""
+    return ColumnValues(chunks.source, chunks.needed, column, chunks.chunk_rows, chunks.plan)
 
 
 def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warnings: list[str],
@@ -301,7 +316,7 @@ def streamed_design(chunks: ModelChunks, spec: ModelSpec, chunk_rows: int) -> St
                         f"({100 * prof.n_dropped / prof.n_input:.0f}%); results describe the complete cases only.")
 
     def percentile(name: str, qs: list[float]) -> list[float]:
-        got = quantiles(_values(chunks.source, chunks.needed, name, chunk_rows), [q / 100 for q in qs])
+        got = quantiles(_values(chunks, name), [q / 100 for q in qs])
         return [float(v) for v in got]
 
     probe_points = _probe_points(spec, moderators, warnings, percentile)
@@ -396,6 +411,7 @@ class StreamData:
                 chunks = ModelChunks(self.source, spec, variance_terms=names, categorical=(),
                                      memory_budget=chunk_budget(self.budget))
                 chunks.chunk_rows = CHUNK_ROWS or chunks.chunk_rows
+                chunks.plan = self.chunks.plan
         labels = ["Intercept"]
         for name in names:
             prof = chunks.profile.columns[name]
@@ -433,8 +449,13 @@ class StreamData:
 
 # ---- compare() on a file read in chunks ------------------------------------------------------------
 def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: str, options: dict[str, Any], *,
-                   budget: int, calibration: int | None, progress: bool, on_step: Any, started: float) -> Any:
-    """The work of :func:`robustmod.compare` for a file read in chunks (see the module docstring)."""
+                   budget: int, calibration: int | None, progress: bool, on_step: Any, started: float,
+                   engine: Any = None) -> Any:
+    """The work of :func:`robustmod.compare` for a file read in chunks (see the module docstring).
+
+    With ``engine`` (an :class:`robustmod.engines.Engine`, e.g. Dask) every pass of the kernels after the
+    first (profile) pass runs as one task per partition of the file (:func:`robustmod.source.Source.partitions`),
+    the partial sums merged by a tree reduction (:func:`robustmod.kernels.chunks.fold`)."""
     from .backends.registry import entry, make_backend  # noqa: PLC0415
     from .compare import Comparison, evaluate_fit, mark_degenerate  # noqa: PLC0415
     from .steps import report_step  # noqa: PLC0415
@@ -452,6 +473,8 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         if CHUNK_ROWS is not None:
             chunks.chunk_rows = CHUNK_ROWS
         log.total = chunks.profile.n_input
+        if engine is not None:
+            chunks.plan = Plan(engine, source.partitions(engine, rows=PARTITION_ROWS))
         data = StreamData(source, chunks, streamed_design(chunks, spec, chunks.chunk_rows), log, budget)
         report_step(on_step, "profile and design (read in chunks)", started)
         backends = {bid: make_backend(bid, **dict(options.get(bid, {}))) for bid in ids}
@@ -483,9 +506,12 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         report_step(on_step, "diagnostics", t0)
         region_shares(data, results)
         warnings = list(data.design.warnings) + ([note] if note else [])
-        warnings.append(f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({log.passes} passes over "
-                        f"the file; memory budget {budget / 2**30:.2f} GiB): every number comes from the streaming "
-                        "kernels (docs/method-streaming.md).")
+        passes = log.passes + (chunks.plan.passes if chunks.plan is not None else 0)
+        split = "" if chunks.plan is None else (f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks "
+                                                f"from the second pass on")
+        warnings.append(f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({passes} passes over "
+                        f"the file{split}; memory budget {budget / 2**30:.2f} GiB): every number comes from the "
+                        "streaming kernels (docs/method-streaming.md).")
         if calibration is not None:
             warnings.append("The calibration was not run: it simulates whole outcome vectors of the design, which data "
                             "read in chunks do not hold in memory; run it on a subsample of the file read into memory.")
@@ -512,6 +538,19 @@ def leverage_one_note(ols: StreamedOLS) -> str:
             "drop the row(s) or the term.")
 
 
+class _Counts:
+    """Rows seen, and rows inside each region."""
+
+    def __init__(self, n: int) -> None:
+        self.total = 0
+        self.inside = np.zeros(n, dtype=np.int64)
+
+    def merge(self, other: _Counts) -> _Counts:
+        self.total += other.total
+        self.inside = self.inside + other.inside
+        return self
+
+
 def region_shares(data: StreamData, results: Mapping[str, Any]) -> None:
     """Share of observed moderator values inside each region's significant intervals: one pass over the
     moderator column for every region of every back-end (the in-memory regions count the same rows)."""
@@ -524,16 +563,19 @@ def region_shares(data: StreamData, results: Mapping[str, Any]) -> None:
     for g in regions:
         by_mod.setdefault(g["moderator"], []).append(g)
     for moderator, gs in by_mod.items():
-        inside = np.zeros(len(gs), dtype=np.int64)
-        total = 0
+        intervals = [list(g["significant_intervals"]) for g in gs]
+
+        def step(acc: _Counts, v: np.ndarray) -> None:
+            acc.total += v.size
+            for i, spans in enumerate(intervals):
+                hit = np.zeros(v.size, dtype=bool)
+                for lo, hi in spans:
+                    hit |= (v >= (-np.inf if lo is None else lo)) & (v <= (np.inf if hi is None else hi))
+                acc.inside[i] += int(hit.sum())
+
         with data.stage(f"region shares along {moderator}"):
-            for v in _values(data.source, data.chunks.needed, moderator, data.chunks.chunk_rows)():
-                total += v.size
-                for i, g in enumerate(gs):
-                    hit = np.zeros(v.size, dtype=bool)
-                    for lo, hi in g["significant_intervals"]:
-                        hit |= (v >= (-np.inf if lo is None else lo)) & (v <= (np.inf if hi is None else hi))
-                    inside[i] += int(hit.sum())
+            got = fold(_values(data.chunks, moderator), lambda: _Counts(len(gs)), step)
+        inside, total = got.inside, got.total
         for g, count in zip(gs, inside, strict=True):
             g["share_of_observed_significant"] = float(count / total) if total else None
 

@@ -49,7 +49,7 @@ class DiagnosticPasses:
             wanted = sorted({SPREAD_BINS, DEFAULT_BINS})
             probs = sorted({j / b for b in wanted for j in range(1, b)})
             with d.stage(f"quantiles of {self.moderator}"):
-                got = quantiles(_values(d.source, d.chunks.needed, self.moderator, d.chunks.chunk_rows), probs)
+                got = quantiles(_values(d.chunks, self.moderator), probs)
             at = dict(zip(probs, got, strict=True))
             self.cuts = {b: np.array([at[j / b] for j in range(1, b)]) for b in wanted}
             self.spread = ResidualSpread(self.moderator, self.cuts[SPREAD_BINS])

@@ -36,6 +36,17 @@ class Engine(ABC):
             on_done: Callable[[int], None] | None = None) -> list[Any]:
         """Results of ``fn(state, *tasks[i])`` in task order; ``on_done(i)`` as each task finishes."""
 
+    def map_reduce(self, fn: TaskFn, partitions: Sequence[Any], merge: Callable[[Any, Any], Any],
+                   state: Any = None) -> Any:
+        """``fn(state, p)`` for every partition p, combined by ``merge`` in a pairwise tree over the
+        partitions in order (:func:`tree_merge`), so the result does not depend on which task ends first.
+
+        An :class:`~robustmod.errors.InputError` of a partition (a bad value in the file) is raised
+        after the others have ended: the one of the earliest partition, as a single pass would raise it.
+        This engine folds the partitions one after the other in this process; Dask runs them as tasks."""
+        parts = [guarded(fn, state, i, p) for i, p in enumerate(partitions)]
+        return unwrap(tree_merge(parts, lambda a, b: guarded_merge(merge, a, b)))
+
     def close(self) -> None:  # noqa: B027 - an optional hook: an engine that starts nothing keeps this no-op
         """Release what the engine started (worker processes, a LocalCluster)."""
 
@@ -48,6 +59,49 @@ class Engine(ABC):
 
     def __exit__(self, *exc: object) -> None:
         self.close()
+
+
+class Failed:
+    """A partition's InputError, kept with the partition's position until the reduction ends."""
+
+    def __init__(self, index: int, error: InputError) -> None:
+        self.index, self.error = index, error
+
+
+def guarded(fn: TaskFn, state: Any, index: int, partition: Any) -> Any:
+    """``fn(state, partition)``, or :class:`Failed` when it raises an InputError."""
+    try:
+        return fn(state, partition)
+    except InputError as exc:
+        return Failed(index, exc)
+
+
+def guarded_merge(merge: Callable[[Any, Any], Any], a: Any, b: Any) -> Any:
+    """``merge(a, b)``; a failure wins, the earlier partition's first (a precedes b in the file)."""
+    if isinstance(a, Failed):
+        return a
+    if isinstance(b, Failed):
+        return b
+    return merge(a, b)
+
+
+def unwrap(result: Any) -> Any:
+    if isinstance(result, Failed):
+        raise result.error
+    return result
+
+
+def tree_merge(items: Sequence[Any], merge: Callable[[Any, Any], Any]) -> Any:
+    """Pairwise merges of neighbours, level by level ((1 2) (3 4) (5) → ((1 2) (3 4)) (5) → …)."""
+    level = list(items)
+    if not level:
+        raise ValueError("tree_merge needs at least one item")
+    while len(level) > 1:
+        nxt = [merge(level[i], level[i + 1]) for i in range(0, len(level) - 1, 2)]
+        if len(level) % 2:
+            nxt.append(level[-1])
+        level = nxt
+    return level[0]
 
 
 def check_engine_choice(name: str, scheduler: str | None = None) -> str:

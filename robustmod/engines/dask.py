@@ -10,7 +10,7 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 from ..errors import InputError
-from .base import Engine, TaskFn, available_cores
+from .base import Engine, TaskFn, available_cores, guarded, guarded_merge, unwrap
 
 #: Seconds to wait for a scheduler before saying it cannot be reached.
 CONNECT_TIMEOUT = 10
@@ -31,6 +31,16 @@ def _limit_blas() -> None:
 def _call(fn: TaskFn, state: Any, task: tuple[Any, ...]) -> Any:
     _limit_blas()
     return fn(state, *task)
+
+
+def _part(fn: TaskFn, state: Any, index: int, partition: Any) -> Any:
+    _limit_blas()
+    return guarded(fn, state, index, partition)
+
+
+def _merge(merge: Callable[[Any, Any], Any], a: Any, b: Any) -> Any:
+    _limit_blas()
+    return guarded_merge(merge, a, b)
 
 
 class DaskEngine(Engine):
@@ -90,6 +100,28 @@ class DaskEngine(Engine):
             if on_done is not None:
                 on_done(i)
         return results
+
+    def map_reduce(self, fn: TaskFn, partitions: Sequence[Any], merge: Callable[[Any, Any], Any],
+                   state: Any = None) -> Any:
+        """One task per partition and a tree of merge tasks (neighbours paired level by level, as
+        :func:`robustmod.engines.base.tree_merge` pairs them), so the result is the same on any number of
+        workers; ``state`` is scattered once (its own key: equal states of different passes never collide)."""
+        if not partitions:
+            raise ValueError("map_reduce needs at least one partition")
+        client = self._client
+        shared = client.scatter([state], hash=False, broadcast=True)[0]
+        level = [client.submit(_part, fn, shared, i, p, pure=False, retries=RETRIES)
+                 for i, p in enumerate(partitions)]
+        while len(level) > 1:
+            nxt = [client.submit(_merge, merge, level[i], level[i + 1], pure=False, retries=RETRIES)
+                   for i in range(0, len(level) - 1, 2)]
+            if len(level) % 2:
+                nxt.append(level[-1])
+            level = nxt
+        try:
+            return unwrap(level[0].result())
+        finally:
+            del level, shared
 
     def describe(self) -> dict[str, Any]:
         return {"engine": self.name, "workers": self.workers,

@@ -5,6 +5,9 @@
 * :class:`TSQR` keeps the triangular factor R of the rows seen so far: for blocks A₁, A₂ the
   factor of [A₁; A₂] is the factor of [R₁; A₂] (Demmel et al. 2012, tall-skinny QR), so
   RᵀR = AᵀA without ever forming AᵀA.
+
+Each has ``merge(other)``: the summary of its rows followed by those of ``other`` (partial
+summaries of a file's partitions are combined so; only the rounding differs from one pass).
 """
 from __future__ import annotations
 
@@ -38,6 +41,22 @@ class RunningMoments:
         np.minimum(self.minimum, v.min(axis=0), out=self.minimum)
         np.maximum(self.maximum, v.max(axis=0), out=self.maximum)
 
+    def merge(self, other: RunningMoments) -> RunningMoments:
+        """Self updated with the rows summarised by ``other`` (Chan et al.'s pairwise update); returns self."""
+        if other.n == 0:
+            return self
+        if self.n == 0:
+            self.n, self.mean, self.m2 = other.n, other.mean.copy(), other.m2.copy()
+        else:
+            total = self.n + other.n
+            delta = other.mean - self.mean
+            self.mean = self.mean + delta * (other.n / total)
+            self.m2 = self.m2 + other.m2 + np.square(delta) * (self.n * other.n / total)
+            self.n = total
+        np.minimum(self.minimum, other.minimum, out=self.minimum)
+        np.maximum(self.maximum, other.maximum, out=self.maximum)
+        return self
+
     def variance(self, ddof: int = 1) -> np.ndarray:
         return self.m2 / max(self.n - ddof, 1)
 
@@ -63,6 +82,16 @@ class TSQR:
         r = np.triu(qr[: min(qr.shape), :])
         stacked = np.vstack([self.R, r]) if self.R.shape[0] else r
         self.R = np.asarray(np.linalg.qr(stacked, mode="r")) if self.R.shape[0] else r
+
+    def merge(self, other: TSQR) -> TSQR:
+        """Self updated with the rows of ``other``: the factor of the stacked factors [R₁; R₂]; returns self."""
+        if other.R.shape[0] == 0:
+            return self
+        if self.R.shape[0] == 0:
+            self.R = other.R.copy()
+        else:
+            self.R = np.asarray(np.linalg.qr(np.vstack([self.R, other.R]), mode="r"))
+        return self
 
     def factor(self) -> np.ndarray:
         """The p × p factor (rows of zeros appended while fewer than p rows were seen)."""
@@ -95,3 +124,17 @@ class CrossProducts:
         self.C += C_b + np.outer(delta, delta) * (self.n * m / total)
         self.mean = self.mean + delta * (m / total)
         self.n = total
+
+    def merge(self, other: CrossProducts) -> CrossProducts:
+        """Self updated with the rows summarised by ``other`` (the same pairwise update); returns self."""
+        if other.n == 0:
+            return self
+        if self.n == 0:
+            self.n, self.mean, self.C = other.n, other.mean.copy(), other.C.copy()
+            return self
+        total = self.n + other.n
+        delta = other.mean - self.mean
+        self.C = self.C + other.C + np.outer(delta, delta) * (self.n * other.n / total)
+        self.mean = self.mean + delta * (other.n / total)
+        self.n = total
+        return self

@@ -37,7 +37,7 @@ from ..backends.base import Estimates, JointTest, WaldFit
 from ..backends.hc import LEVERAGE_ONE_TOL, hc_weights, r_inverse
 from ..errors import InputError, option_error
 from .accumulate import TSQR, RunningMoments
-from .chunks import Chunk, ChunkSource
+from .chunks import Chunk, ChunkColumn, ChunkSource, fold
 from .ols import MAX_CONDITION, SHOWN_ROWS, StreamedOLS
 from .order import bin_numbers, column_summary, order_statistics, quantiles, sorted_summary
 
@@ -101,35 +101,53 @@ def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str
     return cuts
 
 
+class _Bins:
+    """Per bin: row count, moderator range and focal moments; focal moments of all rows."""
+
+    def __init__(self, nb: int) -> None:
+        self.counts = np.zeros(nb, dtype=np.int64)
+        self.lows, self.highs = np.full(nb, np.inf), np.full(nb, -np.inf)
+        self.per_bin = [RunningMoments(1) for _ in range(nb)]
+        self.all_d = RunningMoments(1)
+
+    def merge(self, other: _Bins) -> _Bins:
+        self.counts += other.counts
+        np.minimum(self.lows, other.lows, out=self.lows)
+        np.maximum(self.highs, other.highs, out=self.highs)
+        for mine, theirs in zip(self.per_bin, other.per_bin, strict=True):
+            mine.merge(theirs)
+        self.all_d.merge(other.all_d)
+        return self
+
+
 def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Sequence[float], *,
                 sorted_values: np.ndarray | None = None) -> BinSummary:
     """Cut points, counts, ranges, medians and focal spread of each non-empty bin.
 
     ``sorted_values``: the whole moderator column in ascending order, when at hand; the cut points,
     counts, ranges and medians are then read off it and one pass gathers the focal spread."""
-    def values() -> Any:
-        return (np.asarray(c.columns[moderator], dtype=float) for c in chunks())
-
+    values = ChunkColumn(chunks, moderator)
     summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
     cuts = _cuts(values, bins, moderator, summary, sorted_values)
     nb = cuts.size + 1
-    counts = np.zeros(nb, dtype=np.int64)
-    lows, highs = np.full(nb, np.inf), np.full(nb, -np.inf)
-    per_bin = [RunningMoments(1) for _ in range(nb)]
-    all_d = RunningMoments(1)
-    for chunk in chunks():
+    ranges = sorted_values is None
+
+    def step(acc: _Bins, chunk: Chunk) -> None:
         w = np.asarray(chunk.columns[moderator], dtype=float)
         d = np.asarray(chunk.columns[focal], dtype=float)
         idx = bin_numbers(cuts, w)  # rows at a cut go to the lower bin
         here = np.bincount(idx, minlength=nb)
-        counts += here
-        all_d.add(d)
+        acc.counts += here
+        acc.all_d.add(d)
         for j in np.flatnonzero(here):  # bins, not rows
             rows = idx == j
-            if sorted_values is None:
+            if ranges:
                 wj = w[rows]
-                lows[j], highs[j] = min(lows[j], float(wj.min())), max(highs[j], float(wj.max()))
-            per_bin[j].add(d[rows])
+                acc.lows[j], acc.highs[j] = min(acc.lows[j], float(wj.min())), max(acc.highs[j], float(wj.max()))
+            acc.per_bin[j].add(d[rows])
+
+    got = fold(chunks, lambda: _Bins(nb), step)
+    counts, lows, highs, per_bin, all_d = got.counts, got.lows, got.highs, got.per_bin, got.all_d
     present = np.flatnonzero(counts)
     start = np.concatenate([[0], np.cumsum(counts)])[present]
     c = counts[present]
@@ -168,13 +186,14 @@ def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
 def added_columns(chunks: ChunkSource, build: Callable[[Chunk], np.ndarray], k: int) -> np.ndarray:
     """Indices of B's columns that add to span(X): TSQR of [X, B]; its block R₂₂ is B residualised on X,
     so a pivoted QR of R₂₂ (columns scaled) picks the same columns as one of the n-row residuals."""
-    acc: TSQR | None = None
-    for c in chunks():
+    def step(acc: _Factors, c: Chunk) -> None:
         block = np.column_stack([c.X, build(c)])
-        acc = acc or TSQR(block.shape[1])
-        acc.add(block)
-    assert acc is not None
-    return added_from_factor(acc.factor(), k)
+        if not acc.accs:
+            acc.accs.append(TSQR(block.shape[1]))
+        acc.accs[0].add(block)
+
+    got = fold(chunks, lambda: _Factors(0, 0), step)
+    return added_from_factor(got.accs[0].factor(), k)
 
 
 def added_from_factor(R: np.ndarray, k: int) -> np.ndarray:
@@ -255,39 +274,44 @@ def _sorted_blocks(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
                    check: bool = True) -> Any:
     """(C, starts, rows) per block of rows: the compact block with its rows sorted by bin (bin j in
     rows starts[j]:starts[j + 1]), Fortran-ordered, and the data positions of its rows."""
+    for c in chunks():
+        yield from _chunk_blocks(c, s, lay, focal, moderator, check=check)
+
+
+def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: str, *, check: bool = True) -> Any:
+    """The blocks of :func:`_sorted_blocks` for the rows of one chunk."""
     J, k = s.present.size, lay.k
     lookup = np.zeros(s.cuts.size + 1, dtype=np.uint8 if J < 256 else np.int64)
     lookup[s.present] = np.arange(J)
-    for c in chunks():
-        w_all = np.asarray(c.columns[moderator], dtype=float)
-        d_all = np.asarray(c.columns[focal], dtype=float)
-        if check:
-            _check_layout(lay, c, d_all, w_all)
-        for a in range(0, c.size, BLOCK_ROWS):
-            b = min(c.size, a + BLOCK_ROWS)
-            w, d = w_all[a:b], d_all[a:b]
-            pos = lookup[bin_numbers(s.cuts, w)]
-            order = np.argsort(pos, kind="stable")  # a radix sort of small integers
-            starts = np.concatenate([[0], np.cumsum(np.bincount(pos, minlength=J))])
-            C = np.empty((b - a, lay.width + 1), order="F")
-            Xb = c.X[a:b]
-            for j in range(k):
-                np.take(Xb[:, j], order, out=C[:, j])
-            np.take(c.y[a:b], order, out=C[:, lay.width])
-            ws, ds = w[order], d[order]
-            for base in lay.extras:
-                col = C[:, lay.col(base)]
-                if base == "one":
-                    col.fill(1.0)
-                elif base == "d":
-                    col[:] = ds
-                else:
-                    for j in range(J):
-                        r = slice(starts[j], starts[j + 1])
-                        np.subtract(ws[r], s.medians[j], out=col[r])
-                        if base == "dw":
-                            col[r] *= ds[r]
-            yield C, starts, c.rows[a:b][order]
+    w_all = np.asarray(c.columns[moderator], dtype=float)
+    d_all = np.asarray(c.columns[focal], dtype=float)
+    if check:
+        _check_layout(lay, c, d_all, w_all)
+    for a in range(0, c.size, BLOCK_ROWS):
+        b = min(c.size, a + BLOCK_ROWS)
+        w, d = w_all[a:b], d_all[a:b]
+        pos = lookup[bin_numbers(s.cuts, w)]
+        order = np.argsort(pos, kind="stable")  # a radix sort of small integers
+        starts = np.concatenate([[0], np.cumsum(np.bincount(pos, minlength=J))])
+        C = np.empty((b - a, lay.width + 1), order="F")
+        Xb = c.X[a:b]
+        for j in range(k):
+            np.take(Xb[:, j], order, out=C[:, j])
+        np.take(c.y[a:b], order, out=C[:, lay.width])
+        ws, ds = w[order], d[order]
+        for base in lay.extras:
+            col = C[:, lay.col(base)]
+            if base == "one":
+                col.fill(1.0)
+            elif base == "d":
+                col[:] = ds
+            else:
+                for j in range(J):
+                    r = slice(starts[j], starts[j + 1])
+                    np.subtract(ws[r], s.medians[j], out=col[r])
+                    if base == "dw":
+                        col[r] *= ds[r]
+        yield C, starts, c.rows[a:b][order]
 
 
 def _wide_map(lay: _Layout, s: BinSummary, j: int, cov: Sequence[int]) -> np.ndarray:
@@ -333,24 +357,54 @@ def _cholesky_factor(G: np.ndarray) -> np.ndarray | None:
     return out
 
 
+class _Grams:
+    """Per bin the Gram matrix of its compact rows."""
+
+    def __init__(self, J: int, p: int) -> None:
+        self.grams = [np.zeros((p, p)) for _ in range(J)]
+
+    def merge(self, other: _Grams) -> _Grams:
+        self.grams = [a + b for a, b in zip(self.grams, other.grams, strict=True)]
+        return self
+
+
+class _Factors:
+    """Per bin a TSQR factor of its compact rows."""
+
+    def __init__(self, J: int, p: int) -> None:
+        self.accs = [TSQR(p) for _ in range(J)]
+
+    def merge(self, other: _Factors) -> _Factors:
+        if not self.accs:
+            self.accs = other.accs
+        elif other.accs:
+            for mine, theirs in zip(self.accs, other.accs, strict=True):
+                mine.merge(theirs)
+        return self
+
+
 def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
                  cov: Sequence[int]) -> tuple[np.ndarray, str]:
     """R of the wide matrix [X, B, y] from the bins' compact factors (pass 1, a TSQR pass if needed)."""
     J, p = s.present.size, lay.width + 1
-    grams = [np.zeros((p, p)) for _ in range(J)]
-    for C, starts, _ in _sorted_blocks(chunks, s, lay, focal, moderator):
-        for j in range(J):
-            Cj = C[starts[j]:starts[j + 1]]
-            grams[j] += Cj.T @ Cj
+    def gram_step(acc: _Grams, c: Chunk) -> None:
+        for C, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
+            for j in range(J):
+                Cj = C[starts[j]:starts[j + 1]]
+                acc.grams[j] += Cj.T @ Cj
+
+    grams = fold(chunks, lambda: _Grams(J, p), gram_step).grams
     factors = [_cholesky_factor(G) for G in grams]
     method = "cholesky"
     if any(f is None for f in factors):
         method = "tsqr"
-        accs = [TSQR(p) for _ in range(J)]
-        for C, starts, _ in _sorted_blocks(chunks, s, lay, focal, moderator):
-            for j in range(J):
-                accs[j].add(C[starts[j]:starts[j + 1]])
-        factors = [acc.factor() for acc in accs]
+
+        def tsqr_step(acc: _Factors, c: Chunk) -> None:
+            for C, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
+                for j in range(J):
+                    acc.accs[j].add(C[starts[j]:starts[j + 1]])
+
+        factors = [acc.factor() for acc in fold(chunks, lambda: _Factors(J, p), tsqr_step).accs]
     stacked = np.vstack([f @ _wide_map(lay, s, j, cov) for j, f in enumerate(factors) if f is not None])
     width = stacked.shape[1]
     R = np.zeros((width, width))
@@ -410,30 +464,69 @@ def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
     """Pass 2 for every model at once: RSS, leverages, leverage-one rows and the HC3 meats; returns
     the centred sum of squares of y."""
     n, width, J = s.n, lay.width, s.present.size
-    ymom = RunningMoments(1)
-    for C, starts, rows in _sorted_blocks(chunks, s, lay, focal, moderator, check=False):
-        ymom.add(C[:, width])
-        for m in models:
-            at_one: list[np.ndarray] = []
-            for j in range(J):
-                r = slice(starts[j], starts[j + 1])
-                Cj, yj = C[r, :width], C[r, width]
-                if yj.size == 0:
-                    continue
-                e = yj - Cj @ m.g[j]
-                h = np.einsum("ij,ij->i", Cj @ m.P[j], Cj)
-                m.rss += float(e @ e)
-                m.hmax = max(m.hmax, float(h.max()))
-                one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
-                if one.size:
-                    m.n_ones += one.size
-                    at_one.append(rows[r][one])
-                if not m.n_ones:
-                    u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
-                    m.meats[j] += (Cj * u[:, None]).T @ Cj
-            if at_one and m.ones is not None and sum(a.size for a in m.ones) < SHOWN_ROWS:
-                m.ones.append(np.sort(np.concatenate(at_one)))
-    return float(ymom.m2[0])
+
+    def step(acc: _ModelSums, c: Chunk) -> None:
+        for C, starts, rows in _chunk_blocks(c, s, lay, focal, moderator, check=False):
+            acc.ymom.add(C[:, width])
+            for m, sums in zip(models, acc.models, strict=True):
+                at_one: list[np.ndarray] = []
+                for j in range(J):
+                    r = slice(starts[j], starts[j + 1])
+                    Cj, yj = C[r, :width], C[r, width]
+                    if yj.size == 0:
+                        continue
+                    e = yj - Cj @ m.g[j]
+                    h = np.einsum("ij,ij->i", Cj @ m.P[j], Cj)
+                    sums.rss += float(e @ e)
+                    sums.hmax = max(sums.hmax, float(h.max()))
+                    one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
+                    if one.size:
+                        sums.n_ones += one.size
+                        at_one.append(rows[r][one])
+                    if not sums.n_ones:
+                        u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
+                        sums.meats[j] += (Cj * u[:, None]).T @ Cj
+                if at_one and sum(a.size for a in sums.ones) < SHOWN_ROWS:
+                    sums.ones.append(np.sort(np.concatenate(at_one)))
+
+    got = fold(chunks, lambda: _ModelSums(len(models), J, width), step)
+    for m, sums in zip(models, got.models, strict=True):
+        m.rss, m.hmax, m.n_ones, m.meats = sums.rss, sums.hmax, sums.n_ones, sums.meats
+        if m.ones is not None:
+            m.ones = sums.ones
+    return float(got.ymom.m2[0])
+
+
+class _ModelSum:
+    """One model's pass-2 sums (as the fields of :class:`_Model`)."""
+
+    def __init__(self, J: int, width: int) -> None:
+        self.rss, self.hmax, self.n_ones = 0.0, 0.0, 0
+        self.ones: list[np.ndarray] = []
+        self.meats = [np.zeros((width, width)) for _ in range(J)]
+
+    def merge(self, other: _ModelSum) -> _ModelSum:
+        self.rss += other.rss
+        self.hmax = max(self.hmax, other.hmax)
+        self.n_ones += other.n_ones
+        if sum(a.size for a in self.ones) < SHOWN_ROWS:
+            self.ones += other.ones
+        self.meats = [a + b for a, b in zip(self.meats, other.meats, strict=True)]
+        return self
+
+
+class _ModelSums:
+    """Pass 2 of every model at once, and the moments of y."""
+
+    def __init__(self, n_models: int, J: int, width: int) -> None:
+        self.models = [_ModelSum(J, width) for _ in range(n_models)]
+        self.ymom = RunningMoments(1)
+
+    def merge(self, other: _ModelSums) -> _ModelSums:
+        for mine, theirs in zip(self.models, other.models, strict=True):
+            mine.merge(theirs)
+        self.ymom.merge(other.ymom)
+        return self
 
 
 def _streamed(m: _Model, n: int, ss_total: float, method: str) -> StreamedOLS:

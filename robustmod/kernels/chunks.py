@@ -3,11 +3,17 @@
 A *chunk source* is a callable that starts a new pass over the rows each time it is called and
 yields :class:`Chunk` objects in a fixed order. A kernel that needs two passes calls it twice, so
 a source must give the same rows in the same order every time (files and in-memory arrays do).
+
+Each pass of a kernel is a :func:`fold`: an accumulator from ``init()``, updated by ``step(acc, chunk)``
+for every chunk. A source split into partitions (a file's row groups or byte blocks, with a
+:class:`Plan`) is folded one task per partition on an engine, and the partial accumulators are
+combined by their ``merge`` in file order (a tree reduction).
 """
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any, TypeVar
 
 import numpy as np
 
@@ -37,6 +43,7 @@ class Chunk:
 
 
 ChunkSource = Callable[[], Iterator[Chunk]]
+A = TypeVar("A")
 
 
 def rows_per_chunk(budget_bytes: int, width: int, *, factor: int = WORK_FACTOR) -> int:
@@ -70,8 +77,101 @@ def array_chunks(X: np.ndarray, y: np.ndarray, *, chunk_rows: int, rows: np.ndar
 
 
 def mapped(source: ChunkSource, fn: Callable[[Chunk], Chunk]) -> ChunkSource:
-    """A chunk source whose chunks are ``fn`` of the chunks of ``source`` (e.g. rows weighted by √wᵢ)."""
-    def passes() -> Iterator[Chunk]:
-        for chunk in source():
-            yield fn(chunk)
-    return passes
+    """A chunk source whose chunks are ``fn`` of the chunks of ``source`` (e.g. rows weighted by √wᵢ);
+    it keeps the partitions of ``source`` (see :func:`fold`)."""
+    return Mapped(source, fn)
+
+
+# ---- passes over partitions: one fold per partition, merged by a tree reduction ----------------------
+@dataclass
+class Plan:
+    """How a source's passes are split: ``engine`` (an :class:`robustmod.engines.Engine` with
+    ``map_reduce``) runs one task per item of ``partitions``; ``passes`` counts the passes made."""
+
+    engine: Any
+    partitions: Sequence[Any]
+    passes: int = 0
+
+
+def fold(source: Callable[[], Iterator[Any]], init: Callable[[], A], step: Callable[[A, Any], None],
+         merge: Callable[[A, A], A] | None = None) -> A:
+    """One pass over ``source``: ``acc = init()``, then ``step(acc, item)`` for every item in order.
+
+    A source with a :class:`Plan` (attribute ``plan``) and an ``on(partition)`` method is folded
+    partition by partition on the plan's engine, each partition from a fresh ``init()``, and the
+    partial accumulators are combined in file order by ``merge(a, b)`` (default ``a.merge(b)``,
+    which must give the accumulator of a's rows followed by b's; only rounding may differ from the
+    one sequential fold). ``init``, ``step`` and the source are shipped to the workers (cloudpickle).
+    """
+    plan: Plan | None = getattr(source, "plan", None)
+    if plan is None or plan.engine is None or not plan.partitions:
+        acc = init()
+        for item in source():
+            step(acc, item)
+        return acc
+    plan.passes += 1
+    return plan.engine.map_reduce(fold_partition, plan.partitions, merge or merge_pair, state=(source, init, step))
+
+
+def fold_partition(state: tuple[Any, Callable[[], Any], Callable[[Any, Any], None]], partition: Any) -> Any:
+    """The accumulator of one partition (a task of :func:`fold`)."""
+    source, init, step = state
+    acc = init()
+    for item in source.on(partition)():
+        step(acc, item)
+    return acc
+
+
+def merge_pair(a: Any, b: Any) -> Any:
+    """``a.merge(b)``: the accumulator of a's rows followed by b's."""
+    return a.merge(b)
+
+
+class Partitioned:
+    """Mixin of sources that may carry a :class:`Plan`; the plan (it holds the engine, which cannot
+    travel) is left behind when the source is shipped to a worker."""
+
+    plan: Plan | None = None
+
+    def __getstate__(self) -> dict[str, Any]:
+        state = dict(self.__dict__)
+        state["plan"] = None
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+
+
+class Mapped(Partitioned):
+    """A chunk source whose chunks are ``fn`` of the chunks of ``source`` (partitions kept)."""
+
+    def __init__(self, source: ChunkSource, fn: Callable[[Chunk], Chunk]) -> None:
+        self.source, self.fn = source, fn
+        self.plan = getattr(source, "plan", None)
+
+    def __call__(self) -> Iterator[Chunk]:
+        for chunk in self.source():
+            yield self.fn(chunk)
+
+    def on(self, partition: Any) -> Mapped:
+        out = Mapped(self.source.on(partition), self.fn)  # type: ignore[attr-defined]
+        out.plan = None
+        return out
+
+
+class ChunkColumn(Partitioned):
+    """The values of one per-row column (``chunk.columns[name]``) of a chunk source, chunk by chunk."""
+
+    def __init__(self, source: ChunkSource, name: str) -> None:
+        self.source, self.name = source, name
+        self.plan = getattr(source, "plan", None)
+
+    def __call__(self) -> Iterator[np.ndarray]:
+        for c in self.source():
+            yield np.asarray(c.columns[self.name], dtype=float)
+
+    def on(self, partition: Any) -> ChunkColumn:
+        out = ChunkColumn(self.source.on(partition), self.name)  # type: ignore[attr-defined]
+        out.plan = None
+        return out
+

@@ -20,7 +20,7 @@ from scipy import stats
 
 from ..jsonvalues import num
 from .accumulate import TSQR
-from .chunks import ChunkSource
+from .chunks import Chunk, ChunkColumn, ChunkSource, fold
 from .order import column_summary, order_statistics, sorted_summary
 
 #: Share of middle rows dropped (the in-memory test's value, robustmod.diagnostics.GQ_DROP).
@@ -39,6 +39,20 @@ def _group_block(X: np.ndarray, y: np.ndarray, rows: np.ndarray) -> np.ndarray:
     return out
 
 
+class _Groups:
+    """TSQR factors of [X y] and row counts of the low and high groups."""
+
+    def __init__(self, p: int) -> None:
+        self.groups = {"low": TSQR(p), "high": TSQR(p)}
+        self.sizes = {"low": 0, "high": 0}
+
+    def merge(self, other: _Groups) -> _Groups:
+        for name in self.groups:
+            self.groups[name].merge(other.groups[name])
+            self.sizes[name] += other.sizes[name]
+        return self
+
+
 def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
                     sorted_values: np.ndarray | None = None) -> dict[str, Any] | None:
     """F test of the residual variances of the high and low moderator groups; None when too few rows.
@@ -46,9 +60,7 @@ def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = 
     ``moderator`` names the chunk column holding the moderator's raw values; ``sorted_values``, when
     at hand, is that whole column in ascending order (the cut values are then read off it).
     """
-    def values() -> Any:
-        return (np.asarray(c.columns[moderator], dtype=float) for c in chunks())
-
+    values = ChunkColumn(chunks, moderator)
     summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
     n = summary[0]
     first = next(iter(chunks()))
@@ -60,17 +72,18 @@ def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = 
     c_lo, c_hi = order_statistics(values, [n1 - 1, n - n1], summary=summary, sorted_values=sorted_values)
     if c_lo >= c_hi:
         return None
-    groups = {"low": TSQR(k + 1), "high": TSQR(k + 1)}
-    sizes = {"low": 0, "high": 0}
-    for c in chunks():
+    def step(acc: _Groups, c: Chunk) -> None:
         w = np.asarray(c.columns[moderator], dtype=float)
         for a in range(0, c.size, BLOCK_ROWS):
             wb, Xb, yb = w[a:a + BLOCK_ROWS], c.X[a:a + BLOCK_ROWS], c.y[a:a + BLOCK_ROWS]
             for name, mask in (("low", wb <= c_lo), ("high", wb >= c_hi)):
                 rows = np.flatnonzero(mask)
                 if rows.size:
-                    groups[name].add(_group_block(Xb, yb, rows), overwrite=True)
-                    sizes[name] += int(rows.size)
+                    acc.groups[name].add(_group_block(Xb, yb, rows), overwrite=True)
+                    acc.sizes[name] += int(rows.size)
+
+    both = fold(chunks, lambda: _Groups(k + 1), step)
+    groups, sizes = both.groups, both.sizes
     s2 = {name: float(acc.factor()[k, k] ** 2) / (sizes[name] - k) for name, acc in groups.items()}
     if s2["low"] <= 0:
         return None

@@ -23,6 +23,7 @@ and the explained sum of squares is ‖Qᵀ(u − c)‖² − n(ū − c)².
 """
 from __future__ import annotations
 
+import copy
 from collections.abc import Callable, Iterable
 from contextlib import AbstractContextManager, nullcontext
 from typing import Any
@@ -141,6 +142,25 @@ class AuxiliaryRegression:
             self.tsqr = self.tsqr or TSQR(block.shape[1])
             self.tsqr.add(block)
         self.u.add(u)
+
+    def merge(self, other: AuxiliaryRegression) -> AuxiliaryRegression:
+        """Self updated with what ``other`` gathered from later rows; returns self. The TSQR route's
+        shifts differ between copies: [1 Z u − c₂] becomes [1 Z u − c₁] by adding (c₂ − c₁) times the
+        constant column to the last one, i.e. R's first column to R's last (R stays triangular)."""
+        if other.u.n == 0:
+            return self
+        self.k = other.k if self.k is None else self.k
+        if other.cross is not None:
+            self.cross = copy.deepcopy(other.cross) if self.cross is None else self.cross.merge(other.cross)
+        if other.tsqr is not None and other.shift is not None:
+            if self.tsqr is None or self.shift is None:
+                self.tsqr, self.shift = copy.deepcopy(other.tsqr), other.shift
+            else:
+                moved = copy.deepcopy(other.tsqr)
+                moved.R[:, -1] += (other.shift - self.shift) * moved.R[:, 0]
+                self.tsqr.merge(moved)
+        self.u.merge(other.u)
+        return self
 
     def result(self, redo: ResidualPasses | None = None) -> dict[str, Any]:
         """{statistic, df, p, solved_by}: n·R², its df and χ² p-value, and the route that solved it.

@@ -14,9 +14,10 @@ of all rows, so it adds one leverage-only pass. Classical V = s² R⁻¹R⁻ᵀ,
 """
 from __future__ import annotations
 
+import copy
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 from scipy import linalg
@@ -31,7 +32,7 @@ from ..backends.hc import (
 )
 from ..errors import InputError
 from .accumulate import TSQR, RunningMoments
-from .chunks import Chunk, ChunkSource
+from .chunks import Chunk, ChunkSource, fold
 
 #: Largest condition number of the scaled Gram matrix accepted for the Cholesky path.
 MAX_CONDITION = 1e6
@@ -54,9 +55,48 @@ class Factor:
 
 
 class ResidualConsumer(Protocol):
-    """Anything that wants the OLS residuals of each chunk during pass 2 (e.g. the LM tests)."""
+    """Anything that wants the OLS residuals of each chunk during pass 2 (e.g. the LM tests); ``merge``
+    adds what another copy gathered from later rows (a file's partitions are passed separately)."""
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None: ...
+
+    def merge(self, other: Any) -> Any: ...
+
+
+class _Gram:
+    """XᵀX, Xᵀy and n of the rows seen (pass 1)."""
+
+    def __init__(self) -> None:
+        self.G: np.ndarray | None = None
+        self.b = np.zeros(0)
+        self.n = 0
+
+    def add(self, c: Chunk) -> None:
+        if self.G is None:
+            self.G, self.b = np.zeros((c.X.shape[1],) * 2), np.zeros(c.X.shape[1])
+        self.G += c.X.T @ c.X
+        self.b += c.X.T @ c.y
+        self.n += c.size
+
+    def merge(self, other: _Gram) -> _Gram:
+        if other.G is not None:
+            if self.G is None:
+                self.G, self.b = other.G.copy(), other.b.copy()
+            else:
+                self.G, self.b = self.G + other.G, self.b + other.b
+        self.n += other.n
+        return self
+
+
+class _Largest:
+    """The largest value seen."""
+
+    def __init__(self) -> None:
+        self.value = 0.0
+
+    def merge(self, other: _Largest) -> _Largest:
+        self.value = max(self.value, other.value)
+        return self
 
 
 def _check_rank(R: np.ndarray, norms: np.ndarray, names: Sequence[str] | None, tol: float = ALIAS_TOL) -> None:
@@ -70,10 +110,10 @@ def _check_rank(R: np.ndarray, norms: np.ndarray, names: Sequence[str] | None, t
 
 def _tsqr_factor(chunks: ChunkSource, k: int) -> tuple[np.ndarray, np.ndarray]:
     """(R, Qᵀy) from one TSQR pass over [X y]."""
-    acc = TSQR(k + 1)
-    for c in chunks():
+    def step(acc: TSQR, c: Chunk) -> None:
         acc.add(np.column_stack([c.X, c.y]))
-    Raug = acc.factor()
+
+    Raug = fold(chunks, lambda: TSQR(k + 1), step).factor()
     return Raug[:k, :k], Raug[:k, k]
 
 
@@ -82,15 +122,8 @@ def factor_pass(chunks: ChunkSource, *, names: Sequence[str] | None = None,
     """Pass 1: β̂ = (XᵀX)⁻¹Xᵀy by Cholesky of the scaled Gram matrix, or TSQR when ill-conditioned.
 
     A column with |R_jj| / ‖X_j‖ < ``alias_tol`` is refused as aliased (InputError naming it)."""
-    G: np.ndarray | None = None
-    b = np.zeros(0)
-    n = 0
-    for c in chunks():
-        if G is None:
-            G, b = np.zeros((c.X.shape[1],) * 2), np.zeros(c.X.shape[1])
-        G += c.X.T @ c.X
-        b += c.X.T @ c.y
-        n += c.size
+    gram = fold(chunks, _Gram, _Gram.add)
+    G, b, n = gram.G, gram.b, gram.n
     if G is None or n == 0:
         raise InputError("The data have no rows to fit; check the file and the rows used.")
     k = G.shape[0]
@@ -123,7 +156,10 @@ def chunk_q(R: np.ndarray, X: np.ndarray) -> np.ndarray:
 
 def max_leverage(chunks: ChunkSource, R: np.ndarray) -> float:
     """max hᵢ over all rows (a leverage-only pass, for HC5)."""
-    return max(float(np.square(chunk_q(R, c.X)).sum(axis=0).max(initial=0.0)) for c in chunks())
+    def step(acc: _Largest, c: Chunk) -> None:
+        acc.value = max(acc.value, float(np.square(chunk_q(R, c.X)).sum(axis=0).max(initial=0.0)))
+
+    return fold(chunks, _Largest, step).value
 
 
 @dataclass(frozen=True)
@@ -166,6 +202,30 @@ class StreamedOLS:
                        se_label="classical (homoscedastic)" if kind == "ols" else kind.upper())
 
 
+class _ResidualSums:
+    """What pass 2 gathers: RSS, moments of y, leverage facts, the HC meats and the consumers' sums."""
+
+    def __init__(self, k: int, hc: Sequence[str], consumers: list[Any]) -> None:
+        self.rss, self.hmax, self.n_ones = 0.0, 0.0, 0
+        self.ymom = RunningMoments(1)
+        self.ones: list[np.ndarray] = []
+        self.meats = {kd: np.zeros((k, k)) for kd in hc}
+        self.consumers = consumers
+
+    def merge(self, other: _ResidualSums) -> _ResidualSums:
+        self.rss += other.rss
+        self.ymom.merge(other.ymom)
+        self.hmax = max(self.hmax, other.hmax)
+        self.n_ones += other.n_ones
+        if sum(a.size for a in self.ones) < SHOWN_ROWS:  # the first rows in file order are the ones shown
+            self.ones += other.ones
+        for kd in self.meats:
+            self.meats[kd] = self.meats[kd] + other.meats[kd]
+        for mine, theirs in zip(self.consumers, other.consumers, strict=True):
+            mine.merge(theirs)
+        return self
+
+
 def residual_pass(chunks: ChunkSource, factor: Factor, kinds: Iterable[str] = ("hc3",), *,
                   consumers: Sequence[ResidualConsumer] = ()) -> StreamedOLS:
     """Pass 2: residuals, leverages and the meat of every HC kind asked for; ``consumers`` also
@@ -177,34 +237,34 @@ def residual_pass(chunks: ChunkSource, factor: Factor, kinds: Iterable[str] = ("
     beta, R, n, k = factor.beta, factor.R, factor.n, factor.k
     hc = [kd for kd in kinds if kd != "ols"]
     h_all_max = max_leverage(chunks, R) if "hc5" in hc else None
-    meats = {kd: np.zeros((k, k)) for kd in hc}
-    rss = 0.0
-    ymom = RunningMoments(1)
-    hmax = 0.0
-    ones: list[np.ndarray] = []
-    n_ones = 0
-    for c in chunks():
+
+    def step(acc: _ResidualSums, c: Chunk) -> None:
         e = c.y - c.X @ beta
-        rss += float(e @ e)
-        ymom.add(c.y)
-        for consumer in consumers:
+        acc.rss += float(e @ e)
+        acc.ymom.add(c.y)
+        for consumer in acc.consumers:
             consumer.add(c, e)
         if not hc:
-            continue
+            return
         U = chunk_q(R, c.X)
         h = np.einsum("ij,ij->j", U, U)
-        hmax = max(hmax, float(h.max(initial=0.0)))
+        acc.hmax = max(acc.hmax, float(h.max(initial=0.0)))
         at_one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
-        n_ones += at_one.size
-        if at_one.size and sum(a.size for a in ones) < SHOWN_ROWS:
-            ones.append(c.rows[at_one])
+        acc.n_ones += at_one.size
+        if at_one.size and sum(a.size for a in acc.ones) < SHOWN_ROWS:
+            acc.ones.append(c.rows[at_one])
         e2 = e * e
         for kd in hc:
-            if n_ones and kd in NEEDS_LEVERAGE_BELOW_ONE:
+            if acc.n_ones and kd in NEEDS_LEVERAGE_BELOW_ONE:
                 continue
             # HC5's exponent needs max hᵢ over all rows: append it so the shared weight function sees it.
             w = hc_weights(kd, h, n, k) if h_all_max is None else hc_weights(kd, np.append(h, h_all_max), n, k)[:-1]
-            meats[kd] += (U * (w * e2)) @ U.T
+            acc.meats[kd] += (U * (w * e2)) @ U.T
+
+    sums = fold(chunks, lambda: _ResidualSums(k, hc, copy.deepcopy(list(consumers))), step)
+    for consumer, got in zip(consumers, sums.consumers, strict=True):
+        consumer.merge(got)
+    rss, ymom, hmax, ones, n_ones, meats = sums.rss, sums.ymom, sums.hmax, sums.ones, sums.n_ones, sums.meats
     Rinv = r_inverse(R)
     cov: dict[str, np.ndarray | None] = {}
     for kd in kinds:

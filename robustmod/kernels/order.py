@@ -23,6 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InputError
+from .chunks import fold
 
 BINS = 4096
 COLLECT_LIMIT = 2**20
@@ -40,14 +41,27 @@ class _Target:
     value: float | None = None
 
 
+class _Range:
+    """Count, min and max of the values seen."""
+
+    def __init__(self) -> None:
+        self.n, self.lo, self.hi = 0, np.inf, -np.inf
+
+    def add(self, v: np.ndarray) -> None:
+        if v.size:
+            self.n += v.size
+            self.lo, self.hi = min(self.lo, float(v.min())), max(self.hi, float(v.max()))
+
+    def merge(self, other: _Range) -> _Range:
+        self.n += other.n
+        self.lo, self.hi = min(self.lo, other.lo), max(self.hi, other.hi)
+        return self
+
+
 def column_summary(values: ValueSource) -> tuple[int, float, float]:
     """(n, min, max) in one pass."""
-    n, lo, hi = 0, np.inf, -np.inf
-    for v in values():
-        if v.size:
-            n += v.size
-            lo, hi = min(lo, float(v.min())), max(hi, float(v.max()))
-    return n, lo, hi
+    r = fold(values, _Range, _Range.add)
+    return r.n, r.lo, r.hi
 
 
 def sorted_summary(sorted_values: np.ndarray) -> tuple[int, float, float]:
@@ -78,24 +92,44 @@ def order_statistics(values: ValueSource, ranks: Sequence[int], *, summary: tupl
     return np.array([targets[int(r)].value for r in ranks], dtype=float)
 
 
+class _Narrowing:
+    """One narrowing pass's gathered values (per small interval) and histograms (per large one)."""
+
+    def __init__(self, n_gather: int, n_split: int, bins: int) -> None:
+        self.got: list[list[np.ndarray]] = [[] for _ in range(n_gather)]
+        self.counts = [np.zeros(bins, dtype=np.int64) for _ in range(n_split)]
+        self.low = [np.inf] * n_split
+        self.high = [-np.inf] * n_split
+
+    def merge(self, other: _Narrowing) -> _Narrowing:
+        for mine, theirs in zip(self.got, other.got, strict=True):
+            mine += theirs
+        self.counts = [a + b for a, b in zip(self.counts, other.counts, strict=True)]
+        self.low = [min(a, b) for a, b in zip(self.low, other.low, strict=True)]
+        self.high = [max(a, b) for a, b in zip(self.high, other.high, strict=True)]
+        return self
+
+
 def _narrow(open_targets: list[_Target], values: ValueSource, bins: int, collect_limit: int) -> None:
     """One pass: gather small intervals, histogram the others."""
     gather = [t for t in open_targets if t.count <= collect_limit]
     split = [t for t in open_targets if t.count > collect_limit]
     edges = [np.linspace(t.lo, t.hi, bins + 1) for t in split]
-    got: list[list[np.ndarray]] = [[] for _ in gather]
-    counts = [np.zeros(bins, dtype=np.int64) for _ in split]
-    low = [np.inf] * len(split)
-    high = [-np.inf] * len(split)
-    for v in values():
-        for i, t in enumerate(gather):
-            got[i].append(v[(v >= t.lo) & (v <= t.hi)])
-        for i, t in enumerate(split):
-            s = v[(v >= t.lo) & (v <= t.hi)]
+    windows = [(t.lo, t.hi) for t in gather]
+    ranges = [(t.lo, t.hi) for t in split]
+
+    def step(acc: _Narrowing, v: np.ndarray) -> None:
+        for i, (lo, hi) in enumerate(windows):
+            acc.got[i].append(v[(v >= lo) & (v <= hi)])
+        for i, (lo, hi) in enumerate(ranges):
+            s = v[(v >= lo) & (v <= hi)]
             if s.size:
                 pos = np.minimum(np.searchsorted(edges[i], s, side="right") - 1, bins - 1)
-                counts[i] += np.bincount(pos, minlength=bins)
-                low[i], high[i] = min(low[i], float(s.min())), max(high[i], float(s.max()))
+                acc.counts[i] += np.bincount(pos, minlength=bins)
+                acc.low[i], acc.high[i] = min(acc.low[i], float(s.min())), max(acc.high[i], float(s.max()))
+
+    acc = fold(values, lambda: _Narrowing(len(gather), len(split), bins), step)
+    got, counts, low, high = acc.got, acc.counts, acc.low, acc.high
     for t, parts in zip(gather, got, strict=False):
         t.value = float(np.sort(np.concatenate(parts))[t.rank - t.below])
     for t, e, c, lo, hi in zip(split, edges, counts, low, high, strict=False):

@@ -13,7 +13,7 @@ import numpy as np
 
 from ..jsonvalues import num
 from .accumulate import RunningMoments
-from .chunks import Chunk, ChunkSource
+from .chunks import Chunk, ChunkColumn, ChunkSource
 from .order import bin_numbers, quantiles
 
 
@@ -31,8 +31,7 @@ class ResidualSpread:
                       sorted_values: np.ndarray | None = None) -> ResidualSpread:
         """Bins at the 1/bins … (bins − 1)/bins quantiles of the streamed moderator (read off
         ``sorted_values``, the whole column in ascending order, when at hand)."""
-        cuts = quantiles(lambda: (np.asarray(c.columns[moderator], dtype=float) for c in chunks()),
-                         list(np.arange(1, bins) / bins), sorted_values=sorted_values)
+        cuts = quantiles(ChunkColumn(chunks, moderator), list(np.arange(1, bins) / bins), sorted_values=sorted_values)
         return cls(moderator, cuts)
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None:
@@ -44,6 +43,14 @@ class ResidualSpread:
             self.low[j] = min(self.low[j], float(wj.min()))
             self.high[j] = max(self.high[j], float(wj.max()))
             self.moments[j].add(resid[rows])
+
+    def merge(self, other: ResidualSpread) -> ResidualSpread:
+        """Self updated with the bins ``other`` gathered from later rows (same cuts); returns self."""
+        for mine, theirs in zip(self.moments, other.moments, strict=True):
+            mine.merge(theirs)
+        np.minimum(self.low, other.low, out=self.low)
+        np.maximum(self.high, other.high, out=self.high)
+        return self
 
     def result(self) -> dict[str, Any]:
         """{moderator, bins: [{level, range, n, sd}], ratio} as the in-memory table gives them."""

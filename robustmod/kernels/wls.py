@@ -30,7 +30,7 @@ from ..backends.kernels import ETA_LIMIT, LOG_CHI2_CORRECTION, ZERO_RESIDUAL_FLO
 from ..backends.wls import ML_DECREMENT_TOL, ML_MAXITER, ML_ROUNDING_TOL, SE_TYPES
 from ..errors import option_error
 from .accumulate import TSQR
-from .chunks import Chunk, ChunkSource, mapped
+from .chunks import Chunk, ChunkSource, fold, mapped
 from .ols import StreamedOLS, factor_pass, streamed_ols
 
 #: The in-memory fit's stopping rule, so both paths stop at the same iterate.
@@ -56,28 +56,78 @@ class StreamedWLS:
     weighted: StreamedOLS
 
 
+class _Sums:
+    """A running total, a row count and a largest value (merged by sums and max)."""
+
+    def __init__(self) -> None:
+        self.total, self.n, self.largest = 0.0, 0, 0.0
+
+    def add(self, total: float, n: int, largest: float) -> None:
+        self.total += total
+        self.n += n
+        self.largest = max(self.largest, largest)
+
+    def merge(self, other: _Sums) -> _Sums:
+        self.add(other.total, other.n, other.largest)
+        return self
+
+
+class _Factor:
+    """A TSQR factor whose width is set by the first block, with running sums beside it."""
+
+    def __init__(self) -> None:
+        self.tsqr: TSQR | None = None
+        self.sums = _Sums()
+
+    def add(self, block: np.ndarray) -> None:
+        self.tsqr = self.tsqr or TSQR(block.shape[1])
+        self.tsqr.add(block)
+
+    def merge(self, other: _Factor) -> _Factor:
+        if other.tsqr is not None:
+            self.tsqr = other.tsqr if self.tsqr is None else self.tsqr.merge(other.tsqr)
+        self.sums.merge(other.sums)
+        return self
+
+    def factor(self) -> np.ndarray:
+        assert self.tsqr is not None
+        return self.tsqr.factor()
+
+
+class _Vector:
+    """A running vector sum."""
+
+    def __init__(self, p: int) -> None:
+        self.value = np.zeros(p)
+
+    def add(self, v: np.ndarray) -> None:
+        self.value += v
+
+    def merge(self, other: _Vector) -> _Vector:
+        self.value = self.value + other.value
+        return self
+
+
 def _eta(c: Chunk, gamma: np.ndarray) -> np.ndarray:
     return np.clip(c.columns["Z"] @ gamma, -ETA_LIMIT, ETA_LIMIT)
 
 
 def twostep_start(chunks: ChunkSource, beta_ols: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """(γ̂ two-step, R_z with R_zᵀR_z = ZᵀZ): two passes (mean ê², then the log ê² regression)."""
-    rss, n, y_max = 0.0, 0, 0.0
-    for c in chunks():
+    def sums(acc: _Sums, c: Chunk) -> None:
         e = c.y - c.X @ beta_ols
-        rss += float(e @ e)
-        n += c.size
-        y_max = max(y_max, float(np.abs(c.y).max(initial=0.0)))
+        acc.add(float(e @ e), c.size, float(np.abs(c.y).max(initial=0.0)))
+
+    first = fold(chunks, _Sums, sums)
+    rss, n, y_max = first.total, first.n, first.largest
     floor = ZERO_RESIDUAL_FLOOR * max(rss / n, np.finfo(float).tiny)
     zero_below = ZERO_RESIDUAL_RTOL * max(y_max, np.finfo(float).tiny)  # as exact_zeros in memory
-    acc: TSQR | None = None
-    for c in chunks():
+    def logs(acc: _Factor, c: Chunk) -> None:
         e = c.y - c.X @ beta_ols
         Z = c.columns["Z"]
-        acc = acc or TSQR(Z.shape[1] + 2)
         acc.add(np.column_stack([Z, np.log(np.where(np.abs(e) <= zero_below, floor, e * e)), np.ones(c.size)]))
-    assert acc is not None
-    R = acc.factor()
+
+    R = fold(chunks, _Factor, logs).factor()
     p = R.shape[0] - 2
     Rz = R[:p, :p]
     coef = linalg.solve_triangular(Rz, R[:p, p], check_finite=False)
@@ -87,16 +137,14 @@ def twostep_start(chunks: ChunkSource, beta_ols: np.ndarray) -> tuple[np.ndarray
 
 def _profile(chunks: ChunkSource, gamma: np.ndarray) -> tuple[float, np.ndarray]:
     """(−ℓ at γ with β profiled out, β̂(γ)): one TSQR pass over √w·[X y]."""
-    acc: TSQR | None = None
-    sum_eta, n = 0.0, 0
-    for c in chunks():
+    def step(acc: _Factor, c: Chunk) -> None:
         eta = _eta(c, gamma)
         sw = np.exp(-0.5 * eta)
-        acc = acc or TSQR(c.X.shape[1] + 1)
         acc.add(np.column_stack([c.X * sw[:, None], c.y * sw]))
-        sum_eta += float(eta.sum())
-        n += c.size
-    assert acc is not None
+        acc.sums.add(float(eta.sum()), c.size, 0.0)
+
+    acc = fold(chunks, _Factor, step)
+    sum_eta, n = acc.sums.total, acc.sums.n
     R = acc.factor()
     k = R.shape[0] - 1
     beta = linalg.solve_triangular(R[:k, :k], R[:k, k], check_finite=False)
@@ -105,11 +153,11 @@ def _profile(chunks: ChunkSource, gamma: np.ndarray) -> tuple[float, np.ndarray]
 
 def _score(chunks: ChunkSource, gamma: np.ndarray, beta: np.ndarray) -> np.ndarray:
     """Zᵀ(r − 1), rᵢ = êᵢ² e^{−ηᵢ} (one pass)."""
-    s = np.zeros(gamma.size)
-    for c in chunks():
+    def step(acc: _Vector, c: Chunk) -> None:
         e = c.y - c.X @ beta
-        s += c.columns["Z"].T @ (e * e * np.exp(-_eta(c, gamma)) - 1.0)
-    return s
+        acc.add(c.columns["Z"].T @ (e * e * np.exp(-_eta(c, gamma)) - 1.0))
+
+    return fold(chunks, lambda: _Vector(gamma.size), step).value
 
 
 def scoring(chunks: ChunkSource, gamma0: np.ndarray, Rz: np.ndarray, *, tol: float = TOL,
@@ -142,6 +190,11 @@ class _EtaSummary:
 
     def __init__(self) -> None:
         self.total, self.low, self.high = 0.0, np.inf, -np.inf
+
+    def merge(self, other: _EtaSummary) -> _EtaSummary:
+        self.total += other.total
+        self.low, self.high = min(self.low, other.low), max(self.high, other.high)
+        return self
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None:
         eta = chunk.columns["eta"]
