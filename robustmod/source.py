@@ -127,8 +127,8 @@ class Source:
         return _rebuild_source, ({k: v for k, v in self.__dict__.items() if k in _SOURCE_FIELDS},)
 
     def partitions(self, engine: Any = None, *, rows: int | None = None, size: int | None = None) -> list[Partition]:
-        """The source cut into partitions: runs of whole Parquet row groups of about ``rows`` rows
-        (default :data:`PARTITION_ROWS`; a row group is never split), or CSV byte blocks of about ``size``
+        """The source cut into partitions: runs of whole Parquet row groups of at most ``rows`` rows
+        (default :data:`PARTITION_ROWS`; a row group is never split, so a larger one is a partition alone), or CSV byte blocks of about ``size``
         bytes (default :data:`PARTITION_BYTES`) ending at a line end, whose rows are counted by one task
         each on ``engine`` (a local count without it)."""
         if self.kind == "parquet":
@@ -140,11 +140,12 @@ class Source:
                 groups: list[int] = []
                 count = 0
                 for g in range(meta.num_row_groups):
-                    groups.append(g)
-                    count += meta.row_group(g).num_rows
-                    if count >= target:
+                    m = meta.row_group(g).num_rows
+                    if groups and count + m > target:
                         parts.append(Partition(len(parts), start, count, name, tuple(groups)))
                         start, groups, count = start + count, [], 0
+                    groups.append(g)
+                    count += m
                 if groups and count:
                     parts.append(Partition(len(parts), start, count, name, tuple(groups)))
                     start += count

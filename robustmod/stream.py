@@ -63,6 +63,8 @@ CHUNK_ROWS: int | None = None
 BATCH_ROWS = 1 << 17
 #: Rows of a partition (one task) when an engine runs the passes (None: the source's default). Tests set few.
 PARTITION_ROWS: int | None = None
+#: Partitions per worker when PARTITION_ROWS is not set.
+TASKS_PER_WORKER = 4
 #: A pass shows its progress bar once it has taken this long (seconds).
 PROGRESS_AFTER = 2.0
 
@@ -474,7 +476,7 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
             chunks.chunk_rows = CHUNK_ROWS
         log.total = chunks.profile.n_input
         if engine is not None:
-            chunks.plan = Plan(engine, source.partitions(engine, rows=PARTITION_ROWS))
+            chunks.plan = Plan(engine, source.partitions(engine, rows=partition_rows(chunks.profile.n_input, engine)))
         data = StreamData(source, chunks, streamed_design(chunks, spec, chunks.chunk_rows), log, budget)
         report_step(on_step, "profile and design (read in chunks)", started)
         backends = {bid: make_backend(bid, **dict(options.get(bid, {}))) for bid in ids}
@@ -518,6 +520,16 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         return Comparison(spec, data.design, results, primary, diagnostics, None, tuple(warnings), str(path))
     finally:
         log.close()
+
+
+def partition_rows(n_rows: int, engine: Any) -> int:
+    """Rows per partition: :data:`PARTITION_ROWS` when set, else about a quarter of each worker's share
+    (tasks of similar size keep every worker busy to the end), at most the source's default."""
+    if PARTITION_ROWS is not None:
+        return PARTITION_ROWS
+    from .source import PARTITION_ROWS as LARGEST  # noqa: PLC0415
+
+    return max(1, min(LARGEST, math.ceil(n_rows / (TASKS_PER_WORKER * max(1, int(engine.workers))))))
 
 
 def _file_rows(source: Source) -> int | None:
