@@ -126,11 +126,12 @@ class Source:
         """A Source travels to a worker as a plain Source (no progress log)."""
         return _rebuild_source, ({k: v for k, v in self.__dict__.items() if k in _SOURCE_FIELDS},)
 
-    def partitions(self, engine: Any = None, *, rows: int | None = None, size: int | None = None) -> list[Partition]:
+    def partitions(self, engine: Any = None, *, rows: int | None = None,
+                   size: int | None = None) -> list[Partition]:
         """The source cut into partitions: runs of whole Parquet row groups of at most ``rows`` rows
-        (default :data:`PARTITION_ROWS`; a row group is never split, so a larger one is a partition alone), or CSV byte blocks of about ``size``
-        bytes (default :data:`PARTITION_BYTES`) ending at a line end, whose rows are counted by one task
-        each on ``engine`` (a local count without it)."""
+        (default :data:`PARTITION_ROWS`; a row group is never split, so a larger one is a partition alone),
+        or CSV byte blocks of about ``size`` bytes (default :data:`PARTITION_BYTES`) ending at a line end,
+        whose rows are counted by one task each on ``engine`` (a local count without it)."""
         if self.kind == "parquet":
             target = int(rows or PARTITION_ROWS)
             parts: list[Partition] = []

@@ -472,11 +472,9 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         source = TrackedSource(path, log, batch_rows=CHUNK_ROWS or BATCH_ROWS)
         log.total = _file_rows(source)
         chunks = ModelChunks(source, spec, memory_budget=cb)
-        if CHUNK_ROWS is not None:
-            chunks.chunk_rows = CHUNK_ROWS
+        chunks.chunk_rows = CHUNK_ROWS or chunks.chunk_rows
         log.total = chunks.profile.n_input
-        if engine is not None:
-            chunks.plan = Plan(engine, source.partitions(engine, rows=partition_rows(chunks.profile.n_input, engine)))
+        chunks.plan = plan_for(source, chunks, engine)
         data = StreamData(source, chunks, streamed_design(chunks, spec, chunks.chunk_rows), log, budget)
         report_step(on_step, "profile and design (read in chunks)", started)
         backends = {bid: make_backend(bid, **dict(options.get(bid, {}))) for bid in ids}
@@ -508,18 +506,30 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         report_step(on_step, "diagnostics", t0)
         region_shares(data, results)
         warnings = list(data.design.warnings) + ([note] if note else [])
-        passes = log.passes + (chunks.plan.passes if chunks.plan is not None else 0)
-        split = "" if chunks.plan is None else (f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks "
-                                                f"from the second pass on")
-        warnings.append(f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({passes} passes over "
-                        f"the file{split}; memory budget {budget / 2**30:.2f} GiB): every number comes from the "
-                        "streaming kernels (docs/method-streaming.md).")
+        warnings.append(_read_note(chunks, log, budget, engine))
         if calibration is not None:
             warnings.append("The calibration was not run: it simulates whole outcome vectors of the design, which data "
                             "read in chunks do not hold in memory; run it on a subsample of the file read into memory.")
         return Comparison(spec, data.design, results, primary, diagnostics, None, tuple(warnings), str(path))
     finally:
         log.close()
+
+
+def _read_note(chunks: ModelChunks, log: PassLog, budget: int, engine: Any) -> str:
+    """The warning that says how the file was read: chunk size, passes, partitions, budget."""
+    passes = log.passes + (chunks.plan.passes if chunks.plan is not None else 0)
+    split = "" if chunks.plan is None else (f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks "
+                                            "from the second pass on")
+    return (f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({passes} passes over the file{split}; "
+            f"memory budget {budget / 2**30:.2f} GiB): every number comes from the streaming kernels "
+            "(docs/method-streaming.md).")
+
+
+def plan_for(source: Source, chunks: ModelChunks, engine: Any) -> Plan | None:
+    """The partitions of the file for ``engine`` (None without an engine: every pass in this process)."""
+    if engine is None:
+        return None
+    return Plan(engine, source.partitions(engine, rows=partition_rows(chunks.profile.n_input, engine)))
 
 
 def partition_rows(n_rows: int, engine: Any) -> int:
@@ -557,6 +567,22 @@ class _Counts:
         self.total = 0
         self.inside = np.zeros(n, dtype=np.int64)
 
+    @staticmethod
+    def maker(n: int) -> Callable[[], _Counts]:
+        return lambda: _Counts(n)
+
+    @staticmethod
+    def stepper(intervals: list[list[Any]]) -> Callable[[_Counts, np.ndarray], None]:
+        """Counts the values inside each region's significant intervals (None: no bound)."""
+        def step(acc: _Counts, v: np.ndarray) -> None:
+            acc.total += v.size
+            for i, spans in enumerate(intervals):
+                hit = np.zeros(v.size, dtype=bool)
+                for lo, hi in spans:
+                    hit |= (v >= (-np.inf if lo is None else lo)) & (v <= (np.inf if hi is None else hi))
+                acc.inside[i] += int(hit.sum())
+        return step
+
     def merge(self, other: _Counts) -> _Counts:
         self.total += other.total
         self.inside = self.inside + other.inside
@@ -575,18 +601,9 @@ def region_shares(data: StreamData, results: Mapping[str, Any]) -> None:
     for g in regions:
         by_mod.setdefault(g["moderator"], []).append(g)
     for moderator, gs in by_mod.items():
-        intervals = [list(g["significant_intervals"]) for g in gs]
-
-        def step(acc: _Counts, v: np.ndarray) -> None:
-            acc.total += v.size
-            for i, spans in enumerate(intervals):
-                hit = np.zeros(v.size, dtype=bool)
-                for lo, hi in spans:
-                    hit |= (v >= (-np.inf if lo is None else lo)) & (v <= (np.inf if hi is None else hi))
-                acc.inside[i] += int(hit.sum())
-
         with data.stage(f"region shares along {moderator}"):
-            got = fold(_values(data.chunks, moderator), lambda: _Counts(len(gs)), step)
+            got = fold(_values(data.chunks, moderator), _Counts.maker(len(gs)),
+                       _Counts.stepper([list(g["significant_intervals"]) for g in gs]))
         inside, total = got.inside, got.total
         for g, count in zip(gs, inside, strict=True):
             g["share_of_observed_significant"] = float(count / total) if total else None

@@ -156,7 +156,7 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], check=False, capture_output=True, text=True,
                             cwd=ROOT).stdout.strip()
-    print(f"uptime: {subprocess.run(['uptime'], capture_output=True, text=True).stdout.strip()}", flush=True)
+    print(f"uptime: {subprocess.run(['uptime'], check=False, capture_output=True, text=True).stdout.strip()}", flush=True)
     runs: dict[str, dict[str, Any]] = {}
     outs: dict[str, Path] = {}
     for name in ("local", "dask"):

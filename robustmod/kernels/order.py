@@ -102,8 +102,7 @@ class _Narrowing:
         self.high = [-np.inf] * n_split
 
     def merge(self, other: _Narrowing) -> _Narrowing:
-        for mine, theirs in zip(self.got, other.got, strict=True):
-            mine += theirs
+        self.got = [mine + theirs for mine, theirs in zip(self.got, other.got, strict=True)]
         self.counts = [a + b for a, b in zip(self.counts, other.counts, strict=True)]
         self.low = [min(a, b) for a, b in zip(self.low, other.low, strict=True)]
         self.high = [max(a, b) for a, b in zip(self.high, other.high, strict=True)]
