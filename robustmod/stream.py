@@ -61,10 +61,9 @@ CHUNK_SHARE = 8
 CHUNK_ROWS: int | None = None
 #: Rows per batch of the first pass (and of every pass when no budget applies).
 BATCH_ROWS = 1 << 17
-#: Rows of a partition (one task) when an engine runs the passes (None: the source's default). Tests set few.
+#: Rows of a partition (one task) when an engine runs the passes (None: the source's default, which depends
+#: on the file alone, so the merges and their rounding are the same on any number of workers). Tests set few.
 PARTITION_ROWS: int | None = None
-#: Partitions per worker when PARTITION_ROWS is not set.
-TASKS_PER_WORKER = 4
 #: A pass shows its progress bar once it has taken this long (seconds).
 PROGRESS_AFTER = 2.0
 
@@ -529,17 +528,7 @@ def plan_for(source: Source, chunks: ModelChunks, engine: Any) -> Plan | None:
     """The partitions of the file for ``engine`` (None without an engine: every pass in this process)."""
     if engine is None:
         return None
-    return Plan(engine, source.partitions(engine, rows=partition_rows(chunks.profile.n_input, engine)))
-
-
-def partition_rows(n_rows: int, engine: Any) -> int:
-    """Rows per partition: :data:`PARTITION_ROWS` when set, else about a quarter of each worker's share
-    (tasks of similar size keep every worker busy to the end), at most the source's default."""
-    if PARTITION_ROWS is not None:
-        return PARTITION_ROWS
-    from .source import PARTITION_ROWS as LARGEST  # noqa: PLC0415
-
-    return max(1, min(LARGEST, math.ceil(n_rows / (TASKS_PER_WORKER * max(1, int(engine.workers))))))
+    return Plan(engine, source.partitions(engine, rows=PARTITION_ROWS))
 
 
 def _file_rows(source: Source) -> int | None:

@@ -155,7 +155,7 @@ def main(argv: list[str] | None = None) -> int:
         print(f"{path} is missing; write it with: python validation/bench_stream.py write {path} --rows {rows}")
         return 2
     commit = subprocess.run(["git", "rev-parse", "--short", "HEAD"], check=False, capture_output=True, text=True,
-                            cwd=ROOT).stdout.strip()
+                            cwd=ROOT).stdout.strip() or os.environ.get("ROBUSTMOD_COMMIT", "")
     print(f"uptime: {subprocess.run(['uptime'], check=False, capture_output=True, text=True).stdout.strip()}", flush=True)
     runs: dict[str, dict[str, Any]] = {}
     outs: dict[str, Path] = {}
