@@ -29,7 +29,7 @@ import pyarrow.parquet as pq
 from .data import OVERFLOW_LIMIT
 from .errors import InputError, close_matches
 from .kernels.accumulate import RunningMoments
-from .kernels.chunks import Partitioned, rows_per_chunk
+from .kernels.chunks import Partitioned, Plan, fold, rows_per_chunk
 
 #: Rows per batch read from the file (the chunk size of the kernels that read the source).
 BATCH_ROWS = 1 << 17
@@ -230,34 +230,18 @@ class Source:
                               "fix it, or leave the cell empty to drop the row.")
         return InputError(f"The data '{self.path.name}' could not be read: {str(exc).splitlines()[0]}")
 
-    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = ()) -> Profile:  # noqa: PLR0912 - one pass, one branch per column kind; a split is open work
-        """First pass: rows, complete rows, missing values, levels and numeric summaries of ``columns``."""
+    def profile(self, columns: Sequence[str], *, categorical: Sequence[str] = (),  # noqa: PLR0912 - one branch per column kind
+                plan: Plan | None = None) -> Profile:
+        """First pass: rows, complete rows, missing values, levels and numeric summaries of ``columns``
+        (with ``plan``, one task per partition on its engine, the partial summaries merged)."""
         columns = list(dict.fromkeys(columns))
-        missing = dict.fromkeys(columns, 0)
-        counts: dict[str, pd.Series] = {}
-        moments = {c: RunningMoments(1) for c in columns}
         numeric = {c: pa.types.is_integer(t) or pa.types.is_floating(t)
                    for c, t in self._types.items() if c in columns}
         numeric.update(dict.fromkeys(categorical, False))
-        n_input = n_complete = 0
-        infinite: dict[str, list[int]] = {}  # column → [first data row, count]
-        for start, frame in self.batches(columns):
-            for name in columns:
-                if numeric[name]:
-                    _check_numeric(name, frame[name].to_numpy(dtype=float, na_value=np.nan), start, infinite)
-            na = frame.isna()
-            for name in columns:
-                missing[name] += int(na[name].sum())
-            complete = frame.loc[~na.any(axis=1).to_numpy()]
-            n_input += len(frame)
-            n_complete += len(complete)
-            for name in columns:
-                if numeric[name]:
-                    if name not in infinite:  # the pass ends in an error for that column anyway
-                        moments[name].add(complete[name].to_numpy(dtype=float))
-                else:
-                    vc = complete[name].value_counts()
-                    counts[name] = vc if name not in counts else counts[name].add(vc, fill_value=0)
+        batches = _Batches(self, columns, plan)
+        sums = fold(batches, lambda: _ProfileSums(columns), lambda acc, item: acc.add(item, numeric))
+        missing, counts, moments, infinite = sums.missing, sums.counts, sums.moments, sums.infinite
+        n_input, n_complete = sums.n_input, sums.n_complete
         for name in columns:
             if name in infinite:
                 row, count = infinite[name]
@@ -279,6 +263,65 @@ class Source:
                 out[name] = ColumnProfile(name, False, missing[name], levels=tuple(order),
                                           counts=tuple(int(vc[v]) for v in order))
         return Profile(n_input, n_complete, out)
+
+
+class _Batches(Partitioned):
+    """Passes over (first row, frame) batches of ``columns`` of a source (its partitions kept)."""
+
+    def __init__(self, source: Source, columns: list[str], plan: Plan | None = None) -> None:
+        self.source, self.columns, self.plan = source, columns, plan
+
+    def __call__(self) -> Iterator[tuple[int, pd.DataFrame]]:
+        return self.source.batches(self.columns)
+
+    def on(self, part: Partition) -> _Batches:
+        return _Batches(self.source.on(part), self.columns)
+
+
+class _ProfileSums:
+    """What the profile pass gathers: missing values, level counts, numeric moments, rows, infinite values."""
+
+    def __init__(self, columns: list[str]) -> None:
+        self.columns = columns
+        self.missing = dict.fromkeys(columns, 0)
+        self.counts: dict[str, pd.Series] = {}
+        self.moments = {c: RunningMoments(1) for c in columns}
+        self.n_input = self.n_complete = 0
+        self.infinite: dict[str, list[int]] = {}  # column → [first data row, count]
+
+    def add(self, item: tuple[int, pd.DataFrame], numeric: dict[str, bool]) -> None:
+        start, frame = item
+        columns, infinite = self.columns, self.infinite
+        for name in columns:
+            if numeric[name]:
+                _check_numeric(name, frame[name].to_numpy(dtype=float, na_value=np.nan), start, infinite)
+        na = frame.isna()
+        for name in columns:
+            self.missing[name] += int(na[name].sum())
+        complete = frame.loc[~na.any(axis=1).to_numpy()]
+        self.n_input += len(frame)
+        self.n_complete += len(complete)
+        for name in columns:
+            if numeric[name]:
+                if name not in infinite:  # the pass ends in an error for that column anyway
+                    self.moments[name].add(complete[name].to_numpy(dtype=float))
+            else:
+                vc = complete[name].value_counts()
+                self.counts[name] = vc if name not in self.counts else self.counts[name].add(vc, fill_value=0)
+
+    def merge(self, other: _ProfileSums) -> _ProfileSums:
+        """Self followed by the rows of ``other`` (a later partition)."""
+        for name in self.columns:
+            self.missing[name] += other.missing[name]
+            self.moments[name].merge(other.moments[name])
+        for name, vc in other.counts.items():
+            self.counts[name] = vc if name not in self.counts else self.counts[name].add(vc, fill_value=0)
+        self.n_input += other.n_input
+        self.n_complete += other.n_complete
+        for name, (row, count) in other.infinite.items():
+            entry = self.infinite.setdefault(name, [row, 0])  # self's rows come first in the file
+            entry[1] += count
+        return self
 
 
 _SOURCE_FIELDS = ("path", "batch_rows", "kind", "_files", "_types", "column_names", "part")
@@ -323,13 +366,14 @@ class ModelChunks(Partitioned):
     ``variance_terms`` on its raw scale; categorical ones as dummies of every level but the first,
     as :meth:`robustmod.design.Design.variance_matrix` builds them).
 
-    ``memory_budget`` (bytes), when given, sets the rows per chunk with
+    ``plan`` (a :class:`~robustmod.kernels.chunks.Plan`) runs the profile pass and every later pass of
+    the kernels partition by partition on its engine. ``memory_budget`` (bytes), when given, sets the rows per chunk with
     :func:`robustmod.kernels.chunks.rows_per_chunk` for the widest per-row array a kernel builds,
     White's 1 + k + k(k+1)/2 columns; otherwise chunks are the source's batches.
     """
 
     def __init__(self, source: Source, spec: Any, *, variance_terms: Sequence[str] | None = None,
-                 categorical: Sequence[str] = (), memory_budget: int | None = None) -> None:
+                 categorical: Sequence[str] = (), memory_budget: int | None = None, plan: Plan | None = None) -> None:
         from formulaic import model_matrix  # heavy: only when a model is built
 
         from .design import FORMULA_CONTEXT
@@ -341,7 +385,8 @@ class ModelChunks(Partitioned):
         self.variance_terms = tuple(variance_terms) if variance_terms is not None else (spec.focal, *spec.moderators)
         self.needed = list(dict.fromkeys([*spec.variables, spec.focal, *spec.moderators, *self.variance_terms]))
         source.check_columns(self.needed)
-        self.profile = source.profile(self.needed, categorical=categorical)
+        self.plan = plan
+        self.profile = source.profile(self.needed, categorical=categorical, plan=plan)
         self.categorical = tuple(c for c in self.needed if not self.profile.columns[c].numeric)
         self.centering = {name: float(self.profile.columns[name].mean or 0.0)
                           for name in (spec.focal, *spec.moderators)

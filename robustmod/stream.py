@@ -410,9 +410,8 @@ class StreamData:
             self.source.check_columns(names)
             with self.stage("profile for the variance terms"):
                 chunks = ModelChunks(self.source, spec, variance_terms=names, categorical=(),
-                                     memory_budget=chunk_budget(self.budget))
+                                     memory_budget=chunk_budget(self.budget), plan=self.chunks.plan)
                 chunks.chunk_rows = CHUNK_ROWS or chunks.chunk_rows
-                chunks.plan = self.chunks.plan
         labels = ["Intercept"]
         for name in names:
             prof = chunks.profile.columns[name]
@@ -454,8 +453,8 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
                    engine: Any = None) -> Any:
     """The work of :func:`robustmod.compare` for a file read in chunks (see the module docstring).
 
-    With ``engine`` (an :class:`robustmod.engines.Engine`, e.g. Dask) every pass of the kernels after the
-    first (profile) pass runs as one task per partition of the file (:func:`robustmod.source.Source.partitions`),
+    With ``engine`` (an :class:`robustmod.engines.Engine`, e.g. Dask) every pass over the file (the profile
+    and each pass of the kernels) runs as one task per partition of the file (:func:`robustmod.source.Source.partitions`),
     the partial sums merged by a tree reduction (:func:`robustmod.kernels.chunks.fold`)."""
     from .backends.registry import entry, make_backend  # noqa: PLC0415
     from .compare import Comparison, evaluate_fit, mark_degenerate  # noqa: PLC0415
@@ -470,10 +469,9 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
         cb = chunk_budget(budget)
         source = TrackedSource(path, log, batch_rows=CHUNK_ROWS or BATCH_ROWS)
         log.total = _file_rows(source)
-        chunks = ModelChunks(source, spec, memory_budget=cb)
+        chunks = ModelChunks(source, spec, memory_budget=cb, plan=plan_for(source, engine))
         chunks.chunk_rows = CHUNK_ROWS or chunks.chunk_rows
         log.total = chunks.profile.n_input
-        chunks.plan = plan_for(source, chunks, engine)
         data = StreamData(source, chunks, streamed_design(chunks, spec, chunks.chunk_rows), log, budget)
         report_step(on_step, "profile and design (read in chunks)", started)
         backends = {bid: make_backend(bid, **dict(options.get(bid, {}))) for bid in ids}
@@ -517,14 +515,13 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
 def _read_note(chunks: ModelChunks, log: PassLog, budget: int, engine: Any) -> str:
     """The warning that says how the file was read: chunk size, passes, partitions, budget."""
     passes = log.passes + (chunks.plan.passes if chunks.plan is not None else 0)
-    split = "" if chunks.plan is None else (f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks "
-                                            "from the second pass on")
+    split = "" if chunks.plan is None else f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks"
     return (f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({passes} passes over the file{split}; "
             f"memory budget {budget / 2**30:.2f} GiB): every number comes from the streaming kernels "
             "(docs/method-streaming.md).")
 
 
-def plan_for(source: Source, chunks: ModelChunks, engine: Any) -> Plan | None:
+def plan_for(source: Source, engine: Any) -> Plan | None:
     """The partitions of the file for ``engine`` (None without an engine: every pass in this process)."""
     if engine is None:
         return None
