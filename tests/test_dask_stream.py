@@ -187,7 +187,8 @@ def _bad_rows(n: int = 3000, seed: int = 5) -> pd.DataFrame:
 def test_bad_value_in_a_late_partition(tmp_path: Path, small_parts: None, cluster_2: Any,
                                        capsys: pytest.CaptureFixture[str]) -> None:
     # log(a) is not finite where a ≤ 0: the profile pass (numbers only) lets it through, the model's chunks
-    # on a worker find it; the message is the local streaming path's, row numbers counted from the file start. Data rows 2,401 and 2,951 lie in the last two of six partitions (row groups of 500).
+    # on a worker find it; the message is the local streaming path's, row numbers counted from the file start.
+    # Data rows 2,401 and 2,951 lie in the last two of six partitions (row groups of 500 rows).
     model = ["--formula", "y ~ x * w + log(a)", "--focal", "x", "--moderator", "w", "--backends", "hc3",
              "--stream", "--memory", "1GB"]
     big = _bad_rows()
