@@ -147,9 +147,10 @@ def add_model_options(p: argparse.ArgumentParser, *, required: bool = True) -> N
 
 
 def add_engine_options(p: argparse.ArgumentParser) -> None:
-    """Where the calibration's tasks run: this machine, or a dask.distributed cluster."""
+    """Where the calibration's tasks and the passes over a file read in chunks run: this machine, or Dask."""
     p.add_argument("--engine", choices=defaults.ENGINES, default=None,
-                   help="where calibration tasks run: 'local' (this machine's cores) or 'dask' (a Dask cluster: "
+                   help="where calibration tasks and the passes over a file read in chunks (--stream) run: "
+                        "'local' (this machine) or 'dask' (a Dask cluster: "
                         "--scheduler, else a local cluster on 127.0.0.1 whose dashboard address is printed) "
                         f"(default: {defaults.ENGINE})")
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
