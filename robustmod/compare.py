@@ -453,12 +453,13 @@ def compare(
     workers : int, optional
         Workers for the calibration (default: the available cores); the numbers do not depend on it.
     engine : "local", "dask" or robustmod.engines.Engine, default="local"
-        Where the calibration's tasks (and the passes over a file read in chunks) run: this machine's processes, or a dask.distributed cluster
-        (``scheduler``, or else a LocalCluster on 127.0.0.1 of ``workers`` workers, started only for
-        a calibration or a file read in chunks, and closed after it). An Engine object is used as it is and left open. For a file
-        read in chunks (``stream``) the dask engine runs the streaming passes as one task per partition
-        of the file (row groups of Parquet, byte blocks of CSV), merged by a tree reduction; every
-        worker must be able to read the file at the same path.
+        Where the calibration's tasks (and the passes over a file read in chunks) run: this machine's
+        processes, or a dask.distributed cluster (``scheduler``, or else a LocalCluster on 127.0.0.1 of
+        ``workers`` workers, started only for a calibration or a file read in chunks, and closed after
+        it). An Engine object is used as it is and left open. For a file read in chunks (``stream``)
+        the dask engine runs every pass as one task per partition of the file (row groups of Parquet,
+        byte blocks of CSV), merged by a tree reduction; every worker must be able to read the file
+        at the same path.
     scheduler : str, optional
         Address of a running Dask scheduler, e.g. ``"tcp://scheduler-host:8786"`` (dask engine only).
     announce : callable, optional

@@ -158,6 +158,7 @@ class PassLog:
         self._stage: str | Callable[[int], str] = "profile"
         self._in_stage = 0
         self._progress: Any = None
+        self._open_task: dict[str, Any] | None = None
 
     def set_stage(self, stage: str | Callable[[int], str]) -> None:
         self._stage, self._in_stage = stage, 0
@@ -184,6 +185,32 @@ class PassLog:
         finally:
             if task is not None:
                 self._progress.remove_task(task)
+
+    def tasks(self, partitions: Sequence[Partition]) -> Callable[[int], None]:
+        """A pass run as one task per partition (on an engine): counted and named as :meth:`track` does;
+        the returned ``on_done(i)`` advances the bar by partition i's rows. :meth:`end_tasks` closes it."""
+        self.passes += 1
+        name = self.label()
+        t0 = time.perf_counter()
+        state: dict[str, Any] = {"done": 0, "task": None}
+
+        def on_done(i: int) -> None:
+            state["done"] += partitions[i].rows
+            if not self.show:
+                return
+            if state["task"] is None and time.perf_counter() - t0 > PROGRESS_AFTER:
+                state["task"] = self._bars().add_task(name, total=self.total, completed=state["done"])
+            elif state["task"] is not None:
+                self._progress.update(state["task"], completed=state["done"])
+
+        self._open_task = state
+        return on_done
+
+    def end_tasks(self) -> None:
+        state = self._open_task
+        if state is not None and state["task"] is not None and self._progress is not None:
+            self._progress.remove_task(state["task"])
+        self._open_task = None
 
     def _bars(self) -> Any:
         if self._progress is None:
@@ -514,7 +541,7 @@ def stream_compare(path: str | Path, spec: ModelSpec, ids: list[str], primary: s
 
 def _read_note(chunks: ModelChunks, log: PassLog, budget: int, engine: Any) -> str:
     """The warning that says how the file was read: chunk size, passes, partitions, budget."""
-    passes = log.passes + (chunks.plan.passes if chunks.plan is not None else 0)
+    passes = log.passes
     split = "" if chunks.plan is None else f", {len(chunks.plan.partitions)} partitions as {engine.name} tasks"
     return (f"The data were read in chunks of up to {chunks.chunk_rows:,} rows ({passes} passes over the file{split}; "
             f"memory budget {budget / 2**30:.2f} GiB): every number comes from the streaming kernels "
@@ -525,7 +552,8 @@ def plan_for(source: Source, engine: Any) -> Plan | None:
     """The partitions of the file for ``engine`` (None without an engine: every pass in this process)."""
     if engine is None:
         return None
-    return Plan(engine, source.partitions(engine, rows=PARTITION_ROWS))
+    log = source.log if isinstance(source, TrackedSource) else None
+    return Plan(engine, source.partitions(engine, rows=PARTITION_ROWS), log=log)
 
 
 def _file_rows(source: Source) -> int | None:

@@ -249,3 +249,46 @@ def _sum_of_squares(state: Any, part: np.ndarray) -> float:
 
 def _add(a: float, b: float) -> float:
     return a + b
+
+
+def test_passes_on_the_cluster_are_counted_and_shown(tmp_path: Path, small_parts: None, dask2: Engine,
+                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    # Each pass run as tasks is named as on one machine (tests/test_stream_compare.py), and its bar advances partition by partition to the
+    # file's row count (a stand-in for the rich bars records what they are told).
+    path = _write(_wage1(), tmp_path, "parquet")
+    monkeypatch.setattr(stream, "PROGRESS_AFTER", -1.0)
+    names: list[str] = []
+    bars: dict[int, list[Any]] = {}
+    real = stream.PassLog.label
+
+    def label(self: Any) -> str:
+        names.append(real(self))
+        return names[-1]
+
+    class Bars:
+        def add_task(self, name: str, total: Any, completed: int) -> int:
+            bars[len(bars)] = [name, completed]
+            return len(bars) - 1
+
+        def update(self, task: int, completed: int) -> None:
+            bars[task][1] = completed
+
+        def remove_task(self, task: int) -> None:
+            pass
+
+        def stop(self) -> None:
+            pass
+
+    def fake_bars(self: Any) -> Bars:
+        self._progress = self._progress or Bars()
+        return self._progress
+
+    monkeypatch.setattr(stream.PassLog, "label", label)
+    monkeypatch.setattr(stream.PassLog, "_bars", fake_bars)
+    got = compare(path, stream=True, engine=dask2, progress=True, **MODEL)
+    for expected in ("profile", "quantiles of exper", "OLS factor", "OLS residuals and tests", "Goldfeld–Quandt",
+                     "binning check", "WLS: OLS start", "WLS scoring pass 1"):
+        assert expected in names, (expected, names)
+    shown = [b for b in bars.values() if b[0] == "OLS factor"]
+    assert shown and shown[0][1] == 526  # every partition's rows counted
+    assert f"({len(names)} passes over the file, {len(GROUPS)} partitions as dask tasks" in " ".join(got.warnings)

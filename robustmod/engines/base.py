@@ -37,14 +37,19 @@ class Engine(ABC):
         """Results of ``fn(state, *tasks[i])`` in task order; ``on_done(i)`` as each task finishes."""
 
     def map_reduce(self, fn: TaskFn, partitions: Sequence[Any], merge: Callable[[Any, Any], Any],
-                   state: Any = None) -> Any:
+                   state: Any = None, *, on_done: Callable[[int], None] | None = None) -> Any:
         """``fn(state, p)`` for every partition p, combined by ``merge`` in a pairwise tree over the
         partitions in order (:func:`tree_merge`), so the result does not depend on which task ends first.
 
         An :class:`~robustmod.errors.InputError` of a partition (a bad value in the file) is raised
         after the others have ended: the one of the earliest partition, as a single pass would raise it.
-        This engine folds the partitions one after the other in this process; Dask runs them as tasks."""
-        parts = [guarded(fn, state, i, p) for i, p in enumerate(partitions)]
+        This engine folds the partitions one after the other in this process; Dask runs them as tasks.
+        ``on_done(i)`` is called as partition i's task ends."""
+        parts = []
+        for i, p in enumerate(partitions):
+            parts.append(guarded(fn, state, i, p))
+            if on_done is not None:
+                on_done(i)
         return unwrap(tree_merge(parts, lambda a, b: guarded_merge(merge, a, b)))
 
     def close(self) -> None:  # noqa: B027 - an optional hook: an engine that starts nothing keeps this no-op

@@ -102,7 +102,7 @@ class DaskEngine(Engine):
         return results
 
     def map_reduce(self, fn: TaskFn, partitions: Sequence[Any], merge: Callable[[Any, Any], Any],
-                   state: Any = None) -> Any:
+                   state: Any = None, *, on_done: Callable[[int], None] | None = None) -> Any:
         """One task per partition and a tree of merge tasks (neighbours paired level by level, as
         :func:`robustmod.engines.base.tree_merge` pairs them), so the result is the same on any number of
         workers; ``state`` is scattered once (its own key: equal states of different passes never collide)."""
@@ -112,6 +112,7 @@ class DaskEngine(Engine):
         shared = client.scatter([state], hash=False, broadcast=True)[0]
         level = [client.submit(_part, fn, shared, i, p, pure=False, retries=RETRIES)
                  for i, p in enumerate(partitions)]
+        tasks = list(level)
         while len(level) > 1:
             nxt = [client.submit(_merge, merge, level[i], level[i + 1], pure=False, retries=RETRIES)
                    for i in range(0, len(level) - 1, 2)]
@@ -119,9 +120,15 @@ class DaskEngine(Engine):
                 nxt.append(level[-1])
             level = nxt
         try:
+            if on_done is not None:
+                from distributed import as_completed  # noqa: PLC0415
+
+                index = {f.key: i for i, f in enumerate(tasks)}
+                for fut in as_completed(tasks, loop=client.loop):
+                    on_done(index[fut.key])
             return unwrap(level[0].result())
         finally:
-            del level, shared
+            del level, tasks, shared
 
     def describe(self) -> dict[str, Any]:
         return {"engine": self.name, "workers": self.workers,

@@ -91,6 +91,9 @@ class Plan:
     engine: Any
     partitions: Sequence[Any]
     passes: int = 0
+    #: Counts and shows the passes (``tasks(partitions) -> on_done``, ``end_tasks()``), e.g. a
+    #: :class:`robustmod.stream.PassLog`; None: not shown.
+    log: Any = None
 
 
 def fold(source: Callable[[], Iterator[Any]], init: Callable[[], A], step: Callable[[A, Any], None],
@@ -110,7 +113,13 @@ def fold(source: Callable[[], Iterator[Any]], init: Callable[[], A], step: Calla
             step(acc, item)
         return acc
     plan.passes += 1
-    return plan.engine.map_reduce(fold_partition, plan.partitions, merge or merge_pair, state=(source, init, step))
+    on_done = plan.log.tasks(plan.partitions) if plan.log is not None else None
+    try:
+        return plan.engine.map_reduce(fold_partition, plan.partitions, merge or merge_pair, state=(source, init, step),
+                                      on_done=on_done)
+    finally:
+        if plan.log is not None:
+            plan.log.end_tasks()
 
 
 def fold_partition(state: tuple[Any, Callable[[], Any], Callable[[Any, Any], None]], partition: Any) -> Any:
