@@ -191,6 +191,12 @@ class Source:
                     start += batch.num_rows
         except pa.ArrowInvalid as exc:
             raise self._read_error(exc) from None
+        except OSError as exc:
+            if self.part is None:
+                raise
+            raise InputError(f"A worker cannot read the data file '{self.path}' ({type(exc).__name__}): every worker "
+                             "of the cluster must be able to read the file at the same path (a shared file system, "
+                             "or a copy at that path on each machine).") from None
 
     def _record_batches(self, columns: list[str], size: int) -> Iterator[pa.RecordBatch]:
         """Synchronous readers, one row group (Parquet) or block (CSV) at a time: a scanner that

@@ -292,3 +292,13 @@ def test_passes_on_the_cluster_are_counted_and_shown(tmp_path: Path, small_parts
     shown = [b for b in bars.values() if b[0] == "OLS factor"]
     assert shown and shown[0][1] == 526  # every partition's rows counted
     assert f"({len(names)} passes over the file, {len(GROUPS)} partitions as dask tasks" in " ".join(got.warnings)
+
+
+def test_a_worker_that_cannot_read_the_file_says_so(tmp_path: Path, small_parts: None) -> None:
+    # The tasks carry the path, not the rows: a file a worker cannot open is a one-line error naming the fix.
+    path = _write(_wage1(), tmp_path, "parquet")
+    src = source.Source(path)
+    parts = src.partitions()
+    path.rename(tmp_path / "moved.parquet")
+    with pytest.raises(source.InputError, match=r"^A worker cannot read the data file .*same path"):
+        list(src.on(parts[-1]).batches(["lwage"]))
