@@ -270,16 +270,9 @@ def _check_layout(lay: _Layout, chunk: Chunk, d: np.ndarray, w: np.ndarray) -> N
             raise _LayoutChanged
 
 
-def _sorted_blocks(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str, *,
-                   check: bool = True) -> Any:
-    """(C, starts, rows) per block of rows: the compact block with its rows sorted by bin (bin j in
-    rows starts[j]:starts[j + 1]), Fortran-ordered, and the data positions of its rows."""
-    for c in chunks():
-        yield from _chunk_blocks(c, s, lay, focal, moderator, check=check)
-
-
 def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: str, *, check: bool = True) -> Any:
-    """The blocks of :func:`_sorted_blocks` for the rows of one chunk."""
+    """(C, starts, rows) per block of one chunk's rows: the compact block with its rows sorted by bin (bin j
+    in rows starts[j]:starts[j + 1]), Fortran-ordered, and the data positions of its rows."""
     J, k = s.present.size, lay.k
     lookup = np.zeros(s.cuts.size + 1, dtype=np.uint8 if J < 256 else np.int64)
     lookup[s.present] = np.arange(J)
