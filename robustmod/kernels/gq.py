@@ -7,24 +7,33 @@ row with w ≥ c_hi; rows tied at a cut value all go to the same group, so the s
 depend on the order of the rows in the file. When no value is tied at a cut, each group has
 exactly n₁ rows and the test equals the in-memory one (rows sorted by w, first and last n₁).
 With ties the groups can be larger than n₁; when c_lo ≥ c_hi the groups would share rows and
-no test is reported. Each group's OLS residual variance s² = RSS/(n_g − k) comes from a TSQR
-factor of [X y] (RSS = R²_{k+1,k+1}); F = s²(high)/s²(low) with (n_high − k, n_low − k) df,
+no test is reported. Each group's OLS fit comes from its cross-products of [X y] (one pass),
+solved by Cholesky of the column-scaled XᵀX when its condition number is at most
+:data:`robustmod.kernels.ols.MAX_CONDITION`: RSS = yᵀy − ‖R⁻ᵀXᵀy‖². That difference loses about
+κ(R)·(yᵀy/RSS)·ε relative accuracy, so when that bound exceeds :data:`MAX_LOSS` a second pass sums
+the squared residuals Σ(yᵢ − xᵢᵀβ̂)² of the group's rows instead (stationary in β̂: the solve's
+error enters it only squared). An ill-conditioned XᵀX gets a TSQR factor of [X y], RSS = R²_{k+1,k+1}
+(Householder accuracy). s² = RSS/(n_g − k); F = s²(high)/s²(low) with (n_high − k, n_low − k) df,
 two-sided p = 2·min(P(F' ≥ F), P(F' ≤ F)).
 """
 from __future__ import annotations
 
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
-from scipy import stats
+from scipy import linalg, stats
 
 from ..jsonvalues import num
 from .accumulate import TSQR
 from .chunks import ChunkSource
+from .ols import MAX_CONDITION
 from .order import column_summary, order_statistics, sorted_summary
 
 #: Share of middle rows dropped (the in-memory test's value, robustmod.diagnostics.GQ_DROP).
 DROP_SHARE = 0.2
+#: Largest κ(R)·yᵀy/RSS for which RSS is read off the cross-products (relative error about 1e5·ε).
+MAX_LOSS = 1e5
 #: Rows of a chunk gathered into one group block at a time (bounds the work space of a large chunk).
 BLOCK_ROWS = 1 << 16
 
@@ -37,6 +46,65 @@ def _group_block(X: np.ndarray, y: np.ndarray, rows: np.ndarray) -> np.ndarray:
         np.take(X[:, j], rows, out=out[:, j])
     np.take(y, rows, out=out[:, k])
     return out
+
+
+def _group_blocks(chunks: ChunkSource, moderator: str, cuts: dict[str, Any]) -> Iterator[tuple[str, np.ndarray]]:
+    """(group, [X y] of the group's rows of one block of rows), block by block."""
+    for c in chunks():
+        w = np.asarray(c.columns[moderator], dtype=float)
+        for a in range(0, c.size, BLOCK_ROWS):
+            wb, Xb, yb = w[a:a + BLOCK_ROWS], c.X[a:a + BLOCK_ROWS], c.y[a:a + BLOCK_ROWS]
+            for name, rule in cuts.items():
+                rows = np.flatnonzero(rule(wb))
+                if rows.size:
+                    yield name, _group_block(Xb, yb, rows)
+
+
+def _cholesky_fit(G: np.ndarray) -> tuple[np.ndarray, float, float] | None:
+    """(β̂, RSS from the cross-products, its loss bound κ(R)·yᵀy/RSS) from the cross-products of [X y],
+    by Cholesky of the column-scaled XᵀX; None when that is singular or its condition number exceeds
+    MAX_CONDITION (the streamed OLS kernel's rule)."""
+    k = G.shape[0] - 1
+    norms = np.sqrt(np.diag(G)[:k])
+    if np.any(norms == 0):
+        return None
+    d = 1.0 / norms
+    Gs = G[:k, :k] * d[:, None] * d[None, :]
+    condition = float(np.linalg.cond(Gs))
+    if not np.isfinite(condition) or condition > MAX_CONDITION:
+        return None
+    try:
+        Rs = linalg.cholesky(Gs, lower=False, check_finite=False)
+    except linalg.LinAlgError:
+        return None
+    z = linalg.solve_triangular(Rs, G[:k, k] * d, trans="T", check_finite=False)
+    beta = linalg.solve_triangular(Rs, z, check_finite=False) * d
+    rss = float(G[k, k] - z @ z)
+    loss = np.sqrt(condition) * float(G[k, k]) / rss if rss > 0 else np.inf
+    return beta, rss, loss
+
+
+def _group_rss(chunks: ChunkSource, moderator: str, cuts: dict[str, Any], k: int
+               ) -> tuple[dict[str, int], dict[str, float]]:
+    """Rows and residual sum of squares of each group's OLS fit (see the module docstring)."""
+    grams = {name: np.zeros((k + 1, k + 1)) for name in cuts}
+    sizes = dict.fromkeys(cuts, 0)
+    for name, block in _group_blocks(chunks, moderator, cuts):
+        grams[name] += block.T @ block
+        sizes[name] += block.shape[0]
+    fits = {name: _cholesky_fit(G) for name, G in grams.items()}
+    if all(f is not None and f[2] <= MAX_LOSS for f in fits.values()):
+        return sizes, {name: f[1] for name, f in fits.items() if f is not None}
+    if all(f is not None for f in fits.values()):
+        rss = dict.fromkeys(cuts, 0.0)
+        for name, block in _group_blocks(chunks, moderator, cuts):
+            e = block[:, k] - block[:, :k] @ fits[name][0]  # type: ignore[index]
+            rss[name] += float(e @ e)
+        return sizes, rss
+    groups = {name: TSQR(k + 1) for name in cuts}
+    for name, block in _group_blocks(chunks, moderator, cuts):
+        groups[name].add(block, overwrite=True)
+    return sizes, {name: float(acc.factor()[k, k] ** 2) for name, acc in groups.items()}
 
 
 def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
@@ -60,18 +128,9 @@ def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = 
     c_lo, c_hi = order_statistics(values, [n1 - 1, n - n1], summary=summary, sorted_values=sorted_values)
     if c_lo >= c_hi:
         return None
-    groups = {"low": TSQR(k + 1), "high": TSQR(k + 1)}
-    sizes = {"low": 0, "high": 0}
-    for c in chunks():
-        w = np.asarray(c.columns[moderator], dtype=float)
-        for a in range(0, c.size, BLOCK_ROWS):
-            wb, Xb, yb = w[a:a + BLOCK_ROWS], c.X[a:a + BLOCK_ROWS], c.y[a:a + BLOCK_ROWS]
-            for name, mask in (("low", wb <= c_lo), ("high", wb >= c_hi)):
-                rows = np.flatnonzero(mask)
-                if rows.size:
-                    groups[name].add(_group_block(Xb, yb, rows), overwrite=True)
-                    sizes[name] += int(rows.size)
-    s2 = {name: float(acc.factor()[k, k] ** 2) / (sizes[name] - k) for name, acc in groups.items()}
+    cuts = {"low": lambda w: w <= c_lo, "high": lambda w: w >= c_hi}
+    sizes, rss = _group_rss(chunks, moderator, cuts, k)
+    s2 = {name: rss[name] / (sizes[name] - k) for name in cuts}
     if s2["low"] <= 0:
         return None
     F = s2["high"] / s2["low"]
