@@ -22,6 +22,7 @@ from formulaic import model_matrix
 from scipy import linalg
 from scipy.linalg import lapack
 
+from .blas_threads import one_blas_thread
 from .clusters import attach_clusters, moderator_levels
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
@@ -481,6 +482,11 @@ def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     time of Householder at n = 10⁶, k = 7); otherwise Householder: LAPACK geqrf then orgqr, in
     place on one Fortran-ordered copy of X (scipy.linalg.qr makes further copies of the n × k
     arrays, which cost as much as the QR)."""
+    with one_blas_thread():  # see robustmod.blas_threads
+        return _thin_qr(X)
+
+
+def _thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     n, k = X.shape
     if n >= CHOLESKY_QR_ROWS and (fast := _cholesky_qr(np.asarray(X, dtype=float))) is not None:
         return fast

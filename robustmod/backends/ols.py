@@ -12,6 +12,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from scipy import linalg
 
+from ..blas_threads import one_blas_thread
 from ..errors import InputError
 from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
 from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
@@ -122,8 +123,9 @@ def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
     fits = _DESIGN_FITS.setdefault(design, {})
     if kind not in fits:
         Q, R = design.qr
-        fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design),
-                             residuals=design_residuals(design))
+        with one_blas_thread():  # n × k products and k × k solves: see robustmod.blas_threads
+            fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design),
+                                 residuals=design_residuals(design))
     return fits[kind]
 
 

@@ -84,14 +84,35 @@ def _cholesky_fit(G: np.ndarray) -> tuple[np.ndarray, float, float] | None:
     return beta, rss, loss
 
 
+def _group_grams(chunks: ChunkSource, moderator: str, cuts: dict[str, Any], k: int
+                 ) -> tuple[dict[str, np.ndarray], dict[str, int]]:
+    """Cross-products of [X y] over each group's rows, and the group sizes (rows gathered whole:
+    measured faster than gathering column by column, or than multiplying in a 0/1 indicator)."""
+    grams = {name: np.zeros((k + 1, k + 1)) for name in cuts}
+    sizes = dict.fromkeys(cuts, 0)
+    for c in chunks():
+        w = np.asarray(c.columns[moderator], dtype=float)
+        for a in range(0, c.size, BLOCK_ROWS):
+            wb, Xb, yb = w[a:a + BLOCK_ROWS], c.X[a:a + BLOCK_ROWS], c.y[a:a + BLOCK_ROWS]
+            for name, rule in cuts.items():
+                rows = np.flatnonzero(rule(wb))
+                if not rows.size:
+                    continue
+                Xg, yg = Xb[rows], yb[rows]
+                G = grams[name]
+                G[:k, :k] += Xg.T @ Xg
+                G[:k, k] += Xg.T @ yg
+                G[k, k] += float(yg @ yg)
+                sizes[name] += int(rows.size)
+    for G in grams.values():
+        G[k, :k] = G[:k, k]
+    return grams, sizes
+
+
 def _group_rss(chunks: ChunkSource, moderator: str, cuts: dict[str, Any], k: int
                ) -> tuple[dict[str, int], dict[str, float]]:
     """Rows and residual sum of squares of each group's OLS fit (see the module docstring)."""
-    grams = {name: np.zeros((k + 1, k + 1)) for name in cuts}
-    sizes = dict.fromkeys(cuts, 0)
-    for name, block in _group_blocks(chunks, moderator, cuts):
-        grams[name] += block.T @ block
-        sizes[name] += block.shape[0]
+    grams, sizes = _group_grams(chunks, moderator, cuts, k)
     fits = {name: _cholesky_fit(G) for name, G in grams.items()}
     if all(f is not None and f[2] <= MAX_LOSS for f in fits.values()):
         return sizes, {name: f[1] for name, f in fits.items() if f is not None}
