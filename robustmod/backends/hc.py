@@ -94,8 +94,9 @@ def r_inverse(R: np.ndarray) -> np.ndarray:
     return linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
 
 
-#: Rows per block of the meat: blocks that fit in cache beat one pass over an n × k temporary.
-MEAT_BLOCK = 65536
+#: Rows per block of the meat: blocks that fit in cache beat one pass over an n × k temporary
+#: (measured at n = 10⁶, k = 7: 13 ms with blocks of 8,192 rows, 23 ms with 65,536).
+MEAT_BLOCK = 8192
 
 
 def sandwich(Q: np.ndarray, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
