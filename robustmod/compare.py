@@ -11,7 +11,7 @@ import dataclasses
 import html
 import time
 from collections.abc import Callable, Mapping, Sequence
-from contextlib import ExitStack
+from contextlib import ExitStack, nullcontext
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -24,6 +24,7 @@ from . import effects
 from .backends.base import Fit, Unavailable
 from .backends.kernels import leverage_one_note
 from .backends.registry import CONSTANT_VARIANCE, check_ids, independent_rows_ids, make_backend, residual_per_row_ids
+from .blas_threads import one_blas_thread
 from .calibrate import MAX_DATASETS, MIN_DATASETS, Calibration, calibrate
 from .clusters import FEW_CLUSTERS, cluster_sizes, residual_icc
 from .comparison_tables import backend_tables, cluster_table, product_term_table, regions_table, slopes_table
@@ -552,14 +553,17 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
          options: dict[str, Any], *, calibration: int | None, engine: Engine | None, workers: int | None,
          calibrate_costly: bool, progress: bool, on_step: StepCallback | None, started: float) -> Comparison:
     """Design, every back-end, the diagnostics and the calibration: the work of :func:`compare`."""
-    design = build_design(frame, spec)
+    with one_blas_thread():
+        design = build_design(frame, spec)
     report_step(on_step, "design", started)
     results: dict[str, BackendResult] = {}
     for bid in ids:
         backend = make_backend(bid, **dict(options.get(bid, {})))
         t0 = time.perf_counter()
-        fit = backend.fit(design, seed=spec.seed, progress=progress)
-        results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
+        # The wild bootstrap and the sampler choose their own threads; the cheap back-ends are small products.
+        with one_blas_thread() if backend.cost == "cheap" else nullcontext():
+            fit = backend.fit(design, seed=spec.seed, progress=progress)
+            results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
         report_step(on_step, f"back-end {bid}", t0)
     leverage_note = leverage_one_note(design)
     if leverage_note is not None:
@@ -572,7 +576,8 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
             "Choose another primary back-end (e.g. hc0) or fix the data."
         )
     started = time.perf_counter()
-    diagnostics = variance_diagnostics(design, alpha=spec.alpha)
+    with one_blas_thread():
+        diagnostics = variance_diagnostics(design, alpha=spec.alpha)
     report_step(on_step, "diagnostics", started)
     calib = None
     if calibration is not None:

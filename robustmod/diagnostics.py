@@ -11,8 +11,8 @@
   mean model as much as non-constant variance (King & Roberts 2015).
 * Linearity of the interaction: the binning check of :mod:`robustmod.linearity`.
 
-Each test is computed once, by the streaming kernel of :mod:`robustmod.kernels`, here with the
-in-memory rows as one chunk (or a few, from the memory budget).
+Each test is computed once, by the streaming kernel of :mod:`robustmod.kernels`, here over the
+in-memory rows in chunks of at most 65,536 rows (:func:`robustmod.kernels.chunks.in_memory_rows`).
 """
 from __future__ import annotations
 
@@ -27,7 +27,7 @@ from .backends.ols import design_fit, design_residuals
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
-from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, array_chunks, rows_per_chunk
+from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, array_chunks, in_memory_rows
 from .kernels.gq import DROP_SHARE
 from .kernels.gq import goldfeld_quandt as streamed_gq
 from .kernels.lmtests import AuxiliaryRegression, ResidualPasses
@@ -47,7 +47,7 @@ SE_GAP_LARGE = 1.5
 def _residual_passes(X: np.ndarray, e: np.ndarray, width: int, budget: int) -> ResidualPasses:
     """The in-memory rows as chunks of (X rows, their residuals), as many rows per chunk as the
     budget allows for ``width`` columns per row (one chunk for most data sets)."""
-    chunks = array_chunks(X, e, chunk_rows=rows_per_chunk(budget, width))
+    chunks = array_chunks(X, e, chunk_rows=in_memory_rows(budget, width))
     return lambda: ((c, c.y) for c in chunks())
 
 
@@ -124,7 +124,7 @@ def white(design: Design, resid: np.ndarray | None = None) -> dict[str, Any]:
 def _design_chunks(design: Design, columns: Mapping[str, np.ndarray], y: np.ndarray | None = None,
                    budget: int = DEFAULT_BUDGET) -> ChunkSource:
     X = design.X
-    return array_chunks(X, design.y if y is None else y, chunk_rows=rows_per_chunk(budget, X.shape[1] + 1),
+    return array_chunks(X, design.y if y is None else y, chunk_rows=in_memory_rows(budget, X.shape[1] + 1),
                         columns=columns)
 
 

@@ -12,7 +12,7 @@ nested in the binning model (μ_j and α_j linear in x_j, η_j and β_j equal ac
 The test is run as: the user's model matrix augmented by the binning columns it does not
 span, HC3 covariance, joint F test that the added coefficients are zero. The fits come from
 the streaming kernel :func:`robustmod.kernels.binning.binning_fits`, here with the in-memory
-rows as one chunk (or a few, from the memory budget) and the design's sorted moderator. For the plain
+rows in chunks of at most 65,536 (:func:`robustmod.kernels.chunks.in_memory_rows`) and the design's sorted moderator. For the plain
 model y ~ D * W + Z this is exactly the nested test.
 
 Common support: a bin with few rows, or in which the focal predictor barely varies, gives
@@ -32,7 +32,7 @@ from .design import Design
 from .errors import InputError, option_error
 from .jsonvalues import num as _num
 from .kernels.binning import BinSummary, binning_fits
-from .kernels.chunks import DEFAULT_BUDGET, array_chunks, rows_per_chunk
+from .kernels.chunks import DEFAULT_BUDGET, array_chunks, in_memory_rows
 from .tables import Column, Table, format_df, format_number, format_p, make_table
 
 #: Default number of quantile bins (terciles, as Hainmueller, Mummolo & Xu 2019 use).
@@ -176,7 +176,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     w = np.asarray(info.values, dtype=float)
     d = design.data.frame[design.focal].to_numpy(dtype=float)
     cov_cols = _covariate_columns(design, moderator)
-    chunks = array_chunks(design.X, design.y, chunk_rows=rows_per_chunk(DEFAULT_BUDGET, design.n_params + 4),
+    chunks = array_chunks(design.X, design.y, chunk_rows=in_memory_rows(DEFAULT_BUDGET, design.n_params + 4),
                           columns={design.focal: d, moderator: w})
     fits = binning_fits(chunks, focal=design.focal, moderator=moderator, covariate_columns=cov_cols, bins=bins,
                         alpha=alpha, sorted_values=info.sorted_values)

@@ -13,6 +13,7 @@ Bad values get the one-line messages of the in-memory path, naming the column an
 """
 from __future__ import annotations
 
+import gc
 import re
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -441,6 +442,11 @@ class ModelChunks(Partitioned):
                 continue
             y = np.asarray(self._lhs.get_model_matrix(frame), dtype=float)[:, 0]
             X = np.ascontiguousarray(np.asarray(self._rhs.get_model_matrix(frame), dtype=float))
+            # formulaic's materializer leaves reference cycles that hold this chunk's frame (and the
+            # Arrow buffers under it); left to the full collections they piled up pass after pass
+            # (measured: 450 MiB of dead Arrow buffers at 10⁷ rows). A young-generation collection
+            # here frees each chunk's cycles while they are still young, for about a millisecond.
+            gc.collect(1)
             for arr, names in ((y[:, None], [self.spec.response]), (X, self.term_names)):
                 bad = ~np.isfinite(arr)
                 if bad.any():

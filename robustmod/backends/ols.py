@@ -10,8 +10,10 @@ import weakref
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import pandas as pd
 from scipy import linalg
 
+from ..blas_threads import one_blas_thread
 from ..errors import InputError
 from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
 from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
@@ -117,14 +119,28 @@ def design_residuals(design: Design) -> tuple[np.ndarray, np.ndarray]:
     return _DESIGN_PIECES[design]
 
 
+def _row_numbers(design: Design) -> Any:
+    """The design rows' 1-based data row numbers for messages: a RangeIndex shifted by one when the
+    rows are the data's first n (no n-vector made), else :func:`design_row_numbers`."""
+    index = design.data.frame.index
+    return index + 1 if isinstance(index, pd.RangeIndex) else design_row_numbers(design)
+
+
 def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
     """:func:`ols_fit` of ``kind`` on the design's own QR, made once per design and kind."""
     fits = _DESIGN_FITS.setdefault(design, {})
     if kind not in fits:
         Q, R = design.qr
-        fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=design_row_numbers(design),
-                             residuals=design_residuals(design))
+        with one_blas_thread():  # n × k products and k × k solves: see robustmod.blas_threads
+            fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design),
+                                 residuals=design_residuals(design))
     return fits[kind]
+
+
+def _centred_sum_of_squares(y: np.ndarray) -> float:
+    """Σ(yᵢ − ȳ)² (its n-vector of deviations freed on return)."""
+    dev = y - y.mean()
+    return float(dev @ dev)
 
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
@@ -150,8 +166,7 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
     warnings: list[str] = []
     rss = float(resid @ resid)
     extras: dict[str, object] = {"sigma": float(np.sqrt(rss / df)), "df_resid": df}
-    dev = y - y.mean()
-    ss_tot = float(dev @ dev)
+    ss_tot = _centred_sum_of_squares(y)
     extras["r_squared"] = float(1 - rss / ss_tot) if ss_tot > 0 else None
     if kind == "ols":
         s2 = rss / df
@@ -164,8 +179,9 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
             return Unavailable(backend_id, label, reason)
         if (ones := int(leverage_one_rows(h).size)):
             warnings.append(f"{ones} row(s) have leverage 1; their residuals are zero and carry no variance information.")
-        w = hc_weights(kind, h, n, k)
-        cov = sandwich(Q, Rinv, w * resid**2)
+        u2w = hc_weights(kind, h, n, k)
+        u2w *= np.square(resid)  # ωᵢ êᵢ² in place: one n-vector fewer at the peak
+        cov = sandwich(Q, Rinv, u2w)
         se_label = kind.upper()
         extras["max_leverage"] = float(h.max())
     return WaldFit(backend_id, label, term_names, beta, cov, df, warnings=tuple(warnings),

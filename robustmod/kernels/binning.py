@@ -212,7 +212,7 @@ def added_from_factor(R: np.ndarray, k: int) -> np.ndarray:
 
 
 #: Rows of a chunk handled at a time: cache-sized blocks make the small products fast and bound the work space.
-BLOCK_ROWS = 1 << 15
+BLOCK_ROWS = 1 << 14  # measured at n = 10⁶, k = 7: 148 ms for the check against 160 ms with 1 << 15
 #: The four base columns of a bin, in the order of B's column groups.
 BASE = ("one", "d", "w", "dw")
 

@@ -184,3 +184,13 @@ class ChunkColumn(Partitioned):
         out.plan = None
         return out
 
+
+#: Rows per chunk at most when the rows are in memory already: the kernels' per-chunk n-vectors
+#: (masks, bin numbers, residuals of a group) then stay near a megabyte, so they add nothing to
+#: the peak beyond the design's own arrays, and the chunk count stays small (16 per 10⁶ rows).
+IN_MEMORY_ROWS = 1 << 16
+
+
+def in_memory_rows(budget_bytes: int, width: int) -> int:
+    """Rows per chunk over in-memory arrays: :func:`rows_per_chunk`, at most :data:`IN_MEMORY_ROWS`."""
+    return min(rows_per_chunk(budget_bytes, width), IN_MEMORY_ROWS)
