@@ -88,6 +88,9 @@ class Design:
     _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
     clusters: np.ndarray | None = field(default=None, repr=False)  # codes 0 … G − 1 per used row, or None
     cluster_name: str | None = None
+    #: Each model-matrix column as the product of the data columns named (the intercept an empty
+    #: product), when the formula has only such terms (:func:`_direct_model_matrices`); else None.
+    _products: tuple[tuple[str, ...], ...] | None = field(default=None, repr=False)
 
     # ---- basic facts -------------------------------------------------------------
     @property
@@ -255,6 +258,9 @@ class Design:
         return frame
 
     def _matrix(self, frame: pd.DataFrame) -> np.ndarray:
+        if self._products is not None and _plain_dtypes(frame, {f for p in self._products for f in p}):
+            # The products formulaic would form, in its order (checked against it when the design was built).
+            return product_columns(frame, self._products)
         mm = self._model_spec.get_model_matrix(frame, context=FORMULA_CONTEXT)  # the allow-listed transforms (log1p …)
         return np.asarray(mm, dtype=float)
 
@@ -299,7 +305,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     for name in frame.columns:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
-    y, X, term_names, model_spec = _model_matrices(spec, frame, prepared.frame.index)
+    y, X, term_names, model_spec, products = _model_matrices(spec, frame, prepared.frame.index)
     n, k = X.shape
     if n <= k + 1:
         raise InputError(
@@ -322,7 +328,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
         data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings), qr=qr,
         _model_spec=model_spec, _frame=frame,
-        clusters=None if clustering is None else clustering.codes, cluster_name=spec.cluster,
+        clusters=None if clustering is None else clustering.codes, cluster_name=spec.cluster, _products=products,
     )
     if _focal_enters_linearly(design):
         return design
@@ -352,6 +358,12 @@ def _plain_columns(frame: pd.DataFrame, names: Sequence[str]) -> bool:
                for name in names)
 
 
+def _plain_dtypes(frame: pd.DataFrame, names: set[str]) -> bool:
+    """:func:`_plain_columns` from the frame's dtypes alone (no column is looked up)."""
+    kinds = {str(c): t for c, t in zip(frame.columns, frame.dtypes, strict=True)}
+    return all(isinstance(kinds.get(n), np.dtype) and kinds[n].kind in "iuf" for n in names)
+
+
 def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]] | None:
     """The response column and each model-matrix column as the product of the columns named (the
     intercept an empty product), when every term is that; else None."""
@@ -373,6 +385,31 @@ def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]]
     return (response.expr, products) if len(products) == mm.rhs.shape[1] else None
 
 
+def product_columns(frame: pd.DataFrame, products: Sequence[Sequence[str]]) -> np.ndarray:
+    """The matrix whose column j is the product of the columns ``products[j]`` of ``frame``, multiplied
+    left to right as formulaic multiplies (an empty product is the intercept's 1)."""
+    values = {name: frame[name].to_numpy(dtype=float) for name in {f for p in products for f in p}}
+    X = np.empty((len(frame), len(products)))
+    for j, factors in enumerate(products):
+        if not factors:
+            X[:, j] = 1.0
+            continue
+        col = values[factors[0]]
+        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row by the caller
+            for name in factors[1:]:
+                col = col * values[name]
+        X[:, j] = col
+    return X
+
+
+#: Formula plans of the direct build, keyed by the formula and the frame's column types: what
+#: formulaic's parse on the head rows gave (response, products, term names, model spec), once checked.
+_DIRECT_PLANS: dict[tuple[str, tuple[tuple[str, str], ...]], tuple[str, tuple[tuple[str, ...], ...],
+                                                                   tuple[str, ...], Any]] = {}
+#: Plans kept at most (a grid has one formula per set of covariates).
+DIRECT_PLAN_CACHE = 4096
+
+
 def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any] | None:
     """y, X, term names and model spec without formulaic's n-row frames, for a formula whose terms are
     an intercept, plain numeric columns and their products (e.g. ``y ~ x * w + a``); None otherwise.
@@ -380,6 +417,20 @@ def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.nda
     formulaic builds the model spec from the first :data:`SPEC_ROWS` rows (plain numeric columns keep
     no state, so it is the spec of all rows), X is filled column by column with the same products in
     the same order, and both must agree exactly on those rows, else None (and formulaic builds all)."""
+    parts = _direct_parts(spec, frame)
+    return None if parts is None else parts[:4]
+
+
+def _direct_parts(spec: ModelSpec, frame: pd.DataFrame
+                  ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any, tuple[tuple[str, ...], ...]] | None:
+    """:func:`_direct_model_matrices` and the products of each column. A formula checked once against
+    formulaic on frames with the same column types is not parsed again (the same products of the same
+    plain numeric columns: formulaic's spec of them keeps no state of the data)."""
+    key = (spec.formula, tuple((str(c), str(t)) for c, t in frame.dtypes.items()))
+    hit = _DIRECT_PLANS.get(key)
+    if hit is not None:
+        response, products, names, model_spec = hit
+        return frame[response].to_numpy(dtype=float).copy(), product_columns(frame, products), names, model_spec, products
     head = frame.iloc[:SPEC_ROWS]
     try:
         mm = model_matrix(spec.formula, head, context=FORMULA_CONTEXT, na_action="ignore")
@@ -388,32 +439,30 @@ def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.nda
     plan = _plain_products(mm, frame)
     if plan is None:
         return None
-    response, products = plan
-    X = np.empty((len(frame), len(products)))
-    for j, factors in enumerate(products):
-        if not factors:
-            X[:, j] = 1.0
-            continue
-        col = frame[factors[0]].to_numpy(dtype=float)
-        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row below
-            for name in factors[1:]:  # left to right, as formulaic multiplies
-                col = col * frame[name].to_numpy(dtype=float)
-        X[:, j] = col
+    response, product_lists = plan
+    products = tuple(tuple(p) for p in product_lists)
+    X = product_columns(frame, products)
     y = frame[response].to_numpy(dtype=float).copy()
     m = len(head)
     if not (np.array_equal(X[:m], np.asarray(mm.rhs, dtype=float))
             and np.array_equal(y[:m], np.asarray(mm.lhs, dtype=float)[:, 0])):
         return None
-    return y, X, tuple(str(c) for c in mm.rhs.columns), mm.rhs.model_spec
+    names = tuple(str(c) for c in mm.rhs.columns)
+    if len(_DIRECT_PLANS) >= DIRECT_PLAN_CACHE:
+        _DIRECT_PLANS.clear()
+    _DIRECT_PLANS[key] = (response, products, names, mm.rhs.model_spec)
+    return y, X, names, mm.rhs.model_spec, products
 
 
-def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any]:
-    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row.
+def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index
+                    ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any, tuple[tuple[str, ...], ...] | None]:
+    """y, X, term names, formulaic's model spec and (direct builds) the products of each column from the
+    formula; non-finite cells name their data row.
 
-    Plain numeric terms are built directly (:func:`_direct_model_matrices`), anything else by formulaic."""
-    direct = _direct_model_matrices(spec, frame)
+    Plain numeric terms are built directly (:func:`_direct_parts`), anything else by formulaic."""
+    direct = _direct_parts(spec, frame)
     if direct is not None:
-        y, X, term_names, model_spec = direct
+        y, X, term_names, _, _ = direct
         _check_finite_cells(spec, y, X, term_names, rows)
         return direct
     try:
@@ -430,7 +479,7 @@ def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tup
     X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
     term_names = tuple(str(c) for c in mm.rhs.columns)
     _check_finite_cells(spec, y, X, term_names, rows)
-    return y, X, term_names, mm.rhs.model_spec
+    return y, X, term_names, mm.rhs.model_spec, None
 
 
 def _check_finite_cells(spec: ModelSpec, y: np.ndarray, X: np.ndarray, term_names: tuple[str, ...],

@@ -397,7 +397,7 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
         # (e.g. a dummy whose 1s were all dropped), which rounding can let through the factorisation.
         ok &= np.diagonal(L, axis1=1, axis2=2).min(axis=1) > RANK_TOL
         L[~ok] = eye
-        Linv = linalg.solve_triangular(L, np.broadcast_to(eye, (m, k, k)), lower=True, check_finite=False)
+        Linv = lower_inverses(L)
         S = np.einsum("rjk,rjl->rkl", Linv, Linv)  # L⁻ᵀ L⁻¹
         h = QQ @ S.reshape(m, k * k).T  # n × m
         gamma = np.einsum("rkl,lr->rk", S, Q.T @ (W * Y))
@@ -410,6 +410,25 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
         est[cols][bad] = np.nan
         se[cols][bad] = np.nan
     return est, se, df
+
+
+def lower_inverses(L: np.ndarray) -> np.ndarray:
+    """L_r⁻¹ for a stack of lower-triangular L_r (m × k × k, C order): LAPACK trtrs on the identity, the
+    call ``scipy.linalg.solve_triangular(L_r, I, lower=True)`` makes for each matrix (the same digits),
+    without its validation of every matrix of the stack, which costs more than the solve at k ≈ 10."""
+    from scipy.linalg import LinAlgError, lapack  # noqa: PLC0415
+
+    m, k, _ = L.shape
+    trtrs = lapack.get_lapack_funcs("trtrs", (L,))
+    eye = np.eye(k)
+    out = np.empty((m, k, k))  # out[r] holds X_rᵀ: the stack is laid out as solve_triangular lays it out
+    for r in range(m):
+        # A C-ordered L_r is the Fortran-ordered upper-triangular L_rᵀ: solve (L_rᵀ)ᵀ X = I.
+        x, info = trtrs(L[r].T, eye, overwrite_b=False, lower=False, trans=True, unitdiag=False)
+        if info > 0:
+            raise LinAlgError(f"singular matrix: resolution failed at diagonal {info - 1}")
+        out[r] = x.T
+    return out.transpose(0, 2, 1)
 
 
 def _null_draws(base: Design, outcome: str, rule: str, v: np.ndarray, alpha: float,
