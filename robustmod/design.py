@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
@@ -140,12 +140,19 @@ class Design:
         return self._slope_rows(points)
 
     def _slope_rows(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> np.ndarray:
-        base = self._points_frame(points)
         if self.focal_linear:
             at, step = 0.0, 1.0
         else:
             step = 2 * self._focal_step()
             at = self._to_model(self.focal, self.focal_mean) - step / 2
+        cols = self._point_columns(points)
+        if cols is not None:  # the frame below, its columns as arrays
+            m = len(points)
+            both = {name: np.r_[c, c] for name, c in cols.items()}
+            both[self.focal] = np.r_[np.full(m, at), np.full(m, at + step)]
+            M = product_columns(both, self._products or ())
+            return (M[m:] - M[:m]) / step
+        base = self._points_frame(points)
         m = len(base)
         both = pd.concat([base, base], ignore_index=True)  # one model-matrix call for both points
         both[self.focal] = np.r_[np.full(m, at), np.full(m, at + step)]
@@ -240,6 +247,27 @@ class Design:
     def _focal_step(self) -> float:
         sd = float(np.std(self._frame[self.focal].to_numpy(dtype=float)))
         return 1e-4 * (sd if sd > 0 else 1.0)
+
+    def _point_columns(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> dict[str, np.ndarray] | None:
+        """For a design of plain products: the columns the products use, as :meth:`_points_frame` would
+        hold them (float arrays, one value per point); None for other designs, or when a value is not a
+        plain number (the frame is built then)."""
+        if self._products is None:
+            return None
+        names = {f for p in self._products for f in p}
+        cols: dict[str, list[Any]] = {name: [] for name in names}
+        for pt in points:
+            for name in pt:
+                if name not in self.moderators:
+                    raise InputError(f"{name!r} is not a moderator of this model; moderators: {list(self.moderators)}.")
+            for name in names:
+                if name not in pt and name not in self.reference:
+                    return None
+                v = self._to_model(name, pt[name]) if name in pt else self.reference[name]
+                if isinstance(v, bool | np.bool_) or not isinstance(v, int | float | np.integer | np.floating):
+                    return None
+                cols[name].append(v)
+        return {name: np.array(v, dtype=float) for name, v in cols.items()}
 
     def _points_frame(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> pd.DataFrame:
         rows = []
@@ -339,6 +367,14 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
 
 def _focal_enters_linearly(design: Design) -> bool:
     """Do unit differences of the focal predictor give the same model-matrix row at two places?"""
+    cols = design._point_columns([{}])
+    if cols is not None and design.focal in cols:  # the frames below, their columns as arrays
+        rows = []
+        for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
+            lo, hi = dict(cols), dict(cols)
+            lo[design.focal], hi[design.focal] = np.array([x0]), np.array([x0 + 1.0])
+            rows.append(product_columns(hi, design._products or ()) - product_columns(lo, design._products or ()))
+        return bool(np.allclose(rows[0], rows[1], rtol=1e-9, atol=1e-12))
     base = design._points_frame([{}])  # the reference point
     diffs = []
     for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
@@ -385,11 +421,18 @@ def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]]
     return (response.expr, products) if len(products) == mm.rhs.shape[1] else None
 
 
-def product_columns(frame: pd.DataFrame, products: Sequence[Sequence[str]]) -> np.ndarray:
-    """The matrix whose column j is the product of the columns ``products[j]`` of ``frame``, multiplied
-    left to right as formulaic multiplies (an empty product is the intercept's 1)."""
-    values = {name: frame[name].to_numpy(dtype=float) for name in {f for p in products for f in p}}
-    X = np.empty((len(frame), len(products)))
+def product_columns(frame: pd.DataFrame | Mapping[str, np.ndarray], products: Sequence[Sequence[str]]) -> np.ndarray:
+    """The matrix whose column j is the product of the columns ``products[j]`` of ``frame`` (a frame, or
+    columns as arrays), multiplied left to right as formulaic multiplies (an empty product is the
+    intercept's 1)."""
+    names = {f for p in products for f in p}
+    if isinstance(frame, pd.DataFrame):
+        values = {name: frame[name].to_numpy(dtype=float) for name in names}
+        n = len(frame)
+    else:
+        values = {name: np.asarray(frame[name], dtype=float) for name in names}
+        n = len(next(iter(frame.values()))) if frame else 0
+    X = np.empty((n, len(products)))
     for j, factors in enumerate(products):
         if not factors:
             X[:, j] = 1.0

@@ -509,12 +509,29 @@ def _run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tupl
         base = exc
     v = None
     if state["resamples"]:  # the same null signs for every specification: one draw per source row
-        rng = np.random.default_rng(state["null_seed"])
-        v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
+        v = null_signs(state["null_seed"], state["n_source"], state["resamples"])
     cache: dict[int, tuple[np.ndarray, Any]] = {}
     nulls: dict[str, tuple[np.ndarray, np.ndarray]] = {}  # null outcomes per outcome rule, shared by the outlier rules
     return [_run_one(state, state["specs"][i], base, sd, v, cache, nulls)
             for i, sd in zip(members, seeds, strict=False)]
+
+
+#: The null signs of the last grid this process worked on: (seed, rows, resamples) → signs (read-only).
+_SIGNS: dict[tuple[int, int, int], np.ndarray] = {}
+
+
+def null_signs(seed: int, n: int, resamples: int) -> np.ndarray:
+    """Rademacher signs (n × resamples) of the null datasets, drawn once per process and grid (every
+    group of the grid uses the same signs; a worker runs many groups)."""
+    key = (int(seed), int(n), int(resamples))
+    v = _SIGNS.get(key)
+    if v is None:
+        rng = np.random.default_rng(seed)
+        v = rng.choice(np.array([-1.0, 1.0]), size=(n, resamples))
+        v.setflags(write=False)
+        _SIGNS.clear()  # only the current grid's signs are kept
+        _SIGNS[key] = v
+    return v
 
 
 # ---- summaries ---------------------------------------------------------------------------
