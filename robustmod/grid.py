@@ -413,21 +413,16 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
 
 
 def lower_inverses(L: np.ndarray) -> np.ndarray:
-    """L_r⁻¹ for a stack of lower-triangular L_r (m × k × k, C order): LAPACK trtrs on the identity, the
-    call ``scipy.linalg.solve_triangular(L_r, I, lower=True)`` makes for each matrix (the same digits),
-    without its validation of every matrix of the stack, which costs more than the solve at k ≈ 10."""
-    from scipy.linalg import LinAlgError, lapack  # noqa: PLC0415
+    """L_r⁻¹ for a stack of lower-triangular L_r (m × k × k): ``scipy.linalg.solve_triangular(L, I,
+    lower=True)`` matrix by matrix (the same digits, laid out as it lays them out), without its
+    validation of every matrix of the stack, which costs more than the solve at k ≈ 10."""
+    from .backends.kernels import solve_triangular_2d  # noqa: PLC0415
 
     m, k, _ = L.shape
-    trtrs = lapack.get_lapack_funcs("trtrs", (L,))
     eye = np.eye(k)
-    out = np.empty((m, k, k))  # out[r] holds X_rᵀ: the stack is laid out as solve_triangular lays it out
+    out = np.empty((m, k, k))  # out[r] holds X_rᵀ: solve_triangular stacks Fortran-ordered solutions
     for r in range(m):
-        # A C-ordered L_r is the Fortran-ordered upper-triangular L_rᵀ: solve (L_rᵀ)ᵀ X = I.
-        x, info = trtrs(L[r].T, eye, overwrite_b=False, lower=False, trans=True, unitdiag=False)
-        if info > 0:
-            raise LinAlgError(f"singular matrix: resolution failed at diagonal {info - 1}")
-        out[r] = x.T
+        out[r] = solve_triangular_2d(L[r], eye, lower=True).T
     return out.transpose(0, 2, 1)
 
 
