@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import itertools
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
@@ -89,6 +89,9 @@ class Design:
     _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
     clusters: np.ndarray | None = field(default=None, repr=False)  # codes 0 … G − 1 per used row, or None
     cluster_name: str | None = None
+    #: Each model-matrix column as the product of the data columns named (the intercept an empty
+    #: product), when the formula has only such terms (:func:`_direct_model_matrices`); else None.
+    _products: tuple[tuple[str, ...], ...] | None = field(default=None, repr=False)
 
     # ---- basic facts -------------------------------------------------------------
     @property
@@ -138,12 +141,19 @@ class Design:
         return self._slope_rows(points)
 
     def _slope_rows(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> np.ndarray:
-        base = self._points_frame(points)
         if self.focal_linear:
             at, step = 0.0, 1.0
         else:
             step = 2 * self._focal_step()
             at = self._to_model(self.focal, self.focal_mean) - step / 2
+        cols = self._point_columns(points)
+        if cols is not None:  # the frame below, its columns as arrays
+            m = len(points)
+            both = {name: np.r_[c, c] for name, c in cols.items()}
+            both[self.focal] = np.r_[np.full(m, at), np.full(m, at + step)]
+            M = product_columns(both, self._products or ())
+            return (M[m:] - M[:m]) / step
+        base = self._points_frame(points)
         m = len(base)
         both = pd.concat([base, base], ignore_index=True)  # one model-matrix call for both points
         both[self.focal] = np.r_[np.full(m, at), np.full(m, at + step)]
@@ -239,6 +249,27 @@ class Design:
         sd = float(np.std(self._frame[self.focal].to_numpy(dtype=float)))
         return 1e-4 * (sd if sd > 0 else 1.0)
 
+    def _point_columns(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> dict[str, np.ndarray] | None:
+        """For a design of plain products: the columns the products use, as :meth:`_points_frame` would
+        hold them (float arrays, one value per point); None for other designs, or when a value is not a
+        plain number (the frame is built then)."""
+        if self._products is None:
+            return None
+        names = {f for p in self._products for f in p}
+        cols: dict[str, list[Any]] = {name: [] for name in names}
+        for pt in points:
+            for name in pt:
+                if name not in self.moderators:
+                    raise InputError(f"{name!r} is not a moderator of this model; moderators: {list(self.moderators)}.")
+            for name in names:
+                if name not in pt and name not in self.reference:
+                    return None
+                v = self._to_model(name, pt[name]) if name in pt else self.reference[name]
+                if isinstance(v, bool | np.bool_) or not isinstance(v, int | float | np.integer | np.floating):
+                    return None
+                cols[name].append(v)
+        return {name: np.array(v, dtype=float) for name, v in cols.items()}
+
     def _points_frame(self, points: list[dict[str, Any]] | tuple[dict[str, Any], ...]) -> pd.DataFrame:
         rows = []
         for pt in points:
@@ -256,6 +287,9 @@ class Design:
         return frame
 
     def _matrix(self, frame: pd.DataFrame) -> np.ndarray:
+        if self._products is not None and _plain_dtypes(frame, {f for p in self._products for f in p}):
+            # The products formulaic would form, in its order (checked against it when the design was built).
+            return product_columns(frame, self._products)
         mm = self._model_spec.get_model_matrix(frame, context=FORMULA_CONTEXT)  # the allow-listed transforms (log1p …)
         return np.asarray(mm, dtype=float)
 
@@ -300,7 +334,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     for name in frame.columns:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
-    y, X, term_names, model_spec = _model_matrices(spec, frame, prepared.frame.index)
+    y, X, term_names, model_spec, products = _model_matrices(spec, frame, prepared.frame.index)
     n, k = X.shape
     if n <= k + 1:
         raise InputError(
@@ -323,7 +357,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
         moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
         data=prepared, focal_linear=True, focal_mean=focal_mean, warnings=tuple(warnings), qr=qr,
         _model_spec=model_spec, _frame=frame,
-        clusters=None if clustering is None else clustering.codes, cluster_name=spec.cluster,
+        clusters=None if clustering is None else clustering.codes, cluster_name=spec.cluster, _products=products,
     )
     if _focal_enters_linearly(design):
         return design
@@ -334,6 +368,14 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
 
 def _focal_enters_linearly(design: Design) -> bool:
     """Do unit differences of the focal predictor give the same model-matrix row at two places?"""
+    cols = design._point_columns([{}])
+    if cols is not None and design.focal in cols:  # the frames below, their columns as arrays
+        rows = []
+        for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
+            lo, hi = dict(cols), dict(cols)
+            lo[design.focal], hi[design.focal] = np.array([x0]), np.array([x0 + 1.0])
+            rows.append(product_columns(hi, design._products or ()) - product_columns(lo, design._products or ()))
+        return bool(np.allclose(rows[0], rows[1], rtol=1e-9, atol=1e-12))
     base = design._points_frame([{}])  # the reference point
     diffs = []
     for x0 in (0.0, 3.7 * (design._focal_step() * 1e4) + 1.0):
@@ -351,6 +393,12 @@ def _plain_columns(frame: pd.DataFrame, names: Sequence[str]) -> bool:
     """Are these columns plain numbers (int or float numpy dtypes, not bool, not categories)?"""
     return all(name in frame.columns and isinstance(frame[name].dtype, np.dtype) and frame[name].dtype.kind in "iuf"
                for name in names)
+
+
+def _plain_dtypes(frame: pd.DataFrame, names: set[str]) -> bool:
+    """:func:`_plain_columns` from the frame's dtypes alone (no column is looked up)."""
+    kinds = {str(c): t for c, t in zip(frame.columns, frame.dtypes, strict=True)}
+    return all(isinstance(kinds.get(n), np.dtype) and kinds[n].kind in "iuf" for n in names)
 
 
 def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]] | None:
@@ -374,6 +422,38 @@ def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]]
     return (response.expr, products) if len(products) == mm.rhs.shape[1] else None
 
 
+def product_columns(frame: pd.DataFrame | Mapping[str, np.ndarray], products: Sequence[Sequence[str]]) -> np.ndarray:
+    """The matrix whose column j is the product of the columns ``products[j]`` of ``frame`` (a frame, or
+    columns as arrays), multiplied left to right as formulaic multiplies (an empty product is the
+    intercept's 1)."""
+    names = {f for p in products for f in p}
+    if isinstance(frame, pd.DataFrame):
+        values = {name: frame[name].to_numpy(dtype=float) for name in names}
+        n = len(frame)
+    else:
+        values = {name: np.asarray(frame[name], dtype=float) for name in names}
+        n = len(next(iter(frame.values()))) if frame else 0
+    X = np.empty((n, len(products)))
+    for j, factors in enumerate(products):
+        if not factors:
+            X[:, j] = 1.0
+            continue
+        col = values[factors[0]]
+        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row by the caller
+            for name in factors[1:]:
+                col = col * values[name]
+        X[:, j] = col
+    return X
+
+
+#: Formula plans of the direct build, keyed by the formula and the frame's column types: what
+#: formulaic's parse on the head rows gave (response, products, term names, model spec), once checked.
+_DIRECT_PLANS: dict[tuple[str, tuple[tuple[str, str], ...]], tuple[str, tuple[tuple[str, ...], ...],
+                                                                   tuple[str, ...], Any]] = {}
+#: Plans kept at most (a grid has one formula per set of covariates).
+DIRECT_PLAN_CACHE = 4096
+
+
 def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any] | None:
     """y, X, term names and model spec without formulaic's n-row frames, for a formula whose terms are
     an intercept, plain numeric columns and their products (e.g. ``y ~ x * w + a``); None otherwise.
@@ -381,6 +461,20 @@ def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.nda
     formulaic builds the model spec from the first :data:`SPEC_ROWS` rows (plain numeric columns keep
     no state, so it is the spec of all rows), X is filled column by column with the same products in
     the same order, and both must agree exactly on those rows, else None (and formulaic builds all)."""
+    parts = _direct_parts(spec, frame)
+    return None if parts is None else parts[:4]
+
+
+def _direct_parts(spec: ModelSpec, frame: pd.DataFrame
+                  ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any, tuple[tuple[str, ...], ...]] | None:
+    """:func:`_direct_model_matrices` and the products of each column. A formula checked once against
+    formulaic on frames with the same column types is not parsed again (the same products of the same
+    plain numeric columns: formulaic's spec of them keeps no state of the data)."""
+    key = (spec.formula, tuple((str(c), str(t)) for c, t in frame.dtypes.items()))
+    hit = _DIRECT_PLANS.get(key)
+    if hit is not None:
+        response, products, names, model_spec = hit
+        return frame[response].to_numpy(dtype=float).copy(), product_columns(frame, products), names, model_spec, products
     head = frame.iloc[:SPEC_ROWS]
     try:
         mm = model_matrix(spec.formula, head, context=FORMULA_CONTEXT, na_action="ignore")
@@ -389,32 +483,30 @@ def _direct_model_matrices(spec: ModelSpec, frame: pd.DataFrame) -> tuple[np.nda
     plan = _plain_products(mm, frame)
     if plan is None:
         return None
-    response, products = plan
-    X = np.empty((len(frame), len(products)))
-    for j, factors in enumerate(products):
-        if not factors:
-            X[:, j] = 1.0
-            continue
-        col = frame[factors[0]].to_numpy(dtype=float)
-        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row below
-            for name in factors[1:]:  # left to right, as formulaic multiplies
-                col = col * frame[name].to_numpy(dtype=float)
-        X[:, j] = col
+    response, product_lists = plan
+    products = tuple(tuple(p) for p in product_lists)
+    X = product_columns(frame, products)
     y = frame[response].to_numpy(dtype=float).copy()
     m = len(head)
     if not (np.array_equal(X[:m], np.asarray(mm.rhs, dtype=float))
             and np.array_equal(y[:m], np.asarray(mm.lhs, dtype=float)[:, 0])):
         return None
-    return y, X, tuple(str(c) for c in mm.rhs.columns), mm.rhs.model_spec
+    names = tuple(str(c) for c in mm.rhs.columns)
+    if len(_DIRECT_PLANS) >= DIRECT_PLAN_CACHE:
+        _DIRECT_PLANS.clear()
+    _DIRECT_PLANS[key] = (response, products, names, mm.rhs.model_spec)
+    return y, X, names, mm.rhs.model_spec, products
 
 
-def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any]:
-    """y, X, term names and formulaic's model spec from the formula; non-finite cells name their data row.
+def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index
+                    ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any, tuple[tuple[str, ...], ...] | None]:
+    """y, X, term names, formulaic's model spec and (direct builds) the products of each column from the
+    formula; non-finite cells name their data row.
 
-    Plain numeric terms are built directly (:func:`_direct_model_matrices`), anything else by formulaic."""
-    direct = _direct_model_matrices(spec, frame)
+    Plain numeric terms are built directly (:func:`_direct_parts`), anything else by formulaic."""
+    direct = _direct_parts(spec, frame)
     if direct is not None:
-        y, X, term_names, model_spec = direct
+        y, X, term_names, _, _ = direct
         _check_finite_cells(spec, y, X, term_names, rows)
         return direct
     try:
@@ -431,7 +523,7 @@ def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index) -> tup
     X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
     term_names = tuple(str(c) for c in mm.rhs.columns)
     _check_finite_cells(spec, y, X, term_names, rows)
-    return y, X, term_names, mm.rhs.model_spec
+    return y, X, term_names, mm.rhs.model_spec, None
 
 
 def _check_finite_cells(spec: ModelSpec, y: np.ndarray, X: np.ndarray, term_names: tuple[str, ...],

@@ -397,7 +397,7 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
         # (e.g. a dummy whose 1s were all dropped), which rounding can let through the factorisation.
         ok &= np.diagonal(L, axis1=1, axis2=2).min(axis=1) > RANK_TOL
         L[~ok] = eye
-        Linv = linalg.solve_triangular(L, np.broadcast_to(eye, (m, k, k)), lower=True, check_finite=False)
+        Linv = lower_inverses(L)
         S = np.einsum("rjk,rjl->rkl", Linv, Linv)  # L⁻ᵀ L⁻¹
         h = QQ @ S.reshape(m, k * k).T  # n × m
         gamma = np.einsum("rkl,lr->rk", S, Q.T @ (W * Y))
@@ -410,6 +410,20 @@ def hc3_product_kept(design: Design, Ystar: np.ndarray, kept: np.ndarray) -> tup
         est[cols][bad] = np.nan
         se[cols][bad] = np.nan
     return est, se, df
+
+
+def lower_inverses(L: np.ndarray) -> np.ndarray:
+    """L_r⁻¹ for a stack of lower-triangular L_r (m × k × k): ``scipy.linalg.solve_triangular(L, I,
+    lower=True)`` matrix by matrix (the same digits, laid out as it lays them out), without its
+    validation of every matrix of the stack, which costs more than the solve at k ≈ 10."""
+    from .backends.kernels import solve_triangular_2d  # noqa: PLC0415
+
+    m, k, _ = L.shape
+    eye = np.eye(k)
+    out = np.empty((m, k, k))  # out[r] holds X_rᵀ: solve_triangular stacks Fortran-ordered solutions
+    for r in range(m):
+        out[r] = solve_triangular_2d(L[r], eye, lower=True).T
+    return out.transpose(0, 2, 1)
 
 
 def _null_draws(base: Design, outcome: str, rule: str, v: np.ndarray, alpha: float,
@@ -490,12 +504,29 @@ def _run_group(state: dict[str, Any], covariates: tuple[str, ...], members: tupl
         base = exc
     v = None
     if state["resamples"]:  # the same null signs for every specification: one draw per source row
-        rng = np.random.default_rng(state["null_seed"])
-        v = rng.choice(np.array([-1.0, 1.0]), size=(state["n_source"], state["resamples"]))
+        v = null_signs(state["null_seed"], state["n_source"], state["resamples"])
     cache: dict[int, tuple[np.ndarray, Any]] = {}
     nulls: dict[str, tuple[np.ndarray, np.ndarray]] = {}  # null outcomes per outcome rule, shared by the outlier rules
     return [_run_one(state, state["specs"][i], base, sd, v, cache, nulls)
             for i, sd in zip(members, seeds, strict=False)]
+
+
+#: The null signs of the last grid this process worked on: (seed, rows, resamples) → signs (read-only).
+_SIGNS: dict[tuple[int, int, int], np.ndarray] = {}
+
+
+def null_signs(seed: int, n: int, resamples: int) -> np.ndarray:
+    """Rademacher signs (n × resamples) of the null datasets, drawn once per process and grid (every
+    group of the grid uses the same signs; a worker runs many groups)."""
+    key = (int(seed), int(n), int(resamples))
+    v = _SIGNS.get(key)
+    if v is None:
+        rng = np.random.default_rng(seed)
+        v = rng.choice(np.array([-1.0, 1.0]), size=(n, resamples))
+        v.setflags(write=False)
+        _SIGNS.clear()  # only the current grid's signs are kept
+        _SIGNS[key] = v
+    return v
 
 
 # ---- summaries ---------------------------------------------------------------------------

@@ -72,3 +72,20 @@ def test_a_non_finite_product_names_the_term_and_row() -> None:
 
     with pytest.raises(InputError, match=r"'a:b:p' is not finite in data row 8"):
         build_design(df, ModelSpec("y ~ x * w + a:b:p", "x", ("w",)))
+
+
+@pytest.mark.parametrize("center", [False, True])
+def test_l_rows_of_a_plain_formula_equal_formulaic(center: bool) -> None:
+    from robustmod.design import _focal_enters_linearly
+
+    df = _frame()
+    d = build_design(df, ModelSpec("y ~ x * w * a + b", "x", ("w",), center=center))
+    assert d._products is not None
+    points = [{"w": 0.5}, {"w": 2}, {"w": 4.25}]
+    frame = d._points_frame(points)
+    both = pd.concat([frame, frame], ignore_index=True)
+    both["x"] = np.r_[np.zeros(3), np.ones(3)]
+    # Reference library: formulaic's model matrix of the same L-row frame, through the design's own model spec.
+    M = np.asarray(d._model_spec.get_model_matrix(both, context=FORMULA_CONTEXT), dtype=float)
+    assert np.array_equal(d.slope_rows(points), M[3:] - M[:3])
+    assert _focal_enters_linearly(d) and d.focal_linear

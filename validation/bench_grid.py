@@ -64,15 +64,17 @@ def main() -> None:
         seconds = time.perf_counter() - t0
         workers = eng.workers
     cpu = cpu_seconds() - c0
+    load_end = os.getloadavg()[0]
     n_specs = len(g.specifications)
     report = [
         "# Specification grid benchmark", "",
         f"{n_specs:,} specifications × {len(g.plan.backends)} back-ends (ols, hc3, wls), n = {args.n:,}, "
-        f"{args.resamples} null resamples, local engine with {workers} worker(s); load average at the start "
-        f"{load:.1f} (the machine is shared).", "",
+        f"{args.resamples} null resamples, local engine with {workers} worker(s); load average (1 min) "
+        f"{load:.1f} at the start, {load_end:.1f} at the end (the machine is shared).", "",
         "| what | value |", "|---|---|",
         f"| wall time of `robustmod.grid()` | {seconds:.1f} s |",
         f"| CPU time, this process and its workers | {cpu:.1f} s ({cpu / max(seconds, 1e-9):.2f} cores busy on average) |",
+        f"| CPU time over 2 cores (the wall time on 2 free cores, about) | {cpu / 2:.1f} s |",
         f"| per specification (all back-ends and the null draws) | {1000 * seconds / n_specs:.1f} ms wall, "
         f"{1000 * cpu / n_specs:.1f} ms CPU |",
         f"| projected by the first group | {g.seconds_estimate:.1f} s after it |",

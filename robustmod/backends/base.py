@@ -13,6 +13,7 @@ Effects, regions and the comparison only call :meth:`Fit.estimate`,
 from __future__ import annotations
 
 import difflib
+import functools
 import os
 from abc import ABC, abstractmethod
 from collections.abc import Mapping, Sequence
@@ -207,6 +208,17 @@ def quadratic_forms(L: np.ndarray, cov: np.ndarray) -> np.ndarray:
     return np.einsum("ij,jk,ik->i", L, cov, L)
 
 
+@functools.lru_cache(maxsize=1024)
+def _critical_value(alpha: float, rank: int, df: float | None) -> float:
+    """:meth:`WaldFit.critical_value`, kept per (α, rank, df): many fits share their df (a grid, a size study)."""
+    if rank <= 1:  # the distributions' own ppf: building a frozen distribution costs more than the quantile
+        q = 1 - alpha / 2
+        return float(stats.norm.ppf(q) if df is None else stats.t.ppf(q, df))
+    if df is None:
+        return float(np.sqrt(stats.chi2.ppf(1 - alpha, rank)))
+    return float(np.sqrt(rank * stats.f.ppf(1 - alpha, rank, df)))
+
+
 class WaldFit(Fit):
     """L·β̂ with SE sqrt(L V Lᵀ); t reference with ``df`` (normal when df is None)."""
 
@@ -221,12 +233,7 @@ class WaldFit(Fit):
 
     def critical_value(self, alpha: float, rank: int = 1) -> float:
         """t_{1−α/2, df} pointwise; Scheffé sqrt(r·F_{r, df; 1−α}) for a band of rank r (Potthoff 1964)."""
-        if rank <= 1:  # the distributions' own ppf: building a frozen distribution costs more than the quantile
-            q = 1 - alpha / 2
-            return float(stats.norm.ppf(q) if self.df is None else stats.t.ppf(q, self.df))
-        if self.df is None:
-            return float(np.sqrt(stats.chi2.ppf(1 - alpha, rank)))
-        return float(np.sqrt(rank * stats.f.ppf(1 - alpha, rank, self.df)))
+        return _critical_value(float(alpha), int(rank), None if self.df is None else float(self.df))
 
     def estimate(self, L: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
         L = _as_rows(L, self.params.size)

@@ -8,7 +8,8 @@ over it), so a fit and a calibration study of D simulated outcomes run the same 
 * :func:`exact_zeros`, :func:`floored_squares`, :func:`zero_residual_note` — residuals that are zero
   to machine precision, their floor before a log, and the warning saying why;
 * :func:`log_square_regression`, :func:`twostep_fgls` — the two-step variance regression
-  log ê² on z (Harvey 1976), used by the ``wls`` back-end and the calibration's fallback model.
+  log ê² on z (Harvey 1976), used by the ``wls`` back-end and the calibration's fallback model;
+* :func:`solve_triangular_2d` — a triangular solve in inner loops, without the checks around it.
 """
 from __future__ import annotations
 
@@ -18,6 +19,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy import linalg, special, stats
+from scipy.linalg import lapack
 
 from .hc import leverage_one_rows
 
@@ -33,6 +35,27 @@ ZERO_RESIDUAL_FLOOR = 1e-8
 ZERO_RESIDUAL_RTOL = 1e-12
 #: log-variances are clipped here so that exp() never overflows.
 ETA_LIMIT = 600.0
+
+
+def solve_triangular_2d(a: np.ndarray, b: np.ndarray, *, lower: bool = False, trans: int = 0) -> np.ndarray:
+    """x with a x = b (trans 0) or aᵀ x = b (trans 1), a triangular: the LAPACK trtrs call that
+    ``scipy.linalg.solve_triangular(a, b, trans, lower, check_finite=False)`` makes for one 2-D float
+    matrix (so the same digits), without the validation and batch wrapper around it, which cost
+    more than the solve of a k × k system; other inputs go to scipy itself."""
+    if (not isinstance(a, np.ndarray) or not isinstance(b, np.ndarray) or a.ndim != 2 or b.ndim not in (1, 2)
+            or a.dtype != np.float64 or b.dtype != np.float64 or b.size == 0 or trans not in (0, 1)
+            or a.shape[0] != a.shape[1] or a.shape[0] != b.shape[0]):
+        return np.asarray(linalg.solve_triangular(a, b, trans=trans, lower=lower, check_finite=False))
+    trtrs, = lapack.get_lapack_funcs(("trtrs",), (a, b))
+    if a.flags.f_contiguous:
+        x, info = trtrs(a, b, overwrite_b=False, lower=lower, trans=trans, unitdiag=False)
+    else:  # trtrs expects Fortran order: solve the transposed system, as scipy does
+        x, info = trtrs(a.T, b, overwrite_b=False, lower=not lower, trans=not trans, unitdiag=False)
+    if info > 0:
+        raise linalg.LinAlgError(f"singular matrix: resolution failed at diagonal {info - 1}")
+    if info < 0:  # pragma: no cover - LAPACK argument errors only
+        raise ValueError(f"illegal value in {-info}-th argument of internal trtrs")
+    return np.asarray(x)
 
 
 def batched_quadratic(r: np.ndarray, S: np.ndarray) -> np.ndarray:

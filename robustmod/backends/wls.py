@@ -51,6 +51,7 @@ from .kernels import (
     floored_squares,
     leverage_one_reason,
     log_square_regression,
+    solve_triangular_2d,
     wald_test,
     zero_residual_note,
 )
@@ -274,7 +275,7 @@ def batched_ml_gamma(vm: VarianceModel, X: np.ndarray, Y: np.ndarray, gamma0: np
             break
         Ga, fa, ra = G[act], f[act], r[act]
         rhs = (ra - 1.0) @ Qz
-        step = linalg.solve_triangular(Rz, rhs.T, check_finite=False).T
+        step = solve_triangular_2d(Rz, rhs.T).T
         decrement = 0.25 * (rhs**2).sum(axis=1)  # ½ scoreᵀ info⁻¹ score, in ℓ units
         now = decrement < tol
         done[act[now]] = True
