@@ -411,10 +411,11 @@ def _sample(pm: Any, cm: CompiledModel, draws: int, tune: int, chains: int, core
 
 def _sample_nutpie(cm: CompiledModel, values: dict[str, Any], draws: int, tune: int, chains: int, cores: int,
                    seed: int, progress: bool) -> Any:
-    if "nutpie" not in cm.compiled:  # numba compilation, once per cached model
-        nutpie = _quiet_import("nutpie")
-        cm.compiled["nutpie"] = nutpie.compile_pymc_model(cm.model, backend="numba", freeze_model=False)
     nutpie = _quiet_import("nutpie")
+    if "nutpie" not in cm.compiled:  # numba compilation (or its on-disk cache), once per model in this process
+        from .bayes_compile import compile_pymc_model  # noqa: PLC0415
+
+        cm.compiled["nutpie"] = compile_pymc_model(cm.model)
     compiled = cm.compiled["nutpie"]
     # Shared variables the graph does not use (the variance switch of the conjugate model) are not nutpie's.
     model = compiled.with_data(**{k: v for k, v in values.items() if k in compiled.shared_data})
