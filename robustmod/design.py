@@ -23,6 +23,7 @@ from scipy import linalg
 from scipy.linalg import lapack
 
 from .blas_threads import one_blas_thread
+from .cholesky import scaled_cholesky
 from .clusters import attach_clusters, moderator_levels
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
@@ -549,18 +550,8 @@ CHOLESKY_QR_CONDITION = 1e5
 def _cholesky_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     """Q = XR⁻¹ and R from Cholesky of the column-scaled XᵀX = RᵀR, or None when that matrix is
     singular or its condition number exceeds CHOLESKY_QR_CONDITION."""
-    G = X.T @ X
-    norms = np.sqrt(np.diag(G))
-    if not np.all(np.isfinite(norms)) or np.any(norms == 0):
-        return None
-    d = 1.0 / norms
-    Gs = G * d[:, None] * d[None, :]
-    condition = float(np.linalg.cond(Gs))
-    if not np.isfinite(condition) or condition > CHOLESKY_QR_CONDITION:
-        return None
-    try:
-        R = linalg.cholesky(Gs, lower=False, check_finite=False) * norms[None, :]
-    except linalg.LinAlgError:
+    R, _ = scaled_cholesky(X.T @ X, CHOLESKY_QR_CONDITION)
+    if R is None:
         return None
     Rinv = linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)  # k × k, a triangular solve
     return X @ Rinv, R

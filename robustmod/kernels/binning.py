@@ -35,6 +35,7 @@ from scipy import linalg
 
 from ..backends.base import Estimates, JointTest, WaldFit
 from ..backends.hc import LEVERAGE_ONE_TOL, hc_weights, r_inverse
+from ..cholesky import scaled_cholesky
 from ..errors import InputError, option_error
 from .accumulate import TSQR, RunningMoments
 from .chunks import Chunk, ChunkColumn, ChunkSource, fold
@@ -331,17 +332,8 @@ def _cholesky_factor(G: np.ndarray) -> np.ndarray | None:
     """[[R, Rᵀ⁻¹Cᵀy], [0, r]] from the Gram matrix of [C y] by Cholesky of the column-scaled CᵀC,
     or None when that is singular or its condition number exceeds MAX_CONDITION."""
     p = G.shape[0] - 1
-    norms = np.sqrt(np.diag(G)[:p])
-    if np.any(norms == 0):
-        return None
-    dinv = 1.0 / norms
-    Gs = G[:p, :p] * dinv[:, None] * dinv[None, :]
-    condition = float(np.linalg.cond(Gs))
-    if not np.isfinite(condition) or condition > MAX_CONDITION:
-        return None
-    try:
-        R = linalg.cholesky(Gs, lower=False, check_finite=False) * norms[None, :]
-    except linalg.LinAlgError:
+    R, _ = scaled_cholesky(G[:p, :p], MAX_CONDITION)
+    if R is None:
         return None
     out = np.zeros((p + 1, p + 1))
     out[:p, :p] = R

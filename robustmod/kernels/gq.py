@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 from scipy import linalg, stats
 
+from ..cholesky import scaled_cholesky
 from ..jsonvalues import num
 from .accumulate import TSQR
 from .chunks import Chunk, ChunkColumn, ChunkSource, fold
@@ -105,20 +106,11 @@ def _cholesky_fit(G: np.ndarray) -> tuple[np.ndarray, float, float] | None:
     by Cholesky of the column-scaled XᵀX; None when that is singular or its condition number exceeds
     MAX_CONDITION (the streamed OLS kernel's rule)."""
     k = G.shape[0] - 1
-    norms = np.sqrt(np.diag(G)[:k])
-    if np.any(norms == 0):
+    R, condition = scaled_cholesky(G[:k, :k], MAX_CONDITION)
+    if R is None:
         return None
-    d = 1.0 / norms
-    Gs = G[:k, :k] * d[:, None] * d[None, :]
-    condition = float(np.linalg.cond(Gs))
-    if not np.isfinite(condition) or condition > MAX_CONDITION:
-        return None
-    try:
-        Rs = linalg.cholesky(Gs, lower=False, check_finite=False)
-    except linalg.LinAlgError:
-        return None
-    z = linalg.solve_triangular(Rs, G[:k, k] * d, trans="T", check_finite=False)
-    beta = linalg.solve_triangular(Rs, z, check_finite=False) * d
+    z = linalg.solve_triangular(R, G[:k, k], trans="T", check_finite=False)
+    beta = linalg.solve_triangular(R, z, check_finite=False)
     rss = float(G[k, k] - z @ z)
     loss = np.sqrt(condition) * float(G[k, k]) / rss if rss > 0 else np.inf
     return beta, rss, loss

@@ -25,13 +25,13 @@ from __future__ import annotations
 
 import copy
 from collections.abc import Callable, Iterable
-from contextlib import AbstractContextManager, nullcontext
 from typing import Any
 
 import numpy as np
 from scipy import linalg, stats
 from scipy.linalg import lapack
 
+from ..blas_threads import one_blas_thread
 from ..jsonvalues import num
 from .accumulate import TSQR, CrossProducts, RunningMoments
 from .chunks import Chunk, ChunkSource
@@ -52,21 +52,6 @@ METHODS = ("cholesky", "tsqr")
 #: Rows of the auxiliary block built at a time: a block that stays in the processor's cache makes
 #: its cross-product an order of magnitude faster than one of a whole large chunk (measured).
 CACHE_ROWS = 1 << 14
-
-
-_CONTROLLER: list[Any] = []  # one threadpoolctl controller: finding the loaded BLAS libraries costs ~10 ms
-
-
-def one_blas_thread() -> AbstractContextManager[Any]:
-    """One BLAS thread while the small cross-products run: for a p × p update from a cached block,
-    threads cost more in hand-over than they save, and on a busy machine far more (measured)."""
-    if not _CONTROLLER:
-        try:
-            from threadpoolctl import ThreadpoolController  # noqa: PLC0415  (optional; only the speed changes)
-        except ImportError:  # pragma: no cover
-            return nullcontext()
-        _CONTROLLER.append(ThreadpoolController())
-    return _CONTROLLER[0].limit(limits=1, user_api="blas")
 
 
 def white_columns(X: np.ndarray) -> np.ndarray:

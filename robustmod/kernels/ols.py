@@ -30,6 +30,7 @@ from ..backends.hc import (
     hc_weights,
     r_inverse,
 )
+from ..cholesky import scaled_cholesky
 from ..errors import InputError
 from .accumulate import TSQR, RunningMoments
 from .chunks import Chunk, ChunkSource, fold
@@ -131,18 +132,10 @@ def factor_pass(chunks: ChunkSource, *, names: Sequence[str] | None = None,
     if np.any(norms == 0) or n <= k:
         _check_rank(np.diag(norms), norms, names)
         raise InputError(f"The model has {k} coefficients but only {n} complete rows; it needs more rows.")
-    d = 1.0 / norms
-    Gs = G * d[:, None] * d[None, :]
-    condition = float(np.linalg.cond(Gs))
-    if np.isfinite(condition) and condition <= max_condition:
-        try:
-            Rs = linalg.cholesky(Gs, lower=False, check_finite=False)
-            beta = linalg.cho_solve((Rs, False), b * d, check_finite=False) * d
-            R = Rs * norms[None, :]
-            _check_rank(R, norms, names, alias_tol)
-            return Factor(beta, R, n, k, "cholesky", condition)
-        except linalg.LinAlgError:
-            pass
+    R, condition = scaled_cholesky(G, max_condition)
+    if R is not None:
+        _check_rank(R, norms, names, alias_tol)
+        return Factor(linalg.cho_solve((R, False), b, check_finite=False), R, n, k, "cholesky", condition)
     R, qty = _tsqr_factor(chunks, k)
     _check_rank(R, norms, names, alias_tol)
     beta = linalg.solve_triangular(R, qty, check_finite=False)
