@@ -13,7 +13,7 @@ per worker ≤ 2 GB, and every number of the results JSON equal to the local str
 (the local run is made in the same run, or read from ``--reference``, a local run's JSON of the same day).
 
 The files are the invented known-truth data of `validation/bench_stream.py` (5 float columns y, x, w, a, b);
-the default folder is /work/data or ROBUSTMOD_BENCH_DATA. Results: validation/results/bench_dask_stream.md.
+the default folder is validation/data beside this script, or ROBUSTMOD_BENCH_DATA. Results: validation/results/bench_dask_stream.md.
 """
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ import psutil  # type: ignore[import-untyped]
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 ROOT = Path(__file__).resolve().parents[1]
-DATA = Path(os.environ.get("ROBUSTMOD_BENCH_DATA", "/work/data"))
+DATA = Path(os.environ.get("ROBUSTMOD_BENCH_DATA", Path(__file__).resolve().parent / "data"))
 ARGS = ["--stream", "--formula", "y ~ x * w + a + b", "--focal", "x", "--moderator", "w", "--backends", "hc3,wls",
         "--memory", "2GB", "--json"]
 RESULTS = Path(__file__).resolve().parent / "results" / "bench_dask_stream.md"
