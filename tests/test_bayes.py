@@ -411,3 +411,28 @@ def test_nutpie_compiles_once_per_shape_and_keeps_the_seed(wage1):
         ols = np.linalg.lstsq(d.X, d.y, rcond=None)[0]
         j = d.interaction_columns[0]
         assert abs(fit.params[j] - ols[j]) < 4 * fit.draws[:, j].std()
+
+
+def test_arviz_import_leaves_out_bokeh_and_eager_numba_but_changes_nothing_else():
+    """The lean ArviZ import: Bokeh's plotting modules stay unimported, numba.vectorize is restored, and
+    ArviZ's binomial pmf ufunc (compiled on first call now) agrees with scipy.stats.binom.pmf."""
+    code = (
+        "import sys, json, numba\n"
+        "eager = numba.vectorize\n"
+        "from robustmod.backends.bayes import _quiet_import\n"
+        "_quiet_import('pymc')\n"
+        "from arviz.stats.ecdf_utils import _binom_pmf\n"
+        "import numpy as np\n"
+        "k = np.arange(0, 11)\n"
+        "print(json.dumps({'bokeh': 'bokeh.plotting' in sys.modules or 'bokeh.models' in sys.modules,\n"
+        "                  'restored': numba.vectorize is eager,\n"
+        "                  'pmf': _binom_pmf(k, 10, 0.3, 0).tolist()}))\n"
+        "import importlib.util\n"
+        "if importlib.util.find_spec('bokeh'):\n"
+        "    import bokeh.plotting  # importable again afterwards\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    got = json.loads(out.stdout.strip().splitlines()[-1])
+    assert not got["bokeh"] and got["restored"]
+    # reference: scipy.stats.binom.pmf
+    np.testing.assert_allclose(got["pmf"], stats.binom.pmf(np.arange(0, 11), 10, 0.3), rtol=1e-12)
