@@ -102,7 +102,12 @@ def _quiet_import(name: str) -> Any:
         try:
             if name in LEAN_ARVIZ_FOR and "arviz" not in sys.modules:  # PyMC and nutpie import ArviZ too
                 _import_arviz_lean()
-            return importlib.import_module(name)
+            module = importlib.import_module(name)
+            if name in LEAN_ARVIZ_FOR:
+                from .bayes_compile import cache_arviz_jit  # noqa: PLC0415
+
+                cache_arviz_jit()
+            return module
         except ImportError:
             extra = "pip install 'robustmod[numpyro]'" if name in ("jax", "numpyro") else f"pip install {name}"
             raise InputError(f"The Bayesian back-end needs the package '{name}', which is not installed; "
@@ -890,10 +895,20 @@ def pointwise_loglik(y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarr
     """log p(yᵢ | θ_s) as an S × n matrix, normal or Student-t with scale σᵢ = exp(zᵢᵀγ); ``offset``
     (S × n, the cluster intercepts of each draw) is added to the location."""
     log_sigma = gamma @ Z.T  # S × n
-    mu = beta @ X.T if offset is None else beta @ X.T + offset
-    r = (y[None, :] - mu) * np.exp(-log_sigma)
+    # The same operations in the same order as r = (y − μ)·exp(−log σ) and c − log σ − (0.5·r)·r
+    # written out, but in place: S × n arrays are large and each fresh one costs its page faults.
+    r = beta @ X.T
+    if offset is not None:
+        r += offset
+    np.subtract(y[None, :], r, out=r)
+    inv_sigma = np.negative(log_sigma)
+    r *= np.exp(inv_sigma, out=inv_sigma)
     if nu is None:
-        return -0.5 * np.log(2 * np.pi) - log_sigma - 0.5 * r * r
+        out = np.subtract(-0.5 * np.log(2 * np.pi), log_sigma, out=inv_sigma)
+        half_sq = 0.5 * r
+        half_sq *= r
+        out -= half_sq
+        return out
     v = nu[:, None]
     return (special.gammaln((v + 1) / 2) - special.gammaln(v / 2) - 0.5 * np.log(v * np.pi) - log_sigma
             - (v + 1) / 2 * np.log1p(r * r / v))
