@@ -7,6 +7,7 @@ marked slow.
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import warnings
@@ -411,3 +412,53 @@ def test_nutpie_compiles_once_per_shape_and_keeps_the_seed(wage1):
         ols = np.linalg.lstsq(d.X, d.y, rcond=None)[0]
         j = d.interaction_columns[0]
         assert abs(fit.params[j] - ols[j]) < 4 * fit.draws[:, j].std()
+
+
+def test_arviz_import_leaves_out_bokeh_and_eager_numba_but_changes_nothing_else():
+    """The lean ArviZ import: Bokeh's plotting modules stay unimported, numba.vectorize is restored, and
+    ArviZ's binomial pmf ufunc (compiled on first call now) agrees with scipy.stats.binom.pmf."""
+    code = (
+        "import sys, json, numba\n"
+        "eager = numba.vectorize\n"
+        "from robustmod.backends.bayes import _quiet_import\n"
+        "_quiet_import('pymc')\n"
+        "from arviz.stats.ecdf_utils import _binom_pmf\n"
+        "import numpy as np\n"
+        "k = np.arange(0, 11)\n"
+        "print(json.dumps({'bokeh': 'bokeh.plotting' in sys.modules or 'bokeh.models' in sys.modules,\n"
+        "                  'restored': numba.vectorize is eager,\n"
+        "                  'pmf': _binom_pmf(k, 10, 0.3, 0).tolist()}))\n"
+        "import importlib.util\n"
+        "if importlib.util.find_spec('bokeh'):\n"
+        "    import bokeh.plotting  # importable again afterwards\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    got = json.loads(out.stdout.strip().splitlines()[-1])
+    assert not got["bokeh"] and got["restored"]
+    # reference: scipy.stats.binom.pmf
+    np.testing.assert_allclose(got["pmf"], stats.binom.pmf(np.arange(0, 11), 10, 0.3), rtol=1e-12)
+
+
+def test_arviz_variance_kernel_is_kept_in_the_cache_folder_and_reloaded(tmp_path):
+    """ArviZ's numba variance (behind its R-hat, ESS and PSIS-LOO) is cached under robustmod's folder: a
+    second process loads it instead of compiling, and it still gives the sample variance (numpy's var)."""
+    from robustmod.cachedir import CACHE_ENV
+
+    code = (
+        "import json, numpy as np\n"
+        "from robustmod.backends.bayes import _quiet_import\n"
+        "_quiet_import('arviz')\n"
+        "from arviz.stats.stats_utils import stats_variance_1d, stats_variance_2d\n"
+        "x = np.random.default_rng(5).normal(size=(4, 300))\n"
+        "v = [stats_variance_2d(x, ddof=1, axis=1).tolist(), stats_variance_2d(x, ddof=1, axis=0).tolist()]\n"
+        "print(json.dumps({'v': v, 'hits': sum(stats_variance_1d.numba_fn.stats.cache_hits.values())}))\n"
+    )
+    env = {**os.environ, CACHE_ENV: str(tmp_path)}
+    runs = [json.loads(subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                                      env=env).stdout.strip().splitlines()[-1]) for _ in range(2)]
+    assert runs[0]["hits"] == 0 and runs[1]["hits"] == 2  # compiled (both layouts), then both loaded
+    assert list(tmp_path.rglob("*arviz*.nbi"))
+    x = np.random.default_rng(5).normal(size=(4, 300))
+    for run in runs:  # reference: numpy's sample variance
+        np.testing.assert_allclose(run["v"][0], x.var(axis=1, ddof=1), rtol=1e-10)
+        np.testing.assert_allclose(run["v"][1], x.var(axis=0, ddof=1), rtol=1e-10)

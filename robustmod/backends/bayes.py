@@ -21,6 +21,7 @@ constant-variance refit used for PSIS-LOO reuse the NUTS step compiled for the f
 from __future__ import annotations
 
 import os
+import sys
 import time
 import warnings as pywarnings
 from collections.abc import Mapping, Sequence
@@ -99,11 +100,62 @@ def _quiet_import(name: str) -> Any:
         pywarnings.simplefilter("ignore", UserWarning)
         pywarnings.simplefilter("ignore", FutureWarning)
         try:
-            return importlib.import_module(name)
+            if name in LEAN_ARVIZ_FOR and "arviz" not in sys.modules:  # PyMC and nutpie import ArviZ too
+                _import_arviz_lean()
+            module = importlib.import_module(name)
+            if name in LEAN_ARVIZ_FOR:
+                from .bayes_compile import cache_arviz_jit  # noqa: PLC0415
+
+                cache_arviz_jit()
+            return module
         except ImportError:
             extra = "pip install 'robustmod[numpyro]'" if name in ("jax", "numpyro") else f"pip install {name}"
             raise InputError(f"The Bayesian back-end needs the package '{name}', which is not installed; "
                              f"install it ({extra}) or choose another sampler (--set bayes.sampler=pymc).") from None
+
+#: Imports that bring in ArviZ, which is then imported first by :func:`_import_arviz_lean`.
+LEAN_ARVIZ_FOR = frozenset({"arviz", "pymc", "nutpie"})
+#: Modules ArviZ imports only to copy their docstrings into its plotting wrappers.
+_DOCSTRING_ONLY = ("bokeh.plotting", "bokeh.models")
+
+
+def _import_arviz_lean() -> None:
+    """Import ArviZ without two costs of its import that no fit uses (about 0.4 s of every run).
+
+    ArviZ copies docstrings from Bokeh's plotting modules into its own wrappers (importing all of
+    Bokeh), and compiles one numba ufunc for its ECDF bands eagerly. During this import those Bokeh
+    modules count as absent (ArviZ's wrappers then say the docstring could not be copied), and
+    ``numba.vectorize`` compiles on first call instead (the same function, compiled when an ECDF
+    band is first drawn). Both are restored at once; nothing is changed for anything imported later.
+    """
+    import importlib  # noqa: PLC0415
+
+    blocked = [m for m in _DOCSTRING_ONLY if m not in sys.modules]
+    for m in blocked:
+        sys.modules[m] = None  # type: ignore[assignment]  # import of m raises ImportError
+    try:
+        numba: Any = importlib.import_module("numba")
+    except ImportError:
+        numba = None
+    eager = numba.vectorize if numba is not None else None
+
+    def lazy(*args: Any, **kwargs: Any) -> Any:
+        if args and not callable(args[0]):  # drop the signatures: compile on first call
+            args = args[1:]
+        kwargs.pop("signatures", None)
+        return eager(*args, **kwargs)  # type: ignore[misc]
+
+    try:
+        if numba is not None:
+            numba.vectorize = lazy
+        importlib.import_module("arviz")
+    finally:
+        if numba is not None:
+            numba.vectorize = eager
+        for m in blocked:
+            if sys.modules.get(m, 0) is None:
+                del sys.modules[m]
+
 
 def column_scaling(A: np.ndarray) -> Scaling:
     """Centre and scale every non-constant column when A has a column of ones; scale only otherwise."""
@@ -843,10 +895,20 @@ def pointwise_loglik(y: np.ndarray, X: np.ndarray, Z: np.ndarray, beta: np.ndarr
     """log p(yᵢ | θ_s) as an S × n matrix, normal or Student-t with scale σᵢ = exp(zᵢᵀγ); ``offset``
     (S × n, the cluster intercepts of each draw) is added to the location."""
     log_sigma = gamma @ Z.T  # S × n
-    mu = beta @ X.T if offset is None else beta @ X.T + offset
-    r = (y[None, :] - mu) * np.exp(-log_sigma)
+    # The same operations in the same order as r = (y − μ)·exp(−log σ) and c − log σ − (0.5·r)·r
+    # written out, but in place: S × n arrays are large and each fresh one costs its page faults.
+    r = beta @ X.T
+    if offset is not None:
+        r += offset
+    np.subtract(y[None, :], r, out=r)
+    inv_sigma = np.negative(log_sigma)
+    r *= np.exp(inv_sigma, out=inv_sigma)
     if nu is None:
-        return -0.5 * np.log(2 * np.pi) - log_sigma - 0.5 * r * r
+        out = np.subtract(-0.5 * np.log(2 * np.pi), log_sigma, out=inv_sigma)
+        half_sq = 0.5 * r
+        half_sq *= r
+        out -= half_sq
+        return out
     v = nu[:, None]
     return (special.gammaln((v + 1) / 2) - special.gammaln(v / 2) - 0.5 * np.log(v * np.pi) - log_sigma
             - (v + 1) / 2 * np.log1p(r * r / v))

@@ -437,7 +437,7 @@ class _BatchWeights:
 
 
 def _workers() -> int:
-    """Threads for the blocked kernel: the cores this process may use, at most the BLAS threads
+    """Threads for the kernel's batches: the cores this process may use, at most the BLAS threads
     allowed (an engine worker limited to one BLAS thread gets one)."""
     try:
         cores = len(os.sched_getaffinity(0))
@@ -462,25 +462,31 @@ def _one_blas_thread() -> AbstractContextManager[Any]:
     return threadpool_limits(1, user_api="blas")
 
 
-def _run_blocked(kernel: _Kernel, kind: str, n: int, B: int, batch: int, rng: np.random.Generator,
+def _run_batches(kernel: _Kernel, draw: Callable[[int, int], Any], B: int, batch: int,
                  store: Callable[[int, int, list[tuple[np.ndarray, np.ndarray]]], None],
                  advance: Callable[[int], None]) -> None:
-    """All B replicates through the blocked kernel, batch after batch.
+    """All B replicates through the kernel, batch after batch, on one BLAS thread per call.
 
-    Weights are drawn here in replicate order (so the stream is consumed as by one B × n draw);
-    the batches run on worker threads, at most one more batch alive than there are workers.
+    ``draw(a, b)`` gives the weights of replicates a … b − 1 (an array for :meth:`_Kernel.run`, or
+    :class:`_BatchWeights` for the blocked kernel); it is called here in replicate order, so the
+    stream is consumed as by one B × n draw. The batches run on worker threads, at most one more
+    batch alive than there are workers. The same products run whatever the thread count, so the
+    draws do not depend on it.
     """
+    def work(c: int, w: Any) -> list[tuple[np.ndarray, np.ndarray]]:
+        return kernel.run(w) if isinstance(w, np.ndarray) else kernel.batch(c, w)
+
     workers = _workers()
     with _one_blas_thread():
         if workers == 1:
             for a, b in _chunks(B, batch):
-                store(a, b, kernel.batch(b - a, _BatchWeights(kind, n, b - a, rng)))
+                store(a, b, work(b - a, draw(a, b)))
                 advance(b - a)
             return
         with ThreadPoolExecutor(max_workers=workers) as pool:
             pending: deque[tuple[int, int, Future[list[tuple[np.ndarray, np.ndarray]]]]] = deque()
             for a, b in _chunks(B, batch):
-                pending.append((a, b, pool.submit(kernel.batch, b - a, _BatchWeights(kind, n, b - a, rng))))
+                pending.append((a, b, pool.submit(work, b - a, draw(a, b))))
                 while len(pending) > workers:
                     a0, b0, done = pending.popleft()
                     store(a0, b0, done.result())
@@ -496,8 +502,11 @@ def _share_at_least(stat_star: np.ndarray, stat: np.ndarray) -> np.ndarray:
 
 
 def _safe_ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+    """num / den where den > 0, else 0 (one division, only where it is defined)."""
+    num, den = np.asarray(num, dtype=float), np.asarray(den, dtype=float)
+    out = np.zeros(np.broadcast_shapes(num.shape, den.shape))
+    np.divide(num, den, out=out, where=den > 0)
+    return out
 
 
 def _full_from_pairs(Mp: np.ndarray, q: int) -> np.ndarray:
@@ -603,13 +612,17 @@ class BootstrapFit(Fit):
         q_lo, q_hi, p = np.empty(m), np.empty(m), np.empty(m)
         sup = np.zeros(self.replications)
         step = max(1, ROW_CHUNK_ELEMENTS // max(1, self.replications))
+        band = simultaneous and m > 1  # a band needs only the sup of |t*|, not each row's quantiles
         for a, b in _chunks(m, step):
             ts = t_star(a, b)
-            q_lo[a:b], q_hi[a:b] = np.quantile(ts, [alpha / 2, 1 - alpha / 2], axis=1, method="weibull")
-            p[a:b] = _share_at_least(np.abs(ts), np.abs(t[a:b]))
+            abs_ts = np.abs(ts)
+            p[a:b] = _share_at_least(abs_ts, np.abs(t[a:b]))
             if simultaneous:
-                np.maximum(sup, np.abs(ts).max(axis=0), out=sup)
-        if simultaneous and m > 1:
+                np.maximum(sup, abs_ts.max(axis=0), out=sup)
+            if not band:  # ts is not needed after this: partition it in place
+                q_lo[a:b], q_hi[a:b] = np.quantile(ts, [alpha / 2, 1 - alpha / 2], axis=1, method="weibull",
+                                                   overwrite_input=True)
+        if band:
             c = float(np.quantile(sup, 1 - alpha, method="weibull"))
             lower, upper, label = est - c * se, est + c * se, f"{self.interval_label}, sup-t band"
         else:
@@ -706,7 +719,8 @@ class _BootstrapLine(Line):
         """t* at each w (len(w) × B)."""
         w = np.asarray(w, dtype=float)[:, None]
         var = self.s00[None, :] + 2.0 * w * self.s01[None, :] + w * w * self.s11[None, :]
-        return _safe_ratio(self.d0[None, :] + w * self.d1[None, :], np.sqrt(np.maximum(var, 0.0)))
+        np.maximum(var, 0.0, out=var)
+        return _safe_ratio(self.d0[None, :] + w * self.d1[None, :], np.sqrt(var, out=var))
 
     def estimate(self, w: np.ndarray, alpha: float, *, simultaneous: bool = False) -> Estimates:
         w = np.atleast_1d(np.asarray(w, dtype=float))
@@ -860,12 +874,10 @@ class WildBootstrapBackend(Backend):
         rng = np.random.default_rng(seed)
         with _progress(progress and n * B * len(sources) >= PROGRESS_MIN_WORK, B, self.label) as advance:
             if blocked:
-                _run_blocked(kernel, self.weights, n, B, batch, rng, store, advance)
+                _run_batches(kernel, lambda a, b: _BatchWeights(self.weights, n, b - a, rng), B, batch, store, advance)
             else:
-                for a, b in _chunks(B, batch):
-                    V = sign_patterns(n, a, b) if enum else _weight_chunk(self.weights, n, b - a, rng)
-                    store(a, b, kernel.run(V))
-                    advance(b - a)
+                _run_batches(kernel, lambda a, b: sign_patterns(n, a, b) if enum else
+                             _weight_chunk(self.weights, n, b - a, rng), B, batch, store, advance)
         interval = f"wild bootstrap-t ({WEIGHT_LABELS[self.weights]}, B = {B})"
         reliable = True
         alpha = float(design.spec.alpha)
