@@ -36,6 +36,7 @@ from ..errors import InputError, option_error
 from ..subsample import fit_on_subsample, fit_stream_rows, subsample_tables
 from ..tables import format_number
 from .base import Backend, Fit, Option, PosteriorFit, Unavailable, one_row_table
+from .psis import psis_loo
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -922,18 +923,28 @@ def _add_loglik(idata: Any, ll: np.ndarray) -> None:
     idata.add_groups({"log_likelihood": ds})
 
 
+def _loo_inputs(az: Any, idata: Any) -> tuple[np.ndarray, float]:
+    """The pointwise log-likelihood as (draws of all chains, observations) and r_eff, the mean bulk
+    ESS of the posterior's variables over the number of draws (1 for one chain), as ArviZ's loo takes it."""
+    ll = np.asarray(idata.log_likelihood["y"].values, dtype=float)
+    chains, draws = ll.shape[:2]
+    if chains == 1:
+        return ll.reshape(draws, -1), 1.0
+    ess = az.ess(idata.posterior, method="mean")
+    r_eff = float(np.hstack([ess[v].values.ravel() for v in ess.data_vars]).mean()) / (chains * draws)
+    return ll.reshape(chains * draws, -1), r_eff
+
+
 def loo_compare(az: Any, idata_h: Any, idata_c: Any) -> dict[str, Any]:
     """PSIS-LOO (Vehtari, Gelman & Gabry 2017) of both models; SE of the difference from the pointwise terms."""
     out: dict[str, Any] = {}
     pointwise = {}
     warnings: list[str] = []
     for key, ds in (("heteroscedastic", idata_h), ("constant_variance", idata_c)):
-        res = az.loo(ds, pointwise=True)
-        k_hat = np.asarray(res.pareto_k)
-        n_bad = int((k_hat > 0.7).sum())
-        pointwise[key] = np.asarray(res.loo_i)
-        out[key] = {"elpd_loo": float(res.elpd_loo), "se": float(res.se), "p_loo": float(res.p_loo),
-                    "pareto_k_above_0.7": n_bad}
+        res = psis_loo(*_loo_inputs(az, ds))
+        n_bad = int((res.pareto_k > 0.7).sum())
+        pointwise[key] = res.loo_i
+        out[key] = {"elpd_loo": res.elpd_loo, "se": res.se, "p_loo": res.p_loo, "pareto_k_above_0.7": n_bad}
         if n_bad:
             warnings.append(f"PSIS-LOO of the {key.replace('_', ' ')} model has {n_bad} observation(s) with Pareto k > "
                             "0.7; its elpd estimate is unreliable there.")
