@@ -11,7 +11,8 @@ p_loo = Σᵢ log(S⁻¹ Σₛ exp ℓᵢₛ) − elpd_loo; k̂ᵢ is the fitted
 
 The rules (cut-off, prior, negligible-weight threshold, tails of at most four ratios left unsmoothed)
 are those of ArviZ's ``loo``, the reference the tests compare with; this module differs only in
-working on every observation in one array operation instead of one observation at a time.
+working on every observation in one array operation instead of one observation at a time, and in
+ordering only the m + 1 largest ratios of each (np.argpartition), as every sum runs over all draws.
 """
 from __future__ import annotations
 
@@ -72,21 +73,19 @@ def _gpd_quantiles(probs: np.ndarray, k: np.ndarray, sigma: np.ndarray) -> np.nd
     return np.where((sigma > 0)[:, None], q, np.nan)
 
 
-def _smoothed_log_weights(x: np.ndarray, tail_len: int, cut: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Rows of ascending log ratios (largest 0) whose tail above ``cut`` has ``tail_len`` entries:
-    the smoothed, truncated log weights (not yet normalised) and k̂ of each row."""
-    r, s = x.shape
-    if tail_len <= 4:  # too few ratios to fit: no smoothing
-        return x, np.full(r, np.inf)
+def _smoothed_tail(tail: np.ndarray, cut: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rows of the ascending tail log ratios above ``cut`` (log ratios shifted so that the largest is
+    0): the smoothed tail, truncated at 0 (unchanged where the fit fails or the tail has four entries
+    or fewer), and k̂ of each row (∞ when not fitted)."""
+    r, t = tail.shape
+    if t <= 4:  # too few ratios to fit: no smoothing
+        return tail, np.full(r, np.inf)
     exp_cut = np.exp(cut)
-    k, sigma = _gpd_fit(np.exp(x[:, s - tail_len:]) - exp_cut[:, None])
+    k, sigma = _gpd_fit(np.exp(tail) - exp_cut[:, None])
+    probs = np.arange(0.5, t) / t
+    smoothed = np.minimum(np.log(_gpd_quantiles(probs, k, sigma) + exp_cut[:, None]), 0.0)
     fitted = np.isfinite(k)
-    probs = np.arange(0.5, tail_len) / tail_len
-    smoothed = np.log(_gpd_quantiles(probs, k, sigma) + exp_cut[:, None])
-    out = x.copy()
-    out[fitted, s - tail_len:] = smoothed[fitted]
-    out[fitted] = np.minimum(out[fitted], 0.0)
-    return out, k
+    return np.where(fitted[:, None], smoothed, tail), k
 
 
 def psis_loo(loglik: np.ndarray, r_eff: float = 1.0) -> PsisLoo:
@@ -94,23 +93,30 @@ def psis_loo(loglik: np.ndarray, r_eff: float = 1.0) -> PsisLoo:
     chains in one axis; ``r_eff`` is the relative efficiency of the draws (mean ESS / draws)."""
     ll = np.ascontiguousarray(np.asarray(loglik, dtype=float).T)  # observations × draws
     n, s = ll.shape
-    cutoff = -int(np.ceil(min(s / 5.0, 3 * (s / r_eff) ** 0.5))) - 1
+    m = int(np.ceil(min(s / 5.0, 3 * (s / r_eff) ** 0.5)))  # tail length before ties are taken out
     floor = np.log(np.finfo(float).tiny)
-    # Work in ascending order of the log ratios −ℓ: the tail is the last entries of each row, and the
-    # sums below do not depend on the order of the draws (tied ratios have tied ℓ).
-    neg = np.sort(-ll, axis=1)
-    x = neg - neg[:, -1:]
-    cut = np.maximum(x[:, s + cutoff], floor)
-    tails = (x > cut[:, None]).sum(axis=1)
-    log_w = np.empty_like(x)
+    # Only the m + 1 largest log ratios −ℓ need an order: the (m + 1)-th largest is the cut, the tail
+    # is those above it; every sum below is over all draws and does not depend on their order.
+    log_w = np.negative(ll)
+    top_idx = np.argpartition(log_w, s - m - 1, axis=1)[:, s - m - 1:]
+    top = np.take_along_axis(log_w, top_idx, axis=1)
+    order = np.argsort(top, axis=1)
+    top_idx = np.take_along_axis(top_idx, order, axis=1)
+    top = np.take_along_axis(top, order, axis=1)
+    log_w -= top[:, -1:]
+    top -= top[:, -1:]
+    cut = np.maximum(top[:, 0], floor)
+    tails = (top[:, 1:] > cut[:, None]).sum(axis=1)
     k_hat = np.empty(n)
     for t in np.unique(tails):
         rows = np.flatnonzero(tails == t)
         for a in range(0, rows.size, ROWS_PER_BLOCK):
             block = rows[a:a + ROWS_PER_BLOCK]
-            log_w[block], k_hat[block] = _smoothed_log_weights(x[block], int(t), cut[block])
+            at = top_idx[block, m + 1 - t:]
+            smoothed, k_hat[block] = _smoothed_tail(top[block, m + 1 - t:], cut[block])
+            log_w[block[:, None], at] = smoothed
     log_w -= _logsumexp(log_w)[:, None]
-    loo_i = _logsumexp(log_w - neg)  # −neg: ℓ of the draws in the order of log_w
+    loo_i = _logsumexp(log_w + ll)
     lppd = float((_logsumexp(ll) - np.log(s)).sum())
     elpd = float(loo_i.sum())
     return PsisLoo(elpd_loo=elpd, se=float(np.sqrt(n * np.var(loo_i))), p_loo=lppd - elpd, loo_i=loo_i,
