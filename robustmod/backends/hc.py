@@ -16,12 +16,17 @@ HC5   1 / (1 − hᵢ)^(δᵢ/2), δᵢ = min(hᵢ/h̄, max(4, 0.7·h_max/h̄)) 
 """
 from __future__ import annotations
 
+import weakref
 from collections.abc import Callable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import linalg
 
 from ..defaults import LEVERAGE_ONE_TOL
+
+if TYPE_CHECKING:
+    from ..design import Design
 
 
 def _power(exponent: Callable[[np.ndarray, int, int], np.ndarray]) -> Callable[[np.ndarray, int, int], np.ndarray]:
@@ -71,6 +76,21 @@ NEEDS_LEVERAGE_BELOW_ONE = frozenset({"hc2", "hc3", "hc4", "hc4m", "hc5"})
 def leverages(Q: np.ndarray) -> np.ndarray:
     """Diagonal of the hat matrix from the thin Q factor, hᵢ = Σⱼ Q²ᵢⱼ (no n×n matrix)."""
     return np.einsum("ij,ij->i", Q, Q)
+
+
+#: Leverages already computed on a design (by identity, dropped with it): the HC fits, the wild
+#: bootstrap, the calibration and the leverage-one note all read the same n-vector.
+_DESIGN_LEVERAGES: weakref.WeakKeyDictionary[Any, np.ndarray] = weakref.WeakKeyDictionary()
+
+
+def design_leverages(design: Design) -> np.ndarray:
+    """:func:`leverages` of the design's own thin Q, computed once per design (read-only)."""
+    h = _DESIGN_LEVERAGES.get(design)
+    if h is None:
+        h = leverages(design.qr[0])
+        h.setflags(write=False)
+        _DESIGN_LEVERAGES[design] = h
+    return h
 
 
 def leverage_one_mask(h: np.ndarray) -> np.ndarray:

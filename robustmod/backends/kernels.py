@@ -21,7 +21,7 @@ import numpy as np
 from scipy import linalg, special, stats
 from scipy.linalg import lapack
 
-from .hc import leverage_one_rows
+from .hc import design_leverages, leverage_one_rows
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..design import Design
@@ -116,7 +116,7 @@ def leverage_one_note(design: Design) -> str | None:
     that occurs in such a row only, else the model terms that are non-zero in those rows only.
     There each row's residual is zero, so a standard error built from residuals is degenerate.
     """
-    ones = leverage_one_rows(np.einsum("ij,ij->i", design.qr[0], design.qr[0]))
+    ones = leverage_one_rows(design_leverages(design))
     if ones.size == 0:
         return None
     rows = design_row_numbers(design)[ones]

@@ -16,7 +16,15 @@ from scipy import linalg
 from ..blas_threads import one_blas_thread
 from ..errors import InputError
 from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
-from .hc import NEEDS_LEVERAGE_BELOW_ONE, hc_weights, leverage_one_rows, leverages, r_inverse, sandwich
+from .hc import (
+    NEEDS_LEVERAGE_BELOW_ONE,
+    design_leverages,
+    hc_weights,
+    leverage_one_rows,
+    leverages,
+    r_inverse,
+    sandwich,
+)
 from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -90,7 +98,7 @@ class OLSBackend(FamilyBackend):
             s2 = E2.sum(axis=0) / df
             S = (C.T @ C)[None, :, :] * s2[:, None, None]  # D × q × q
         else:
-            h = leverages(Q)
+            h = design_leverages(design)
             if self.id in NEEDS_LEVERAGE_BELOW_ONE and (
                     reason := leverage_one_reason(h, self.id.upper(), design_row_numbers(design), "drop them or use HC0/HC1")):
                 raise InputError(reason)
@@ -133,7 +141,8 @@ def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
         Q, R = design.qr
         with one_blas_thread():  # n × k products and k × k solves: see robustmod.blas_threads
             fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design),
-                                 residuals=design_residuals(design))
+                                 residuals=design_residuals(design),
+                                 leverage=None if kind == "ols" else design_leverages(design))
     return fits[kind]
 
 
@@ -145,12 +154,13 @@ def _centred_sum_of_squares(y: np.ndarray) -> float:
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
             *, row_numbers: Any = None, label: str | None = None,
-            backend_id: str | None = None, residuals: tuple[np.ndarray, np.ndarray] | None = None
-            ) -> WaldFit | Unavailable:
+            backend_id: str | None = None, residuals: tuple[np.ndarray, np.ndarray] | None = None,
+            leverage: np.ndarray | None = None) -> WaldFit | Unavailable:
     """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
 
     ``row_numbers``: 1-based data row numbers of the design rows (for messages; default 1 … n).
     ``residuals``: (Qᵀy, y − QQᵀy) when already at hand (see :func:`design_residuals`).
+    ``leverage``: hᵢ of Q when already at hand (see :func:`.hc.design_leverages`).
     """
     n, k = Q.shape
     backend_id = backend_id or kind
@@ -173,7 +183,7 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
         cov = s2 * (Rinv @ Rinv.T)
         se_label = "classical (homoscedastic)"
     else:
-        h = leverages(Q)
+        h = leverages(Q) if leverage is None else leverage
         if kind in NEEDS_LEVERAGE_BELOW_ONE and (
                 reason := leverage_one_reason(h, kind.upper(), row_numbers, "drop them or use HC0/HC1")):
             return Unavailable(backend_id, label, reason)

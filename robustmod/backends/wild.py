@@ -60,6 +60,7 @@ from .base import (
 from .hc import (
     HC_WEIGHTS,
     NEEDS_LEVERAGE_BELOW_ONE,
+    design_leverages,
     hc_weights,
     leverage_one_mask,
     leverages,
@@ -807,7 +808,7 @@ class WildBootstrapBackend(Backend):
         """(A, ω, h) of the full model, or the reason the HC weights are undefined."""
         Q, R = design.qr
         n, k = Q.shape
-        h = leverages(Q)
+        h = design_leverages(design)
         if self.se in NEEDS_LEVERAGE_BELOW_ONE and (reason := leverage_one_reason(
                 h, self.se.upper(), design_row_numbers(design), "drop them or set wild.se=hc0")):
             return reason
