@@ -224,3 +224,39 @@ def test_backends_command_lists_every_id_and_marks_the_defaults(capsys: pytest.C
     rows = [ln.split() for ln in capsys.readouterr().out.splitlines()]
     assert [r[0] for r in rows] == list(REGISTRY)
     assert sorted(r[0] for r in rows if r[-1] == "[default]") == sorted(defaults.BACKENDS)
+
+
+def _run_command(tmp_path: Path, prelude: str) -> subprocess.CompletedProcess[str]:
+    """``robustmod backends`` through the installed entry point's function, after ``prelude``."""
+    code = f"import sys\n{prelude}\nsys.argv = ['robustmod', 'backends']\nfrom robustmod.cli import run\nrun()\n"
+    return subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, cwd=tmp_path)
+
+
+def test_the_command_ends_promptly_yet_runs_exit_handlers_and_flushes_its_output(tmp_path: Path) -> None:
+    # The prompt exit (os._exit after the exit handlers) must not lose what a normal exit keeps:
+    # buffered stdout through a pipe, the exit status, and work registered with atexit.
+    marker = tmp_path / "handler.txt"
+    out = _run_command(tmp_path, f"import atexit\natexit.register(lambda: open({str(marker)!r}, 'w').write('ran'))")
+    assert out.returncode == 0, out.stderr
+    assert "hc3" in out.stdout and "bayes" in out.stdout and out.stdout.endswith("\n")
+    assert marker.read_text() == "ran"
+    with open(Path(__file__).resolve().parents[1] / "pyproject.toml", encoding="utf-8") as fh:
+        assert 'robustmod = "robustmod.cli:run"' in fh.read()
+
+
+def test_the_command_waits_for_a_thread_that_is_still_writing(tmp_path: Path) -> None:
+    marker = tmp_path / "late.txt"
+    prelude = ("import threading, time\n"
+               f"def late():\n    time.sleep(1.0)\n    open({str(marker)!r}, 'w').write('done')\n"
+               "threading.Thread(target=late).start()")
+    out = _run_command(tmp_path, prelude)
+    assert out.returncode == 0, out.stderr
+    assert marker.read_text() == "done"
+
+
+def test_the_command_keeps_the_exit_status_of_bad_input(tmp_path: Path) -> None:
+    code = ("import sys\nsys.argv = ['robustmod', 'check', 'missing.csv', '--formula', 'y ~ x * w', "
+            "'--focal', 'x', '--moderator', 'w']\nfrom robustmod.cli import run\nrun()\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120, cwd=tmp_path)
+    assert out.returncode == 2
+    assert "missing.csv" in out.stderr and "Traceback" not in out.stderr

@@ -1,6 +1,4 @@
 """``python -m robustmod.cli``: the same as the ``robustmod`` command."""
-import sys
+from . import run
 
-from . import main
-
-sys.exit(main())
+run()
