@@ -11,9 +11,9 @@ import dataclasses
 import html
 import time
 from collections.abc import Callable, Mapping, Sequence
-from contextlib import ExitStack, nullcontext
+from contextlib import ExitStack
 from dataclasses import dataclass, field
-from functools import cached_property
+from functools import cached_property, partial
 from pathlib import Path
 from typing import Any
 
@@ -31,10 +31,11 @@ from .comparison_tables import backend_tables, cluster_table, product_term_table
 from .data import NaValues, load_data
 from .defaults import ALPHA, BACKENDS, CLUSTER_BACKENDS, CLUSTER_PRIMARY, PRIMARY, SEED
 from .design import Design, build_design
-from .diagnostics import VarianceDiagnostics, variance_diagnostics
+from .diagnostics import VarianceDiagnostics, diagnostics_parts
 from .engines import Engine, check_engine_choice, make_engine
 from .errors import InputError, option_error
 from .jsonvalues import jsonable, num
+from .lanes import run_parts
 from .spec import ModelSpec
 from .steps import StepCallback, report_step
 from .tables import Table, display_rows, render_html, render_text
@@ -556,15 +557,36 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
     with one_blas_thread():
         design = build_design(frame, spec)
     report_step(on_step, "design", started)
-    results: dict[str, BackendResult] = {}
-    for bid in ids:
-        backend = make_backend(bid, **dict(options.get(bid, {})))
+    backends = {bid: make_backend(bid, **dict(options.get(bid, {}))) for bid in ids}
+    fitted: dict[str, BackendResult] = {}
+    took: dict[str, float] = {}
+
+    def fit(bid: str) -> None:
         t0 = time.perf_counter()
-        # The wild bootstrap and the sampler choose their own threads; the cheap back-ends are small products.
-        with one_blas_thread() if backend.cost == "cheap" else nullcontext():
-            fit = backend.fit(design, seed=spec.seed, progress=progress)
-            results[bid] = evaluate_fit(fit, design, spec.alpha, time.perf_counter() - t0)
-        report_step(on_step, f"back-end {bid}", t0)
+        fitted[bid] = evaluate_fit(backends[bid].fit(design, seed=spec.seed, progress=progress), design,
+                                   spec.alpha, time.perf_counter() - t0)
+        took[bid] = time.perf_counter() - t0
+
+    started = time.perf_counter()
+    # The cheap back-ends (small products) and the parts of the diagnostics read the design only:
+    # on large data they share two threads, on one BLAS thread each. The wild bootstrap and the
+    # sampler choose their own threads, so they fit afterwards.
+    parts, assemble = diagnostics_parts(design, spec.alpha)
+    cheap = [(f"back-end {bid}", partial(fit, bid)) for bid in ids if backends[bid].cost == "cheap"]
+    with one_blas_thread():
+        got = run_parts([*cheap, *parts], design.X.shape[0])
+        diagnostics = assemble(got)
+    if on_step is not None:  # in the order the back-ends were asked for, each with its own time
+        for bid in ids:
+            if bid in took:
+                on_step(f"back-end {bid}", took[bid])
+    report_step(on_step, "diagnostics", started)
+    for bid in ids:
+        if bid not in fitted:
+            fit(bid)
+            if on_step is not None:
+                on_step(f"back-end {bid}", took[bid])
+    results = {bid: fitted[bid] for bid in ids}
     leverage_note = leverage_one_note(design)
     if leverage_note is not None:
         results = mark_degenerate(results, leverage_note)
@@ -575,10 +597,6 @@ def _run(frame: pd.DataFrame, source: str | None, spec: ModelSpec, ids: list[str
             f"The primary back-end {primary!r} cannot answer on these data ({results[primary].reason}) "
             "Choose another primary back-end (e.g. hc0) or fix the data."
         )
-    started = time.perf_counter()
-    with one_blas_thread():
-        diagnostics = variance_diagnostics(design, alpha=spec.alpha)
-    report_step(on_step, "diagnostics", started)
     calib = None
     if calibration is not None:
         started = time.perf_counter()

@@ -27,6 +27,7 @@ from .cholesky import scaled_cholesky
 from .clusters import attach_clusters, moderator_levels
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
+from .lanes import map_rows, run_parts
 from .spec import ModelSpec, parse_probe_rule
 
 #: Functions the formula may call, as formulaic evaluates them (C, I, center, scale are formulaic's own).
@@ -335,24 +336,34 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     for name in frame.columns:
         if name not in prepared.categorical_moderators and not pd.api.types.is_numeric_dtype(frame[name]):
             frame[name] = pd.Categorical(frame[name].astype(str))
-    y, X, term_names, model_spec, products = _model_matrices(spec, frame, prepared.frame.index)
+    y, X, term_names, model_spec, products = _model_matrices(spec, frame, prepared.frame.index, check=False)
     n, k = X.shape
-    if n <= k + 1:
-        raise InputError(
-            f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
-            "(fewer terms or more data)."
-        )
-    qr = thin_qr(X)
+
+    def factor() -> tuple[np.ndarray, np.ndarray]:
+        if n <= k + 1:
+            raise InputError(
+                f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
+                "(fewer terms or more data)."
+            )
+        return thin_qr(X)
+
+    def frame_facts() -> tuple[dict[str, ModeratorInfo], dict[str, Any], float]:
+        return (_moderator_info(prepared, spec), _reference(frame, spec, prepared),
+                float(prepared.frame[spec.focal].astype(float).mean()))
+
+    # The QR of X beside the checks of its cells and the facts of the frame (all the frame's work
+    # in one part, so pandas is only ever used by one thread); errors come in this order, as before.
+    got = run_parts([("finite", lambda: _check_finite_cells(spec, y, X, term_names, prepared.frame.index)),
+                     ("qr", factor), ("frame", frame_facts)], n)
+    qr = got["qr"]
+    moderators, reference, focal_mean = got["frame"]
     _check_rank(X, qr[1], term_names)
     interaction_columns = _interaction_columns(model_spec, spec, term_names)
-    moderators = _moderator_info(prepared, spec)
     warnings = list(prepared.warnings)
     if clustering is not None:
         warnings += [*clustering.notes,
                      *moderator_levels(prepared.frame, clustering.codes, spec.moderators, clustering.name)]
     probe_points = _probe_points(spec, moderators, warnings)
-    reference = _reference(frame, spec, prepared)
-    focal_mean = float(prepared.frame[spec.focal].astype(float).mean())
     design = Design(
         spec=spec, y=y, X=X, term_names=term_names, interaction_columns=interaction_columns,
         moderators=moderators, probe_points=probe_points, reference=reference, centering=centering,
@@ -423,6 +434,10 @@ def _plain_products(mm: Any, frame: pd.DataFrame) -> tuple[str, list[list[str]]]
     return (response.expr, products) if len(products) == mm.rhs.shape[1] else None
 
 
+#: Rows of X filled at a time by :func:`product_columns` (a block of a few columns fits in cache).
+PRODUCT_BLOCK_ROWS = 4096
+
+
 def product_columns(frame: pd.DataFrame | Mapping[str, np.ndarray], products: Sequence[Sequence[str]]) -> np.ndarray:
     """The matrix whose column j is the product of the columns ``products[j]`` of ``frame`` (a frame, or
     columns as arrays), multiplied left to right as formulaic multiplies (an empty product is the
@@ -435,15 +450,22 @@ def product_columns(frame: pd.DataFrame | Mapping[str, np.ndarray], products: Se
         values = {name: np.asarray(frame[name], dtype=float) for name in names}
         n = len(next(iter(frame.values()))) if frame else 0
     X = np.empty((n, len(products)))
-    for j, factors in enumerate(products):
-        if not factors:
-            X[:, j] = 1.0
-            continue
-        col = values[factors[0]]
-        with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row by the caller
-            for name in factors[1:]:
-                col = col * values[name]
-        X[:, j] = col
+    # Filled in blocks of rows that stay in cache: a whole column of a row-major X is a strided
+    # write over all of X, once per column (at n = 10⁶, k = 7 the blocks take a third of the time).
+    with np.errstate(over="ignore", invalid="ignore"):  # an overflow is reported with its row by the caller
+        for a in range(0, n, PRODUCT_BLOCK_ROWS):
+            b = min(a + PRODUCT_BLOCK_ROWS, n)
+            block = X[a:b]
+            for j, factors in enumerate(products):
+                if not factors:
+                    block[:, j] = 1.0
+                elif len(factors) == 1:
+                    block[:, j] = values[factors[0]][a:b]
+                else:
+                    col = values[factors[0]][a:b] * values[factors[1]][a:b]
+                    for name in factors[2:]:
+                        col *= values[name][a:b]
+                    block[:, j] = col
     return X
 
 
@@ -499,16 +521,17 @@ def _direct_parts(spec: ModelSpec, frame: pd.DataFrame
     return y, X, names, mm.rhs.model_spec, products
 
 
-def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index
+def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index, *, check: bool = True
                     ) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], Any, tuple[tuple[str, ...], ...] | None]:
     """y, X, term names, formulaic's model spec and (direct builds) the products of each column from the
-    formula; non-finite cells name their data row.
+    formula; non-finite cells name their data row (``check=False``: the caller checks them).
 
     Plain numeric terms are built directly (:func:`_direct_parts`), anything else by formulaic."""
     direct = _direct_parts(spec, frame)
     if direct is not None:
         y, X, term_names, _, _ = direct
-        _check_finite_cells(spec, y, X, term_names, rows)
+        if check:
+            _check_finite_cells(spec, y, X, term_names, rows)
         return direct
     try:
         mm = model_matrix(spec.formula, frame, context=FORMULA_CONTEXT, na_action="ignore")
@@ -523,7 +546,8 @@ def _model_matrices(spec: ModelSpec, frame: pd.DataFrame, rows: pd.Index
     y = lhs[:, 0].copy()
     X = np.ascontiguousarray(np.asarray(mm.rhs, dtype=float))
     term_names = tuple(str(c) for c in mm.rhs.columns)
-    _check_finite_cells(spec, y, X, term_names, rows)
+    if check:
+        _check_finite_cells(spec, y, X, term_names, rows)
     return y, X, term_names, mm.rhs.model_spec, None
 
 
@@ -550,11 +574,15 @@ CHOLESKY_QR_CONDITION = 1e5
 def _cholesky_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     """Q = XR⁻¹ and R from Cholesky of the column-scaled XᵀX = RᵀR, or None when that matrix is
     singular or its condition number exceeds CHOLESKY_QR_CONDITION."""
-    R, _ = scaled_cholesky(X.T @ X, CHOLESKY_QR_CONDITION)
+    n = X.shape[0]
+    gram = sum(map_rows(lambda s: np.dot(X[s].T, X[s]), n), np.zeros((X.shape[1], X.shape[1])))
+    R, _ = scaled_cholesky(gram, CHOLESKY_QR_CONDITION)
     if R is None:
         return None
     Rinv = linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)  # k × k, a triangular solve
-    return X @ Rinv, R
+    # One thread: Q is a new n × k array, and two threads writing its fresh pages at once were
+    # several times slower than one on a virtual machine (page faults contend).
+    return np.dot(X, Rinv), R
 
 
 def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

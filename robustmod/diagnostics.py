@@ -13,10 +13,11 @@
 
 Each test is computed once, by the streaming kernel of :mod:`robustmod.kernels`, here over the
 in-memory rows in chunks of at most 65,536 rows (:func:`robustmod.kernels.chunks.in_memory_rows`).
+On large data the tests run on two threads (:mod:`robustmod.lanes`).
 """
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -24,6 +25,7 @@ import numpy as np
 
 from .backends.base import WaldFit
 from .backends.ols import design_fit, design_residuals
+from .blas_threads import one_blas_thread
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
@@ -32,6 +34,7 @@ from .kernels.gq import DROP_SHARE
 from .kernels.gq import goldfeld_quandt as streamed_gq
 from .kernels.lmtests import AuxiliaryRegression, ResidualPasses
 from .kernels.spread import ResidualSpread
+from .lanes import run_parts
 from .linearity import BinningCheck, binning_check
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
@@ -292,19 +295,39 @@ def variance_diagnostics(design: Design, alpha: float = 0.05) -> VarianceDiagnos
     (Breusch & Pagan 1979; Koenker 1981); White (1980) adds squares and cross-products;
     Goldfeld & Quandt (1965) split along the moderator; the SE gap follows King & Roberts (2015).
     """
+    parts, assemble = diagnostics_parts(design, alpha)
+    with one_blas_thread():
+        return assemble(run_parts(parts, design.X.shape[0]))
+
+
+def diagnostics_parts(design: Design, alpha: float = 0.05) -> tuple[
+        list[tuple[str, Callable[[], Any]]], Callable[[Mapping[str, Any]], VarianceDiagnostics]]:
+    """The independent parts of :func:`variance_diagnostics`, longest first, and the function that
+    makes the diagnostics of their results: for :func:`robustmod.lanes.run_parts`, which may run
+    them on two threads beside other work (the shared residuals, leverages and fits of the design
+    are computed once, whichever part asks first)."""
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
-    e = ols_residuals(design)
-    (bp, wh), gq = lm_tests(design, e), goldfeld_quandt(design)
-    tests = [t for t in (bp, wh, gq) if t is not None]
-    return VarianceDiagnostics(
-        alpha=float(alpha), breusch_pagan=bp, white=wh,
-        goldfeld_quandt=_or_reason(gq, "no continuous moderator, or halves too small to fit"),
-        residual_spread=_or_reason(residual_spread(design, e), "no moderator"),
-        se_gap=_or_reason(se_gap(design), "a standard error could not be computed (e.g. leverage 1)"),
-        linearity=_or_reason(binning_check(design, alpha=alpha), "no continuous moderator"),
-        non_constant_variance=any(t["p"] is not None and t["p"] < alpha for t in tests),
-    )
+    parts: list[tuple[str, Callable[[], Any]]] = [
+        ("linearity", lambda: binning_check(design, alpha=alpha)),
+        ("lm", lambda: lm_tests(design, ols_residuals(design))),
+        ("goldfeld_quandt", lambda: goldfeld_quandt(design)),
+        ("residual_spread", lambda: residual_spread(design, ols_residuals(design))),
+    ]
+
+    def assemble(got: Mapping[str, Any]) -> VarianceDiagnostics:
+        (bp, wh), gq = got["lm"], got["goldfeld_quandt"]
+        tests = [t for t in (bp, wh, gq) if t is not None]
+        return VarianceDiagnostics(
+            alpha=float(alpha), breusch_pagan=bp, white=wh,
+            goldfeld_quandt=_or_reason(gq, "no continuous moderator, or halves too small to fit"),
+            residual_spread=_or_reason(got["residual_spread"], "no moderator"),
+            se_gap=_or_reason(se_gap(design), "a standard error could not be computed (e.g. leverage 1)"),
+            linearity=_or_reason(got["linearity"], "no continuous moderator"),
+            non_constant_variance=any(t["p"] is not None and t["p"] < alpha for t in tests),
+        )
+
+    return parts, assemble
 
 
 # ---- the tables every display renders ---------------------------------------------------------

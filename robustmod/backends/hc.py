@@ -16,14 +16,15 @@ HC5   1 / (1 − hᵢ)^(δᵢ/2), δᵢ = min(hᵢ/h̄, max(4, 0.7·h_max/h̄)) 
 """
 from __future__ import annotations
 
-import weakref
 from collections.abc import Callable
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy import linalg
 
 from ..defaults import LEVERAGE_ONE_TOL
+from ..lanes import map_rows
+from ..once import OncePer
 
 if TYPE_CHECKING:
     from ..design import Design
@@ -75,22 +76,24 @@ NEEDS_LEVERAGE_BELOW_ONE = frozenset({"hc2", "hc3", "hc4", "hc4m", "hc5"})
 
 def leverages(Q: np.ndarray) -> np.ndarray:
     """Diagonal of the hat matrix from the thin Q factor, hᵢ = Σⱼ Q²ᵢⱼ (no n×n matrix)."""
-    return np.einsum("ij,ij->i", Q, Q)
+    h = np.empty(Q.shape[0])
+    map_rows(lambda s: np.einsum("ij,ij->i", Q[s], Q[s], out=h[s]), Q.shape[0])
+    return h
 
 
 #: Leverages already computed on a design (by identity, dropped with it): the HC fits, the wild
 #: bootstrap, the calibration and the leverage-one note all read the same n-vector.
-_DESIGN_LEVERAGES: weakref.WeakKeyDictionary[Any, np.ndarray] = weakref.WeakKeyDictionary()
+_DESIGN_LEVERAGES: OncePer[np.ndarray] = OncePer()
 
 
 def design_leverages(design: Design) -> np.ndarray:
     """:func:`leverages` of the design's own thin Q, computed once per design (read-only)."""
-    h = _DESIGN_LEVERAGES.get(design)
-    if h is None:
+    def compute() -> np.ndarray:
         h = leverages(design.qr[0])
         h.setflags(write=False)
-        _DESIGN_LEVERAGES[design] = h
-    return h
+        return h
+
+    return _DESIGN_LEVERAGES.get(design, compute)
 
 
 def leverage_one_mask(h: np.ndarray) -> np.ndarray:
@@ -122,9 +125,15 @@ MEAT_BLOCK = 8192
 def sandwich(Q: np.ndarray, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
     """R⁻¹ (Qᵀ diag(u2w) Q) R⁻ᵀ with u2w = ωᵢ êᵢ², the meat summed over blocks of rows."""
     k = Q.shape[1]
-    meat = np.zeros((k, k))
-    for start in range(0, Q.shape[0], MEAT_BLOCK):
-        q = Q[start:start + MEAT_BLOCK]
-        meat += (q.T * u2w[start:start + MEAT_BLOCK]) @ q
+
+    def half(rows: slice) -> np.ndarray:
+        part = np.zeros((k, k))
+        for start in range(rows.start, rows.stop, MEAT_BLOCK):
+            stop = min(start + MEAT_BLOCK, rows.stop)
+            q = Q[start:stop]
+            part += np.dot(q.T * u2w[start:stop], q)  # see robustmod.lanes on np.dot
+        return part
+
+    meat = sum(map_rows(half, Q.shape[0]), np.zeros((k, k)))
     meat = 0.5 * (meat + meat.T)
     return Rinv @ meat @ Rinv.T

@@ -6,7 +6,6 @@ uses n − k degrees of freedom (common practice, e.g. Long & Ervin 2000).
 """
 from __future__ import annotations
 
-import weakref
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -15,6 +14,8 @@ from scipy import linalg
 
 from ..blas_threads import one_blas_thread
 from ..errors import InputError
+from ..lanes import map_rows
+from ..once import OncePer
 from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
 from .hc import (
     NEEDS_LEVERAGE_BELOW_ONE,
@@ -109,22 +110,23 @@ class OLSBackend(FamilyBackend):
 
 #: Fits already made on a design (by identity, dropped with it): the back-end, the SE gap and the
 #: binning check all ask for the design's HC3 fit, which then costs one pass over the rows.
-_DESIGN_FITS: weakref.WeakKeyDictionary[Design, dict[str, WaldFit | Unavailable]] = weakref.WeakKeyDictionary()
-
-
-_DESIGN_PIECES: weakref.WeakKeyDictionary[Design, tuple[np.ndarray, np.ndarray]] = weakref.WeakKeyDictionary()
+_DESIGN_FITS: OncePer[WaldFit | Unavailable] = OncePer()
+_DESIGN_PIECES: OncePer[tuple[np.ndarray, np.ndarray]] = OncePer()
 
 
 def design_residuals(design: Design) -> tuple[np.ndarray, np.ndarray]:
     """(Qᵀy, ê = y − QQᵀy) of the design, computed once per design (read-only arrays)."""
-    if design not in _DESIGN_PIECES:
+    def compute() -> tuple[np.ndarray, np.ndarray]:
         Q, _ = design.qr
-        qty = Q.T @ design.y
-        resid = design.y - Q @ qty
+        y, n = design.y, Q.shape[0]
+        qty = sum(map_rows(lambda s: np.dot(Q[s].T, y[s]), n), np.zeros(Q.shape[1]))
+        resid = np.empty(n)
+        map_rows(lambda s: np.subtract(y[s], np.dot(Q[s], qty), out=resid[s]), n)
         qty.setflags(write=False)
         resid.setflags(write=False)
-        _DESIGN_PIECES[design] = (qty, resid)
-    return _DESIGN_PIECES[design]
+        return qty, resid
+
+    return _DESIGN_PIECES.get(design, compute)
 
 
 def _row_numbers(design: Design) -> Any:
@@ -136,20 +138,28 @@ def _row_numbers(design: Design) -> Any:
 
 def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
     """:func:`ols_fit` of ``kind`` on the design's own QR, made once per design and kind."""
-    fits = _DESIGN_FITS.setdefault(design, {})
-    if kind not in fits:
+    def compute() -> WaldFit | Unavailable:
         Q, R = design.qr
         with one_blas_thread():  # n × k products and k × k solves: see robustmod.blas_threads
-            fits[kind] = ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design),
-                                 residuals=design_residuals(design),
-                                 leverage=None if kind == "ols" else design_leverages(design))
-    return fits[kind]
+            return ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design),
+                           residuals=design_residuals(design),
+                           leverage=None if kind == "ols" else design_leverages(design))
+
+    return _DESIGN_FITS.get(design, compute, kind)
+
+
+#: Rows of the n-vector temporaries made a block at a time (the diagnostics may be running beside).
+_BLOCK = 1 << 16
 
 
 def _centred_sum_of_squares(y: np.ndarray) -> float:
-    """Σ(yᵢ − ȳ)² (its n-vector of deviations freed on return)."""
-    dev = y - y.mean()
-    return float(dev @ dev)
+    """Σ(yᵢ − ȳ)², the deviations a block of rows at a time."""
+    mean = y.mean()
+    total = 0.0
+    for a in range(0, y.size, _BLOCK):
+        dev = y[a:a + _BLOCK] - mean
+        total += float(dev @ dev)
+    return total
 
 
 def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
@@ -190,7 +200,8 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
         if (ones := int(leverage_one_rows(h).size)):
             warnings.append(f"{ones} row(s) have leverage 1; their residuals are zero and carry no variance information.")
         u2w = hc_weights(kind, h, n, k)
-        u2w *= np.square(resid)  # ωᵢ êᵢ² in place: one n-vector fewer at the peak
+        for a in range(0, n, _BLOCK):  # ωᵢ êᵢ² in place, êᵢ² a block at a time: no n-vector at the peak
+            u2w[a:a + _BLOCK] *= np.square(resid[a:a + _BLOCK])
         cov = sandwich(Q, Rinv, u2w)
         se_label = kind.upper()
         extras["max_leverage"] = float(h.max())

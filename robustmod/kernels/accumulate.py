@@ -118,7 +118,7 @@ class CrossProducts:
         mean_b = block.mean(axis=0)
         centred = block if overwrite else block.copy(order="F")
         centred -= mean_b
-        C_b = centred.T @ centred
+        C_b = np.dot(centred.T, centred)  # np.dot releases the GIL here; matmul of a transpose did not
         total = self.n + m
         delta = mean_b - self.mean
         self.C += C_b + np.outer(delta, delta) * (self.n * m / total)

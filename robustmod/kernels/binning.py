@@ -287,11 +287,10 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
         pos = lookup[bin_numbers(s.cuts, w)]
         order = np.argsort(pos, kind="stable")  # a radix sort of small integers
         starts = np.concatenate([[0], np.cumsum(np.bincount(pos, minlength=J))])
-        C = np.empty((b - a, lay.width + 1), order="F")
-        Xb = c.X[a:b]
-        for j in range(k):
-            np.take(Xb[:, j], order, out=C[:, j])
-        np.take(c.y[a:b], order, out=C[:, lay.width])
+        CT = np.empty((lay.width + 1, b - a))
+        C = CT.T  # Fortran-ordered, filled through its transpose: see robustmod.lanes on np.take
+        np.take(c.X[a:b].T, order, axis=1, mode="clip", out=CT[:k])
+        np.take(c.y[a:b], order, mode="clip", out=CT[lay.width])
         ws, ds = w[order], d[order]
         for base in lay.extras:
             col = C[:, lay.col(base)]
@@ -376,7 +375,7 @@ def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, m
         for C, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
             for j in range(J):
                 Cj = C[starts[j]:starts[j + 1]]
-                acc.grams[j] += Cj.T @ Cj
+                acc.grams[j] += np.dot(Cj.T, Cj)  # see robustmod.lanes on np.dot
 
     grams = fold(chunks, lambda: _Grams(J, p), gram_step).grams
     factors = [_cholesky_factor(G) for G in grams]
@@ -470,7 +469,7 @@ def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
                         at_one.append(rows[r][one])
                     if not sums.n_ones:
                         u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
-                        sums.meats[j] += (Cj * u[:, None]).T @ Cj
+                        sums.meats[j] += np.dot((Cj * u[:, None]).T, Cj)
                 if at_one and sum(a.size for a in sums.ones) < SHOWN_ROWS:
                     sums.ones.append(np.sort(np.concatenate(at_one)))
 

@@ -65,13 +65,14 @@ def array_chunks(X: np.ndarray, y: np.ndarray, *, chunk_rows: int, rows: np.ndar
     if isinstance(chunk_rows, bool) or not isinstance(chunk_rows, (int, np.integer)) or chunk_rows < 1:
         raise option_error("chunk_rows", "a whole number ≥ 1", chunk_rows)
     n = int(y.shape[0])
-    positions = np.arange(n) if rows is None else np.asarray(rows)
+    positions = None if rows is None else np.asarray(rows)  # default: each chunk's own range (no n-vector)
     extra = dict(columns or {})
 
     def passes() -> Iterator[Chunk]:
         for a in range(0, n, chunk_rows):
             b = min(n, a + chunk_rows)
-            yield Chunk(X[a:b], y[a:b], positions[a:b], {name: v[a:b] for name, v in extra.items()})
+            at = np.arange(a, b) if positions is None else positions[a:b]
+            yield Chunk(X[a:b], y[a:b], at, {name: v[a:b] for name, v in extra.items()})
 
     return passes
 

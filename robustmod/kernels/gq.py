@@ -42,11 +42,10 @@ BLOCK_ROWS = 1 << 16
 def _group_block(X: np.ndarray, y: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """[X y] at ``rows``, gathered column by column into one Fortran-ordered array (TSQR works in place)."""
     k = X.shape[1]
-    out = np.empty((rows.size, k + 1), order="F")
-    for j in range(k):
-        np.take(X[:, j], rows, out=out[:, j])
-    np.take(y, rows, out=out[:, k])
-    return out
+    outT = np.empty((k + 1, rows.size))  # filled through its transpose: see robustmod.lanes on np.take
+    np.take(X.T, rows, axis=1, mode="clip", out=outT[:k])
+    np.take(y, rows, mode="clip", out=outT[k])
+    return outT.T
 
 
 Cuts = dict[str, Callable[[np.ndarray], np.ndarray]]
@@ -126,8 +125,8 @@ def _group_grams(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int
         for name, rows, Xb, yb in _chunk_blocks(c, moderator, cuts):
             Xg, yg = Xb[rows], yb[rows]
             G = acc.grams[name]
-            G[:k, :k] += Xg.T @ Xg
-            G[:k, k] += Xg.T @ yg
+            G[:k, :k] += np.dot(Xg.T, Xg)  # see robustmod.lanes on np.dot
+            G[:k, k] += np.dot(Xg.T, yg)
             G[k, k] += float(yg @ yg)
             acc.sizes[name] += int(rows.size)
 
