@@ -532,12 +532,17 @@ def _check_names(columns: list[str], spec: ModelSpec) -> list[str]:
 _COPY_ON_WRITE = int(pd.__version__.split(".")[0]) >= 3 or bool(pd.get_option("mode.copy_on_write") is True)
 
 
-def _check_finite(frame: pd.DataFrame) -> None:
+def _check_finite(frame: pd.DataFrame) -> set[str]:
+    """Refuse infinite and overflowing numbers, naming the column and row; returns the numeric columns
+    found without a gap (no NaN), which listwise deletion then need not look at."""
+    clean: set[str] = set()
     for name in frame.columns:
         col = frame[name]
         if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
             values = col.to_numpy(dtype=float, na_value=np.nan)
-            if np.abs(values).max(initial=0.0) <= OVERFLOW_LIMIT:  # no inf, no huge value, no NaN: nothing to say
+            # Largest |value| as two reductions (no n-vector); a NaN makes either comparison false.
+            if values.size == 0 or (values.max() <= OVERFLOW_LIMIT and -values.min() <= OVERFLOW_LIMIT):
+                clean.add(str(name))  # no inf, no huge value, no NaN: nothing to say
                 continue
             bad = np.isinf(values)
             if bad.any():
@@ -553,6 +558,7 @@ def _check_finite(frame: pd.DataFrame) -> None:
                     f"Column {name!r} has values as large as {values[big][0]:.3g} (data row {row}), whose squares "
                     "overflow; rescale the column (e.g. divide by 1e100) and refit."
                 )
+    return clean
 
 
 def prepare_data(data: pd.DataFrame, spec: ModelSpec, *, na_values: NaValues = None) -> PreparedData:
@@ -576,8 +582,9 @@ def prepare_data(data: pd.DataFrame, spec: ModelSpec, *, na_values: NaValues = N
     frame = data.loc[:, needed].copy(deep=not _COPY_ON_WRITE)
     frame.index = pd.RangeIndex(len(frame))  # positions, whatever index the user's frame has
     frame = _check_columns(frame, spec)
-    _check_finite(frame)
-    complete = frame.notna().all(axis=1).to_numpy()
+    clean = _check_finite(frame)
+    gaps = [c for c in frame.columns if str(c) not in clean]
+    complete = frame[gaps].notna().all(axis=1).to_numpy() if gaps else np.ones(len(frame), dtype=bool)
     dropped = tuple(int(i) + 1 for i in np.flatnonzero(~complete))
     if dropped:
         frame = frame.loc[complete]
