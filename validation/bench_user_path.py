@@ -88,8 +88,8 @@ def main(argv: list[str] | None = None) -> int:
           "| memory / X (goal ≤ 3) |")
     print("|---|---|---|---|---|---|---|")
     for r in rows:
-        print(f"| {r['n']:,} | {r['lstsq_s']:.2f} | {r['compare_s']:.2f} | {r['ratio']:.1f} | {r['peak_mb']:.0f} "
-              f"| {r['x_mb']:.0f} | {r['memory_ratio']:.1f} |")
+        print(f"| {r['n']:,} | {r['lstsq_s']:.3f} | {r['compare_s']:.3f} | {r['ratio']:.2f} | {r['peak_mb']:.0f} "
+              f"| {r['x_mb']:.0f} | {r['memory_ratio']:.2f} |")
     if len(rows) >= 2:
         a, b = rows[0], rows[-1]
         per_row = (b["compare_s"] / b["n"]) / (a["compare_s"] / a["n"])
