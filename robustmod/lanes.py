@@ -48,24 +48,28 @@ def run_parts(parts: Sequence[tuple[str, Callable[[], Any]]], rows: int) -> dict
     """``{name: work()}`` for independent pieces of work, on two threads from :data:`SECOND_LANE_ROWS`
     rows on (this one and one helper thread; each takes the next piece in the given order when it is
     free, so list the long ones first), else one after the other in this thread. The first error, in
-    the given order, is raised once every piece has stopped."""
+    the given order, is raised once every piece has stopped; an interrupt (KeyboardInterrupt) stops
+    both lanes from starting further pieces and is raised before any error."""
     if rows < SECOND_LANE_ROWS or cores() < 2 or len(parts) < 2 or getattr(_LANE, "inside", False):
         return {name: work() for name, work in parts}
     results: dict[int, Any] = {}
     errors: dict[int, BaseException] = {}
+    stop: list[BaseException] = []  # an interrupt (not an Exception): no further part starts
     claim = threading.Lock()
     following = iter(range(len(parts)))
 
     def drain() -> None:
         while True:
             with claim:
-                i = next(following, None)
+                i = None if stop else next(following, None)
             if i is None:
                 return
             try:
                 results[i] = parts[i][1]()
-            except BaseException as exc:  # noqa: BLE001  (handed to the caller below, in order)
+            except Exception as exc:  # noqa: BLE001  (handed to the caller below, in order)
                 errors[i] = exc
+            except BaseException as exc:  # KeyboardInterrupt, SystemExit: stop both lanes, raise it first
+                stop.append(exc)
 
     done = threading.Event()
 
@@ -80,6 +84,8 @@ def run_parts(parts: Sequence[tuple[str, Callable[[], Any]]], rows: int) -> dict
     finally:
         _LANE.inside = False
         done.wait()
+    if stop:
+        raise stop[0]
     if errors:
         raise errors[min(errors)]
     return {name: results[i] for i, (name, _) in enumerate(parts)}

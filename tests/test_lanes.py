@@ -174,3 +174,26 @@ def test_hc3_on_two_lanes_matches_statsmodels(wage_rows: pd.DataFrame) -> None:
     np.testing.assert_allclose(np.sqrt(np.diag(fit.cov))[order], ref.bse, rtol=1e-9)
     bp = sm.stats.diagnostic.het_breuschpagan(ref.resid, X)  # Koenker's studentized form by default
     assert res.diagnostics["breusch_pagan"]["statistic"] == pytest.approx(bp[0], rel=1e-9)
+
+
+def test_an_interrupt_stops_both_lanes_and_comes_before_errors() -> None:
+    started: list[str] = []
+
+    def early_error() -> None:
+        started.append("error")
+        raise ValueError("first part")
+
+    def interrupt() -> None:
+        started.append("interrupt")
+        time.sleep(0.05)
+        raise KeyboardInterrupt
+
+    def slow(name: str) -> None:
+        started.append(name)
+        time.sleep(0.2)
+
+    parts = [("a", early_error), ("b", interrupt), ("c", lambda: slow("c")), ("d", lambda: slow("d")),
+             ("e", lambda: slow("e")), ("f", lambda: slow("f"))]
+    with pytest.raises(KeyboardInterrupt):
+        lanes.run_parts(parts, lanes.SECOND_LANE_ROWS)
+    assert "f" not in started and "e" not in started  # no new part started after the interrupt
