@@ -12,8 +12,13 @@ out=...)`` of one strided column: the kernels gather all columns with one
 ``np.take(X.T, rows, axis=1, mode="clip", out=...)`` into a C-ordered k × m array whose transpose is
 the Fortran-ordered block they need (the rows are valid, so "clip" changes nothing).
 
-Row-wise work on one n × k array (Q = XR⁻¹, residuals, leverages, cross-products, HC meats) is split
-into two halves of rows by :func:`map_rows`; work started inside a lane runs in that lane.
+Very short calls still pay one GIL hand-over each between the lanes, so the kernels keep their calls
+few and long (blocks of thousands of rows, a row of products per call).
+
+Row-wise work on one n × k array (cross-products, Qᵀy, residuals, leverages, HC meats) is split into
+two halves of rows by :func:`map_rows`; work started inside a lane runs in that lane. A new n × k
+array (Q = XR⁻¹) is written by one thread: two threads writing the fresh pages of one new array were
+several times slower than one on a virtual machine (page faults contend).
 
 BLAS thread limits (:mod:`robustmod.blas_threads`) are process-wide: the caller sets the limit around
 the whole call, so a limit the work enters and leaves again only repeats it and the two

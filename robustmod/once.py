@@ -20,7 +20,7 @@ class OncePer(Generic[V]):
 
     def __init__(self) -> None:
         self._values: weakref.WeakKeyDictionary[Any, dict[Hashable, V]] = weakref.WeakKeyDictionary()
-        self._locks: weakref.WeakKeyDictionary[Any, threading.Lock] = weakref.WeakKeyDictionary()
+        self._locks: weakref.WeakKeyDictionary[Any, threading.RLock] = weakref.WeakKeyDictionary()
         self._guard = threading.Lock()
 
     def get(self, owner: Any, compute: Callable[[], V], part: Hashable = None) -> V:
@@ -29,7 +29,7 @@ class OncePer(Generic[V]):
         if values is not None and part in values:
             return values[part]
         with self._guard:
-            lock = self._locks.setdefault(owner, threading.Lock())
+            lock = self._locks.setdefault(owner, threading.RLock())  # re-entrant: a value may ask for another
             values = self._values.setdefault(owner, {})
         with lock:  # a second thread asking for the same owner waits here, then finds the value
             if part not in values:
