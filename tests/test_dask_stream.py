@@ -21,6 +21,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from results_diff import contract as _contract
 from results_diff import differences
 
 from robustmod import compare, source, stream
@@ -96,11 +97,6 @@ def _write(df: pd.DataFrame, tmp: Path, layout: str) -> Path:
 def _differences(a: Any, b: Any) -> list[str]:
     return differences(a, b, SKIP)
 
-
-def _contract(res: Any) -> dict[str, Any]:
-    d = res.to_dict()
-    d.pop("tables")  # rendered from the same numbers
-    return d
 
 
 def test_merges_equal_one_pass() -> None:

@@ -14,6 +14,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from results_diff import contract as _contract
 from results_diff import differences
 
 from robustmod import compare, stream
@@ -55,11 +56,6 @@ def _write(df: pd.DataFrame, tmp: Path, layout: str) -> Path:
 def _differences(a: Any, b: Any) -> list[str]:
     return differences(a, b, SKIP)
 
-
-def _contract(res: Any) -> dict[str, Any]:
-    d = res.to_dict()
-    d.pop("tables")  # rendered from the same numbers (checked below through the terminal text)
-    return d
 
 
 @pytest.fixture
