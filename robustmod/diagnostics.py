@@ -42,6 +42,9 @@ from .tables import Column, NotApplicable, Table, format_number, make_table
 GQ_DROP = DROP_SHARE
 #: Number of quantile bins of a continuous moderator for the residual-spread table.
 SPREAD_BINS = 3
+#: Rows whose column means shift the levels of the White auxiliary regression (any shift near the
+#: means keeps its cross-products free of cancellation; the test does not change with it).
+SHIFT_ROWS = 1024
 #: HC3/classical SE ratio beyond which (either way) the gap is called large. Our rule of
 #: thumb: King & Roberts (2015) give no threshold, only the advice to look.
 SE_GAP_LARGE = 1.5
@@ -79,10 +82,13 @@ def lm_tests(design: Design, resid: np.ndarray, *, budget: int = DEFAULT_BUDGET)
     X = design.X
     k = X.shape[1]
     passes = _residual_passes(X, np.asarray(resid, dtype=float), 2 + k + k * (k + 1) // 2, budget)
-    aux = AuxiliaryRegression(white=True, constant_column=_constant_column(design))
+    # The levels shifted by the means of the first rows: the products of shifted levels have
+    # moderate means, so their cross-products need no centring pass per block (see AuxiliaryRegression).
+    aux = AuxiliaryRegression(white=True, constant_column=_constant_column(design),
+                              level_shift=X[:SHIFT_ROWS].mean(axis=0))
     for c, e in passes():
         aux.add(c, e)
-    if aux.cross is None:  # no rows: as the separate tests answer
+    if aux.rows == 0:  # no rows: as the separate tests answer
         return breusch_pagan(design, resid), white(design, resid)
     bp = {**aux.levels_result(passes), "form": "Koenker (studentized), n·R² of squared residuals on the regressors"}
     wh = {**aux.result(passes), "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}

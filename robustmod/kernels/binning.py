@@ -265,9 +265,19 @@ def _find_layout(chunk: Chunk, d: np.ndarray, w: np.ndarray) -> _Layout:
     return _Layout(k, found)
 
 
-def _check_layout(lay: _Layout, chunk: Chunk, d: np.ndarray, w: np.ndarray) -> None:
+def _check_layout(lay: _Layout, CT: np.ndarray, ds: np.ndarray, ws: np.ndarray) -> None:
+    """Raise _LayoutChanged unless the gathered block (C transposed, rows of its columns) holds each
+    base column where the layout says; checked on the gathered block, whose columns are contiguous
+    and in cache (a column of the C-ordered X is strided)."""
     for base, j in lay.in_x.items():
-        if not np.array_equal(chunk.X[:, j], _base_values(d, w, base)):
+        row = CT[j]
+        if base == "one":
+            same = bool((row == 1.0).all())
+        elif base == "dw":
+            same = np.array_equal(row, ds * ws)
+        else:
+            same = np.array_equal(row, ds if base == "d" else ws)
+        if not same:
             raise _LayoutChanged
 
 
@@ -279,8 +289,6 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
     lookup[s.present] = np.arange(J)
     w_all = np.asarray(c.columns[moderator], dtype=float)
     d_all = np.asarray(c.columns[focal], dtype=float)
-    if check:
-        _check_layout(lay, c, d_all, w_all)
     for a in range(0, c.size, BLOCK_ROWS):
         b = min(c.size, a + BLOCK_ROWS)
         w, d = w_all[a:b], d_all[a:b]
@@ -292,6 +300,8 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
         np.take(c.X[a:b].T, order, axis=1, mode="clip", out=CT[:k])
         np.take(c.y[a:b], order, mode="clip", out=CT[lay.width])
         ws, ds = w[order], d[order]
+        if check:
+            _check_layout(lay, CT, ds, ws)
         for base in lay.extras:
             col = C[:, lay.col(base)]
             if base == "one":

@@ -24,6 +24,7 @@ and the explained sum of squares is ‖Qᵀ(u − c)‖² − n(ū − c)².
 from __future__ import annotations
 
 import copy
+import functools
 from collections.abc import Callable, Iterable
 from typing import Any
 
@@ -81,18 +82,31 @@ def _product_runs(iu: np.ndarray, ju: np.ndarray) -> list[tuple[int, int, int]]:
     return runs
 
 
-def auxiliary_block(X: np.ndarray, u: np.ndarray, white: bool, constant_column: int | None = None) -> np.ndarray:
-    """[X, (XᵢXⱼ for i ≤ j if white), u] as one Fortran-ordered array (without the products of
-    ``constant_column``, see :func:`product_pairs`)."""
+@functools.lru_cache(maxsize=64)
+def _runs(k: int, white: bool, constant_column: int | None) -> tuple[int, tuple[tuple[int, int, int], ...]]:
+    """(number of products, runs of :func:`_product_runs`) of White's products of k columns."""
+    if not white:
+        return 0, ()
+    iu, ju = product_pairs(k, constant_column)
+    return int(iu.size), tuple(_product_runs(iu, ju))
+
+
+def auxiliary_block(X: np.ndarray, u: np.ndarray, white: bool, constant_column: int | None = None,
+                    shift: np.ndarray | None = None) -> np.ndarray:
+    """[X − shift, (products XᵢXⱼ, i ≤ j, of those columns if white), u] as one Fortran-ordered array
+    (without the products of ``constant_column``, see :func:`product_pairs`; ``shift`` defaults to 0)."""
     k = X.shape[1]
-    iu, ju = product_pairs(k, constant_column) if white else (np.zeros(0, dtype=int), np.zeros(0, dtype=int))
+    n_products, runs = _runs(k, white, constant_column)
     # Filled through its C-ordered transpose, one row of products XᵢXⱼ, Xᵢ₊₁… per call: the same
     # products as column by column, in a fifth of the numpy calls (each call hands the GIL over
     # once, which is what two lanes pay for; see robustmod.lanes).
-    outT = np.empty((k + iu.size + 1, X.shape[0]))
-    np.copyto(outT[:k], X.T)
+    outT = np.empty((k + n_products + 1, X.shape[0]))
+    if shift is None:
+        np.copyto(outT[:k], X.T)
+    else:
+        np.subtract(X.T, shift[:, None], out=outT[:k])
     c = k
-    for i, first, count in _product_runs(iu, ju):
+    for i, first, count in runs:
         np.multiply(outT[i], outT[first:first + count], out=outT[c:c + count])
         c += count
     outT[-1] = u
@@ -113,7 +127,8 @@ class AuxiliaryRegression:
     ill-conditioned.
     """
 
-    def __init__(self, white: bool = False, method: str = "cholesky", *, constant_column: int | None = None) -> None:
+    def __init__(self, white: bool = False, method: str = "cholesky", *, constant_column: int | None = None,
+                 level_shift: np.ndarray | None = None) -> None:
         if method not in METHODS:
             raise ValueError(f"method must be one of {METHODS}; got {method!r}")
         self.white, self.method = white, method
@@ -123,13 +138,32 @@ class AuxiliaryRegression:
         self.cross: CrossProducts | None = None
         self.shift: float | None = None
         self.u = RunningMoments(1)
+        # Shifted route: with a constant column, raw cross-products of [X − s, products of X − s, u]
+        # are summed (the constant column gives the count and the sums), centred once at the end.
+        self.level_shift: np.ndarray | None = None
+        self._raw: np.ndarray | None = None
+        if level_shift is not None and method == "cholesky" and constant_column is not None:
+            self.level_shift = np.array(level_shift, dtype=float)
+            self.level_shift[constant_column] = 0.0  # the constant column stays 1
+
+    @property
+    def rows(self) -> int:
+        """Rows accumulated so far."""
+        return int(self.u.n)
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None:
         u = resid * resid
         if u.size == 0:
             return
         self.k = chunk.X.shape[1]
-        if self.method == "cholesky":
+        if self.level_shift is not None:
+            with one_blas_thread():
+                for a in range(0, u.size, CACHE_ROWS):
+                    block = auxiliary_block(chunk.X[a:a + CACHE_ROWS], u[a:a + CACHE_ROWS], self.white,
+                                            self.constant_column, self.level_shift)
+                    gram = np.dot(block.T, block)  # see robustmod.lanes on np.dot
+                    self._raw = gram if self._raw is None else self._raw + gram
+        elif self.method == "cholesky":
             with one_blas_thread():
                 for a in range(0, u.size, CACHE_ROWS):
                     block = auxiliary_block(chunk.X[a:a + CACHE_ROWS], u[a:a + CACHE_ROWS], self.white,
@@ -145,12 +179,34 @@ class AuxiliaryRegression:
             self.tsqr.add(block)
         self.u.add(u)
 
+    def _settle(self) -> None:
+        """Centre the shifted route's raw cross-products S and merge them into ``cross``: with the
+        constant column c, n = S_cc and the sums are S_c·, so C = S − n·m mᵀ with m = S_c· / n (the
+        levels' means given back their shift; C does not change with the shift)."""
+        if self._raw is None or self.constant_column is None or self.level_shift is None:
+            return
+        S, c, k = self._raw, self.constant_column, self.level_shift.size
+        n = float(S[c, c])
+        mean = S[c] / n
+        settled = CrossProducts(S.shape[0])
+        settled.n = round(n)
+        settled.C = S - n * np.outer(mean, mean)
+        settled.C[c, :] = 0.0  # the constant column: exactly no spread
+        settled.C[:, c] = 0.0
+        mean = mean.copy()
+        mean[:k] += self.level_shift
+        settled.mean = mean
+        self.cross = settled if self.cross is None else self.cross.merge(settled)
+        self._raw = None
+
     def merge(self, other: AuxiliaryRegression) -> AuxiliaryRegression:
         """Self updated with what ``other`` gathered from later rows; returns self. The TSQR route's
         shifts differ between copies: [1 Z u − c₂] becomes [1 Z u − c₁] by adding (c₂ − c₁) times the
         constant column to the last one, i.e. R's first column to R's last (R stays triangular)."""
         if other.u.n == 0:
             return self
+        self._settle()
+        other._settle()
         self.k = other.k if self.k is None else self.k
         if other.cross is not None:
             self.cross = copy.deepcopy(other.cross) if self.cross is None else self.cross.merge(other.cross)
@@ -171,6 +227,7 @@ class AuxiliaryRegression:
         without it an ill-conditioned Gram matrix is solved anyway and ``solved_by`` says so."""
         if self.method == "tsqr":
             return self._tsqr_result()
+        self._settle()
         if self.cross is None:
             return {"statistic": None, "df": 0, "p": None, "solved_by": self.method}
         out = self._gram_result()
@@ -187,6 +244,7 @@ class AuxiliaryRegression:
         """Breusch–Pagan (êᵢ² on the levels X only) from a White accumulation: the levels' and ê²'s
         block of the same centred cross-products, so one pass gives both tests; a TSQR pass over
         ``redo`` when that block is ill-conditioned (as :meth:`result`)."""
+        self._settle()
         if not self.white or self.cross is None or self.k is None:
             raise ValueError("levels_result needs a White accumulation (white=True, Cholesky route) with rows")
         cols = [*range(self.k), self.cross.C.shape[0] - 1]

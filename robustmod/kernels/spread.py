@@ -20,29 +20,43 @@ from .order import bin_numbers, quantiles
 class ResidualSpread:
     """A residual consumer: SD of the residuals in each bin of ``moderator`` cut at ``cuts``."""
 
-    def __init__(self, moderator: str, cuts: np.ndarray) -> None:
+    def __init__(self, moderator: str, cuts: np.ndarray, sorted_values: np.ndarray | None = None) -> None:
         self.moderator, self.cuts = moderator, np.asarray(cuts, dtype=float)
         nb = self.cuts.size + 1
         self.moments = [RunningMoments(1) for _ in range(nb)]
         self.low, self.high = np.full(nb, np.inf), np.full(nb, -np.inf)
+        self.known_ranges = sorted_values is not None and sorted_values.size > 0
+        if sorted_values is not None and sorted_values.size:  # bin j holds cuts[j − 1] < w ≤ cuts[j]: a run of them
+            ends = np.concatenate([np.searchsorted(sorted_values, self.cuts, side="right"), [sorted_values.size]])
+            starts = np.concatenate([[0], ends[:-1]])
+            full = ends > starts
+            self.low[full], self.high[full] = sorted_values[starts[full]], sorted_values[ends[full] - 1]
 
     @classmethod
     def quantile_bins(cls, chunks: ChunkSource, moderator: str, bins: int = 3, *,
                       sorted_values: np.ndarray | None = None) -> ResidualSpread:
         """Bins at the 1/bins … (bins − 1)/bins quantiles of the streamed moderator (read off
-        ``sorted_values``, the whole column in ascending order, when at hand)."""
+        ``sorted_values``, the whole column in ascending order, when at hand; the bins' ranges then too)."""
         cuts = quantiles(ChunkColumn(chunks, moderator), list(np.arange(1, bins) / bins), sorted_values=sorted_values)
-        return cls(moderator, cuts)
+        return cls(moderator, cuts, sorted_values)
 
     def add(self, chunk: Chunk, resid: np.ndarray) -> None:
         w = np.asarray(chunk.columns[self.moderator], dtype=float)
+        nb = self.cuts.size + 1
         idx = bin_numbers(self.cuts, w)
-        for j in np.flatnonzero(np.bincount(idx, minlength=self.cuts.size + 1)):  # bins, not rows
-            rows = idx == j
-            wj = w[rows]
-            self.low[j] = min(self.low[j], float(wj.min()))
-            self.high[j] = max(self.high[j], float(wj.max()))
-            self.moments[j].add(resid[rows])
+        # Each bin's count, mean and centred sum of squares in this chunk, from weighted counts
+        # (a few passes over the rows, whatever the number of bins), merged into the running moments.
+        counts = np.bincount(idx, minlength=nb)
+        means = np.bincount(idx, weights=resid, minlength=nb) / np.maximum(counts, 1)
+        dev = resid - means[idx]
+        m2 = np.bincount(idx, weights=dev * dev, minlength=nb)
+        for j in np.flatnonzero(counts):  # bins, not rows
+            part = RunningMoments(1)
+            part.n, part.mean, part.m2 = int(counts[j]), means[j:j + 1].copy(), m2[j:j + 1].copy()
+            self.moments[j].merge(part)
+        if not self.known_ranges:
+            np.minimum.at(self.low, idx, w)
+            np.maximum.at(self.high, idx, w)
 
     def merge(self, other: ResidualSpread) -> ResidualSpread:
         """Self updated with the bins ``other`` gathered from later rows (same cuts); returns self."""
