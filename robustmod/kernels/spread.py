@@ -47,9 +47,9 @@ class ResidualSpread:
         # Each bin's count, mean and centred sum of squares in this chunk, from weighted counts
         # (a few passes over the rows, whatever the number of bins), merged into the running moments.
         counts = np.bincount(idx, minlength=nb)
-        means = np.bincount(idx, weights=resid, minlength=nb) / np.maximum(counts, 1)
+        means: np.ndarray = np.bincount(idx, weights=resid, minlength=nb) / np.maximum(counts, 1)
         dev = resid - means[idx]
-        m2 = np.bincount(idx, weights=dev * dev, minlength=nb)
+        m2 = np.bincount(idx, weights=dev * dev, minlength=nb).astype(float)
         for j in np.flatnonzero(counts):  # bins, not rows
             part = RunningMoments(1)
             part.n, part.mean, part.m2 = int(counts[j]), means[j:j + 1].copy(), m2[j:j + 1].copy()
