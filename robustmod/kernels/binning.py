@@ -140,12 +140,22 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
         here = np.bincount(idx, minlength=nb)
         acc.counts += here
         acc.all_d.add(d)
+        # Each bin's focal moments in this chunk from weighted counts (passes over the rows, not
+        # over the rows of each bin), merged into the bin's running moments.
+        means: np.ndarray = np.bincount(idx, weights=d, minlength=nb) / np.maximum(here, 1)
+        dev = d - means[idx]
+        m2 = np.bincount(idx, weights=dev * dev, minlength=nb).astype(float)
+        lo, hi = np.full(nb, np.inf), np.full(nb, -np.inf)
+        np.minimum.at(lo, idx, d)
+        np.maximum.at(hi, idx, d)
+        if ranges:
+            np.minimum.at(acc.lows, idx, w)
+            np.maximum.at(acc.highs, idx, w)
         for j in np.flatnonzero(here):  # bins, not rows
-            rows = idx == j
-            if ranges:
-                wj = w[rows]
-                acc.lows[j], acc.highs[j] = min(acc.lows[j], float(wj.min())), max(acc.highs[j], float(wj.max()))
-            acc.per_bin[j].add(d[rows])
+            part = RunningMoments(1)
+            part.n, part.mean, part.m2 = int(here[j]), means[j:j + 1].copy(), m2[j:j + 1]
+            part.minimum, part.maximum = lo[j:j + 1], hi[j:j + 1]
+            acc.per_bin[j].merge(part)
 
     got = fold(chunks, lambda: _Bins(nb), step)
     counts, lows, highs, per_bin, all_d = got.counts, got.lows, got.highs, got.per_bin, got.all_d
