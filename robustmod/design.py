@@ -19,16 +19,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from formulaic import model_matrix
-from scipy import linalg
-from scipy.linalg import lapack
 
-from .blas_threads import one_blas_thread
-from .cholesky import scaled_cholesky
 from .clusters import attach_clusters, moderator_levels
 from .data import PreparedData, prepare_data
 from .errors import InputError, close_matches
-from .lanes import map_rows, run_parts
+from .lanes import run_parts
 from .spec import ModelSpec, parse_probe_rule
+from .thin_qr import ThinQR, factor
 
 #: Functions the formula may call, as formulaic evaluates them (C, I, center, scale are formulaic's own).
 FORMULA_CONTEXT: dict[str, Any] = {
@@ -86,7 +83,7 @@ class Design:
     focal_linear: bool
     focal_mean: float
     warnings: tuple[str, ...]
-    qr: tuple[np.ndarray, np.ndarray] = field(repr=False)  # thin QR of X, shared by the back-ends
+    qr: ThinQR = field(repr=False)  # thin QR of X, shared by the back-ends (a pair (Q, R) is wrapped)
     _model_spec: Any = field(repr=False)
     _frame: pd.DataFrame = field(repr=False)  # the model-scale frame the matrices came from
     clusters: np.ndarray | None = field(default=None, repr=False)  # codes 0 … G − 1 per used row, or None
@@ -94,6 +91,11 @@ class Design:
     #: Each model-matrix column as the product of the data columns named (the intercept an empty
     #: product), when the formula has only such terms (:func:`_direct_model_matrices`); else None.
     _products: tuple[tuple[str, ...], ...] | None = field(default=None, repr=False)
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.qr, ThinQR):  # a pair (Q, R) of arrays
+            Q, R = self.qr
+            object.__setattr__(self, "qr", ThinQR(R, Q=Q))
 
     # ---- basic facts -------------------------------------------------------------
     @property
@@ -312,7 +314,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     Notes
     -----
     X comes from the formula (formulaic) after the allow-list check of :mod:`robustmod.spec`;
-    one thin QR of X is computed and shared (:func:`thin_qr`). A column j with |R_jj| / ‖X_j‖ < 1e-11 is
+    one thin QR of X is computed and shared (:func:`robustmod.thin_qr.factor`). A column j with |R_jj| / ‖X_j‖ < 1e-11 is
     aliased and refused. Probe values default to mean ± 1 SD (Aiken & West 1991).
     """
     prepared, clustering = attach_clusters(prepare_data(data, spec), spec)
@@ -339,13 +341,13 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     y, X, term_names, model_spec, products = _model_matrices(spec, frame, prepared.frame.index, check=False)
     n, k = X.shape
 
-    def factor() -> tuple[np.ndarray, np.ndarray]:
+    def factored() -> ThinQR:
         if n <= k + 1:
             raise InputError(
                 f"The model has {k} coefficients but only {n} complete rows; it needs at least {k + 2} rows "
                 "(fewer terms or more data)."
             )
-        return thin_qr(X)
+        return factor(X, y)
 
     def frame_facts() -> tuple[dict[str, ModeratorInfo], dict[str, Any], float]:
         return (_moderator_info(prepared, spec), _reference(frame, spec, prepared),
@@ -354,7 +356,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
     # The QR of X beside the checks of its cells and the facts of the frame (all the frame's work
     # in one part, so pandas is only ever used by one thread); errors come in this order, as before.
     got = run_parts([("finite", lambda: _check_finite_cells(spec, y, X, term_names, prepared.frame.index)),
-                     ("qr", factor), ("frame", frame_facts)], n)
+                     ("qr", factored), ("frame", frame_facts)], n)
     qr = got["qr"]
     moderators, reference, focal_mean = got["frame"]
     _check_rank(X, qr[1], term_names)
@@ -562,54 +564,6 @@ def _check_finite_cells(spec: ModelSpec, y: np.ndarray, X: np.ndarray, term_name
             f"The term {names[j]!r} is not finite in data row {int(rows[i]) + 1} "
             f"(e.g. log of a value ≤ 0); fix or drop that row, or change the transform."
         )
-
-
-#: Rows from which :func:`thin_qr` tries Cholesky QR (below it Householder costs next to nothing).
-CHOLESKY_QR_ROWS = 50_000
-#: Largest condition number of the column-scaled XᵀX for Cholesky QR: Q = XR⁻¹ then departs from
-#: orthonormal columns by about κ·ε ≈ 1e-11, and every quantity read off Q, R by as little.
-CHOLESKY_QR_CONDITION = 1e5
-
-
-def _cholesky_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
-    """Q = XR⁻¹ and R from Cholesky of the column-scaled XᵀX = RᵀR, or None when that matrix is
-    singular or its condition number exceeds CHOLESKY_QR_CONDITION."""
-    n = X.shape[0]
-    gram = sum(map_rows(lambda s: np.dot(X[s].T, X[s]), n), np.zeros((X.shape[1], X.shape[1])))
-    R, _ = scaled_cholesky(gram, CHOLESKY_QR_CONDITION)
-    if R is None:
-        return None
-    Rinv = linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)  # k × k, a triangular solve
-    # One thread: Q is a new n × k array, and two threads writing its fresh pages at once were
-    # several times slower than one on a virtual machine (page faults contend).
-    return np.dot(X, Rinv), R
-
-
-def thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Thin QR of X (R with RᵀR = XᵀX, Q = XR⁻¹ with orthonormal columns).
-
-    From :data:`CHOLESKY_QR_ROWS` rows on, Cholesky QR when the column-scaled XᵀX is well
-    conditioned (:func:`_cholesky_qr`: one cross-product and one n × k product, about half the
-    time of Householder at n = 10⁶, k = 7); otherwise Householder: LAPACK geqrf then orgqr, in
-    place on one Fortran-ordered copy of X (scipy.linalg.qr makes further copies of the n × k
-    arrays, which cost as much as the QR)."""
-    with one_blas_thread():  # see robustmod.blas_threads
-        return _thin_qr(X)
-
-
-def _thin_qr(X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    n, k = X.shape
-    if n >= CHOLESKY_QR_ROWS and (fast := _cholesky_qr(np.asarray(X, dtype=float))) is not None:
-        return fast
-    work = np.array(X, order="F", copy=True, dtype=float)
-    qr, tau, _, info = lapack.dgeqrf(work, overwrite_a=1)
-    if info != 0:  # pragma: no cover - LAPACK argument errors only
-        return linalg.qr(X, mode="economic", check_finite=False)
-    R = np.triu(qr[:k, :k])
-    Q, _, info = lapack.dorgqr(qr, tau, overwrite_a=1)
-    if info != 0:  # pragma: no cover
-        return linalg.qr(X, mode="economic", check_finite=False)
-    return Q, R
 
 
 def _check_rank(X: np.ndarray, R: np.ndarray, names: tuple[str, ...]) -> None:

@@ -43,7 +43,6 @@ from .design import (
     _focal_enters_linearly,
     _interaction_columns,
     _probe_range_note,
-    thin_qr,
 )
 from .errors import InputError
 from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, Partitioned, Plan, fold
@@ -52,6 +51,7 @@ from .kernels.order import quantiles
 from .memory import parse_memory
 from .source import ModelChunks, Partition, Source
 from .spec import ModelSpec, parse_probe_rule
+from .thin_qr import ThinQR, factor
 
 #: File endings (besides a folder of Parquet files) that are read in chunks.
 STREAM_SUFFIXES = (".parquet", ".pq", ".csv", ".txt")
@@ -371,7 +371,7 @@ def streamed_design(chunks: ModelChunks, spec: ModelSpec, chunk_rows: int) -> St
         interaction_columns=_interaction_columns(chunks._rhs, spec, term_names), moderators=moderators,
         probe_points=probe_points, reference=reference, centering=dict(chunks.centering), data=rows,
         focal_linear=True, focal_mean=float(focal.mean or 0.0), warnings=tuple(warnings),
-        qr=(np.zeros((0, k)), np.eye(k)), _model_spec=chunks._rhs, _frame=pd.DataFrame(one_row),
+        qr=ThinQR(np.eye(k), Q=np.zeros((0, k))), _model_spec=chunks._rhs, _frame=pd.DataFrame(one_row),
         n_rows=n, focal_sd=focal_sd)
     if _focal_enters_linearly(design):
         return design
@@ -471,7 +471,7 @@ class StreamData:
         return Design(spec=d.spec, y=y, X=X, term_names=d.term_names, interaction_columns=d.interaction_columns,
                       moderators=d.moderators, probe_points=d.probe_points, reference=d.reference,
                       centering=d.centering, data=data, focal_linear=d.focal_linear, focal_mean=d.focal_mean,
-                      warnings=(), qr=thin_qr(X), _model_spec=d._model_spec, _frame=d._frame)
+                      warnings=(), qr=factor(X), _model_spec=d._model_spec, _frame=d._frame)
 
 
 # ---- compare() on a file read in chunks ------------------------------------------------------------

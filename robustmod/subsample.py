@@ -19,8 +19,9 @@ import numpy as np
 
 from .backends.base import Backend, Fit, Unavailable, one_row_table
 from .defaults import BAYES_MAX_ROWS
-from .design import Design, thin_qr
+from .design import Design
 from .errors import InputError
+from .thin_qr import factor
 
 if TYPE_CHECKING:  # pragma: no cover
     from .stream import StreamData
@@ -59,7 +60,7 @@ def subsample_design(design: Design, positions: np.ndarray) -> Design:
     if design.clusters is not None:
         clusters = np.unique(design.clusters[positions], return_inverse=True)[1].astype(design.clusters.dtype)
     data = dataclasses.replace(design.data, frame=design.data.frame.iloc[positions])
-    return dataclasses.replace(design, X=X, y=y, qr=thin_qr(X), data=data, clusters=clusters)
+    return dataclasses.replace(design, X=X, y=y, qr=factor(X), data=data, clusters=clusters)
 
 
 def _rank_ok(design: Design) -> str | None:

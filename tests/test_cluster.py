@@ -287,7 +287,7 @@ def test_weighted_cr0_matches_r():
     # (stored reference): cluster_fit on the QR of W^(1/2)X and W^(1/2)y gives the weighted sandwich.
     # (The weighted CR2 is weighted_cr2_fit's, checked in the next test.)
     from robustmod.backends.cluster import cluster_fit
-    from robustmod.design import thin_qr
+    from robustmod.thin_qr import thin_qr
 
     design = build_design(_panel("all"), ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
     root = np.sqrt(1.0 / (1.0 + design.data.frame["exper"].to_numpy(dtype=float)))
@@ -304,7 +304,7 @@ def test_weighted_cr2_matches_r():
     # test = "Satterthwaite") on lm(..., weights = w), w = 1 / (1 + exper), whole panel (stored reference).
     # The SE agree to round-off; our Satterthwaite df (working covariance W⁻¹) are within 3 % of R's.
     from robustmod.backends.cluster import weighted_cr2_fit
-    from robustmod.design import thin_qr
+    from robustmod.thin_qr import thin_qr
 
     design = build_design(_panel("all"), ModelSpec(FORMULA, "union", ("educ",), cluster="nr"))
     w = 1.0 / (1.0 + design.data.frame["exper"].to_numpy(dtype=float))

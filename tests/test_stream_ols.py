@@ -7,10 +7,10 @@ import statsmodels.api as sm
 
 from robustmod.backends.base import Unavailable, WaldFit
 from robustmod.backends.ols import ols_fit
-from robustmod.design import thin_qr
 from robustmod.errors import InputError
 from robustmod.kernels.chunks import array_chunks, rows_per_chunk
 from robustmod.kernels.ols import factor_pass, streamed_ols
+from robustmod.thin_qr import thin_qr
 
 KINDS = ("ols", "hc0", "hc1", "hc2", "hc3", "hc4", "hc4m", "hc5")
 NAMES = ("Intercept", "x", "w", "x:w")

@@ -13,9 +13,9 @@ from robustmod.backends.wild import (
     _Source,
     residual_factor,
 )
-from robustmod.design import thin_qr
 from robustmod.kernels.chunks import array_chunks
 from robustmod.kernels.wild import WEIGHT_BLOCK, stream_weights, streamed_wild
+from robustmod.thin_qr import thin_qr
 
 NAMES = ("Intercept", "x", "w", "x:w")
 B, BATCH, SEED = 199, 64, 11

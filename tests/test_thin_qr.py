@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from robustmod.design import CHOLESKY_QR_ROWS, _cholesky_qr, thin_qr
+from robustmod.thin_qr import CHOLESKY_QR_ROWS, _cholesky_qr, thin_qr
 
 
 def _x(n: int, scale: float = 1.0) -> np.ndarray:

@@ -15,8 +15,9 @@ import statsmodels.api as sm
 
 from robustmod import effects
 from robustmod.backends.ols import OLSBackend
-from robustmod.design import build_design, thin_qr
+from robustmod.design import build_design
 from robustmod.spec import ModelSpec
+from robustmod.thin_qr import factor
 
 
 def best_of(fn, repeats: int = 5) -> float:
@@ -38,7 +39,7 @@ def main(n: int = 1_000_000) -> dict[str, float]:
     assert X.shape == (n, 7)
 
     def ours() -> None:
-        d = dataclasses.replace(design, qr=thin_qr(design.X))  # time the QR too
+        d = dataclasses.replace(design, qr=factor(design.X))  # time the QR too
         fit = OLSBackend("hc3").fit(d)
         effects.interaction(fit, d, 0.05)
         effects.conditional_effects(fit, d, 0.05)

@@ -23,8 +23,8 @@ import numpy as np
 from scipy import linalg
 
 from ..defaults import LEVERAGE_ONE_TOL
-from ..lanes import map_rows
 from ..once import OncePer
+from ..thin_qr import FitRows, ThinQR, row_norms, weighted_gram
 
 if TYPE_CHECKING:
     from ..design import Design
@@ -74,26 +74,32 @@ HC_WEIGHTS: dict[str, Callable[[np.ndarray, int, int], np.ndarray]] = {
 NEEDS_LEVERAGE_BELOW_ONE = frozenset({"hc2", "hc3", "hc4", "hc4m", "hc5"})
 
 
-def leverages(Q: np.ndarray) -> np.ndarray:
-    """Diagonal of the hat matrix from the thin Q factor, hᵢ = Σⱼ Q²ᵢⱼ (no n×n matrix)."""
-    h = np.empty(Q.shape[0])
-    map_rows(lambda s: np.einsum("ij,ij->i", Q[s], Q[s], out=h[s]), Q.shape[0])
-    return h
+def leverages(Q: np.ndarray | ThinQR) -> np.ndarray:
+    """Diagonal of the hat matrix from the thin Q factor, hᵢ = Σⱼ Q²ᵢⱼ (no n×n matrix; from X and
+    R a block at a time when Q is not stored, see :mod:`robustmod.thin_qr`)."""
+    return Q.leverages() if isinstance(Q, ThinQR) else row_norms(Q)
 
 
-#: Leverages already computed on a design (by identity, dropped with it): the HC fits, the wild
-#: bootstrap, the calibration and the leverage-one note all read the same n-vector.
-_DESIGN_LEVERAGES: OncePer[np.ndarray] = OncePer()
+#: The design's :class:`~robustmod.thin_qr.FitRows` (by identity, dropped with it): the HC fits,
+#: the diagnostics, the wild bootstrap, the calibration and the leverage-one note read them.
+_DESIGN_ROWS: OncePer[FitRows] = OncePer()
+
+
+def design_rows(design: Design) -> FitRows:
+    """Qᵀy, ê = y − QQᵀy, h and the HC3 meat of the design's OLS fit, from one pass over its rows
+    (:meth:`robustmod.thin_qr.ThinQR.fit_rows`), computed once per design (read-only arrays)."""
+    def compute() -> FitRows:
+        got = design.qr.fit_rows(design.y)
+        for a in got:
+            a.setflags(write=False)
+        return got
+
+    return _DESIGN_ROWS.get(design, compute)
 
 
 def design_leverages(design: Design) -> np.ndarray:
-    """:func:`leverages` of the design's own thin Q, computed once per design (read-only)."""
-    def compute() -> np.ndarray:
-        h = leverages(design.qr[0])
-        h.setflags(write=False)
-        return h
-
-    return _DESIGN_LEVERAGES.get(design, compute)
+    """:func:`leverages` of the design's own thin Q (from :func:`design_rows`; read-only)."""
+    return design_rows(design)[2]
 
 
 def leverage_one_mask(h: np.ndarray) -> np.ndarray:
@@ -117,23 +123,12 @@ def r_inverse(R: np.ndarray) -> np.ndarray:
     return linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
 
 
-#: Rows per block of the meat: blocks that fit in cache beat one pass over an n × k temporary
-#: (measured at n = 10⁶, k = 7: 13 ms with blocks of 8,192 rows, 23 ms with 65,536).
-MEAT_BLOCK = 8192
-
-
-def sandwich(Q: np.ndarray, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
+def sandwich(Q: np.ndarray | ThinQR, Rinv: np.ndarray, u2w: np.ndarray) -> np.ndarray:
     """R⁻¹ (Qᵀ diag(u2w) Q) R⁻ᵀ with u2w = ωᵢ êᵢ², the meat summed over blocks of rows."""
-    k = Q.shape[1]
+    return sandwich_of_meat(Q.weighted_gram(u2w) if isinstance(Q, ThinQR) else weighted_gram(Q, u2w), Rinv)
 
-    def half(rows: slice) -> np.ndarray:
-        part = np.zeros((k, k))
-        for start in range(rows.start, rows.stop, MEAT_BLOCK):
-            stop = min(start + MEAT_BLOCK, rows.stop)
-            q = Q[start:stop]
-            part += np.dot(q.T * u2w[start:stop], q)  # see robustmod.lanes on np.dot
-        return part
 
-    meat = sum(map_rows(half, Q.shape[0]), np.zeros((k, k)))
+def sandwich_of_meat(meat: np.ndarray, Rinv: np.ndarray) -> np.ndarray:
+    """R⁻¹ M R⁻ᵀ of the meat M = Qᵀ diag(ωᵢ êᵢ²) Q (symmetrised)."""
     meat = 0.5 * (meat + meat.T)
     return Rinv @ meat @ Rinv.T

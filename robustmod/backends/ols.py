@@ -14,17 +14,19 @@ from scipy import linalg
 
 from ..blas_threads import one_blas_thread
 from ..errors import InputError
-from ..lanes import map_rows
 from ..once import OncePer
+from ..thin_qr import ThinQR
 from .base import FamilyBackend, Fit, Option, Unavailable, WaldFit
 from .hc import (
     NEEDS_LEVERAGE_BELOW_ONE,
     design_leverages,
+    design_rows,
     hc_weights,
     leverage_one_rows,
     leverages,
     r_inverse,
     sandwich,
+    sandwich_of_meat,
 )
 from .kernels import design_row_numbers, leverage_one_reason, wald_test
 
@@ -111,22 +113,13 @@ class OLSBackend(FamilyBackend):
 #: Fits already made on a design (by identity, dropped with it): the back-end, the SE gap and the
 #: binning check all ask for the design's HC3 fit, which then costs one pass over the rows.
 _DESIGN_FITS: OncePer[WaldFit | Unavailable] = OncePer()
-_DESIGN_PIECES: OncePer[tuple[np.ndarray, np.ndarray]] = OncePer()
 
 
 def design_residuals(design: Design) -> tuple[np.ndarray, np.ndarray]:
-    """(Qᵀy, ê = y − QQᵀy) of the design, computed once per design (read-only arrays)."""
-    def compute() -> tuple[np.ndarray, np.ndarray]:
-        Q, _ = design.qr
-        y, n = design.y, Q.shape[0]
-        qty = sum(map_rows(lambda s: np.dot(Q[s].T, y[s]), n), np.zeros(Q.shape[1]))
-        resid = np.empty(n)
-        map_rows(lambda s: np.subtract(y[s], np.dot(Q[s], qty), out=resid[s]), n)
-        qty.setflags(write=False)
-        resid.setflags(write=False)
-        return qty, resid
-
-    return _DESIGN_PIECES.get(design, compute)
+    """(Qᵀy, ê = y − QQᵀy) of the design, computed once per design with its leverages
+    (:func:`.hc.design_rows`; read-only arrays)."""
+    rows = design_rows(design)
+    return rows.qty, rows.resid
 
 
 def _row_numbers(design: Design) -> Any:
@@ -139,11 +132,12 @@ def _row_numbers(design: Design) -> Any:
 def design_fit(design: Design, kind: str) -> WaldFit | Unavailable:
     """:func:`ols_fit` of ``kind`` on the design's own QR, made once per design and kind."""
     def compute() -> WaldFit | Unavailable:
-        Q, R = design.qr
+        f = design.qr
         with one_blas_thread():  # n × k products and k × k solves: see robustmod.blas_threads
-            return ols_fit(kind, Q, R, design.y, design.term_names, row_numbers=_row_numbers(design),
-                           residuals=design_residuals(design),
-                           leverage=None if kind == "ols" else design_leverages(design))
+            rows = design_rows(design)
+            return ols_fit(kind, f, f.R, design.y, design.term_names, row_numbers=_row_numbers(design),
+                           residuals=(rows.qty, rows.resid), leverage=None if kind == "ols" else rows.leverage,
+                           meat=rows.hc3_meat if kind == "hc3" else None)
 
     return _DESIGN_FITS.get(design, compute, kind)
 
@@ -162,22 +156,24 @@ def _centred_sum_of_squares(y: np.ndarray) -> float:
     return total
 
 
-def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
+def ols_fit(kind: str, Q: np.ndarray | ThinQR, R: np.ndarray, y: np.ndarray, term_names: tuple[str, ...],
             *, row_numbers: Any = None, label: str | None = None,
             backend_id: str | None = None, residuals: tuple[np.ndarray, np.ndarray] | None = None,
-            leverage: np.ndarray | None = None) -> WaldFit | Unavailable:
+            leverage: np.ndarray | None = None, meat: np.ndarray | None = None) -> WaldFit | Unavailable:
     """Fit OLS from a thin QR factor; ``kind`` is 'ols' (classical) or an HC id.
 
     ``row_numbers``: 1-based data row numbers of the design rows (for messages; default 1 … n).
     ``residuals``: (Qᵀy, y − QQᵀy) when already at hand (see :func:`design_residuals`).
     ``leverage``: hᵢ of Q when already at hand (see :func:`.hc.design_leverages`).
+    ``meat``: Qᵀ diag(ωᵢ êᵢ²) Q of ``kind`` when already at hand (see :func:`.hc.design_rows`).
     """
     n, k = Q.shape
     backend_id = backend_id or kind
     label = label or LABELS[kind]
     if residuals is None:
-        qty = Q.T @ y
-        resid = y - Q @ qty
+        Qa = Q.Q if isinstance(Q, ThinQR) else Q
+        qty = Qa.T @ y
+        resid = y - Qa @ qty
     else:
         qty, resid = residuals
     beta = linalg.solve_triangular(R, qty, check_finite=False)
@@ -199,10 +195,13 @@ def ols_fit(kind: str, Q: np.ndarray, R: np.ndarray, y: np.ndarray, term_names: 
             return Unavailable(backend_id, label, reason)
         if (ones := int(leverage_one_rows(h).size)):
             warnings.append(f"{ones} row(s) have leverage 1; their residuals are zero and carry no variance information.")
-        u2w = hc_weights(kind, h, n, k)
-        for a in range(0, n, _BLOCK):  # ωᵢ êᵢ² in place, êᵢ² a block at a time: no n-vector at the peak
-            u2w[a:a + _BLOCK] *= np.square(resid[a:a + _BLOCK])
-        cov = sandwich(Q, Rinv, u2w)
+        if meat is not None:
+            cov = sandwich_of_meat(meat, Rinv)
+        else:
+            u2w = hc_weights(kind, h, n, k)
+            for a in range(0, n, _BLOCK):  # ωᵢ êᵢ² in place, êᵢ² a block at a time: no n-vector at the peak
+                u2w[a:a + _BLOCK] *= np.square(resid[a:a + _BLOCK])
+            cov = sandwich(Q, Rinv, u2w)
         se_label = kind.upper()
         extras["max_leverage"] = float(h.max())
     return WaldFit(backend_id, label, term_names, beta, cov, df, warnings=tuple(warnings),

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -275,25 +276,24 @@ def _find_layout(chunk: Chunk, d: np.ndarray, w: np.ndarray) -> _Layout:
     return _Layout(k, found)
 
 
-def _check_layout(lay: _Layout, CT: np.ndarray, ds: np.ndarray, ws: np.ndarray) -> None:
-    """Raise _LayoutChanged unless the gathered block (C transposed, rows of its columns) holds each
-    base column where the layout says; checked on the gathered block, whose columns are contiguous
-    and in cache (a column of the C-ordered X is strided)."""
+def _check_layout(lay: _Layout, C: np.ndarray, ds: np.ndarray, ws: np.ndarray) -> None:
+    """Raise _LayoutChanged unless the gathered block C (rows sorted by bin) holds each base column
+    where the layout says; checked on the gathered block, which is in cache."""
     for base, j in lay.in_x.items():
-        row = CT[j]
+        col = C[:, j]
         if base == "one":
-            same = bool((row == 1.0).all())
+            same = bool((col == 1.0).all())
         elif base == "dw":
-            same = np.array_equal(row, ds * ws)
+            same = np.array_equal(col, ds * ws)
         else:
-            same = np.array_equal(row, ds if base == "d" else ws)
+            same = np.array_equal(col, ds if base == "d" else ws)
         if not same:
             raise _LayoutChanged
 
 
 def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: str, *, check: bool = True) -> Any:
-    """(C, starts, rows) per block of one chunk's rows: the compact block with its rows sorted by bin (bin j
-    in rows starts[j]:starts[j + 1]), Fortran-ordered, and the data positions of its rows."""
+    """(C, y, starts, rows) per block of one chunk's rows, sorted by bin (bin j in rows starts[j]:starts[j + 1]):
+    the compact block C (C-ordered, without y), y, and a function giving the data positions of its rows."""
     J, k = s.present.size, lay.k
     lookup = np.zeros(s.cuts.size + 1, dtype=np.uint8 if J < 256 else np.int64)
     lookup[s.present] = np.arange(J)
@@ -304,14 +304,19 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
         w, d = w_all[a:b], d_all[a:b]
         pos = lookup[bin_numbers(s.cuts, w)]
         order = np.argsort(pos, kind="stable")  # a radix sort of small integers
-        starts = np.concatenate([[0], np.cumsum(np.bincount(pos, minlength=J))])
-        CT = np.empty((lay.width + 1, b - a))
-        C = CT.T  # Fortran-ordered, filled through its transpose: see robustmod.lanes on np.take
-        np.take(c.X[a:b].T, order, axis=1, mode="clip", out=CT[:k])
-        np.take(c.y[a:b], order, mode="clip", out=CT[lay.width])
+        starts = np.zeros(J + 1, dtype=np.int64)
+        np.cumsum(np.bincount(pos, minlength=J), out=starts[1:])
+        # Whole rows gathered into a C-ordered block: three times faster than gathering the columns
+        # (measured at 16,384 rows × 7), and numpy lets go of the GIL while it copies.
+        Xs = np.take(c.X[a:b], order, axis=0, mode="clip")
+        ys = np.take(c.y[a:b], order, mode="clip")
         ws, ds = w[order], d[order]
         if check:
-            _check_layout(lay, CT, ds, ws)
+            _check_layout(lay, Xs, ds, ws)
+        C = Xs
+        if lay.extras:
+            C = np.empty((b - a, lay.width))
+            C[:, :k] = Xs
         for base in lay.extras:
             col = C[:, lay.col(base)]
             if base == "one":
@@ -324,7 +329,12 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
                     np.subtract(ws[r], s.medians[j], out=col[r])
                     if base == "dw":
                         col[r] *= ds[r]
-        yield C, starts, c.rows[a:b][order]
+        yield C, ys, starts, partial(_block_rows, c, a, b, order)
+
+
+def _block_rows(c: Chunk, a: int, b: int, order: np.ndarray) -> np.ndarray:
+    """Data positions of a block's rows in bin order (asked for only when a row has leverage one)."""
+    return np.asarray(c.rows[a:b])[order]
 
 
 def _wide_map(lay: _Layout, s: BinSummary, j: int, cov: Sequence[int]) -> np.ndarray:
@@ -392,21 +402,28 @@ def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, m
     """R of the wide matrix [X, B, y] from the bins' compact factors (pass 1, a TSQR pass if needed)."""
     J, p = s.present.size, lay.width + 1
     def gram_step(acc: _Grams, c: Chunk) -> None:
-        for C, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
+        for C, ys, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
             for j in range(J):
-                Cj = C[starts[j]:starts[j + 1]]
-                acc.grams[j] += np.dot(Cj.T, Cj)  # see robustmod.lanes on np.dot
+                r = slice(starts[j], starts[j + 1])
+                Cj, yj = C[r], ys[r]
+                G = acc.grams[j]
+                G[:-1, :-1] += np.dot(Cj.T, Cj)  # see robustmod.lanes on np.dot
+                G[:-1, -1] += np.dot(Cj.T, yj)
+                G[-1, -1] += float(np.dot(yj, yj))
 
     grams = fold(chunks, lambda: _Grams(J, p), gram_step).grams
+    for G in grams:
+        G[-1, :-1] = G[:-1, -1]
     factors = [_cholesky_factor(G) for G in grams]
     method = "cholesky"
     if any(f is None for f in factors):
         method = "tsqr"
 
         def tsqr_step(acc: _Factors, c: Chunk) -> None:
-            for C, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
+            for C, ys, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
                 for j in range(J):
-                    acc.accs[j].add(C[starts[j]:starts[j + 1]])
+                    r = slice(starts[j], starts[j + 1])
+                    acc.accs[j].add(np.column_stack([C[r], ys[r]]), overwrite=True)
 
         factors = [acc.factor() for acc in fold(chunks, lambda: _Factors(J, p), tsqr_step).accs]
     stacked = np.vstack([f @ _wide_map(lay, s, j, cov) for j, f in enumerate(factors) if f is not None])
@@ -470,23 +487,24 @@ def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
     n, width, J = s.n, lay.width, s.present.size
 
     def step(acc: _ModelSums, c: Chunk) -> None:
-        for C, starts, rows in _chunk_blocks(c, s, lay, focal, moderator, check=False):
-            acc.ymom.add(C[:, width])
+        for C, ys, starts, rows in _chunk_blocks(c, s, lay, focal, moderator, check=False):
+            acc.ymom.add(ys)
             for m, sums in zip(models, acc.models, strict=True):
                 at_one: list[np.ndarray] = []
                 for j in range(J):
                     r = slice(starts[j], starts[j + 1])
-                    Cj, yj = C[r, :width], C[r, width]
+                    Cj, yj = C[r], ys[r]
                     if yj.size == 0:
                         continue
                     e = yj - Cj @ m.g[j]
-                    h = np.einsum("ij,ij->i", Cj @ m.P[j], Cj)
+                    CA = Cj @ m.A[j]
+                    h = np.einsum("ij,ij->i", CA, CA)
                     sums.rss += float(e @ e)
                     sums.hmax = max(sums.hmax, float(h.max()))
                     one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
                     if one.size:
                         sums.n_ones += one.size
-                        at_one.append(rows[r][one])
+                        at_one.append(rows()[r][one])
                     if not sums.n_ones:
                         u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
                         sums.meats[j] += np.dot((Cj * u[:, None]).T, Cj)
