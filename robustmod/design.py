@@ -351,7 +351,7 @@ def build_design(data: pd.DataFrame, spec: ModelSpec) -> Design:
 
     def frame_facts() -> tuple[dict[str, ModeratorInfo], dict[str, Any], float]:
         return (_moderator_info(prepared, spec), _reference(frame, spec, prepared),
-                float(prepared.frame[spec.focal].astype(float).mean()))
+                _column_mean(prepared.frame[spec.focal]))
 
     # The QR of X beside the checks of its cells and the facts of the frame (all the frame's work
     # in one part, so pandas is only ever used by one thread); errors come in this order, as before.
@@ -665,6 +665,11 @@ def _probe_points(spec: ModelSpec, moderators: dict[str, ModeratorInfo], warning
     return tuple(dict(zip(names, combo, strict=False)) for combo in itertools.product(*per))
 
 
+def _column_mean(col: pd.Series) -> float:
+    """Mean of a complete numeric column, read in place (``astype(float)`` would copy it first)."""
+    return float(np.mean(col.to_numpy(dtype=float)))
+
+
 def _reference(frame: pd.DataFrame, spec: ModelSpec, prepared: PreparedData) -> dict[str, Any]:
     """Covariates at their mean (numeric) or first level; moderators likewise (model scale)."""
     ref: dict[str, Any] = {}
@@ -677,6 +682,6 @@ def _reference(frame: pd.DataFrame, spec: ModelSpec, prepared: PreparedData) -> 
         elif pd.api.types.is_bool_dtype(col):
             ref[name] = False
         else:
-            ref[name] = float(col.astype(float).mean())
+            ref[name] = _column_mean(col)
     ref[spec.focal] = 0.0
     return ref

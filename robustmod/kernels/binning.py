@@ -489,27 +489,32 @@ def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
     def step(acc: _ModelSums, c: Chunk) -> None:
         for C, ys, starts, rows in _chunk_blocks(c, s, lay, focal, moderator, check=False):
             acc.ymom.add(ys)
+            e, h = np.empty(ys.size), np.empty(ys.size)
             for m, sums in zip(models, acc.models, strict=True):
-                at_one: list[np.ndarray] = []
+                # Residuals and leverages bin by bin (each bin its own fitted-value and leverage
+                # forms), then the rest for the whole block at once (fewer, longer numpy calls).
                 for j in range(J):
                     r = slice(starts[j], starts[j + 1])
-                    Cj, yj = C[r], ys[r]
-                    if yj.size == 0:
-                        continue
-                    e = yj - Cj @ m.g[j]
-                    CA = Cj @ m.A[j]
-                    h = np.einsum("ij,ij->i", CA, CA)
-                    sums.rss += float(e @ e)
-                    sums.hmax = max(sums.hmax, float(h.max()))
-                    one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
-                    if one.size:
-                        sums.n_ones += one.size
-                        at_one.append(rows()[r][one])
-                    if not sums.n_ones:
-                        u = hc_weights("hc3", h, n, m.beta.size) * (e * e)
-                        sums.meats[j] += np.dot((Cj * u[:, None]).T, Cj)
-                if at_one and sum(a.size for a in sums.ones) < SHOWN_ROWS:
-                    sums.ones.append(np.sort(np.concatenate(at_one)))
+                    if r.stop > r.start:
+                        Cj = C[r]
+                        np.subtract(ys[r], Cj @ m.g[j], out=e[r])
+                        CA = Cj @ m.A[j]
+                        np.einsum("ij,ij->i", CA, CA, out=h[r])
+                sums.rss += float(e @ e)
+                sums.hmax = max(sums.hmax, float(h.max()))
+                one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
+                if one.size:
+                    sums.n_ones += one.size
+                    if sum(a.size for a in sums.ones) < SHOWN_ROWS:
+                        sums.ones.append(np.sort(rows()[one]))
+                if not sums.n_ones:  # the meats are of no use once a row has leverage one
+                    u = hc_weights("hc3", h, n, m.beta.size)
+                    u *= e * e
+                    for j in range(J):
+                        r = slice(starts[j], starts[j + 1])
+                        if r.stop > r.start:
+                            Cj = C[r]
+                            sums.meats[j] += np.dot((Cj * u[r, None]).T, Cj)
 
     got = fold(chunks, lambda: _ModelSums(len(models), J, width), step)
     for m, sums in zip(models, got.models, strict=True):
