@@ -83,3 +83,50 @@ def test_gq_keeps_ties_together() -> None:
     perm = np.random.default_rng(0).permutation(600)
     again = streamed_gq(array_chunks(X[perm], df.y.to_numpy()[perm], chunk_rows=50, columns={"w": w[perm]}), "w")
     assert again is not None and again["statistic"] == pytest.approx(got["statistic"], rel=1e-9)
+
+
+@pytest.mark.parametrize("chunk_rows", (3, 101, 10**4))
+@pytest.mark.parametrize("decimals", (None, 0))
+def test_gq_groups_summed_in_the_binning_pass(chunk_rows: int, decimals: int | None) -> None:
+    # Reference: numpy cross-products of [X y] over the rows of each group, and the test's own passes
+    # (the same rule, its groups summed apart from the binning check); decimals=0 makes ties at the cuts.
+    from robustmod.kernels.binning import binning_fits
+    from robustmod.kernels.gq import gq_split
+
+    design = build_design(_frame(decimals=decimals), ModelSpec(formula="y ~ x * w", focal="x", moderators=("w",)))
+    w = design.moderators["w"].values
+    d = design.data.frame["x"].to_numpy(dtype=float)
+    chunks = array_chunks(design.X, design.y, chunk_rows=chunk_rows, columns={"x": d, "w": w})
+    split = gq_split(chunks, "w")
+    assert split is not None
+    alone = binning_fits(chunks, focal="x", moderator="w", covariate_columns=[])
+    fits = binning_fits(chunks, focal="x", moderator="w", covariate_columns=[], side_groups=split.groups())
+    assert fits.side is not None and alone.side is None
+    grams, sizes = fits.side
+    Z = np.column_stack([design.X, design.y])
+    for name, rows in (("low", w <= split.low_at_most), ("high", w >= split.high_at_least)):
+        assert sizes[name] == int(rows.sum())
+        assert np.allclose(grams[name], Z[rows].T @ Z[rows], rtol=1e-12, atol=0)
+    # The binning check itself does not change when its first pass also sums the groups.
+    assert fits.wald is not None and alone.wald is not None
+    assert fits.wald.statistic == pytest.approx(alone.wald.statistic, rel=1e-10)
+    shared = streamed_gq(chunks, "w", split=split, gathered=fits.side)
+    own = streamed_gq(chunks, "w")
+    assert shared is not None and own is not None
+    assert shared["statistic"] == pytest.approx(own["statistic"], rel=1e-10)
+    assert shared["df"] == own["df"] and shared["group_sizes"] == own["group_sizes"]
+    assert shared["split"] == own["split"]
+
+
+def test_diagnostics_gq_is_the_standalone_test() -> None:
+    # The diagnostics take Goldfeld–Quandt's groups from the binning check's first pass; the
+    # standalone in-memory test (checked against statsmodels above) is the reference.
+    from robustmod.diagnostics import variance_diagnostics
+
+    design = build_design(_frame(n=2000, seed=8), ModelSpec(formula="y ~ x * w", focal="x", moderators=("w",)))
+    got = variance_diagnostics(design)["goldfeld_quandt"]
+    ref = goldfeld_quandt(design)
+    assert got is not None and ref is not None
+    assert got["statistic"] == pytest.approx(ref["statistic"], rel=1e-10)
+    assert {k: v for k, v in got.items() if k not in {"statistic", "p"}} == \
+        {k: v for k, v in ref.items() if k not in {"statistic", "p"}}

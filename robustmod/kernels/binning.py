@@ -26,8 +26,8 @@ The chunks carry the raw focal predictor and moderator as ``columns[focal]``, ``
 """
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, replace
 from functools import partial
 from typing import Any
 
@@ -104,13 +104,12 @@ def _cuts(values: Callable[[], Any], bins: int | Sequence[float], moderator: str
 
 
 class _Bins:
-    """Per bin: row count, moderator range and focal moments; focal moments of all rows."""
+    """Per bin: row count, moderator range and focal moments."""
 
     def __init__(self, nb: int) -> None:
         self.counts = np.zeros(nb, dtype=np.int64)
         self.lows, self.highs = np.full(nb, np.inf), np.full(nb, -np.inf)
         self.per_bin = [RunningMoments(1) for _ in range(nb)]
-        self.all_d = RunningMoments(1)
 
     def merge(self, other: _Bins) -> _Bins:
         self.counts += other.counts
@@ -118,21 +117,24 @@ class _Bins:
         np.maximum(self.highs, other.highs, out=self.highs)
         for mine, theirs in zip(self.per_bin, other.per_bin, strict=True):
             mine.merge(theirs)
-        self.all_d.merge(other.all_d)
         return self
 
 
 def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Sequence[float], *,
-                sorted_values: np.ndarray | None = None) -> BinSummary:
+                sorted_values: np.ndarray | None = None, focal_spread: bool = True) -> BinSummary:
     """Cut points, counts, ranges, medians and focal spread of each non-empty bin.
 
     ``sorted_values``: the whole moderator column in ascending order, when at hand; the cut points,
-    counts, ranges and medians are then read off it and one pass gathers the focal spread."""
+    counts, ranges and medians are then read off it and one pass gathers the focal spread. With
+    ``focal_spread=False`` as well no pass is made and the focal fields stay empty (pass 1 of
+    :func:`binning_fits` fills them, see :func:`with_focal_spread`)."""
     values = ChunkColumn(chunks, moderator)
     summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
     cuts = _cuts(values, bins, moderator, summary, sorted_values)
     nb = cuts.size + 1
     ranges = sorted_values is None
+    if sorted_values is not None and not focal_spread:
+        return _sorted_bins(sorted_values, cuts, summary, values)
 
     def step(acc: _Bins, chunk: Chunk) -> None:
         w = np.asarray(chunk.columns[moderator], dtype=float)
@@ -140,7 +142,6 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
         idx = bin_numbers(cuts, w)  # rows at a cut go to the lower bin
         here = np.bincount(idx, minlength=nb)
         acc.counts += here
-        acc.all_d.add(d)
         # Each bin's focal moments in this chunk from weighted counts (passes over the rows, not
         # over the rows of each bin), merged into the bin's running moments.
         means: np.ndarray = np.bincount(idx, weights=d, minlength=nb) / np.maximum(here, 1)
@@ -159,22 +160,49 @@ def bin_summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Seq
             acc.per_bin[j].merge(part)
 
     got = fold(chunks, lambda: _Bins(nb), step)
-    counts, lows, highs, per_bin, all_d = got.counts, got.lows, got.highs, got.per_bin, got.all_d
+    counts, lows, highs = got.counts, got.lows, got.highs
     present = np.flatnonzero(counts)
     start = np.concatenate([[0], np.cumsum(counts)])[present]
     c = counts[present]
     if sorted_values is not None:  # bins are runs of the sorted column
         lows[present], highs[present] = sorted_values[start], sorted_values[start + c - 1]
+    medians = _medians(values, start, c, summary, sorted_values)
+    bare = BinSummary(cuts, present, c, medians, lows[present], highs[present], np.zeros(0), np.zeros(0, dtype=bool),
+                      0.0, int(summary[0]))
+    return with_focal_spread(bare, [got.per_bin[j] for j in present])
+
+
+def _medians(values: ChunkColumn, start: np.ndarray, c: np.ndarray, summary: tuple[int, float, float],
+             sorted_values: np.ndarray | None) -> np.ndarray:
+    """Median moderator value of each bin (bin j holds the ranks start[j] … start[j] + c[j] − 1)."""
     ranks = sorted({int(r) for r in np.concatenate([start + (c - 1) // 2, start + c // 2])})
     stats = dict(zip(ranks, order_statistics(values, ranks, summary=summary, sorted_values=sorted_values),
                      strict=False))
-    medians = np.array([0.5 * (stats[int(s + (m - 1) // 2)] + stats[int(s + m // 2)]) for s, m in zip(start, c, strict=False)])
-    focal_sd = np.array([np.sqrt(per_bin[j].m2[0] / max(per_bin[j].n - 1, 1)) for j in present])
-    n = int(summary[0])
-    sd_all = float(np.sqrt(all_d.m2[0] / (n - 1))) if n > 1 else 0.0
-    dmin = np.array([per_bin[j].minimum[0] for j in present])
-    dmax = np.array([per_bin[j].maximum[0] for j in present])
-    return BinSummary(cuts, present, c, medians, lows[present], highs[present], focal_sd, dmax > dmin, sd_all, n)
+    return np.array([0.5 * (stats[int(s + (m - 1) // 2)] + stats[int(s + m // 2)]) for s, m in zip(start, c, strict=False)])
+
+
+def _sorted_bins(sorted_values: np.ndarray, cuts: np.ndarray, summary: tuple[int, float, float],
+                 values: ChunkColumn) -> BinSummary:
+    """Counts, ranges and medians of the bins read off the sorted moderator column (no pass);
+    the focal fields empty."""
+    counts = np.diff(np.concatenate([[0], np.searchsorted(sorted_values, cuts, side="right"), [sorted_values.size]]))
+    present = np.flatnonzero(counts)
+    c = counts[present]
+    start = np.concatenate([[0], np.cumsum(counts)])[present]
+    return BinSummary(cuts, present, c, _medians(values, start, c, summary, sorted_values), sorted_values[start],
+                      sorted_values[start + c - 1], np.zeros(0), np.zeros(0, dtype=bool), 0.0, int(summary[0]))
+
+
+def with_focal_spread(s: BinSummary, per_bin: Sequence[RunningMoments]) -> BinSummary:
+    """``s`` with its focal fields from the focal predictor's moments in each present bin."""
+    focal_sd = np.array([np.sqrt(m.m2[0] / max(m.n - 1, 1)) for m in per_bin])
+    all_d = RunningMoments(1)
+    for m in per_bin:
+        all_d.merge(m)
+    sd_all = float(np.sqrt(all_d.m2[0] / (s.n - 1))) if s.n > 1 else 0.0
+    dmin = np.array([m.minimum[0] for m in per_bin])
+    dmax = np.array([m.maximum[0] for m in per_bin])
+    return replace(s, focal_sd=focal_sd, focal_varies=dmax > dmin, focal_sd_all=sd_all)
 
 
 def binning_columns(chunk: Chunk, s: BinSummary, focal: str, moderator: str,
@@ -224,7 +252,7 @@ def added_from_factor(R: np.ndarray, k: int) -> np.ndarray:
 
 
 #: Rows of a chunk handled at a time: cache-sized blocks make the small products fast and bound the work space.
-BLOCK_ROWS = 1 << 14  # measured at n = 10⁶, k = 7: 148 ms for the check against 160 ms with 1 << 15
+BLOCK_ROWS = 1 << 16  # measured at n = 10⁶, k = 7 beside the other diagnostics: fewer GIL hand-overs than 1 << 14
 #: The four base columns of a bin, in the order of B's column groups.
 BASE = ("one", "d", "w", "dw")
 
@@ -291,21 +319,55 @@ def _check_layout(lay: _Layout, C: np.ndarray, ds: np.ndarray, ws: np.ndarray) -
             raise _LayoutChanged
 
 
-def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: str, *, check: bool = True) -> Any:
-    """(C, y, starts, rows) per block of one chunk's rows, sorted by bin (bin j in rows starts[j]:starts[j + 1]):
-    the compact block C (C-ordered, without y), y, and a function giving the data positions of its rows."""
-    J, k = s.present.size, lay.k
-    lookup = np.zeros(s.cuts.size + 1, dtype=np.uint8 if J < 256 else np.int64)
-    lookup[s.present] = np.arange(J)
+@dataclass(frozen=True)
+class _Cells:
+    """The bins cut further at extra moderator values: rows at a cut in the lower cell, as for bins.
+    ``bin_of[c]``: the present bin holding cell c (0 for the cells of empty bins, which hold no rows);
+    ``first``: the first cell of each present bin, and the number of cells."""
+
+    cuts: np.ndarray
+    bin_of: np.ndarray
+    first: np.ndarray
+
+    @property
+    def size(self) -> int:
+        return self.cuts.size + 1
+
+    def inside(self, low: float, high: float) -> np.ndarray:
+        """The cells whose every value lies in [low, high] (whole cells when both are cut values)."""
+        lower = np.concatenate([[-np.inf], self.cuts])
+        upper = np.concatenate([self.cuts, [np.inf]])
+        return np.flatnonzero((lower >= np.nextafter(low, -np.inf)) & (upper <= high))
+
+
+def _cells(s: BinSummary, groups: Mapping[str, tuple[float, float]]) -> _Cells:
+    """Cells of the bins and of each closed interval of ``groups`` (the bins alone when none)."""
+    extra = [v for lo, hi in groups.values() for v in (np.nextafter(lo, -np.inf), hi) if np.isfinite(v)]
+    cuts = np.unique(np.concatenate([s.cuts, extra])) if extra else s.cuts
+    lookup = np.zeros(s.cuts.size + 1, dtype=np.int64)
+    lookup[s.present] = np.arange(s.present.size)
+    bins = bin_numbers(s.cuts, np.concatenate([cuts, [np.inf]]))  # the bin of each cell's upper end
+    first = np.searchsorted(bins, s.present, side="left")
+    return _Cells(cuts, lookup[bins], np.append(first, cuts.size + 1))
+
+
+def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: str, cells: _Cells, *,
+                  check: bool = True) -> Any:
+    """(C, y, starts, rows, cell starts) per block of one chunk's rows, sorted by cell (bin j in rows
+    starts[j]:starts[j + 1], cell i in rows cell_starts[i]:cell_starts[i + 1]): the compact block C
+    (C-ordered, without y), y, and a function giving the data positions of its rows."""
+    J, k, nc = s.present.size, lay.k, cells.size
+    small = np.arange(nc, dtype=np.uint8 if nc < 256 else np.int64)
     w_all = np.asarray(c.columns[moderator], dtype=float)
     d_all = np.asarray(c.columns[focal], dtype=float)
     for a in range(0, c.size, BLOCK_ROWS):
         b = min(c.size, a + BLOCK_ROWS)
         w, d = w_all[a:b], d_all[a:b]
-        pos = lookup[bin_numbers(s.cuts, w)]
+        pos = small[bin_numbers(cells.cuts, w)]
         order = np.argsort(pos, kind="stable")  # a radix sort of small integers
-        starts = np.zeros(J + 1, dtype=np.int64)
-        np.cumsum(np.bincount(pos, minlength=J), out=starts[1:])
+        cell_starts = np.zeros(nc + 1, dtype=np.int64)
+        np.cumsum(np.bincount(pos, minlength=nc), out=cell_starts[1:])
+        starts = cell_starts[cells.first]
         # Whole rows gathered into a C-ordered block: three times faster than gathering the columns
         # (measured at 16,384 rows × 7), and numpy lets go of the GIL while it copies.
         Xs = np.take(c.X[a:b], order, axis=0, mode="clip")
@@ -329,7 +391,7 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
                     np.subtract(ws[r], s.medians[j], out=col[r])
                     if base == "dw":
                         col[r] *= ds[r]
-        yield C, ys, starts, partial(_block_rows, c, a, b, order)
+        yield C, ys, starts, partial(_block_rows, c, a, b, order), cell_starts
 
 
 def _block_rows(c: Chunk, a: int, b: int, order: np.ndarray) -> np.ndarray:
@@ -372,13 +434,18 @@ def _cholesky_factor(G: np.ndarray) -> np.ndarray | None:
 
 
 class _Grams:
-    """Per bin the Gram matrix of its compact rows."""
+    """Per cell the Gram matrix of its compact rows; per bin the moments of its focal predictor."""
 
-    def __init__(self, J: int, p: int) -> None:
-        self.grams = [np.zeros((p, p)) for _ in range(J)]
+    def __init__(self, cells: int, J: int, p: int) -> None:
+        self.grams = [np.zeros((p, p)) for _ in range(cells)]
+        self.counts = np.zeros(cells, dtype=np.int64)
+        self.focal = [RunningMoments(1) for _ in range(J)]
 
     def merge(self, other: _Grams) -> _Grams:
         self.grams = [a + b for a, b in zip(self.grams, other.grams, strict=True)]
+        self.counts += other.counts
+        for mine, theirs in zip(self.focal, other.focal, strict=True):
+            mine.merge(theirs)
         return self
 
 
@@ -397,30 +464,60 @@ class _Factors:
         return self
 
 
+#: Cross-products of [X y] and row counts of side groups of rows, by group name.
+SideGrams = tuple[dict[str, np.ndarray], dict[str, int]]
+
+
+@dataclass
+class _Pass1:
+    """What pass 1 gathers: R of the wide matrix [X, B, y], how it was factored, the moments of the
+    focal predictor in each bin, and the cross-products of [X y] and row counts of each side group."""
+
+    R: np.ndarray
+    method: str
+    focal: list[RunningMoments]
+    side: SideGrams
+
+
 def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
-                 cov: Sequence[int]) -> tuple[np.ndarray, str]:
-    """R of the wide matrix [X, B, y] from the bins' compact factors (pass 1, a TSQR pass if needed)."""
-    J, p = s.present.size, lay.width + 1
+                 cov: Sequence[int], cells: _Cells, groups: Mapping[str, tuple[float, float]]) -> _Pass1:
+    """R of the wide matrix [X, B, y] from the bins' compact factors (pass 1, a TSQR pass if needed);
+    the same pass sums the cross-products of each cell, of which the bins' and the side groups' are sums."""
+    J, p, d_col, k = s.present.size, lay.width + 1, lay.col("d"), lay.k
+
     def gram_step(acc: _Grams, c: Chunk) -> None:
-        for C, ys, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
-            for j in range(J):
-                r = slice(starts[j], starts[j + 1])
+        for C, ys, _, _, cell_starts in _chunk_blocks(c, s, lay, focal, moderator, cells):
+            for i in range(cells.size):
+                r = slice(cell_starts[i], cell_starts[i + 1])
+                if r.stop == r.start:
+                    continue
                 Cj, yj = C[r], ys[r]
-                G = acc.grams[j]
+                G = acc.grams[i]
                 G[:-1, :-1] += np.dot(Cj.T, Cj)  # see robustmod.lanes on np.dot
                 G[:-1, -1] += np.dot(Cj.T, yj)
                 G[-1, -1] += float(np.dot(yj, yj))
+                acc.counts[i] += r.stop - r.start
+                acc.focal[cells.bin_of[i]].add(Cj[:, d_col])  # C holds the raw focal predictor (layout checked)
 
-    grams = fold(chunks, lambda: _Grams(J, p), gram_step).grams
-    for G in grams:
+    got = fold(chunks, lambda: _Grams(cells.size, J, p), gram_step)
+    for G in got.grams:
         G[-1, :-1] = G[:-1, -1]
+    grams = [sum((got.grams[i] for i in range(cells.first[j], cells.first[j + 1])), np.zeros((p, p)))
+             for j in range(J)]
+    xy = [*range(k), p - 1]  # C starts with X; y is last
+    side_grams: dict[str, np.ndarray] = {}
+    side_sizes: dict[str, int] = {}
+    for name, (lo, hi) in groups.items():
+        inside = cells.inside(lo, hi)
+        side_grams[name] = sum((got.grams[i][np.ix_(xy, xy)] for i in inside), np.zeros((k + 1, k + 1)))
+        side_sizes[name] = int(got.counts[inside].sum())
     factors = [_cholesky_factor(G) for G in grams]
     method = "cholesky"
     if any(f is None for f in factors):
         method = "tsqr"
 
         def tsqr_step(acc: _Factors, c: Chunk) -> None:
-            for C, ys, starts, _ in _chunk_blocks(c, s, lay, focal, moderator):
+            for C, ys, starts, _, _ in _chunk_blocks(c, s, lay, focal, moderator, cells):
                 for j in range(J):
                     r = slice(starts[j], starts[j + 1])
                     acc.accs[j].add(np.column_stack([C[r], ys[r]]), overwrite=True)
@@ -431,7 +528,7 @@ def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, m
     R = np.zeros((width, width))
     top = np.asarray(np.linalg.qr(stacked, mode="r"))
     R[:top.shape[0]] = top[:width]
-    return R, method
+    return _Pass1(R, method, got.focal, (side_grams, side_sizes))
 
 
 @dataclass
@@ -441,7 +538,7 @@ class _Model:
     beta: np.ndarray
     R: np.ndarray
     A: list[np.ndarray]  # per bin, T_j[:, S] R_S⁻¹ (compact → Q-factor coordinates)
-    P: list[np.ndarray]  # per bin, A_j A_jᵀ (the leverage form)
+    L: list[np.ndarray]  # per bin, Rᵀ of the QR of A_jᵀ: ‖c L_j‖ = ‖c A_j‖ with at most `width` columns (leverages)
     g: list[np.ndarray]  # per bin, T_j[:, S] β (the fitted values' form)
     meats: list[np.ndarray]
     rss: float = 0.0
@@ -476,18 +573,19 @@ def _model(R_wide: np.ndarray, S: Sequence[int], maps: list[np.ndarray], width: 
     beta = linalg.solve_triangular(R, qty, check_finite=False)
     Rinv = r_inverse(R)
     A = [T[:width, list(S)] @ Rinv for T in maps]
-    return _Model(beta, R, A, [a @ a.T for a in A], [T[:width, list(S)] @ beta for T in maps],
+    L = [np.ascontiguousarray(np.linalg.qr(a.T, mode="r").T) for a in A]
+    return _Model(beta, R, A, L, [T[:width, list(S)] @ beta for T in maps],
                   [np.zeros((width, width)) for _ in maps], ones=[], columns=tuple(S))
 
 
 def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
-                   models: list[_Model]) -> float:
+                   models: list[_Model], cells: _Cells) -> float:
     """Pass 2 for every model at once: RSS, leverages, leverage-one rows and the HC3 meats; returns
     the centred sum of squares of y."""
     n, width, J = s.n, lay.width, s.present.size
 
     def step(acc: _ModelSums, c: Chunk) -> None:
-        for C, ys, starts, rows in _chunk_blocks(c, s, lay, focal, moderator, check=False):
+        for C, ys, starts, rows, _ in _chunk_blocks(c, s, lay, focal, moderator, cells, check=False):
             acc.ymom.add(ys)
             e, h = np.empty(ys.size), np.empty(ys.size)
             for m, sums in zip(models, acc.models, strict=True):
@@ -498,8 +596,9 @@ def _residual_pass(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str,
                     if r.stop > r.start:
                         Cj = C[r]
                         np.subtract(ys[r], Cj @ m.g[j], out=e[r])
-                        CA = Cj @ m.A[j]
-                        np.einsum("ij,ij->i", CA, CA, out=h[r])
+                        CL = Cj @ m.L[j]  # fewer columns than Cj @ A_j, the same row norms
+                        np.square(CL, out=CL)
+                        np.dot(CL, np.ones(CL.shape[1]), out=h[r])
                 sums.rss += float(e @ e)
                 sums.hmax = max(sums.hmax, float(h.max()))
                 one = np.flatnonzero(h >= 1.0 - LEVERAGE_ONE_TOL)
@@ -579,30 +678,45 @@ class BinningFits:
     wald: JointTest | None
     added: np.ndarray
     notes: tuple[str, ...]
+    #: Cross-products of [X y] and row counts of the ``side_groups`` asked for, when pass 1 ran.
+    side: SideGrams | None = None
 
 
 def _layout_and_factor(chunks: ChunkSource, first: Chunk, s: BinSummary, focal: str, moderator: str,
-                       cov: Sequence[int]) -> tuple[_Layout, np.ndarray, str]:
-    """The compact layout (from the first chunk) and R of the wide matrix."""
+                       cov: Sequence[int], cells: _Cells, groups: Mapping[str, tuple[float, float]]
+                       ) -> tuple[_Layout, _Pass1]:
+    """The compact layout (from the first chunk) and what pass 1 gathers."""
     lay = _find_layout(first, np.asarray(first.columns[focal], dtype=float),
                        np.asarray(first.columns[moderator], dtype=float))
     try:
-        return (lay, *_wide_factor(chunks, s, lay, focal, moderator, cov))
+        return lay, _wide_factor(chunks, s, lay, focal, moderator, cov, cells, groups)
     except _LayoutChanged:  # a later chunk's X differs: every base column as an extra one
         lay = _Layout(lay.k, {})
-        return (lay, *_wide_factor(chunks, s, lay, focal, moderator, cov))
+        return lay, _wide_factor(chunks, s, lay, focal, moderator, cov, cells, groups)
+
+
+def _summary(chunks: ChunkSource, focal: str, moderator: str, bins: int | Sequence[float],
+             sorted_values: np.ndarray | None) -> tuple[BinSummary, list[str]]:
+    """The bins and the first note; with the sorted moderator at hand the bins need no pass, and
+    pass 1 gathers the focal spread (a pass of its own when there will be no pass 1)."""
+    s = bin_summary(chunks, focal, moderator, bins, sorted_values=sorted_values, focal_spread=sorted_values is None)
+    if sorted_values is not None and s.present.size < 2:
+        s = bin_summary(chunks, focal, moderator, bins, sorted_values=sorted_values)
+    notes = ["Some bins are empty (many tied moderator values); they were left out."] \
+        if s.present.size < s.cuts.size + 1 else []
+    return s, notes
 
 
 def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same notes, same order); a split is open work
         chunks: ChunkSource, *, focal: str, moderator: str, covariate_columns: Sequence[int],
-        bins: int | Sequence[float] = 3, alpha: float = 0.05, sorted_values: np.ndarray | None = None) -> BinningFits:
+        bins: int | Sequence[float] = 3, alpha: float = 0.05, sorted_values: np.ndarray | None = None,
+        side_groups: Mapping[str, tuple[float, float]] | None = None) -> BinningFits:
     """The streamed pieces of :func:`robustmod.linearity.binning_check` (its notes' wording kept).
 
-    ``sorted_values``: the whole moderator column in ascending order, when at hand (fewer passes)."""
-    s = bin_summary(chunks, focal, moderator, bins, sorted_values=sorted_values)
-    notes: list[str] = []
-    if s.present.size < s.cuts.size + 1:
-        notes.append("Some bins are empty (many tied moderator values); they were left out.")
+    ``sorted_values``: the whole moderator column in ascending order, when at hand (fewer passes).
+    ``side_groups``: closed intervals [low, high] of the moderator whose rows' cross-products of
+    [X y] pass 1 also sums (Goldfeld–Quandt's groups); in ``side`` of the result when pass 1 ran."""
+    s, notes = _summary(chunks, focal, moderator, bins, sorted_values)
     J = s.present.size
     cov_cols = list(covariate_columns)
     first = next(iter(chunks()))
@@ -610,17 +724,22 @@ def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same no
     if J < 2:
         return BinningFits(s, None, None, np.zeros(0, dtype=int), tuple(notes))
     n_bin_cols = 4 * J + len(cov_cols)
-    lay, R_wide, method = _layout_and_factor(chunks, first, s, focal, moderator, cov_cols)
+    groups = dict(side_groups or {})
+    cells = _cells(s, groups)
+    lay, first_pass = _layout_and_factor(chunks, first, s, focal, moderator, cov_cols, cells, groups)
+    if sorted_values is not None:
+        s = with_focal_spread(s, first_pass.focal)
     maps = [_wide_map(lay, s, j, cov_cols) for j in range(J)]
     bin_model = None
     if s.n <= n_bin_cols + 1:
         notes.append(f"Too few rows ({s.n}) for the {n_bin_cols} columns of the binning model; "
                      "per-bin slopes cannot be estimated.")
     else:
-        bin_model = _model(R_wide, range(k, k + n_bin_cols), maps, lay.width)
+        bin_model = _model(first_pass.R, range(k, k + n_bin_cols), maps, lay.width)
         if bin_model is None:
             notes.append("The binning model is rank-deficient (a bin has too few distinct rows or no focal "
                          "variation); per-bin slopes cannot be estimated.")
+    R_wide, method = first_pass.R, first_pass.method
     added = added_from_factor(R_wide[:k + n_bin_cols, :k + n_bin_cols], k)
     aug_model = None
     aug_tried = bool(added.size) and s.n > k + added.size + 1
@@ -629,7 +748,7 @@ def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same no
     if bin_model is not None and aug_model is not None and _same_span(R_wide, aug_model, bin_model):
         aug_model.sums_from = bin_model
     models = [m for m in (bin_model, aug_model) if m is not None and m.sums_from is None]
-    ss_total = _residual_pass(chunks, s, lay, focal, moderator, models) if models else 0.0
+    ss_total = _residual_pass(chunks, s, lay, focal, moderator, models, cells) if models else 0.0
     est_bin = None
     if bin_model is not None:
         bin_fit = _streamed(bin_model, s.n, ss_total, method).fit("hc3", tuple(f"c{i}" for i in range(n_bin_cols)))
@@ -650,4 +769,4 @@ def binning_fits(  # noqa: PLR0912 - mirrors binning_check step by step (same no
                 notes.append(f"Wald test unavailable: {'rank-deficient' if wf is None else wf.reason}")
     else:
         notes.append("The model already spans the binning model; nothing to test.")
-    return BinningFits(s, est_bin, wald, added, tuple(notes))
+    return BinningFits(s, est_bin, wald, added, tuple(notes), first_pass.side if groups else None)

@@ -19,6 +19,7 @@ two-sided p = 2·min(P(F' ≥ F), P(F' ≤ F)).
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -136,11 +137,16 @@ def _group_grams(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int
     return got.grams, got.sizes
 
 
-def _group_rss(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int
-               ) -> tuple[dict[str, int], dict[str, float]]:
-    """Rows and residual sum of squares of each group's OLS fit (see the module docstring)."""
+#: The groups' cross-products of [X y] and their row counts, by group name ("low", "high").
+GroupGrams = tuple[dict[str, np.ndarray], dict[str, int]]
+
+
+def _group_rss(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int,
+               gathered: GroupGrams | None = None) -> tuple[dict[str, int], dict[str, float]]:
+    """Rows and residual sum of squares of each group's OLS fit (see the module docstring);
+    ``gathered``: the groups' cross-products when another pass has already summed them."""
     names = list(cuts)
-    grams, sizes = _group_grams(chunks, moderator, cuts, k)
+    grams, sizes = gathered if gathered is not None else _group_grams(chunks, moderator, cuts, k)
     fits = {name: _cholesky_fit(G) for name, G in grams.items()}
     if all(f is not None and f[2] <= MAX_LOSS for f in fits.values()):
         return sizes, {name: f[1] for name, f in fits.items() if f is not None}
@@ -162,27 +168,58 @@ def _group_rss(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int
     return sizes, {name: float(acc.factor()[k, k] ** 2) for name, acc in groups.items()}
 
 
-def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
-                    sorted_values: np.ndarray | None = None) -> dict[str, Any] | None:
-    """F test of the residual variances of the high and low moderator groups; None when too few rows.
+@dataclass(frozen=True)
+class Split:
+    """The exact cut values of the streaming rule: low = rows with w ≤ low_at_most, high = rows with
+    w ≥ high_at_least (n rows in all, k columns of X)."""
 
-    ``moderator`` names the chunk column holding the moderator's raw values; ``sorted_values``, when
-    at hand, is that whole column in ascending order (the cut values are then read off it).
-    """
+    n: int
+    k: int
+    low_at_most: float
+    high_at_least: float
+
+    def groups(self) -> dict[str, tuple[float, float]]:
+        """Each group as a closed interval of moderator values."""
+        return {"low": (-np.inf, self.low_at_most), "high": (self.high_at_least, np.inf)}
+
+
+def gq_split(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
+             sorted_values: np.ndarray | None = None) -> Split | None:
+    """The cut values of the streaming rule (module docstring); None when a group would have at most
+    k + 1 rows or the groups would share rows."""
     values = ChunkColumn(chunks, moderator)
     summary = sorted_summary(sorted_values) if sorted_values is not None else column_summary(values)
     n = summary[0]
-    first = next(iter(chunks()))
-    k = first.X.shape[1]
-    drop = round(drop_share * n)
-    n1 = (n - drop) // 2
+    k = next(iter(chunks())).X.shape[1]
+    n1 = (n - round(drop_share * n)) // 2
     if n1 <= k + 1:
         return None
     c_lo, c_hi = order_statistics(values, [n1 - 1, n - n1], summary=summary, sorted_values=sorted_values)
     if c_lo >= c_hi:
         return None
+    return Split(int(n), int(k), float(c_lo), float(c_hi))
+
+
+def goldfeld_quandt(chunks: ChunkSource, moderator: str, *, drop_share: float = DROP_SHARE,
+                    sorted_values: np.ndarray | None = None, split: Split | None = None,
+                    gathered: GroupGrams | None = None) -> dict[str, Any] | None:
+    """F test of the residual variances of the high and low moderator groups; None when too few rows.
+
+    ``moderator`` names the chunk column holding the moderator's raw values; ``sorted_values``, when
+    at hand, is that whole column in ascending order (the cut values are then read off it).
+    ``split`` and ``gathered``: the cut values from :func:`gq_split` and the groups' cross-products,
+    when another pass has summed them (the binning check's first pass does, see
+    :func:`robustmod.kernels.binning.binning_fits`); the test then makes a pass only if the
+    cross-products are not accurate enough (module docstring).
+    """
+    if split is None:
+        split = gq_split(chunks, moderator, drop_share=drop_share, sorted_values=sorted_values)
+        gathered = None
+    if split is None:
+        return None
+    n, k, c_lo, c_hi = split.n, split.k, split.low_at_most, split.high_at_least
     cuts: Cuts = {"low": lambda w: w <= c_lo, "high": lambda w: w >= c_hi}
-    sizes, rss = _group_rss(chunks, moderator, cuts, k)
+    sizes, rss = _group_rss(chunks, moderator, cuts, k, gathered)
     s2 = {name: rss[name] / (sizes[name] - k) for name in cuts}
     if s2["low"] <= 0:
         return None
