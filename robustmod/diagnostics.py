@@ -30,12 +30,12 @@ from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
 from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, array_chunks, in_memory_rows
-from .kernels.gq import DROP_SHARE
+from .kernels.gq import DROP_SHARE, GroupGrams, Split, gq_split
 from .kernels.gq import goldfeld_quandt as streamed_gq
 from .kernels.lmtests import AuxiliaryRegression, ResidualPasses
 from .kernels.spread import ResidualSpread
 from .lanes import run_parts
-from .linearity import BinningCheck, binning_check
+from .linearity import BinningCheck, binning_check, binning_check_sharing
 from .tables import Column, NotApplicable, Table, format_number, make_table
 
 #: Share of middle rows the Goldfeld–Quandt split drops (the kernel's value).
@@ -137,13 +137,16 @@ def _design_chunks(design: Design, columns: Mapping[str, np.ndarray], y: np.ndar
                         columns=columns)
 
 
-def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, Any] | None:
+def goldfeld_quandt(design: Design, moderator: str | None = None, *, split: Split | None = None,
+                    gathered: GroupGrams | None = None) -> dict[str, Any] | None:
     """Split along a continuous moderator; F of residual variances high vs low, two-sided.
 
     The split is by value, ties never split between a group and the dropped middle (the one
     implementation of :func:`robustmod.kernels.gq.goldfeld_quandt`, here over one in-memory
     chunk), so the result does not depend on the order of the rows. None when the model has no
     continuous moderator, the groups are too small to fit, or so many ties that they would overlap.
+    ``split`` and ``gathered``: the cut values and the groups' cross-products when the binning check
+    has summed them (see :func:`_linearity_and_gq`).
     """
     conts = design.continuous_moderators
     if moderator is None:
@@ -153,7 +156,7 @@ def goldfeld_quandt(design: Design, moderator: str | None = None) -> dict[str, A
     info = design.moderators[moderator]
     w = np.asarray(info.values, dtype=float)
     out = streamed_gq(_design_chunks(design, {moderator: w}), moderator, drop_share=GQ_DROP,
-                      sorted_values=info.sorted_values)
+                      sorted_values=info.sorted_values, split=split, gathered=gathered)
     if out is None:
         return None
     tied = "" if out["group_sizes"]["low"] == out["group_sizes"]["high"] == (w.size - round(GQ_DROP * w.size)) // 2 \
@@ -277,6 +280,20 @@ class VarianceDiagnostics(Mapping[str, Any]):
         return out
 
 
+def _linearity_and_gq(design: Design, alpha: float) -> tuple[Any, dict[str, Any] | None]:
+    """The binning check and Goldfeld–Quandt along the first continuous moderator (the default of
+    both), the test's group cross-products summed in the binning check's first pass (one pass over
+    the rows fewer); the test makes its own passes when that pass does not run."""
+    moderator = design.continuous_moderators[0]
+    info = design.moderators[moderator]
+    split = gq_split(_design_chunks(design, {moderator: np.asarray(info.values, dtype=float)}), moderator,
+                     drop_share=GQ_DROP, sorted_values=info.sorted_values)
+    check, side = binning_check_sharing(design, alpha=alpha, side_groups=None if split is None else split.groups())
+    if split is None:
+        return check, None
+    return check, goldfeld_quandt(design, moderator, split=split, gathered=side)
+
+
 def _or_reason(value: Any, reason: str) -> Any:
     return NotApplicable(reason) if value is None else value
 
@@ -314,22 +331,23 @@ def diagnostics_parts(design: Design, alpha: float = 0.05) -> tuple[
     are computed once, whichever part asks first)."""
     if isinstance(alpha, bool) or not isinstance(alpha, (int, float)) or not 0 < alpha < 1:
         raise option_error("alpha", "a number in (0, 1)", alpha)
+    shared = bool(design.continuous_moderators)
     parts: list[tuple[str, Callable[[], Any]]] = [
-        ("linearity", lambda: binning_check(design, alpha=alpha)),
+        ("linearity", (lambda: _linearity_and_gq(design, alpha)) if shared
+         else lambda: (binning_check(design, alpha=alpha), goldfeld_quandt(design))),
         ("lm", lambda: lm_tests(design, ols_residuals(design))),
-        ("goldfeld_quandt", lambda: goldfeld_quandt(design)),
         ("residual_spread", lambda: residual_spread(design, ols_residuals(design))),
     ]
 
     def assemble(got: Mapping[str, Any]) -> VarianceDiagnostics:
-        (bp, wh), gq = got["lm"], got["goldfeld_quandt"]
+        (bp, wh), (linearity, gq) = got["lm"], got["linearity"]
         tests = [t for t in (bp, wh, gq) if t is not None]
         return VarianceDiagnostics(
             alpha=float(alpha), breusch_pagan=bp, white=wh,
             goldfeld_quandt=_or_reason(gq, "no continuous moderator, or halves too small to fit"),
             residual_spread=_or_reason(got["residual_spread"], "no moderator"),
             se_gap=_or_reason(se_gap(design), "a standard error could not be computed (e.g. leverage 1)"),
-            linearity=_or_reason(got["linearity"], "no continuous moderator"),
+            linearity=_or_reason(linearity, "no continuous moderator"),
             non_constant_variance=any(t["p"] is not None and t["p"] < alpha for t in tests),
         )
 

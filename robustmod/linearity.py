@@ -31,7 +31,7 @@ from .backends.ols import design_fit
 from .design import Design
 from .errors import InputError, option_error
 from .jsonvalues import num as _num
-from .kernels.binning import BinSummary, binning_fits
+from .kernels.binning import BinSummary, SideGrams, binning_fits
 from .kernels.chunks import DEFAULT_BUDGET, array_chunks, in_memory_rows
 from .tables import Column, Table, format_df, format_number, format_p, make_table
 
@@ -160,12 +160,23 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     the linear model's conditional slope at the bin medians. The Wald test sets the binning columns
     the linear model lacks to zero, 4(J − 1) restrictions, with the HC3 covariance.
     """
+    return binning_check_sharing(design, moderator=moderator, bins=bins, alpha=alpha, min_bin_rows=min_bin_rows,
+                                 min_focal_spread=min_focal_spread)[0]
+
+
+def binning_check_sharing(design: Design, *, moderator: str | None = None, bins: int | Sequence[float] = DEFAULT_BINS,
+                          alpha: float = 0.05, min_bin_rows: int = MIN_BIN_ROWS, min_focal_spread: float = MIN_FOCAL_SPREAD,
+                          side_groups: Mapping[str, tuple[float, float]] | None = None
+                          ) -> tuple[BinningCheck | None, SideGrams | None]:
+    """:func:`binning_check`, and the cross-products of [X y] and row counts of ``side_groups`` (closed
+    intervals of the moderator's values) summed in its first pass; None in their place when that pass
+    did not run."""
     if not (isinstance(alpha, (int, float)) and not isinstance(alpha, bool) and 0 < alpha < 1):
         raise option_error("alpha", "a number in (0, 1)", alpha)
     conts = design.continuous_moderators
     if moderator is None:
         if not conts:
-            return None
+            return None, None
         moderator = conts[0]
     elif moderator not in conts:
         raise InputError(
@@ -179,13 +190,13 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
     chunks = array_chunks(design.X, design.y, chunk_rows=in_memory_rows(DEFAULT_BUDGET, design.n_params + 4),
                           columns={design.focal: d, moderator: w})
     fits = binning_fits(chunks, focal=design.focal, moderator=moderator, covariate_columns=cov_cols, bins=bins,
-                        alpha=alpha, sorted_values=info.sorted_values)
+                        alpha=alpha, sorted_values=info.sorted_values, side_groups=side_groups)
     s = fits.summary
     notes = list(fits.notes)
     if s.present.size < 2:
         return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=[], wald=None,
                             nonlinear=None, alpha=float(alpha),
-                            notes=(*notes, "Fewer than two non-empty bins; no check possible."))
+                            notes=(*notes, "Fewer than two non-empty bins; no check possible.")), fits.side
     est_lin = _linear_slopes(design, moderator, s.medians, alpha)
     bin_rows, thin_any, sparse_any = _bin_rows(s, fits.bin_slopes, est_lin, min_bin_rows, min_focal_spread)
     if thin_any:
@@ -201,9 +212,10 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
         "statistic": _num(jt.statistic), "df": [int(jt.df_num), _num(jt.df_den)], "p": _num(jt.p),
         "method": f"HC3 {jt.method}: binning columns beyond the model are zero"}
     nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < alpha)
-    return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=bin_rows, wald=wald,
-                        nonlinear=nonlinear, alpha=float(alpha), notes=tuple(notes), thin_bins=thin_any,
-                        low_focal_variation=sparse_any)
+    check = BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=bin_rows, wald=wald,
+                         nonlinear=nonlinear, alpha=float(alpha), notes=tuple(notes), thin_bins=thin_any,
+                         low_focal_variation=sparse_any)
+    return check, fits.side
 
 
 def linearity_table(lin: Mapping[str, Any]) -> Table:
