@@ -573,7 +573,7 @@ def _model(R_wide: np.ndarray, S: Sequence[int], maps: list[np.ndarray], width: 
     beta = linalg.solve_triangular(R, qty, check_finite=False)
     Rinv = r_inverse(R)
     A = [T[:width, list(S)] @ Rinv for T in maps]
-    L = [np.ascontiguousarray(np.linalg.qr(a.T, mode="r").T) for a in A]
+    L = [np.ascontiguousarray(np.asarray(np.linalg.qr(a.T, mode="r")).T) for a in A]
     return _Model(beta, R, A, L, [T[:width, list(S)] @ beta for T in maps],
                   [np.zeros((width, width)) for _ in maps], ones=[], columns=tuple(S))
 
