@@ -4,7 +4,8 @@ The same results as :func:`robustmod.diagnostics.variance_diagnostics` in memory
 kernels: Breusch–Pagan (Koenker) and White and the residual spread ride on the shared OLS residual
 pass (:class:`robustmod.kernels.lmtests.AuxiliaryRegression`, :class:`robustmod.kernels.spread.ResidualSpread`);
 Goldfeld–Quandt is :func:`robustmod.kernels.gq.goldfeld_quandt` (exact cut values, ties kept
-together); the binning check is :func:`robustmod.kernels.binning.binning_fits`. The tercile cut points
+together); the binning check is :func:`robustmod.kernels.binning.binning_fits`, whose first pass also
+sums Goldfeld–Quandt's two groups (one pass over the file fewer). The tercile cut points
 are computed once (exact streamed quantiles, as ``np.quantile``) and serve the spread table and the
 binning check alike.
 """
@@ -17,8 +18,8 @@ import numpy as np
 from .backends.base import WaldFit
 from .diagnostics import GQ_DROP, SPREAD_BINS, VarianceDiagnostics, se_gap_of_fits
 from .jsonvalues import num
-from .kernels.binning import binning_fits
-from .kernels.gq import goldfeld_quandt
+from .kernels.binning import SideGrams, binning_fits
+from .kernels.gq import Split, goldfeld_quandt, gq_split
 from .kernels.lmtests import AuxiliaryRegression, ols_residual_passes
 from .kernels.order import quantiles
 from .kernels.spread import ResidualSpread
@@ -65,13 +66,16 @@ class DiagnosticPasses:
                   "form": "n·R² on levels, squares and cross-products (dependent columns dropped)"}
         gq = spread = lin = None
         if self.moderator is not None:
-            with d.stage("Goldfeld–Quandt"):
-                gq = self._goldfeld_quandt()
+            with d.stage("Goldfeld–Quandt"):  # its cut values; its groups are summed in the binning check's pass 1
+                split = gq_split(d.chunks, self.moderator, drop_share=GQ_DROP)
             assert self.spread is not None
             spread = {**self.spread.result(), "form": f"SD of OLS residuals (ddof 1) within moderator bins "
                                                       f"({SPREAD_BINS} quantile bins)"}
             with d.stage("binning check"):
-                lin = self._binning()
+                lin, side = self._binning(None if split is None else split.groups())
+            if split is not None:
+                with d.stage("Goldfeld–Quandt"):  # a pass of its own only when pass 1 did not run or was not accurate enough
+                    gq = self._goldfeld_quandt(split, side)
         tests = [t for t in (bp, wh, gq) if t is not None]
         gap = self._se_gap()
         return VarianceDiagnostics(
@@ -83,10 +87,11 @@ class DiagnosticPasses:
             non_constant_variance=any(t["p"] is not None and t["p"] < self.alpha for t in tests),
         )
 
-    def _goldfeld_quandt(self) -> dict[str, Any] | None:
-        """As :func:`robustmod.diagnostics.goldfeld_quandt`, the form saying whether ties moved the cut."""
+    def _goldfeld_quandt(self, split: Split, side: SideGrams | None) -> dict[str, Any] | None:
+        """As :func:`robustmod.diagnostics.goldfeld_quandt`, the form saying whether ties moved the cut;
+        ``side``: the groups' cross-products from the binning check's first pass, when it ran."""
         assert self.moderator is not None
-        out = goldfeld_quandt(self.data.chunks, self.moderator, drop_share=GQ_DROP)
+        out = goldfeld_quandt(self.data.chunks, self.moderator, drop_share=GQ_DROP, split=split, gathered=side)
         if out is None:
             return None
         n = self.data.design.n_obs
@@ -100,8 +105,10 @@ class DiagnosticPasses:
         d = self.data
         return se_gap_of_fits(d.design, [d.ols_fit(kind) for kind in ("ols", "hc3")])
 
-    def _binning(self) -> BinningCheck:  # noqa: PLR0914 - mirrors linearity.binning_check field by field
-        """As :func:`robustmod.linearity.binning_check` with its defaults, from the streamed bins."""
+    def _binning(self, side_groups: dict[str, tuple[float, float]] | None  # noqa: PLR0914 - mirrors linearity.binning_check field by field
+                 ) -> tuple[BinningCheck, SideGrams | None]:
+        """As :func:`robustmod.linearity.binning_check` with its defaults, from the streamed bins, and the
+        cross-products of ``side_groups`` summed in its first pass (None when that pass did not run)."""
         d, design, moderator = self.data, self.data.design, self.moderator
         assert moderator is not None
         info = design.moderators[moderator]
@@ -110,12 +117,12 @@ class DiagnosticPasses:
         bins: Any = [float(c) for c in cuts] if inside else DEFAULT_BINS  # the kernel recomputes the same cuts
         fits = binning_fits(d.chunks, focal=design.focal, moderator=moderator,
                             covariate_columns=design.columns_without({design.focal, moderator}), bins=bins,
-                            alpha=self.alpha)
+                            alpha=self.alpha, side_groups=side_groups)
         s = fits.summary
         if s.present.size < 2:
             return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=[], wald=None,
                                 nonlinear=None, alpha=self.alpha,
-                                notes=(*fits.notes, "Fewer than two non-empty bins; no check possible."))
+                                notes=(*fits.notes, "Fewer than two non-empty bins; no check possible.")), fits.side
         notes = list(fits.notes)
         est_bin = fits.bin_slopes
         fit_lin = d.ols_fit("hc3")
@@ -160,4 +167,4 @@ class DiagnosticPasses:
         nonlinear = None if wald is None or wald["p"] is None else bool(wald["p"] < self.alpha)
         return BinningCheck(moderator=moderator, cut_points=[float(c) for c in s.cuts], bins=rows, wald=wald,
                             nonlinear=nonlinear, alpha=self.alpha, notes=tuple(notes), thin_bins=thin_any,
-                            low_focal_variation=sparse_any)
+                            low_focal_variation=sparse_any), fits.side

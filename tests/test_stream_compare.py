@@ -99,6 +99,27 @@ def test_chunks_of_three_rows_with_missing_values_percentiles_and_centring(tmp_p
     assert _differences(_contract(mem), _contract(got)) == []
 
 
+def test_goldfeld_quandt_groups_come_from_the_binning_pass(tmp_path: Path, chunk_rows: Any,
+                                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    # Goldfeld–Quandt's group cross-products are summed in the binning check's first pass, in memory and
+    # over a file read in chunks: the test's own cross-product pass must not run (the numbers themselves
+    # are checked against the standalone test and statsmodels in tests/test_stream_split.py).
+    from robustmod.kernels import gq
+
+    path = _write(_wage1(), tmp_path, "parquet")
+    chunk_rows(150)
+    mem = compare(path, formula=FORMULA, focal="educ", moderator="exper", backends=["hc3"], stream=False)
+
+    def refuse(*args: Any, **kwargs: Any) -> Any:
+        raise AssertionError("Goldfeld–Quandt summed its groups in a pass of its own")
+
+    monkeypatch.setattr(gq, "_group_grams", refuse)
+    for streamed in (False, True):
+        got = compare(path, formula=FORMULA, focal="educ", moderator="exper", backends=["hc3"], stream=streamed)
+        assert got.diagnostics["goldfeld_quandt"]["statistic"] == pytest.approx(
+            mem.diagnostics["goldfeld_quandt"]["statistic"], rel=1e-9)
+
+
 def test_streamed_back_ends_are_declared_by_the_registry(tmp_path: Path, chunk_rows: Any) -> None:
     path = _write(_wage1(), tmp_path, "parquet")
     res = compare(path, formula=FORMULA, focal="educ", moderator="exper", backends=["hc3", "wild", "cr2"],
