@@ -29,8 +29,9 @@ from .blas_threads import one_blas_thread
 from .design import Design
 from .errors import option_error
 from .jsonvalues import num as _num
+from .kernels.accumulate import GroupGrams
 from .kernels.chunks import DEFAULT_BUDGET, ChunkSource, array_chunks, in_memory_rows
-from .kernels.gq import DROP_SHARE, GroupGrams, Split, gq_split
+from .kernels.gq import DROP_SHARE, Split, gq_split
 from .kernels.gq import goldfeld_quandt as streamed_gq
 from .kernels.lmtests import AuxiliaryRegression, ResidualPasses
 from .kernels.spread import ResidualSpread

@@ -31,7 +31,8 @@ from .backends.ols import design_fit
 from .design import Design
 from .errors import InputError, option_error
 from .jsonvalues import num as _num
-from .kernels.binning import BinSummary, SideGrams, binning_fits
+from .kernels.accumulate import GroupGrams
+from .kernels.binning import BinSummary, binning_fits
 from .kernels.chunks import DEFAULT_BUDGET, array_chunks, in_memory_rows
 from .tables import Column, Table, format_df, format_number, format_p, make_table
 
@@ -167,7 +168,7 @@ def binning_check(design: Design, *, moderator: str | None = None, bins: int | S
 def binning_check_sharing(design: Design, *, moderator: str | None = None, bins: int | Sequence[float] = DEFAULT_BINS,
                           alpha: float = 0.05, min_bin_rows: int = MIN_BIN_ROWS, min_focal_spread: float = MIN_FOCAL_SPREAD,
                           side_groups: Mapping[str, tuple[float, float]] | None = None
-                          ) -> tuple[BinningCheck | None, SideGrams | None]:
+                          ) -> tuple[BinningCheck | None, GroupGrams | None]:
     """:func:`binning_check`, and the cross-products of [X y] and row counts of ``side_groups`` (closed
     intervals of the moderator's values) summed in its first pass; None in their place when that pass
     did not run."""

@@ -18,7 +18,8 @@ import numpy as np
 from .backends.base import WaldFit
 from .diagnostics import GQ_DROP, SPREAD_BINS, VarianceDiagnostics, se_gap_of_fits
 from .jsonvalues import num
-from .kernels.binning import SideGrams, binning_fits
+from .kernels.accumulate import GroupGrams
+from .kernels.binning import binning_fits
 from .kernels.gq import Split, goldfeld_quandt, gq_split
 from .kernels.lmtests import AuxiliaryRegression, ols_residual_passes
 from .kernels.order import quantiles
@@ -87,7 +88,7 @@ class DiagnosticPasses:
             non_constant_variance=any(t["p"] is not None and t["p"] < self.alpha for t in tests),
         )
 
-    def _goldfeld_quandt(self, split: Split, side: SideGrams | None) -> dict[str, Any] | None:
+    def _goldfeld_quandt(self, split: Split, side: GroupGrams | None) -> dict[str, Any] | None:
         """As :func:`robustmod.diagnostics.goldfeld_quandt`, the form saying whether ties moved the cut;
         ``side``: the groups' cross-products from the binning check's first pass, when it ran."""
         assert self.moderator is not None
@@ -106,7 +107,7 @@ class DiagnosticPasses:
         return se_gap_of_fits(d.design, [d.ols_fit(kind) for kind in ("ols", "hc3")])
 
     def _binning(self, side_groups: dict[str, tuple[float, float]] | None  # noqa: PLR0914 - mirrors linearity.binning_check field by field
-                 ) -> tuple[BinningCheck, SideGrams | None]:
+                 ) -> tuple[BinningCheck, GroupGrams | None]:
         """As :func:`robustmod.linearity.binning_check` with its defaults, from the streamed bins, and the
         cross-products of ``side_groups`` summed in its first pass (None when that pass did not run)."""
         d, design, moderator = self.data, self.data.design, self.moderator

@@ -14,6 +14,9 @@ from __future__ import annotations
 import numpy as np
 from scipy.linalg import lapack
 
+#: Cross-products of [X y] and row counts of named groups of rows (Goldfeld–Quandt's "low" and "high").
+GroupGrams = tuple[dict[str, np.ndarray], dict[str, int]]
+
 
 class RunningMoments:
     """Count, mean and centred sum of squares of p columns, merged chunk by chunk."""

@@ -38,7 +38,7 @@ from ..backends.base import Estimates, JointTest, WaldFit
 from ..backends.hc import LEVERAGE_ONE_TOL, hc_weights, r_inverse
 from ..cholesky import scaled_cholesky
 from ..errors import InputError, option_error
-from .accumulate import TSQR, RunningMoments
+from .accumulate import TSQR, GroupGrams, RunningMoments
 from .chunks import Chunk, ChunkColumn, ChunkSource, fold
 from .ols import MAX_CONDITION, SHOWN_ROWS, StreamedOLS
 from .order import bin_numbers, column_summary, order_statistics, quantiles, sorted_summary
@@ -464,10 +464,6 @@ class _Factors:
         return self
 
 
-#: Cross-products of [X y] and row counts of side groups of rows, by group name.
-SideGrams = tuple[dict[str, np.ndarray], dict[str, int]]
-
-
 @dataclass
 class _Pass1:
     """What pass 1 gathers: R of the wide matrix [X, B, y], how it was factored, the moments of the
@@ -476,7 +472,7 @@ class _Pass1:
     R: np.ndarray
     method: str
     focal: list[RunningMoments]
-    side: SideGrams
+    side: GroupGrams
 
 
 def _wide_factor(chunks: ChunkSource, s: BinSummary, lay: _Layout, focal: str, moderator: str,
@@ -679,7 +675,7 @@ class BinningFits:
     added: np.ndarray
     notes: tuple[str, ...]
     #: Cross-products of [X y] and row counts of the ``side_groups`` asked for, when pass 1 ran.
-    side: SideGrams | None = None
+    side: GroupGrams | None = None
 
 
 def _layout_and_factor(chunks: ChunkSource, first: Chunk, s: BinSummary, focal: str, moderator: str,

@@ -27,7 +27,7 @@ from scipy import linalg, stats
 
 from ..cholesky import scaled_cholesky
 from ..jsonvalues import num
-from .accumulate import TSQR
+from .accumulate import TSQR, GroupGrams
 from .chunks import Chunk, ChunkColumn, ChunkSource, fold
 from .ols import MAX_CONDITION
 from .order import column_summary, order_statistics, sorted_summary
@@ -135,10 +135,6 @@ def _group_grams(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int
     for G in got.grams.values():
         G[k, :k] = G[:k, k]
     return got.grams, got.sizes
-
-
-#: The groups' cross-products of [X y] and their row counts, by group name ("low", "high").
-GroupGrams = tuple[dict[str, np.ndarray], dict[str, int]]
 
 
 def _group_rss(chunks: ChunkSource, moderator: str, cuts: Cuts, k: int,
