@@ -50,6 +50,15 @@ def test_dask_local_cluster_matches_local_engine(workers: int) -> None:
     assert lines and "127.0.0.1" in lines[0]
 
 
+def test_dask_runs_one_after_another_with_the_same_state_names() -> None:
+    # States are dicts with the same names from run to run (as the calibration's are): scattered value
+    # by value, each under its dict key, the second run lost its inputs ("lost dependencies").
+    with make_engine("dask", workers=2) as eng:
+        for scale in (1.0, 2.0, 3.0, 4.0):
+            state = {**STATE, "scale": scale}
+            assert eng.map(seeded_sum, TASKS[:4], state) == [seeded_sum(state, *t) for t in TASKS[:4]]
+
+
 def test_dask_worker_killed_mid_run_is_replaced_and_results_unchanged() -> None:
     state = {**STATE, "sleep": 0.3}
     with make_engine("dask", workers=2) as eng:

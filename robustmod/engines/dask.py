@@ -90,7 +90,10 @@ class DaskEngine(Engine):
 
         if not tasks:
             return []
-        shared = self._client.scatter(state, broadcast=True) if state is not None else None
+        # One object under a key of its own: a dict scattered as it is would put each value under its
+        # dict key ('design', 'options', …), names that collide between runs on one scheduler, and a
+        # lost worker then left the scheduler trying to compute such a key (seen as "already forgotten").
+        shared = self._client.scatter([state], hash=False, broadcast=True)[0] if state is not None else None
         futures = [self._client.submit(_call, fn, shared, task, pure=False, retries=RETRIES) for task in tasks]
         index = {f.key: i for i, f in enumerate(futures)}
         results: list[Any] = [None] * len(tasks)
