@@ -357,14 +357,14 @@ def _chunk_blocks(c: Chunk, s: BinSummary, lay: _Layout, focal: str, moderator: 
     starts[j]:starts[j + 1], cell i in rows cell_starts[i]:cell_starts[i + 1]): the compact block C
     (C-ordered, without y), y, and a function giving the data positions of its rows."""
     J, k, nc = s.present.size, lay.k, cells.size
-    small = np.arange(nc, dtype=np.uint8 if nc < 256 else np.int64)
+    small = np.uint8 if nc < 256 else np.int64  # cell numbers as small integers: argsort is then a radix sort
     w_all = np.asarray(c.columns[moderator], dtype=float)
     d_all = np.asarray(c.columns[focal], dtype=float)
     for a in range(0, c.size, BLOCK_ROWS):
         b = min(c.size, a + BLOCK_ROWS)
         w, d = w_all[a:b], d_all[a:b]
-        pos = small[bin_numbers(cells.cuts, w)]
-        order = np.argsort(pos, kind="stable")  # a radix sort of small integers
+        pos = bin_numbers(cells.cuts, w).astype(small)
+        order = np.argsort(pos, kind="stable")
         cell_starts = np.zeros(nc + 1, dtype=np.int64)
         np.cumsum(np.bincount(pos, minlength=nc), out=cell_starts[1:])
         starts = cell_starts[cells.first]
